@@ -1,0 +1,2 @@
+def main(argv=None):
+    raise SystemExit("liveshape: command line not built yet")
