@@ -1,0 +1,527 @@
+"""Level schedule and safety supervisor: when to step up, when to stop, and why.
+
+Pure. Two small state machines that the controller feeds with numbers; neither touches the drive
+itself (the controller ramps it down when :class:`Supervisor` returns a :class:`Trip`).
+
+:class:`LevelSchedule`
+    Steps the test level through ``schedule.steps_db`` (e.g. −12, −9, −6, −3, 0 dB). It steps up
+    only after the control has been inside tolerance (every line within its alarm limit and the
+    rms within the rms alarm limit) continuously for ``hold_s``; time at full level is counted
+    only at 0 dB with the gain settled there (reduced-level time is not counted toward the test
+    duration, DOMAIN.md §5 practice).
+
+:class:`Supervisor`
+    The abort rules. Every threshold comes from ``spec.safety`` and ``spec.tolerance``:
+
+    ==================  =======================================================================
+    rule                trips when
+    ==================  =======================================================================
+    ``rms_abort``       control grms above target by more than ``rms_abort_db`` (update
+                        estimate; also a fast check on the running partial average with a
+                        5-sigma statistical allowance, so a jump is caught within a segment)
+    ``lines_abort``     ≥ ``abort_min_lines`` lines beyond the abort band on
+                        ``abort_persist_updates`` consecutive (independent) update estimates;
+                        the band is widened where the χ² scatter of the estimate alone could
+                        put that many lines outside (see :func:`scatter_limits_db`)
+    ``drive_limit``     drive rms at its ceiling (or peak clipped) while the control is still
+                        below target by more than ``rms_alarm_db``, persistent
+    ``input_overload``  ``|response| >= input_overload_fs`` on any sample
+    ``loop_open``       control below what the identified FRF predicts for the drive played
+                        by more than ``loop_open_db``, persistent
+    ``response_silent`` response rms below ``silent_floor_fs`` for a hop while drive is up
+    ``non_finite``      a NaN or infinity in the response
+    ``controller_late`` the rig reports a drive underflow (the output ran dry)
+    ``connect_check``   the control channel does not respond to the low-level connection drive
+    ==================  =======================================================================
+
+Each rule has its own process exit status (:data:`EXIT_STATUS`).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from scipy import special, stats
+
+from liveshape.errors import SafetyAbort
+
+#: Exit status of a completed run.
+EXIT_COMPLETED = 0
+#: Exit status of a usage or configuration error (reserved for the command line).
+EXIT_USAGE = 2
+#: Exit status of a run stopped by Ctrl-C or SIGTERM (128 + SIGINT, shell convention).
+EXIT_STOPPED = 130
+#: Exit status of each safety rule.
+EXIT_STATUS: dict[str, int] = {
+    "rms_abort": 10,
+    "lines_abort": 11,
+    "drive_limit": 12,
+    "input_overload": 13,
+    "loop_open": 14,
+    "response_silent": 15,
+    "non_finite": 16,
+    "controller_late": 17,
+    "connect_check": 18,
+}
+RULES: tuple[str, ...] = tuple(EXIT_STATUS)
+
+#: False-count probability per update estimate that sets the statistical widening of the
+#: abort band (lines_abort): a control exactly on target shows ``abort_min_lines`` lines beyond
+#: the widened band with probability at most this, from χ² scatter alone.
+LINES_FALSE_ALARM = 1e-6
+#: z of the statistical allowance of the fast rms check (one-sided normal tail 2.9e-7).
+FAST_RMS_Z = 5.0
+# Correlation of Hann-window periodogram values one and two lines apart, for white noise:
+# w² = 3/8 − cos/2 + cos(2·)/8 so the complex correlations are −2/3 and 1/6 and the power
+# correlations their squares [calc from the window's coefficients].
+_HANN_RHO2 = (4.0 / 9.0, 1.0 / 36.0)
+_DB = 10.0 / math.log(10.0)
+
+
+def exit_status(status: str, trip: Trip | None = None) -> int:
+    """Process exit status for a run ``status`` (completed | aborted | stopped)."""
+    if status == "completed":
+        return EXIT_COMPLETED
+    if status == "stopped":
+        return EXIT_STOPPED
+    if status == "aborted":
+        if trip is None:
+            raise ValueError("an aborted run needs its trip")
+        return EXIT_STATUS[trip.rule]
+    raise ValueError(f"unknown run status {status!r}")
+
+
+@dataclass(frozen=True)
+class Trip:
+    """A tripped safety rule.
+
+    Attributes
+    ----------
+    rule : str
+        One of :data:`RULES`.
+    message : str
+        One line a person reads, with the numbers.
+    t_s : float
+        Run time of the trip, s (samples / fs).
+    detail : dict
+        The numbers that tripped it, with units in the key names.
+    """
+
+    rule: str
+    message: str
+    t_s: float = 0.0
+    detail: dict[str, Any] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        if self.rule not in EXIT_STATUS:
+            raise ValueError(f"unknown safety rule {self.rule!r}")
+
+    @property
+    def exit_status(self) -> int:
+        return EXIT_STATUS[self.rule]
+
+    def as_error(self) -> SafetyAbort:
+        return SafetyAbort(self.rule, self.message, self.detail)
+
+
+# ---- statistics -----------------------------------------------------------------------------
+
+
+def scatter_limits_db(
+    dof: float, n_lines: int, min_lines: int, alpha: float = LINES_FALSE_ALARM
+) -> tuple[float, float]:
+    """How far χ² scatter alone may put ``min_lines`` of ``n_lines`` lines, in dB.
+
+    With ``ν Ĝ/G ~ χ²_ν`` per line (Bendat & Piersol), the per-line two-sided probability ``p``
+    is chosen so that the binomial probability of ``min_lines`` or more of ``n_lines`` lines
+    beyond it is ``alpha`` (``scipy.special.bdtri``); the limits are the χ² quantiles at
+    ``p/2`` on each side. Example: ν = 40, 338 lines, 3 lines, α = 1e-6 gives about
+    −5.1/+3.4 dB, inside the usual ±6 dB abort band, so the band is not widened.
+
+    Returns
+    -------
+    lo_db, hi_db : float
+        Magnitudes (both > 0) of the lower and upper scatter limits in dB.
+    """
+    if not dof > 0:
+        return math.inf, math.inf
+    n = max(int(n_lines), 1)
+    k = max(int(min_lines), 1)
+    if k > n:
+        return math.inf, math.inf
+    p = float(special.bdtri(k - 1, n, 1.0 - alpha))  # P(X >= k) = alpha
+    lo = stats.chi2.ppf(p / 2, dof) / dof
+    hi = stats.chi2.isf(p / 2, dof) / dof
+    return -_DB * math.log(lo), _DB * math.log(hi)
+
+
+def band_sum_dof(psd: np.ndarray, dof: float) -> float:
+    """Equivalent DOF of a sum of PSD lines, each a χ²_ν estimate (Satterthwaite).
+
+    ``ν_eff = ν (ΣG)² / (ΣG² + 2 Σ ρ₁² G_k G_{k+1} + 2 Σ ρ₂² G_k G_{k+2})`` with the power
+    correlations of neighbouring Hann lines ρ₁² = 4/9, ρ₂² = 1/36 [calc]. A flat band of M lines
+    gives ``ν M / 1.94``.
+    """
+    g = np.asarray(psd, dtype=float)
+    total = float(g.sum())
+    if not total > 0 or not dof > 0:
+        return 0.0
+    quad = float(np.dot(g, g))
+    for j, r2 in enumerate(_HANN_RHO2, start=1):
+        if g.size > j:
+            quad += 2.0 * r2 * float(np.dot(g[:-j], g[j:]))
+    return dof * total * total / quad
+
+
+def db_std(dof: float) -> float:
+    """dB standard deviation of a χ²_ν estimate: ``4.343 √ψ1(ν/2)`` (DOMAIN.md §3)."""
+    return _DB * math.sqrt(float(special.polygamma(1, 0.5 * dof)))
+
+
+# ---- level schedule -------------------------------------------------------------------------
+
+
+class LevelSchedule:
+    """The reduced-level steps of a test and the time counted at full level.
+
+    Parameters
+    ----------
+    schedule : spec.Schedule
+        ``steps_db`` (increasing, last 0), ``hold_s``, ``full_level_s``, ``rate_db_s``.
+
+    Notes
+    -----
+    The controller calls :meth:`observe` after each tolerance decision, :meth:`step_up` when it
+    starts the ramp to the next step (with the ramp duration ``|Δ dB| / rate_db_s``), and
+    :meth:`count_full_level` for every block played with the gain settled at the step's level.
+    """
+
+    def __init__(self, schedule: Any) -> None:
+        steps = tuple(float(s) for s in schedule.steps_db)
+        rising = all(b > a for a, b in zip(steps[:-1], steps[1:], strict=True))
+        if not steps or steps[-1] != 0.0 or not rising:
+            raise ValueError(f"steps_db must increase to 0, got {steps}")
+        self.steps_db = steps
+        self.hold_s = float(schedule.hold_s)
+        self.full_level_s = float(schedule.full_level_s)
+        self.rate_db_s = float(schedule.rate_db_s)
+        self._index = 0
+        self._since_s: float | None = None
+        self._full_s = 0.0
+
+    @property
+    def index(self) -> int:
+        """Index of the current step in ``steps_db``."""
+        return self._index
+
+    @property
+    def level_db(self) -> float:
+        """Level of the current step, dB re full level."""
+        return self.steps_db[self._index]
+
+    @property
+    def at_last_step(self) -> bool:
+        return self._index == len(self.steps_db) - 1
+
+    @property
+    def in_tolerance_since_s(self) -> float | None:
+        return self._since_s
+
+    @property
+    def time_at_full_level_s(self) -> float:
+        return self._full_s
+
+    @property
+    def remaining_s(self) -> float:
+        """Full-level time still to run, s."""
+        return max(0.0, self.full_level_s - self._full_s)
+
+    @property
+    def complete(self) -> bool:
+        return self._full_s >= self.full_level_s
+
+    def observe(self, t_s: float, in_tolerance: bool) -> bool:
+        """Record one tolerance decision at run time ``t_s``; True when a step up is due.
+
+        A step up is due when every decision since ``t_s - hold_s`` or earlier was in
+        tolerance (the first in-tolerance decision starts the hold clock; any decision out of
+        tolerance stops it) and the current step is not the last.
+        """
+        if not in_tolerance:
+            self._since_s = None
+            return False
+        if self._since_s is None:
+            self._since_s = float(t_s)
+        return (not self.at_last_step) and (t_s - self._since_s >= self.hold_s)
+
+    def step_up(self) -> tuple[float, float]:
+        """Move to the next step; return ``(new level_db, ramp duration_s)``."""
+        if self.at_last_step:
+            raise RuntimeError("already at full level")
+        old = self.level_db
+        self._index += 1
+        self._since_s = None
+        return self.level_db, self.ramp_duration_s(old, self.level_db)
+
+    def ramp_duration_s(self, from_db: float, to_db: float) -> float:
+        """Duration of a dB-linear ramp at ``rate_db_s``, s."""
+        return abs(to_db - from_db) / self.rate_db_s
+
+    def count_full_level(self, duration_s: float, *, settled: bool) -> float:
+        """Add ``duration_s`` of drive played at the current step; counted only at 0 dB.
+
+        Returns the time actually counted, s.
+        """
+        if not (self.at_last_step and settled) or duration_s <= 0:
+            return 0.0
+        self._full_s += float(duration_s)
+        return float(duration_s)
+
+
+# ---- supervisor -----------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class UpdateVerdict:
+    """What the supervisor concluded from one update estimate.
+
+    Attributes
+    ----------
+    trip : Trip or None
+    pending : tuple of str
+        Rules whose condition holds but has not yet persisted long enough to trip; the
+        controller holds the drive while any is pending.
+    rms_error_db : float
+        ``10 log10(Σ control / Σ target)`` over the band, dB.
+    lines_beyond_abort : int
+        Lines beyond the (statistically widened) abort band.
+    abort_lo_db, abort_hi_db : float
+        Scatter limits from :func:`scatter_limits_db` for this estimate's DOF (the band used is
+        the larger of these and the tolerance's abort limit).
+    loop_gap_db : float
+        ``10 log10(Σ control / Σ predicted)``, dB (nan without a prediction).
+    """
+
+    trip: Trip | None
+    pending: tuple[str, ...]
+    rms_error_db: float
+    lines_beyond_abort: int
+    abort_lo_db: float
+    abort_hi_db: float
+    loop_gap_db: float
+
+
+class Supervisor:
+    """The abort rules, evaluated per block (:meth:`check_block`) and per update estimate.
+
+    Parameters
+    ----------
+    safety : spec.SafetyLimits
+    tolerance : profile.Tolerance
+    fs_hz : float
+        Sample rate, Hz (time = samples / fs).
+    silent_window : int
+        Consecutive samples of silence that trip ``response_silent`` (the controller passes one
+        hop, ``frame_length / 2``).
+    """
+
+    def __init__(self, safety: Any, tolerance: Any, *, fs_hz: float, silent_window: int) -> None:
+        self.safety = safety
+        self.tolerance = tolerance
+        self.fs_hz = float(fs_hz)
+        self.silent_window = int(silent_window)
+        self._silent_run = 0
+        self._persist: dict[str, int] = {"lines_abort": 0, "drive_limit": 0, "loop_open": 0}
+
+    def reset_persistence(self) -> None:
+        """Forget counts of consecutive updates (after a level change)."""
+        for k in self._persist:
+            self._persist[k] = 0
+
+    # -- per block ----------------------------------------------------------------------
+    def check_block(self, t_s: float, response_fs: np.ndarray, *, drive_up: bool) -> Trip | None:
+        """Sample-level rules on one response block: non_finite, input_overload, silence.
+
+        ``drive_up`` says the drive that produced this block was on (silence is only a fault
+        then).
+        """
+        y = np.asarray(response_fs, dtype=float)
+        if y.size == 0:
+            return None
+        if not np.isfinite(y).all():
+            bad = int(np.count_nonzero(~np.isfinite(y)))
+            return Trip("non_finite", f"response contains {bad} non-finite samples (NaN/inf)",
+                        t_s, {"samples_bad": bad})
+        peak = float(np.max(np.abs(y)))
+        limit = float(self.safety.input_overload_fs)
+        if peak >= limit:
+            return Trip(
+                "input_overload",
+                f"control input overload: |response| {peak:.3f} FS >= {limit:.3f} FS",
+                t_s, {"response_peak_fs": peak, "input_overload_fs": limit},
+            )
+        rms = float(np.sqrt(np.mean(y * y)))
+        floor = float(self.safety.silent_floor_fs)
+        if drive_up and rms < floor:
+            self._silent_run += y.size
+        else:
+            self._silent_run = 0
+        if self._silent_run >= self.silent_window:
+            dur = self._silent_run / self.fs_hz
+            return Trip(
+                "response_silent",
+                f"control input silent for {dur:.3f} s while driving: rms {rms:.2e} FS < "
+                f"{floor:.2e} FS",
+                t_s, {"response_rms_fs": rms, "silent_floor_fs": floor, "silent_s": dur},
+            )
+        return None
+
+    def report_underflow(self, t_s: float, count: int) -> Trip | None:
+        """The rig ran out of drive samples ``count`` times: trips ``controller_late``."""
+        if count <= 0:
+            return None
+        return Trip(
+            "controller_late",
+            f"drive underflow: the output ran dry {count} times (controller too late)",
+            t_s, {"underflows": int(count)},
+        )
+
+    def check_rms_fast(
+        self, t_s: float, control_psd: np.ndarray, target_psd: np.ndarray, dof: float
+    ) -> Trip | None:
+        """``rms_abort`` on a running partial average (few segments).
+
+        Trips when the band rms error exceeds ``rms_abort_db`` plus ``FAST_RMS_Z`` standard
+        deviations of the band sum's dB scatter (Satterthwaite DOF, :func:`band_sum_dof`).
+        """
+        c = float(np.sum(control_psd))
+        r = float(np.sum(target_psd))
+        nu = band_sum_dof(control_psd, dof)
+        if not (c > 0 and r > 0 and nu > 0):
+            return None
+        err = _DB * math.log(c / r)
+        allow = FAST_RMS_Z * db_std(nu)
+        limit = float(self.tolerance.rms_abort_db)
+        if err > limit + allow:
+            return Trip(
+                "rms_abort",
+                f"control rms {err:+.2f} dB above target (limit +{limit:.2f} dB, "
+                f"+{allow:.2f} dB allowed for a {nu:.0f}-DOF partial estimate)",
+                t_s, {"rms_error_db": err, "rms_abort_db": limit, "allowance_db": allow,
+                      "band_dof": nu},
+            )
+        return None
+
+    # -- per update ---------------------------------------------------------------------
+    def check_update(
+        self,
+        t_s: float,
+        *,
+        control_psd: np.ndarray,
+        target_psd: np.ndarray,
+        dof: float,
+        abort_db: np.ndarray,
+        predicted_psd: np.ndarray | None = None,
+        drive_at_limit: bool = False,
+    ) -> UpdateVerdict:
+        """Rules on one update estimate (band lines only, g²/Hz).
+
+        Parameters
+        ----------
+        control_psd, target_psd : ndarray
+            Estimated control and target on the band lines, g²/Hz.
+        dof : float
+            DOF per line of ``control_psd``.
+        abort_db : ndarray
+            Abort limit (± dB) per band line.
+        predicted_psd : ndarray, optional
+            Control the identified FRF predicts for the drive played (|Ĥ|²·drive), g²/Hz.
+        drive_at_limit : bool
+            The drive is at its rms ceiling or peak limit.
+        """
+        ctrl = np.asarray(control_psd, dtype=float)
+        tgt = np.asarray(target_psd, dtype=float)
+        lim = self.tolerance
+        s = self.safety
+        c_sum, r_sum = float(ctrl.sum()), float(tgt.sum())
+        rms_err = _DB * math.log(c_sum / r_sum) if c_sum > 0 and r_sum > 0 else -math.inf
+        detail_base = {"rms_error_db": rms_err, "dof": float(dof)}
+
+        # rms_abort: a band sum over many lines has little scatter: no persistence.
+        if rms_err > lim.rms_abort_db:
+            trip = Trip(
+                "rms_abort",
+                f"control rms {rms_err:+.2f} dB above target (limit +{lim.rms_abort_db:.2f} dB)",
+                t_s, {**detail_base, "rms_abort_db": float(lim.rms_abort_db)},
+            )
+            return self._verdict(trip, (), rms_err, 0, math.nan, math.nan, math.nan)
+
+        # lines_abort, statistics-aware
+        with np.errstate(divide="ignore", invalid="ignore"):
+            dev = _DB * np.log(np.where(tgt > 0, ctrl / tgt, 1.0))
+        dev = np.where(np.isfinite(dev), dev, -np.inf)  # a dead line (0) is far below
+        lo_s, hi_s = scatter_limits_db(dof, ctrl.size, int(s.abort_min_lines))
+        abort = np.asarray(abort_db, dtype=float)
+        beyond = (dev > np.maximum(abort, hi_s)) | (dev < -np.maximum(abort, lo_s))
+        n_beyond = int(np.count_nonzero(beyond))
+        pending: list[str] = []
+        trip = self._persistent(
+            "lines_abort", n_beyond >= int(s.abort_min_lines), t_s, pending,
+            lambda n: (
+                f"{n_beyond} lines beyond the abort limits for {n} consecutive updates "
+                f"(max {float(np.max(dev)):+.1f} dB, min {float(np.min(dev)):+.1f} dB)"
+            ),
+            {**detail_base, "lines_beyond_abort": n_beyond,
+             "max_dev_db": float(np.max(dev)), "min_dev_db": float(np.min(dev)),
+             "scatter_lo_db": lo_s, "scatter_hi_db": hi_s},
+        )
+        if trip is not None:
+            return self._verdict(trip, (), rms_err, n_beyond, lo_s, hi_s, math.nan)
+
+        # drive_limit
+        below = rms_err < -float(lim.rms_alarm_db)
+        trip = self._persistent(
+            "drive_limit", bool(drive_at_limit) and below, t_s, pending,
+            lambda n: (
+                f"drive limit reached: control {rms_err:+.2f} dB below target with the drive at "
+                f"its limit for {n} consecutive updates"
+            ),
+            {**detail_base, "rms_alarm_db": float(lim.rms_alarm_db)},
+        )
+        if trip is not None:
+            return self._verdict(trip, (), rms_err, n_beyond, lo_s, hi_s, math.nan)
+
+        # loop_open
+        gap = math.nan
+        if predicted_psd is not None:
+            p_sum = float(np.sum(predicted_psd))
+            if p_sum > 0:
+                gap = _DB * math.log(c_sum / p_sum) if c_sum > 0 else -math.inf
+        trip = self._persistent(
+            "loop_open", gap < -float(s.loop_open_db), t_s, pending,
+            lambda n: (
+                f"loop open: control {gap:+.1f} dB below what the identified FRF predicts for "
+                f"the drive (limit -{float(s.loop_open_db):.1f} dB) for {n} consecutive updates"
+            ),
+            {**detail_base, "loop_gap_db": gap, "loop_open_db": float(s.loop_open_db)},
+        )
+        return self._verdict(trip, tuple(pending), rms_err, n_beyond, lo_s, hi_s, gap)
+
+    def _persistent(self, rule, condition, t_s, pending, message, detail) -> Trip | None:
+        if not condition:
+            self._persist[rule] = 0
+            return None
+        self._persist[rule] += 1
+        n = self._persist[rule]
+        need = int(self.safety.abort_persist_updates)
+        if n >= need:
+            return Trip(rule, message(n), t_s, {**detail, "updates": n})
+        pending.append(rule)
+        return None
+
+    @staticmethod
+    def _verdict(trip, pending, rms_err, n_beyond, lo, hi, gap) -> UpdateVerdict:
+        return UpdateVerdict(trip, pending, rms_err, n_beyond, lo, hi, gap)
