@@ -1,0 +1,287 @@
+"""Tests of the terminal views, rendered into StringIO consoles.
+
+Outside references: the chi-square confidence interval of a PSD estimate (Bendat & Piersol,
+Random Data; computed here with scipy.stats.chi2), Welch's (1967) equivalent DOF of overlapped
+Hann segments (c(1) = 1/6 at 50 % overlap), the NAVMAT P-9492 screening profile and the exact
+integral of a power-law segment (see /work/shared/DOMAIN.md §1), and the decibel definition
+10·log10 of a power ratio.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import io
+import math
+import re
+
+import numpy as np
+import pytest
+import scipy.stats
+
+from liveshape import dashboard as dash
+from liveshape.profile import Profile, Tolerance
+
+WIDTH = 120
+
+
+def _render(renderable, width: int = WIDTH) -> str:
+    console = dash.make_console(file=io.StringIO(), width=width)
+    console.print(renderable)
+    return console.file.getvalue()
+
+
+def _navmat() -> Profile:
+    # NAVMAT P-9492 screening spectrum: 20-80 Hz +3 dB/oct, 80-350 Hz 0.04 g²/Hz, 350-2000 Hz
+    # -3 dB/oct (NAVMAT P-9492; end values 0.01 and 0.007 g²/Hz as tabulated in DOMAIN.md §1).
+    return Profile((20.0, 80.0, 350.0, 2000.0), (0.01, 0.04, 0.04, 0.007), name="navmat")
+
+
+@dataclasses.dataclass(frozen=True)
+class _Event:
+    t_s: float
+    kind: str
+    message: str
+    data: dict
+
+
+@dataclasses.dataclass(frozen=True)
+class _Snapshot:
+    """Stand-in with the agreed field names of the controller's snapshot (demo values)."""
+
+    t_s: float = 42.0
+    stage: str = "full_level"
+    level_db: float = 0.0
+    step_index: int = 4
+    n_steps: int = 5
+    elapsed_s: float = 42.0
+    remaining_s: float = 55.0
+    time_at_full_level_s: float = 5.0
+    control_grms_g: float = 5.912
+    target_grms_g: float = 6.058
+    drive_rms_fs: float = 0.231
+    drive_peak_fs: float = 0.93
+    drive_rms_max_fs: float = 0.5
+    drive_peak_max_fs: float = 1.0
+    f_hz: np.ndarray = dataclasses.field(default_factory=lambda: np.arange(513) * 8000 / 1024)
+    control_psd: np.ndarray | None = None
+    target_psd: np.ndarray | None = None
+    drive_psd: np.ndarray | None = None
+    alarm_db: float = 3.0
+    abort_db: float = 6.0
+    max_dev_db: float = 3.7
+    min_dev_db: float = -2.4
+    lines_outside_alarm: int = 17
+    lines_outside_abort: int = 2
+    rms_error_db: float = -0.21
+    dof: float = 120.0
+    updates: int = 31
+    status: str = "running"
+    trip: object = None
+    events: tuple = (
+        _Event(1.5, "stage", "identify: low-level noise", {}),
+        _Event(30.0, "level", "level 0 dB", {"level_db": 0.0}),
+        _Event(40.0, "alarm", "17 lines outside alarm", {"lines": 17}),
+    )
+
+
+def _snapshot(**kw) -> _Snapshot:
+    snap = _Snapshot(**kw)
+    if snap.target_psd is None:
+        t = _navmat().asd_at(snap.f_hz)
+        snap = dataclasses.replace(snap, target_psd=t, control_psd=t * 10 ** (0.5 / 10))
+    return snap
+
+
+def test_dashboard_shows_the_numbers():
+    out = _render(dash.dashboard(_snapshot()))
+    assert "full level" in out
+    assert "level +0.0 dB" in out and "step 5 of 5" in out
+    assert "elapsed 0:42" in out and "remaining 0:55" in out and "at full level 0:05" in out
+    assert "5.912 / 6.058 g" in out
+    # 20 log10(5.912 / 6.058) = -0.21 dB (decibels of an amplitude ratio).
+    assert f"({20 * math.log10(5.912 / 6.058):+.2f} dB)" in out
+    assert "+3.70 dB / -2.40 dB" in out
+    assert "17 alarm" in out and "2 abort" in out
+    assert "0.231 of 0.500 FS  (46 %)" in out and "0.930 of 1.000 FS  (93 %)" in out
+    assert "17 lines outside alarm" in out and "identify: low-level noise" in out
+    assert "─ target" in out and "● control" in out
+
+
+@pytest.mark.parametrize("dof", [16.0, 60.0, 120.0, 240.0])
+def test_dashboard_chi2_band_matches_chi_square(dof):
+    # 90 % interval of the true PSD about an estimate with nu DOF: nu/chi2_{0.95}, nu/chi2_{0.05}
+    # (Bendat & Piersol); e.g. nu = 120 gives -0.87 / +0.98 dB.
+    lo = 10 * math.log10(dof / scipy.stats.chi2.ppf(0.95, dof))
+    hi = 10 * math.log10(dof / scipy.stats.chi2.ppf(0.05, dof))
+    out = _render(dash.dashboard(_snapshot(dof=dof)))
+    assert f"DOF                       {dof:.0f}   90 % χ² band {lo:+.2f} / {hi:+.2f} dB" in out
+
+
+def test_dashboard_without_spectrum_and_nan_numbers():
+    snap = _snapshot(stage="connect", f_hz=np.zeros(0), control_grms_g=float("nan"),
+                     dof=float("nan"), events=())
+    snap = dataclasses.replace(snap, target_psd=np.zeros(0), control_psd=None)
+    out = _render(dash.dashboard(snap))
+    assert "connect" in out and "no spectrum yet" in out and "none yet" in out
+    assert "— / 6.058 g" in out
+
+
+def _plot_rows(text) -> list[str]:
+    lines = text.plain.splitlines()
+    return [ln for ln in lines if "│" in ln]
+
+
+def _grid(rows: list[str]) -> list[str]:
+    return [ln.split("│", 1)[1] for ln in rows]
+
+
+def test_plot_control_on_target_hides_target_line():
+    # 4097 lines over one decade: every column holds lines, so every column gets a control mark.
+    f = np.linspace(0, 4000, 4097)
+    t = np.where((f >= 200) & (f <= 2000), 0.04, 0.0)
+    text = dash.spectrum_plot(f, t, t, 3.0, 6.0, width=60, height=15)
+    grid = _grid(_plot_rows(text))
+    assert sum(row.count("●") for row in grid) == 60
+    assert not any("─" in row for row in grid)
+    (target_row,) = [i for i, row in enumerate(grid) if "●" in row]
+    # The flat target sits on the row labelled with its own value (0.04 is not a label; the
+    # limits at ±3 and ±6 dB are symmetric about it, so it is the middle of the abort marks).
+    colons = [i for i, row in enumerate(grid) if ":" in row]
+    assert target_row == (colons[0] + colons[-1]) / 2
+
+
+def test_plot_control_beyond_abort_is_marked_outside():
+    f = np.linspace(0, 4000, 4097)
+    t = np.where((f >= 200) & (f <= 2000), 0.04, 0.0)
+    # The plot spans the abort limits and 2 dB more: +7.5 dB is beyond abort and on the plot.
+    text = dash.spectrum_plot(f, t * 10**0.75, t, 3.0, 6.0, width=60, height=15)
+    grid = _grid(_plot_rows(text))
+    control_rows = {i for i, row in enumerate(grid) if "●" in row}
+    abort_rows = [i for i, row in enumerate(grid) if ":" in row]
+    assert max(control_rows) < min(abort_rows)  # above the upper abort limit
+    styles = {span.style for span in text.spans if text.plain[span.start:span.end] == "●"}
+    assert styles == {dash.PALETTE.abort}
+    # Off the plot: drawn as arrows on the edge rows.
+    text = dash.spectrum_plot(f, t * 1e-4, t, 3.0, 6.0, width=60, height=15)
+    assert _grid(_plot_rows(text))[-1].count("▼") == 60
+    text = dash.spectrum_plot(f, t * 10.0, t, 3.0, 6.0, width=60, height=15)
+    assert _grid(_plot_rows(text))[0].count("▲") == 60
+
+
+def test_plot_slope_follows_the_y_labels():
+    # A -3.0103 dB/oct target over 20-2000 Hz falls 20 dB (exponent n = -1: a2/a1 = f1/f2).
+    f = np.linspace(0, 4000, 8193)
+    t = np.where((f >= 20) & (f <= 2000), 0.1 * (20.0 / np.maximum(f, 1e-9)), 0.0)
+    text = dash.spectrum_plot(f, None, t, 3.0, 6.0, width=70, height=25)
+    rows = _plot_rows(text)
+    grid = _grid(rows)
+    label = {ln.split("│")[0].strip(): i for i, ln in enumerate(rows) if ln.split("│")[0].strip()}
+    rows_per_10db = label["0.01"] - label["0.1"]
+    first = next(i for i, row in enumerate(grid) if row[0] == "─")
+    last = next(i for i, row in enumerate(grid) if row[-1] == "─")
+    # Labels and marks are each rounded to the nearest row: allow one row either way.
+    assert abs((last - first) - 2 * rows_per_10db) <= 1
+    assert first == pytest.approx(label["0.1"], abs=1)
+
+
+def _welch_segments_for_dof(target: float) -> int:
+    # Welch (1967): nu = 2K / (1 + 2 (1 - 1/K) c(1)^2) for Hann at 50 % overlap, c(1) = 1/6.
+    k = 1
+    while 2 * k / (1 + 2 * (1 - 1 / k) / 36) < target:
+        k += 1
+    return k
+
+
+def test_check_table_profile_figures():
+    from types import SimpleNamespace
+
+    control = SimpleNamespace(fs_hz=48000.0, frame_length=8192, target_dof=120.0,
+                              averaging="exponential")
+    out = _render(dash.check_table(_navmat(), Tolerance(), control))
+    # Exact integral of the NAVMAT profile: 6.06 grms (published rounded as 6.0), x_rms 0.194 mm
+    # (DOMAIN.md §1, [calc] from the closed-form segment integrals).
+    grms = float(re.search(r"grms\s+([\d.]+) g", out).group(1))
+    assert grms == pytest.approx(6.06, abs=0.005)  # published to two decimals
+    assert "0.194 mm" in out
+    assert "20 – 2000 Hz" in out
+    # ±3 dB/oct segments: 10 log10(4) / log2(4) = 3.0103 dB/oct.
+    assert out.count("+3.01") == 1 and out.count("-3.01") == 1
+    assert "±3 / ±6 dB" in out and "±1 / ±1.5 dB" in out
+    k = _welch_segments_for_dof(120.0)
+    seconds = ((k - 1) * 4096 + 8192) / 48000.0
+    assert f"{seconds:.2f} s ({k} segments, Hann 50 %)" in out
+    df = 48000.0 / 8192
+    in_band = math.floor(2000 / df) - math.ceil(20 / df) + 1
+    assert f"{in_band} in band" in out
+    # Segment areas add up to grms² (the shares add to 100 %).
+    shares = [float(x) for x in re.findall(r"(\d+\.\d) %", out)]
+    assert sum(shares) == pytest.approx(100.0, abs=0.15)  # three values rounded to 0.05 each
+
+
+def test_check_table_with_feasibility_rows():
+    from types import SimpleNamespace
+
+    class Feas:
+        def to_dict(self):
+            return {"ok": False, "stroke_pp_m": 0.0042, "drive_rms_v": 3.1, "notes": "too deep"}
+
+    control = SimpleNamespace(fs_hz=8000.0, frame_length=1024, target_dof=60.0,
+                              averaging="linear")
+    out = _render(dash.check_table(_navmat(), Tolerance(), control, Feas()))
+    assert "rig feasibility" in out
+    assert re.search(r"ok\s+no", out) and re.search(r"stroke pp\s+0.0042 m", out)
+    assert re.search(r"drive rms\s+3.1 V", out) and "too deep" in out
+
+
+def test_run_summary_and_synth_summary():
+    out = _render(dash.run_summary({
+        "status": "aborted", "abort_reason": "lines_abort: 4 lines beyond 6 dB",
+        "control_grms_g": 5.5, "target_grms_g": 6.058, "final_rms_error_db": -0.84,
+        "final_max_dev_db": 7.2, "final_lines_outside_alarm": 40,
+        "final_lines_outside_abort": 4, "updates_to_tolerance": None, "dof": 120,
+        "time_at_full_level_s": 12.25, "calibrated": False,
+    }))
+    for word in ("aborted", "lines_abort: 4 lines beyond 6 dB", "5.500 / 6.058 g", "-0.84 dB",
+                 "+7.20 dB", "40 / 4", "12.2 s", "calibrated"):
+        assert word in out, word
+    out = _render(dash.synth_summary({"path": "drive.wav", "duration_s": 60.0,
+                                      "rms_fs": 0.25, "crest_factor": 4.0, "kurtosis": 2.98}))
+    assert re.search(r"duration\s+60 s", out) and re.search(r"rms\s+0.25 FS", out)
+    assert re.search(r"kurtosis\s+2.98", out) and "drive.wav" in out
+
+
+def test_print_error_one_line_no_markup():
+    console = dash.make_console(file=io.StringIO(), width=60)
+    msg = "bench.yaml: control.fs_hz = [bold]0[/bold] must be > 0 " + "x" * 80
+    dash.print_error(console, msg + "\nsecond line")
+    out = console.file.getvalue()
+    assert out == f"liveshape: {msg}\n"
+
+
+def test_safety_notice_words():
+    out = _render(dash.safety_notice())
+    for word in ("hearing protection", "payload", "fixture", "amplifier gain", "minimum",
+                 "moving parts", "Ctrl-C", "ramps down", "safety rules"):
+        assert word in out, word
+
+
+def test_progress_bar_clips_and_finishes():
+    console = dash.make_console(file=io.StringIO(), width=80)
+    with dash.progress_bar("writing drive", console=console, transient=False) as progress:
+        for x in (0.0, 0.25, float("nan"), 0.5, 1.7):
+            progress(x)
+    out = console.file.getvalue()
+    assert "writing drive" in out and "100%" in out
+
+
+def test_live_view_rate_limit_and_flush():
+    now = [0.0]
+    console = dash.make_console(file=io.StringIO(), width=WIDTH)
+    with dash.LiveView(console, refresh_hz=5.0, clock=lambda: now[0]) as view:
+        assert view.update(_snapshot(stage="identify"))
+        now[0] = 0.1  # sooner than 1/5 s: dropped, kept for flush
+        assert not view.update(_snapshot(stage="equalize"))
+        now[0] = 0.15
+        assert not view.update(_snapshot(stage="ramp_down"))
+    assert view.builds == 2  # the first and the flushed last one
+    assert "ramp down" in console.file.getvalue()
