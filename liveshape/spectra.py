@@ -443,9 +443,21 @@ class _Stream:
     def _accumulate(self, spectra: np.ndarray) -> None:  # pragma: no cover - abstract
         raise NotImplementedError
 
-    def _weight(self) -> float:
-        """Weight of the newest segment after ``self._k`` was incremented (exponential)."""
-        return 1.0 / min(self._k, self._n_avg)
+    def _exp_coefficients(self, m: int) -> tuple[float, np.ndarray]:
+        """Apply ``m`` exponential updates at once; returns (factor of the old state, weights).
+
+        Segment ``k`` (counted from 1) enters with the weight ``a_k = 1 / min(k, n_avg)``:
+        ``G_k = (1 - a_k) G_{k-1} + a_k P_k``, a running mean for the first ``n_avg`` segments
+        and the exponential average after. Unrolled over the batch,
+        ``G = prod(1 - a) G_old + sum_i a_i prod_{j>i}(1 - a_j) P_i``.
+        """
+        k = self._k + np.arange(1, m + 1)
+        a = 1.0 / np.minimum(k, self._n_avg)
+        keep = 1.0 - a
+        after = np.ones(m)
+        after[:-1] = np.cumprod(keep[::-1])[::-1][1:]
+        self._k += m
+        return float(np.prod(keep)), a * after
 
 
 class CrossSpectrum(_Stream):
@@ -578,12 +590,13 @@ class CrossSpectrum(_Stream):
             self._syy += pyy.sum(axis=0)
             self._sxy += pxy.sum(axis=0)
             return
-        for i in range(xs.shape[0]):
-            self._k += 1
-            a = self._weight()
-            self._sxx += a * (pxx[i] - self._sxx)
-            self._syy += a * (pyy[i] - self._syy)
-            self._sxy += a * (pxy[i] - self._sxy)
+        keep, coef = self._exp_coefficients(xs.shape[0])
+        self._sxx *= keep
+        self._sxx += coef @ pxx
+        self._syy *= keep
+        self._syy += coef @ pyy
+        self._sxy *= keep
+        self._sxy += coef @ pxy
 
     def _mean(self, s: np.ndarray) -> np.ndarray:
         if self._averaging == "linear" and self._k:
@@ -676,9 +689,9 @@ class PsdAverager(_Stream):
             self._k += xs.shape[0]
             self._s += p.sum(axis=0)
             return
-        for i in range(xs.shape[0]):
-            self._k += 1
-            self._s += self._weight() * (p[i] - self._s)
+        keep, coef = self._exp_coefficients(xs.shape[0])
+        self._s *= keep
+        self._s += coef @ p
 
     @property
     def psd(self) -> np.ndarray:

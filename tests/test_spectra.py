@@ -167,17 +167,28 @@ def test_parseval_bin_centred_sine_and_hann_enbw():
 
 def test_parseval_white_noise_variance():
     rng = np.random.default_rng(7)
-    sigma = 0.3
+    sigma, nperseg = 0.3, 512
     x = sigma * rng.standard_normal(2**16)
-    f, p = welch_psd(x, FS, 512)
-    # Parseval: sum(psd) df = mean square (physical). Both are estimates of sigma²; their
-    # difference comes from the window weighting. Relative standard deviation of a sample
-    # variance of N Gaussian samples is sqrt(2/N); the Hann-weighted one uses N/1.94 effective
-    # samples at 50 % overlap (36/19 DOF per 512/... -> bounded by sqrt(2 * 2/N)); 5 sigma.
-    tol = 5 * math.sqrt(2 * 2.0 / x.size)
+    f, p = welch_psd(x, FS, nperseg)
+    # Parseval (physical): sum(psd) df is the mean of each segment's Hann-weighted mean square,
+    # i.e. sum_n v_n x_n**2 with the weights v_n below (they sum to 1). For Gaussian white noise
+    # var(x**2) = 2 sigma**4 (Isserlis), so the estimate's standard deviation is
+    # sigma**2 sqrt(2 sum v**2). 5 standard deviations.
+    w = sig.get_window("hann", nperseg)
+    hop = nperseg // 2
+    k = (x.size - hop) // hop
+    v = np.zeros(x.size)
+    for i in range(k):
+        v[i * hop:i * hop + nperseg] += w**2 / (k * np.sum(w**2))
+    tol = 5 * math.sqrt(2 * np.sum(v**2))
     assert abs(np.sum(p) * f[1] / sigma**2 - 1) < tol
-    # White noise has the flat one-sided density 2 sigma² / fs (definition of one-sided PSD)
-    assert abs(np.mean(p[2:-2]) / (2 * sigma**2 / FS) - 1) < tol
+    # White noise has the flat one-sided density 2 sigma**2 / fs (definition of one-sided PSD).
+    # Each line scatters with relative variance 2/nu (chi-square, Bendat & Piersol); the mean of
+    # L lines has at most (1 + 2*4/9 + 2/36)/L of it, since the Hann DFT kernel spans 3 bins
+    # (Harris 1978) and Gaussian periodogram correlations are |rho|**2 = 4/9, 1/36 (Isserlis).
+    lines = p[2:-2]
+    tol = 5 * math.sqrt(2 / welch_dof(k) * (1 + 8 / 9 + 2 / 36) / lines.size)
+    assert abs(np.mean(lines) / (2 * sigma**2 / FS) - 1) < tol
 
 
 def test_welch_dof_closed_forms():
@@ -226,6 +237,203 @@ def test_chi2_interval_arrays_and_db_scatter():
     m1 = dist.expect(lambda v: 10 * np.log10(v / nu))
     m2 = dist.expect(lambda v: (10 * np.log10(v / nu)) ** 2)
     assert db_scatter_std(nu) == pytest.approx(math.sqrt(m2 - m1**2), rel=1e-6)
+
+
+# ---------------------------------------------------------------------------------------------
+# Level 2 (statistics): Monte Carlo against Welch 1967 and the chi-square law
+# ---------------------------------------------------------------------------------------------
+
+
+def _nu_hat(p: np.ndarray) -> float:
+    """nu = 2 mean**2 / var of estimates (rows: independent trials, columns: lines).
+
+    A scaled chi-square G chi2_nu / nu has mean G and variance 2 G**2 / nu (Bendat & Piersol).
+    """
+    return 2.0 * float(np.mean(p.mean(axis=0))) ** 2 / float(np.mean(p.var(axis=0, ddof=1)))
+
+
+def _nu_hat_with_error(p: np.ndarray, n_batches: int = 40) -> tuple[float, float]:
+    """Point estimate from all trials and its standard error from batch means of trials."""
+    batches = np.array([_nu_hat(b) for b in np.array_split(p, n_batches)])
+    return _nu_hat(p), float(batches.std(ddof=1) / math.sqrt(n_batches))
+
+
+@pytest.mark.parametrize("k", [2, 8, 32])
+def test_welch_dof_by_monte_carlo(k):
+    rng = np.random.default_rng(100 + k)
+    nperseg = 64
+    trials = 12_800 // k * 4
+    x = rng.standard_normal((trials, (k + 1) * nperseg // 2))
+    _, p = welch_psd(x, FS, nperseg)
+    nu, se = _nu_hat_with_error(p[:, 2:-2])  # lines away from DC and Nyquist
+    # Welch 1967 equivalent DOF (Hann 50 %): agreement within 4 Monte Carlo standard errors
+    assert abs(nu - welch_dof(k)) < 4 * se
+    # and the test has the power to see the overlap correlation: 2K is rejected
+    assert abs(nu - 2 * k) > 4 * se
+
+
+@pytest.mark.parametrize("n_updates, trials", [(4, 1000), (56, 1500)])
+def test_exponential_dof_by_monte_carlo(n_updates, trials):
+    rng = np.random.default_rng(200 + n_updates)
+    nperseg, n_avg = 64, 8
+    k = n_avg + n_updates
+    rows = []
+    for _ in range(trials):
+        pa = PsdAverager(FS, nperseg, averaging="exponential", n_avg=n_avg)
+        pa.push(rng.standard_normal((k + 1) * nperseg // 2))
+        rows.append(pa.psd[2:-2])
+    assert pa.n_segments == k
+    nu, se = _nu_hat_with_error(np.array(rows))
+    # exact DOF of the applied weights (Welch 1967 with arbitrary weights); 4 standard errors
+    assert abs(nu - pa.dof) < 4 * se
+    if n_updates > 5 * n_avg:
+        # steady state: alpha/(2 - alpha) variance ratio with the Hann overlap correction
+        assert pa.dof == pytest.approx(exp_average_dof(n_avg), rel=1e-3)
+        # power: the uncorrected 2(2n - 1) and the linear welch_dof(K) are rejected
+        assert abs(nu - 2 * (2 * n_avg - 1)) > 4 * se
+        assert abs(nu - welch_dof(k)) > 4 * se
+    else:
+        assert welch_dof(n_avg) < pa.dof < welch_dof(k)
+
+
+def test_chi2_band_coverage_is_90_percent():
+    rng = np.random.default_rng(300)
+    nperseg, k, sigma = 64, 16, 0.5
+    x = sigma * rng.standard_normal((8000, (k + 1) * nperseg // 2))
+    _, p = welch_psd(x, FS, nperseg)
+    truth = 2 * sigma**2 / FS  # one-sided density of white noise
+    lo_db, hi_db = chi2_interval_db(welch_dof(k), 0.90)
+    # lines 4 bins apart are independent: the Hann DFT kernel spans 3 bins (Harris 1978)
+    est = p[:, 2:-2:4]
+    covered = (est * 10 ** (lo_db / 10) <= truth) & (truth <= est * 10 ** (hi_db / 10))
+    n = covered.size
+    # binomial bound: two-sided 99.9 % interval of the observed fraction (scipy.stats.binom)
+    lo_n, hi_n = st.binom.interval(0.999, n, 0.90)
+    assert lo_n <= covered.sum() <= hi_n
+
+
+# ---------------------------------------------------------------------------------------------
+# H1 and coherence
+# ---------------------------------------------------------------------------------------------
+
+
+def _h1_bound(cs: CrossSpectrum, p_fail: float = 1e-3) -> tuple[np.ndarray, float]:
+    """Per-line standard error of H1 and the Rayleigh multiplier for all lines together.
+
+    Bendat & Piersol: the normalized random error of |H1| is sqrt(1 - g2) / (|g| sqrt(2 n_d)),
+    and the phase error in radians the same, so the complex error has the per-component
+    standard deviation s = |H| sqrt(1 - g2) / (|g| sqrt(2 n_d)) = sqrt((1 - g2) Gyy / Gxx / nu),
+    n_d = nu / 2. |error| / s is then Rayleigh: P(> r) = exp(-r**2 / 2); over L lines
+    (Bonferroni) r = sqrt(2 ln(L / p_fail)).
+    """
+    g2 = cs.coherence
+    s = np.sqrt((1 - g2) * cs.gyy / cs.gxx / cs.dof)
+    return s, math.sqrt(2 * math.log(s.size / p_fail))
+
+
+@pytest.mark.parametrize(
+    "name", ["butter_bandpass", "fir_lowpass", "cheby_lowpass", "peak_resonance"]
+)
+def test_h1_matches_freqz_within_coherence_bound(name):
+    b, a = {
+        "butter_bandpass": sig.butter(2, [0.05, 0.3], btype="bandpass"),
+        "fir_lowpass": (sig.firwin(31, 0.2), [1.0]),
+        "cheby_lowpass": sig.cheby1(4, 1, 0.3),
+        "peak_resonance": sig.iirpeak(100.0, 5.0, fs=FS),
+    }[name]
+    rng = np.random.default_rng(400)
+    nperseg, k = 512, 100
+    x = rng.standard_normal(nperseg // 2 * (k + 1))
+    y = sig.lfilter(b, a, x) + 0.1 * rng.standard_normal(x.size)
+    cs = CrossSpectrum(FS, nperseg)
+    _push_in_blocks(cs, 1000, x, y)
+    _, h_true = sig.freqz(b, a, worN=cs.f_hz, fs=FS)  # reference: scipy.signal.freqz
+    s, r = _h1_bound(cs)
+    lines = slice(1, -1)  # DC carries no reference after the segment mean is removed
+    assert np.all(np.abs(cs.h1 - h_true)[lines] <= r * s[lines])
+
+
+def test_coherence_of_noise_free_linear_system_is_one():
+    rng = np.random.default_rng(401)
+    x = rng.standard_normal(20_000)
+    y = sig.lfilter([1.0, 0.5, 0.25], [1.0], x)  # |H| >= 0.75 on every line
+    cs = CrossSpectrum(FS, 512)
+    cs.push(x, y)
+    # gamma**2 = 1 for a noise-free linear system (Bendat & Piersol); the only loss is the
+    # 2-sample impulse response leaking across segment ends: the Hann overlap correlation at
+    # 2 samples of 512 is 0.99991, so 1 - gamma**2 < 2e-4 (computed from the window)
+    w = sig.get_window("hann", 512)
+    c2 = (np.dot(w[:-2], w[2:]) / np.dot(w, w)) ** 2
+    assert np.all(cs.coherence[1:] >= c2 - 1e-12)
+    assert np.all(cs.coherence[1:] <= 1 + 1e-12)  # Cauchy-Schwarz
+
+
+def test_coherence_of_independent_noise_is_one_over_n_d():
+    rng = np.random.default_rng(402)
+    k, trials, nperseg = 8, 600, 128
+    means = np.empty(trials)
+    for i in range(trials):
+        cs = CrossSpectrum(FS, nperseg)
+        x = rng.standard_normal(nperseg // 2 * (k + 1))
+        cs.push(x, rng.standard_normal(x.size))
+        means[i] = np.mean(cs.coherence[2:-2])
+    mean, se = means.mean(), means.std(ddof=1) / math.sqrt(trials)
+    # Bendat & Piersol: for independent signals E[gamma_hat**2] = 1/n_d for n_d independent
+    # averages (Beta(1, n_d - 1)); with overlapped segments n_d = nu/2 (Welch 1967 DOF).
+    assert abs(mean - 2 / cs.dof) < 4 * se
+    # overlap matters: the naive 1/K (non-overlapped segments) is rejected at this precision
+    assert abs(mean - 1 / k) > 4 * se
+
+
+@pytest.mark.parametrize("window", ["hann", "boxcar"])
+def test_h1_delay_bias_and_alignment(window):
+    rng = np.random.default_rng(403)
+    nperseg, k, d = 512, 200, 128
+    x = rng.standard_normal(nperseg // 2 * (k + 1) + d)
+    y = np.concatenate((np.zeros(d), x[:-d]))  # pure delay of d samples, |H| = 1
+    cs = CrossSpectrum(FS, nperseg, window=window)
+    _push_in_blocks(cs, 4096, x, y)
+    gain = np.abs(cs.h1[1:-1])
+    # expected |H1| = window correlation at the lag, sum w(n) w(n + d) / sum w**2 (Welch 1967
+    # overlap correlation); for the rectangular window it is 1 - tau/T (Bendat & Piersol)
+    w = sig.get_window(window, nperseg)
+    expected = np.dot(w[:-d], w[d:]) / np.dot(w, w)
+    if window == "boxcar":
+        assert expected == pytest.approx(1 - d / nperseg, rel=1e-12)
+    # tolerance: per-line B&P error sqrt(1 - g2)/(|g| sqrt(2 n_d)); the mean of L lines has at
+    # most 5/L of the per-line variance (lines > 2 bins apart uncorrelated, Harris 1978), 4 sigma
+    g2 = cs.coherence[1:-1]
+    eps = np.sqrt((1 - g2) / g2 / cs.dof).max()
+    assert abs(gain.mean() - expected) < 4 * eps * math.sqrt(5 / gain.size)
+    assert gain.mean() < 0.8  # the bias is large: about (1 - tau/T) = 0.75 or lower
+    # aligned by the measured delay, the pure delay is removed: H1 = 1, coherence 1
+    est = estimate_delay(x, y, max_lag=1000)
+    assert est.samples == d
+    aligned = CrossSpectrum(FS, nperseg, window=window, delay_samples=est.samples)
+    _push_in_blocks(aligned, 333, x, y)
+    np.testing.assert_allclose(aligned.h1[1:], 1.0, atol=1e-9)  # float64 rounding
+    assert np.all(aligned.coherence[1:] > 1 - 1e-9)
+
+
+def test_aligned_h1_of_delayed_filter_matches_freqz():
+    rng = np.random.default_rng(404)
+    nperseg, k, d = 512, 100, 700  # loop delay longer than a segment
+    b, a = sig.butter(2, [0.05, 0.3], btype="bandpass")
+    x = rng.standard_normal(nperseg // 2 * (k + 1) + d)
+    y = np.concatenate((np.zeros(d), sig.lfilter(b, a, x)[:-d]))
+    y += 0.1 * rng.standard_normal(y.size)
+    est = estimate_delay(x, y, max_lag=2000)
+    # the correlation peaks at the pure delay plus the lag of the impulse response's peak
+    # (cross-correlation of white input = impulse response, Bendat & Piersol): 1 sample here
+    h_peak = int(np.argmax(np.abs(sig.lfilter(b, a, np.r_[1.0, np.zeros(63)]))))
+    assert est.samples == d + h_peak
+    cs = CrossSpectrum(FS, nperseg, delay_samples=est.samples)
+    _push_in_blocks(cs, 256, x, y)
+    # reference: scipy.signal.freqz, times the residual pure delay advance exp(+j w (D - d))
+    _, h_true = sig.freqz(b, a, worN=cs.f_hz, fs=FS)
+    h_true = h_true * np.exp(2j * np.pi * cs.f_hz / FS * (est.samples - d))
+    s, r = _h1_bound(cs)
+    assert np.all(np.abs(cs.h1 - h_true)[1:-1] <= r * s[1:-1])
 
 
 # ---------------------------------------------------------------------------------------------
