@@ -213,7 +213,12 @@ def _unit_factor(units: Any, where: Where) -> float:
 
 
 def profile_from_points(
-    points: Any, where: Where, *, units: str = "g2/Hz", name: str = ""
+    points: Any,
+    where: Where,
+    *,
+    units: str = "g2/Hz",
+    name: str = "",
+    units_where: Where | None = None,
 ) -> Profile:
     """Build a :class:`Profile` from breakpoint mappings.
 
@@ -229,13 +234,15 @@ def profile_from_points(
         ``"g2/Hz"`` or ``"(m/s2)2/Hz"`` (converted by dividing by g0²).
     name : str
         Label of the profile.
+    units_where : Where, optional
+        Place of the units in the document (default: ``units`` beside the list).
 
     Raises
     ------
     ConfigError
         One line naming the breakpoint, key, value and rule.
     """
-    factor = _unit_factor(units, where.key("units") if where.path else where)
+    factor = _unit_factor(units, units_where or (where.key("units") if where.path else where))
     items = as_list(points, where, min_len=2)
     label = (where.path.rsplit(".", 1)[-1] or "points") if where.path else "points"
     f_list: list[float] = []
