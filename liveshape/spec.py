@@ -291,12 +291,12 @@ def _safety(data: Any, w: _Where) -> SafetyLimits:
 
 
 def _path_value(value: Any, w: _Where, base_dir: Path | None) -> str:
-    text = as_str(value, w)
-    if base_dir is not None and not w.from_command_line:
-        p = Path(text).expanduser()
-        if not p.is_absolute():
-            return str((base_dir / p).resolve())
-    return text
+    """An absolute path: a file's relative path is read against its folder, an override's
+    against the current folder."""
+    p = Path(as_str(value, w)).expanduser()
+    if not p.is_absolute() and base_dir is not None and not w.from_command_line:
+        p = base_dir / p
+    return str(p.resolve())
 
 
 def _rig(data: Any, w: _Where, base_dir: Path | None) -> RigSelection:

@@ -94,6 +94,22 @@ def test_precedence_override_beats_file_beats_default():
     assert data["control"]["fs_hz"] == 44100  # the caller's data is not modified
 
 
+def test_override_paths_are_read_against_the_current_folder(tmp_path, monkeypatch):
+    tmp_path = tmp_path.resolve()
+    monkeypatch.chdir(tmp_path)
+    data = minimal(rig={"plant": "plants/a.yaml", "calibration": "cal.yaml"})
+    s = build(data, base_dir=tmp_path / "specs")
+    assert s.rig.plant == str(tmp_path / "specs" / "plants" / "a.yaml")
+    assert s.rig.calibration == str(tmp_path / "specs" / "cal.yaml")
+    s = build(
+        data,
+        overrides={"rig.plant": "mine/b.yml", "rig.calibration": "c.yaml"},
+        base_dir=tmp_path / "specs",
+    )
+    assert s.rig.plant == str(tmp_path / "mine" / "b.yml")
+    assert s.rig.calibration == str(tmp_path / "c.yaml")
+
+
 def test_resolution_override_replaces_the_files_choice():
     s = build(minimal(control={"lines": 1024}), overrides={"control.df_hz": 2.9296875})
     assert s.control.frame_length == 16384
