@@ -1,0 +1,171 @@
+"""Tests of the report: PNG plots and summary.txt from a run folder.
+
+The run folders here are DEMO DATA: made-up spectra written through RunRecorder (a NAVMAT-shaped
+target, a control that scatters less each update, a single-degree-of-freedom FRF). Outside
+references: the PNG file signature (ISO/IEC 15948 / RFC 2083: the eight bytes 89 50 4E 47 0D 0A
+1A 0A, then an IHDR chunk with width and height), the exact grms of the NAVMAT P-9492 profile
+(DOMAIN.md §1) and the decibel definition.
+"""
+
+from __future__ import annotations
+
+import builtins
+import datetime as dt
+import math
+import struct
+import sys
+
+import numpy as np
+import pytest
+
+from liveshape.errors import ConfigError
+from liveshape.profile import Profile
+from liveshape.record import RunRecorder
+from liveshape.report import MATPLOTLIB_MISSING, MissingPlotExtra, render_report, summary_text
+
+FS_HZ = 4096
+FRAME = 512
+NOW = dt.datetime(2024, 3, 4, 5, 6, 7, tzinfo=dt.timezone.utc)
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
+NAVMAT = Profile((20.0, 80.0, 350.0, 2000.0), (0.01, 0.04, 0.04, 0.007), name="navmat")
+
+
+def _demo_run(tmp_path, *, close: bool = True, calibrated: bool = True, n_updates: int = 6):
+    """Write a demo run folder (invented numbers, for plotting only)."""
+    rng = np.random.default_rng(11)
+    f = np.arange(FRAME // 2 + 1) * FS_HZ / FRAME
+    target = NAVMAT.asd_at(f)
+    fn, zeta = 300.0, 0.05
+    r = f / fn
+    h1 = 2.0 / (1 - r**2 + 2j * zeta * r)  # demo SDOF-shaped FRF, g/FS
+    rec = RunRecorder.create(
+        tmp_path / "runs", name="demo", fs_hz=FS_HZ, now=NOW,
+        spec_mapping={"name": "demo", "tolerance": {"alarm_db": 3.0, "abort_db": 6.0}},
+        rig_mapping={"kind": "sim"},
+        calibration={"calibrated": calibrated, "source": "sim:loudspeaker"},
+    )
+    t_s = 0.0
+    for level in (-12.0, -6.0, 0.0):
+        rec.event(t_s, "level", f"level {level:g} dB", {"level_db": level})
+        t_s += 2.0
+    for i in range(1, n_updates + 1):
+        scatter_db = rng.normal(0.0, 4.0 / i, f.size)
+        control = target * 10 ** (scatter_db / 10)
+        band = target > 0
+        dev = scatter_db[band]
+        rec.update(
+            i, 6.0 + i, f, control, target, np.abs(h1) ** -2 * target + 1e-9, h1,
+            np.clip(0.97 - 0.2 * (r < 0.1), 0, 1),
+            rms_error_db=float(10 * np.log10(control[band].sum() / target[band].sum())),
+            max_dev_db=float(np.max(np.abs(dev))), level_db=0.0, dof=120.0,
+            lines_outside_alarm=int(np.sum(np.abs(dev) > 3)),
+            lines_outside_abort=int(np.sum(np.abs(dev) > 6)),
+        )
+    rec.signals(rng.normal(0, 0.1, 1024), rng.normal(0, 0.1, 1024))
+    if close:
+        rec.close({
+            "status": "completed", "abort_reason": None, "updates_to_tolerance": 3,
+            "final_rms_error_db": -0.12, "final_max_dev_db": 2.4,
+            "final_lines_outside_alarm": 0, "final_lines_outside_abort": 0,
+            "control_grms_g": 6.01, "target_grms_g": 6.06, "dof": 120.0,
+            "time_at_full_level_s": 60.0,
+        })
+    return rec.root
+
+
+def _png_size(path) -> tuple[int, int]:
+    data = path.read_bytes()
+    assert data[:8] == PNG_SIGNATURE
+    length, kind = struct.unpack(">I4s", data[8:16])
+    assert kind == b"IHDR" and length == 13
+    return struct.unpack(">II", data[16:24])
+
+
+def test_report_writes_every_plot_and_summary(tmp_path):
+    root = _demo_run(tmp_path)
+    res = render_report(root)
+    assert res.out_dir == root / "report"
+    assert set(res.pngs) == {"control", "drive", "frf", "convergence", "level"}
+    for name, path in res.pngs.items():
+        w, h = _png_size(path)
+        # figsize (inches) x 110 dpi, as saved; constrained layout keeps the canvas size.
+        assert w == 880, name
+        assert h in (550, 440, 715, 385), name
+    text = res.summary_path.read_text()
+    assert text == res.summary
+    for words in ("status:          completed", "6.010 g", "target: 6.060 g",
+                  f"({20 * math.log10(6.01 / 6.06):+.2f} dB)", "rms error:       -0.12 dB",
+                  "max line dev.:   +2.40 dB", "alarm 0   abort 0", "to tolerance: 3",
+                  "DOF:             120", "time at 0 dB:    60.0 s",
+                  "calibrated (sim:loudspeaker)", "updates:         6"):
+        assert words in text, words
+
+
+def test_report_from_killed_run_uses_last_update(tmp_path):
+    root = _demo_run(tmp_path, close=False, calibrated=False)
+    with open(root / "events.jsonl", "a", encoding="utf-8") as fh:
+        fh.write('{"t_s": 9.0, "kind": "lev')  # cut by the kill
+    out = tmp_path / "elsewhere"
+    res = render_report(root, out_dir=out)
+    assert res.out_dir == out and all(p.parent == out for p in res.pngs.values())
+    text = res.summary
+    assert "incomplete" in text and "UNCALIBRATED" in text
+    assert "1 unreadable line(s) skipped" in text
+    # Target grms from the lines: sqrt(sum ASD df) against the exact integral 6.06 g of the
+    # NAVMAT profile (DOMAIN.md §1). The rectangle rule on lines differs from the integral by at
+    # most about half a line of ASD at each band edge plus the curvature between lines; bound
+    # it by the edge terms df/2 (a_first + a_last) relative to the mean square.
+    df = FS_HZ / FRAME
+    exact = NAVMAT.grms
+    edge_ms = df / 2 * (0.01 + 0.007) * 2
+    target = float(text.split("target: ")[1].split(" g")[0])
+    assert target == pytest.approx(exact, rel=edge_ms / exact**2 + 5e-4)  # + display rounding
+
+
+def test_report_with_no_updates(tmp_path):
+    rec = RunRecorder.create(
+        tmp_path, name="empty", spec_mapping={}, rig_mapping={}, calibration={}, fs_hz=1000,
+        now=NOW,
+    )
+    rec.event(0.0, "stage", "connect", {"level_db": -12.0})
+    rec.close({"status": "aborted", "abort_reason": "loop open: no response"})
+    res = render_report(rec.root)
+    assert "loop open: no response" in res.summary
+    assert "calibration:     not recorded" in res.summary
+    assert all(_png_size(p)[0] == 880 for p in res.pngs.values())
+
+
+def test_missing_matplotlib_is_one_line(tmp_path, monkeypatch):
+    root = _demo_run(tmp_path, n_updates=1)
+    real_import = builtins.__import__
+
+    def no_matplotlib(name, *args, **kwargs):
+        if name == "matplotlib" or name.startswith("matplotlib."):
+            raise ImportError(f"No module named {name!r}")
+        return real_import(name, *args, **kwargs)
+
+    for mod in [m for m in sys.modules if m == "matplotlib" or m.startswith("matplotlib.")]:
+        monkeypatch.delitem(sys.modules, mod)
+    monkeypatch.setattr(builtins, "__import__", no_matplotlib)
+    with pytest.raises(MissingPlotExtra) as info:
+        render_report(root)
+    assert str(info.value) == MATPLOTLIB_MISSING
+    assert str(info.value) == "matplotlib is not installed: pip install 'liveshape[plot]'"
+    assert isinstance(info.value, ConfigError)
+    assert not (root / "report").exists()
+
+
+def test_bad_run_dir_is_one_line(tmp_path):
+    with pytest.raises(ConfigError) as info:
+        render_report(tmp_path / "missing")
+    assert "run folder not found" in str(info.value) and "\n" not in str(info.value)
+    (tmp_path / "plain").mkdir()
+    with pytest.raises(ConfigError, match="not a run folder"):
+        render_report(tmp_path / "plain")
+
+
+def test_summary_text_needs_no_matplotlib(tmp_path):
+    from liveshape.record import load_run
+
+    text = summary_text(load_run(_demo_run(tmp_path, n_updates=2)))
+    assert text.startswith("liveshape run report: demo\n")
