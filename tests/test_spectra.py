@@ -134,6 +134,34 @@ def test_exponential_first_n_avg_segments_are_linear_then_recursive():
     np.testing.assert_allclose(cs.gxy, (1 - a) * old + a * seg.gxy, rtol=1e-9, atol=1e-15)
 
 
+@pytest.mark.parametrize("block", [1, 7, 255, 300, 5000])
+def test_exponential_streaming_equals_recursion_of_scipy_segments(block):
+    rng = np.random.default_rng(8)
+    nperseg, n_avg, k = 256, 5, 19
+    hop = nperseg // 2
+    x, y, _, _ = _plant(rng, hop * (k + 1))
+    cs = CrossSpectrum(FS, nperseg, averaging="exponential", n_avg=n_avg)
+    _push_in_blocks(cs, block, x, y)
+    assert cs.n_segments == k
+    # reference: each segment's spectra by scipy.signal.welch / csd on that segment alone,
+    # averaged by the documented recursion G_i = (1 - a_i) G_{i-1} + a_i P_i, a_i = 1/min(i, n)
+    gxx = gxy = 0.0
+    for i in range(1, k + 1):
+        seg = slice((i - 1) * hop, (i - 1) * hop + nperseg)
+        pxx = sig.welch(x[seg], FS, nperseg=nperseg)[1]
+        pxy = sig.csd(x[seg], y[seg], FS, nperseg=nperseg)[1]
+        a = 1.0 / min(i, n_avg)
+        gxx = (1 - a) * gxx + a * pxx
+        gxy = (1 - a) * gxy + a * pxy
+    np.testing.assert_allclose(cs.gxx, gxx, rtol=1e-9)
+    np.testing.assert_allclose(cs.gxy, gxy, rtol=1e-9, atol=1e-12 * np.abs(gxy).max())
+    pa = PsdAverager(FS, nperseg, averaging="exponential", n_avg=n_avg)
+    _push_in_blocks(pa, block, x)
+    np.testing.assert_allclose(pa.psd, gxx, rtol=1e-9)
+    cs.reset()
+    assert cs.n_segments == 0 and cs.dof == 0.0 and np.all(np.isnan(cs.h1))
+
+
 def test_delay_samples_pairs_x_t_minus_d_with_y_t():
     rng = np.random.default_rng(6)
     x, y, _, _ = _plant(rng, 6000)
@@ -497,3 +525,19 @@ def test_bad_statistics_arguments():
         estimate_delay(np.ones(10), np.ones(10), max_lag=10)
     with pytest.raises(ValueError, match="equal length"):
         CrossSpectrum(FS, 64).push(np.ones(10), np.ones(9))
+
+
+@pytest.mark.parametrize("tau", [10.0, 10.1, 10.3, 10.5, 10.7])
+def test_estimate_delay_sub_sample_fraction(tau):
+    rng = np.random.default_rng(11)
+    x = sig.lfilter(sig.firwin(101, 0.2), [1.0], rng.standard_normal(20_000))
+    f = np.fft.rfftfreq(x.size)
+    # exact fractional delay of the periodic record: phase shift exp(-j 2 pi f tau) (DFT shift
+    # theorem)
+    y = np.fft.irfft(np.fft.rfft(x) * np.exp(-2j * np.pi * f * tau), x.size)
+    est = estimate_delay(x, y, max_lag=50)
+    assert abs(est.samples - tau) <= 0.5
+    # common practice: a parabola through the correlation peak of a signal band-limited to
+    # 0.1 fs locates it to about 1 % of a sample
+    assert abs(est.delay_samples - tau) < 0.01
+    assert est.peak > 0.98  # normalized correlation of a delayed copy (Cauchy-Schwarz: <= 1)
