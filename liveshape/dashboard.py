@@ -512,9 +512,15 @@ def safety_notice() -> RenderableType:
 
 
 @contextmanager
-def progress_bar(description: str = "working", *, console: Console | None = None,
+def progress_bar(console: Console | str | None = None, description: str = "working", *,
                  transient: bool = True) -> Iterator[Callable[[float], None]]:
-    """A progress bar; yields ``progress(fraction)`` taking 0..1 (values are clipped)."""
+    """A progress bar; yields ``progress(fraction)`` taking 0..1 (values are clipped).
+
+    ``progress_bar(console, "writing drive.wav")``; a string as first argument is taken as the
+    description (default console).
+    """
+    if isinstance(console, str):
+        console, description = None, console
     columns = (TextColumn("{task.description}", style=PALETTE.label),
                BarColumn(complete_style=PALETTE.control, finished_style=PALETTE.ok),
                TaskProgressColumn(), TimeRemainingColumn())
@@ -563,79 +569,133 @@ def synth_summary(result: Mapping[str, Any]) -> RenderableType:
     return Panel(table, title="drive file", title_align="left", border_style=PALETTE.border)
 
 
-def _seconds_for_dof(control: Any) -> tuple[int, float] | None:
-    """Segments (Hann, 50 % overlap, Welch 1967 DOF) and seconds of data for the target DOF."""
-    try:
-        from liveshape.spectra import welch_dof
-    except ImportError:
-        return None
-    target = _num(_get(control, "target_dof"))
-    fs, n = _num(_get(control, "fs_hz")), _get(control, "frame_length")
-    if target is None or fs is None or n is None:
-        return None
-    k = max(int(math.ceil(target / 2.0)), 1)  # each segment adds at most 2 DOF
-    while welch_dof(k) < target:
+def _segments_for_dof(target_dof: float) -> int:
+    """Smallest number of Hann 50 % segments whose Welch (1967) equivalent DOF reaches it."""
+    from liveshape.spectra import welch_dof
+
+    k = max(int(math.ceil(target_dof / 2.0)), 1)  # each segment adds at most 2 DOF
+    while welch_dof(k) < target_dof:
         k += 1
-    hop = int(n) // 2
-    return k, ((k - 1) * hop + int(n)) / fs
+    return k
 
 
-def check_table(profile: Any, tolerance: Any, control: Any,
+def _check_mapping(profile: Any, tolerance: Any, control: Any) -> dict[str, Any]:
+    """The figures of :func:`check_table` from profile, tolerance and control settings."""
+    areas = np.asarray(profile.segment_areas_g2(), dtype=float)
+    total = float(areas.sum())
+    f, a = profile.f_hz, profile.asd_g2_hz
+    segments = [
+        {"f_lo_hz": f[i], "f_hi_hz": f[i + 1], "asd_lo_g2_hz": a[i], "asd_hi_g2_hz": a[i + 1],
+         "slope_db_oct": float(slope), "area_g2": float(area),
+         "share_of_ms": float(area) / total if total > 0 else 0.0}
+        for i, (slope, area) in enumerate(zip(profile.slopes_db_oct, areas, strict=True))
+    ]
+    fs, n = float(control.fs_hz), int(control.frame_length)
+    lines_f = np.arange(n // 2 + 1) * fs / n
+    ctl: dict[str, Any] = {
+        "fs_hz": fs, "frame_length": n, "df_hz": fs / n,
+        "lines_in_band": int(np.count_nonzero((lines_f >= profile.f_min_hz)
+                                              & (lines_f <= profile.f_max_hz))),
+        "target_dof": _get(control, "target_dof"), "averaging": _get(control, "averaging"),
+    }
+    if _num(ctl["target_dof"]) is not None:
+        k = _segments_for_dof(float(ctl["target_dof"]))
+        ctl["segments_for_target_dof"] = k
+        ctl["seconds_for_target_dof"] = ((k - 1) * (n // 2) + n) / fs
+    bands = [{"f_lo_hz": b.f_lo_hz, "f_hi_hz": b.f_hi_hz, "alarm_db": b.alarm_db,
+              "abort_db": b.abort_db} for b in getattr(tolerance, "bands", ())]
+    return {
+        "name": getattr(profile, "name", ""), "f_min_hz": profile.f_min_hz,
+        "f_max_hz": profile.f_max_hz, "grms_g": profile.grms,
+        "velocity_rms_m_s": profile.velocity_rms_m_s,
+        "displacement_rms_m": profile.displacement_rms_m,
+        "displacement_pp_3sigma_m": profile.displacement_pp_3sigma_m, "segments": segments,
+        "tolerance": {"alarm_db": tolerance.alarm_db, "abort_db": tolerance.abort_db,
+                      "rms_alarm_db": tolerance.rms_alarm_db,
+                      "rms_abort_db": tolerance.rms_abort_db, "bands": bands},
+        "control": ctl,
+    }
+
+
+def check_table(profile: Any, tolerance: Any = None, control: Any = None,
                 feasibility: Any = None) -> RenderableType:
     """What ``liveshape check`` shows about a test before it runs.
 
     Band, grms, velocity and displacement rms, 3σ peak-to-peak displacement, each segment's
     slope and mean-square area, the tolerance limits, the lines in band and the seconds of data
-    the target DOF needs (linear Welch average, Hann at 50 % overlap), and the rig's feasibility
-    rows when given (anything with ``to_dict()`` or a mapping).
+    the target DOF needs (linear Welch average of Hann segments at 50 % overlap, Welch 1967),
+    and the rig's feasibility rows when given.
+
+    Parameters
+    ----------
+    profile : Profile or mapping
+        The target profile, or a whole check report mapping (as made by
+        :func:`liveshape.checks.check_report`: ``grms_g``, ``segments``, ``tolerance``,
+        ``control``, optional ``rig``), in which case the other arguments may be omitted.
+    tolerance : Tolerance, optional
+    control : ControlSettings, optional
+        Needs ``fs_hz``, ``frame_length``, ``target_dof`` (and ``averaging`` to show it).
+    feasibility : object with ``to_dict()`` or mapping, optional
+        Rig feasibility rows (shown by name, units from the key suffixes).
     """
+    if isinstance(profile, Mapping):
+        report = dict(profile)
+    else:
+        if tolerance is None or control is None:
+            raise TypeError("check_table needs tolerance and control with a profile")
+        report = _check_mapping(profile, tolerance, control)
+    if feasibility is not None:
+        report["rig"] = feasibility.to_dict() if hasattr(feasibility, "to_dict") else feasibility
     overall = _kv_table("profile")
-    overall.add_row("band", f"{profile.f_min_hz:g} – {profile.f_max_hz:g} Hz")
-    overall.add_row("grms", f"{profile.grms:.3f} g")
-    overall.add_row("velocity rms", f"{profile.velocity_rms_m_s * 1e3:.3g} mm/s")
-    overall.add_row("displacement rms", f"{profile.displacement_rms_m * 1e3:.3g} mm")
-    overall.add_row("displacement 3σ peak-to-peak",
-                    f"{profile.displacement_pp_3sigma_m * 1e3:.3g} mm")
+    overall.add_row("band", f"{_fmt(report.get('f_min_hz'), 'g')} – "
+                    f"{_fmt(report.get('f_max_hz'), 'g')} Hz")
+    overall.add_row("grms", _fmt(report.get("grms_g"), ".3f", "g"))
+    mm = 1e3
+    for label, key, unit in (("velocity rms", "velocity_rms_m_s", "mm/s"),
+                             ("displacement rms", "displacement_rms_m", "mm"),
+                             ("displacement 3σ peak-to-peak", "displacement_pp_3sigma_m", "mm")):
+        v = _num(report.get(key))
+        overall.add_row(label, _fmt(None if v is None else v * mm, ".3g", unit))
 
     segs = Table(title="segments", title_style=PALETTE.title, title_justify="left",
                  box=None, header_style=PALETTE.label, pad_edge=False, padding=(0, 2, 0, 0))
     for name in ("from Hz", "to Hz", "ASD g²/Hz", "slope dB/oct", "area g²", "share"):
         segs.add_column(name, justify="right")
-    areas = np.asarray(profile.segment_areas_g2(), dtype=float)
-    total = float(areas.sum())
-    f, a = profile.f_hz, profile.asd_g2_hz
-    for i, (slope, area) in enumerate(zip(profile.slopes_db_oct, areas, strict=True)):
-        segs.add_row(f"{f[i]:g}", f"{f[i + 1]:g}", f"{a[i]:.3g} → {a[i + 1]:.3g}",
-                     f"{slope:+.2f}", f"{area:.4g}", f"{100 * area / total:.1f} %")
+    for seg in report.get("segments", ()):
+        share = _num(seg.get("share_of_ms"))
+        segs.add_row(_fmt(seg.get("f_lo_hz"), "g"), _fmt(seg.get("f_hi_hz"), "g"),
+                     f"{_fmt(seg.get('asd_lo_g2_hz'))} → {_fmt(seg.get('asd_hi_g2_hz'))}",
+                     _fmt(seg.get("slope_db_oct"), "+.2f"), _fmt(seg.get("area_g2"), ".4g"),
+                     _fmt(None if share is None else 100 * share, ".1f", "%"))
 
+    tol_data = report.get("tolerance") or {}
     tol = _kv_table("tolerance")
-    tol.add_row("per line alarm / abort",
-                f"±{tolerance.alarm_db:g} / ±{tolerance.abort_db:g} dB")
-    tol.add_row("rms alarm / abort",
-                f"±{tolerance.rms_alarm_db:g} / ±{tolerance.rms_abort_db:g} dB")
-    for b in getattr(tolerance, "bands", ()):
-        tol.add_row(f"band {b.f_lo_hz:g} – {b.f_hi_hz:g} Hz",
-                    f"±{b.alarm_db:g} / ±{b.abort_db:g} dB")
+    tol.add_row("per line alarm / abort", f"±{_fmt(tol_data.get('alarm_db'), 'g')} / "
+                f"±{_fmt(tol_data.get('abort_db'), 'g')} dB")
+    tol.add_row("rms alarm / abort", f"±{_fmt(tol_data.get('rms_alarm_db'), 'g')} / "
+                f"±{_fmt(tol_data.get('rms_abort_db'), 'g')} dB")
+    for b in tol_data.get("bands", ()):
+        tol.add_row(f"band {_fmt(b.get('f_lo_hz'), 'g')} – {_fmt(b.get('f_hi_hz'), 'g')} Hz",
+                    f"±{_fmt(b.get('alarm_db'), 'g')} / ±{_fmt(b.get('abort_db'), 'g')} dB")
 
+    c = report.get("control") or {}
     ctl = _kv_table("control")
-    fs, n = float(control.fs_hz), int(control.frame_length)
-    df = fs / n
-    k = np.arange(n // 2 + 1)
-    in_band = int(np.count_nonzero((k * df >= profile.f_min_hz) & (k * df <= profile.f_max_hz)))
-    ctl.add_row("lines", f"{n // 2 + 1} of {df:.4g} Hz, {in_band} in band (frame {n} at "
-                f"{fs:g} Hz)")
-    ctl.add_row("target DOF", f"{_fmt(_get(control, 'target_dof'), '.0f')} "
-                f"({_get(control, 'averaging', default='?')} averaging)")
-    need = _seconds_for_dof(control)
-    if need is not None:
-        ctl.add_row("data for target DOF", f"{need[1]:.2f} s ({need[0]} segments, Hann 50 %)")
+    n = c.get("frame_length")
+    ctl.add_row("lines", f"{_fmt_value(int(n) // 2 + 1 if n else None)} of "
+                f"{_fmt(c.get('df_hz'), '.4g')} Hz, {_fmt_value(c.get('lines_in_band'))} in band "
+                f"(frame {_fmt_value(n)} at {_fmt(c.get('fs_hz'), 'g')} Hz)")
+    averaging = f" ({c['averaging']} averaging)" if c.get("averaging") else ""
+    ctl.add_row("target DOF", f"{_fmt(c.get('target_dof'), '.0f')}{averaging}")
+    if c.get("seconds_for_target_dof") is not None:
+        ctl.add_row("data for target DOF",
+                    f"{_fmt(c.get('seconds_for_target_dof'), '.2f', 's')} "
+                    f"({_fmt_value(c.get('segments_for_target_dof'))} segments, Hann 50 %)")
 
     parts: list[RenderableType] = [overall, Text(""), segs, Text(""), tol, Text(""), ctl]
-    if feasibility is not None:
-        rows = feasibility.to_dict() if hasattr(feasibility, "to_dict") else dict(feasibility)
+    if report.get("rig") is not None:
         feas = _kv_table("rig feasibility")
-        _add_mapping_rows(feas, rows)
+        _add_mapping_rows(feas, dict(report["rig"]))
         parts += [Text(""), feas]
-    title = getattr(profile, "name", "") or "test"
+    title = report.get("name") or "test"
     return Panel(Group(*parts), title=f"check: {title}", title_align="left",
                  border_style=PALETTE.border)

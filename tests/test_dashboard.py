@@ -267,7 +267,7 @@ def test_safety_notice_words():
 
 def test_progress_bar_clips_and_finishes():
     console = dash.make_console(file=io.StringIO(), width=80)
-    with dash.progress_bar("writing drive", console=console, transient=False) as progress:
+    with dash.progress_bar(console, "writing drive", transient=False) as progress:
         for x in (0.0, 0.25, float("nan"), 0.5, 1.7):
             progress(x)
     out = console.file.getvalue()
