@@ -58,7 +58,7 @@ __all__ = [
 
 _WHERE = Where("spectra")
 _DB = 10.0 / math.log(10.0)  # 4.343 dB per neper of power
-_DOF_WINDOW_LENGTH = 4096  # samples used to evaluate a window's overlap correlation
+_DOF_WINDOW_LENGTH = 1024  # samples used to evaluate a window's overlap correlation
 _MAX_SEGMENTS_PER_BATCH = 64  # bounds the temporary arrays of one push
 
 
