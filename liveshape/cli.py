@@ -1,2 +1,199 @@
-def main(argv=None):
-    raise SystemExit("liveshape: command line not built yet")
+"""The command line: the one module that imports :mod:`argparse`.
+
+Every command maps a user mistake (a :class:`~liveshape.errors.LiveshapeError`) to one line on
+stderr and exit status 2, never a traceback. Rendering goes through :mod:`liveshape.dashboard`;
+``--json`` prints exactly one JSON object to stdout.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+from liveshape import __version__
+from liveshape.errors import ConfigError, LiveshapeError
+
+EXIT_USAGE = 2
+EXIT_INTERRUPTED = 130
+
+
+def _json_safe(value: Any) -> Any:
+    """Plain JSON types: numpy scalars and arrays to Python, non-finite floats to null."""
+    if isinstance(value, dict):
+        return {str(k): _json_safe(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_json_safe(v) for v in value]
+    if hasattr(value, "tolist"):
+        return _json_safe(value.tolist())
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
+
+
+def _print_json(data: dict[str, Any]) -> None:
+    sys.stdout.write(json.dumps(_json_safe(data), indent=2) + "\n")
+    sys.stdout.flush()
+
+
+def _rig_overrides(rig: str | None, option: str = "--rig") -> dict[str, Any]:
+    """Turn ``sim``, ``sim:PLANT`` or ``audio:DEVICE`` into spec overrides."""
+    if rig is None:
+        return {}
+    kind, _, rest = rig.partition(":")
+    if kind == "sim":
+        return {"rig.kind": "sim", **({"rig.plant": rest} if rest else {})}
+    if kind == "audio":
+        if not rest:
+            raise ConfigError(
+                f"{option} = {rig!r} names no device (use audio:DEVICE; see liveshape devices)"
+            )
+        return {"rig.kind": "audio", "rig.device": rest}
+    raise ConfigError(
+        f"{option} = {rig!r} is not sim, sim:PLANT.yaml, sim:PRESET or audio:DEVICE"
+    )
+
+
+def _cmd_check(args: argparse.Namespace) -> int:
+    from liveshape import dashboard
+    from liveshape.checks import check_report
+    from liveshape.spec import load_spec
+
+    overrides = _rig_overrides(args.rig)
+    if args.fs is not None:
+        overrides["control.fs_hz"] = args.fs
+    spec = load_spec(args.spec, overrides)
+    feas = None
+    if args.rig is not None:
+        feas = _feasibility(spec)
+    report = check_report(spec, feas)
+    if args.json:
+        _print_json(report)
+    else:
+        console = dashboard.make_console()
+        console.print(dashboard.check_table(report))
+    return 0
+
+
+def _feasibility(spec: Any) -> Any:
+    """Rig feasibility of the spec's rig (simulated plant model, or a calibrated card)."""
+    from liveshape.rigs.feasibility import assess
+    from liveshape.rigs.plant import load_plant
+
+    if spec.rig.kind != "sim":
+        raise ConfigError(
+            f"--rig = audio:{spec.rig.device}: feasibility needs a plant model; "
+            "check against the simulated rig that models it (--rig sim:PLANT.yaml)"
+        )
+    plant = load_plant(spec.rig.plant, base_dir=Path(spec.source).parent if spec.source else None)
+    return assess(
+        spec.profile, plant, fs_hz=spec.control.fs_hz, frame_length=spec.control.frame_length
+    )
+
+
+def _cmd_synth(args: argparse.Namespace) -> int:
+    from liveshape import dashboard
+    from liveshape.drivefile import make_drive_file
+    from liveshape.spec import load_spec
+
+    overrides: dict[str, Any] = {}
+    if args.fs is not None:
+        overrides["control.fs_hz"] = args.fs
+    spec = load_spec(args.spec, overrides)
+    kwargs = dict(
+        duration_s=args.duration,
+        fs_hz=args.fs,
+        seed=args.seed,
+        clip_sigma=args.clip_sigma,
+        crest_min=args.crest_min,
+        crest_max=args.crest_max,
+        max_tries=args.max_tries,
+    )
+    if args.json:
+        result = make_drive_file(spec, args.output, **kwargs)
+        _print_json(result.to_dict())
+        return 0
+    console = dashboard.make_console()
+    with dashboard.progress_bar(console, f"writing {args.output}") as progress:
+        result = make_drive_file(spec, args.output, progress=progress, **kwargs)
+    console.print(dashboard.synth_summary(result.to_dict()))
+    return 0
+
+
+def _positive_float(text: str) -> float:
+    try:
+        x = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if not math.isfinite(x) or x <= 0:
+        raise argparse.ArgumentTypeError(f"{text!r} must be a positive number")
+    return x
+
+
+def _whole(text: str) -> int:
+    try:
+        return int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser of every command (exposed for tests and documentation)."""
+    p = argparse.ArgumentParser(
+        prog="liveshape",
+        description="Closed-loop random-vibration control of small shakers through an audio "
+        "interface. The simulated rig is the default; real hardware is driven only when named.",
+    )
+    p.add_argument("--version", action="version", version=f"liveshape {__version__}")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+
+    c = sub.add_parser("check", help="profile figures, tolerances, DOF and rig feasibility")
+    c.add_argument("spec", metavar="SPEC", help="test definition (.yaml) or profile (.csv)")
+    c.add_argument("--rig", help="add rig feasibility: sim, sim:PRESET, sim:PLANT.yaml")
+    c.add_argument("--fs", type=_positive_float, metavar="HZ", help="sample rate override")
+    c.add_argument("--json", action="store_true", help="print one JSON object")
+    c.set_defaults(func=_cmd_check)
+
+    s = sub.add_parser("synth", help="write a drive file (float WAV) offline with a sidecar")
+    s.add_argument("spec", metavar="SPEC", help="test definition (.yaml) or profile (.csv)")
+    s.add_argument("--duration", type=_positive_float, required=True, metavar="S",
+                   help="length of the file in seconds")
+    s.add_argument("-o", "--output", required=True, metavar="FILE.wav", help="output WAV")
+    s.add_argument("--fs", type=_positive_float, metavar="HZ", help="sample rate")
+    s.add_argument("--seed", type=_whole, metavar="N", help="random seed")
+    s.add_argument("--clip-sigma", type=_positive_float, metavar="X",
+                   help="clip the drive at X times its rms (>= 2.5)")
+    s.add_argument("--crest-min", type=_positive_float, metavar="X",
+                   help="keep only realizations with crest factor >= X")
+    s.add_argument("--crest-max", type=_positive_float, metavar="Y",
+                   help="keep only realizations with crest factor <= Y")
+    s.add_argument("--max-tries", type=_whole, default=10, metavar="N",
+                   help="realizations to try for the crest-factor criterion (default 10)")
+    s.add_argument("--json", action="store_true", help="print the sidecar as one JSON object")
+    s.set_defaults(func=_cmd_synth)
+    return p
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command line; returns the exit status."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return int(args.func(args))
+    except LiveshapeError as exc:
+        sys.stderr.write(f"liveshape: {exc}\n")
+        return EXIT_USAGE
+    except KeyboardInterrupt:
+        sys.stderr.write("liveshape: interrupted\n")
+        return EXIT_INTERRUPTED
+    except BrokenPipeError:
+        return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
