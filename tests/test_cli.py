@@ -1,0 +1,121 @@
+"""The command line: exit statuses, one-line errors, JSON keys.
+
+Numbers printed by ``check --json`` are compared with published values (NAVMAT P-9492) so the
+command is tested end to end, not just for shape.
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from liveshape.cli import main
+
+REPO = Path(__file__).resolve().parents[1]
+EXAMPLES = REPO / "examples"
+
+
+def run_cli(*args: str, cwd: Path | None = None) -> subprocess.CompletedProcess[str]:
+    """Run ``python -m liveshape`` in a subprocess, as a user would."""
+    return subprocess.run(
+        [sys.executable, "-m", "liveshape", *args],
+        capture_output=True,
+        text=True,
+        cwd=cwd or REPO,
+        timeout=300,
+    )
+
+
+def assert_one_line_error(proc: subprocess.CompletedProcess[str], *words: str) -> None:
+    assert proc.returncode == 2, proc.stderr
+    lines = [ln for ln in proc.stderr.splitlines() if ln.strip()]
+    assert len(lines) == 1, proc.stderr
+    assert "Traceback" not in proc.stderr
+    for w in words:
+        assert w in lines[0], lines[0]
+
+
+NAVMAT_CSV = """# NAVMAT P-9492 screening spectrum (published: 6.0 grms)
+f_hz, asd_g2_hz
+20, 0.01
+80, 0.04
+350, 0.04
+2000, 0.007
+"""
+
+
+def test_check_json_navmat(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    p = tmp_path / "navmat.csv"
+    p.write_text(NAVMAT_CSV)
+    assert main(["check", str(p), "--json"]) == 0
+    data = json.loads(capsys.readouterr().out)
+    for key in ("grms_g", "velocity_rms_m_s", "displacement_rms_m", "displacement_pp_3sigma_m",
+                "f_min_hz", "f_max_hz"):
+        assert key in data
+    # NAVMAT P-9492: published 6.0 grms; exact integral of the breakpoints 6.06 (DOMAIN.md §1).
+    assert data["grms_g"] == pytest.approx(6.06, abs=0.01)
+    # 3-sigma peak-to-peak is 6 x rms (common practice; MIL-STD-810H 3-sigma basis).
+    assert data["displacement_pp_3sigma_m"] == pytest.approx(6 * data["displacement_rms_m"])
+    assert data["f_min_hz"] == 20 and data["f_max_hz"] == 2000
+
+
+def test_check_table_names_band_and_grms(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["check", str(EXAMPLES / "handlebar-nav-unit.yaml")]) == 0
+    out = capsys.readouterr().out
+    assert "grms" in out and "20" in out and "1000" in out and "DOF" in out
+
+
+def test_seconds_for_dof_matches_welch_dof() -> None:
+    # Welch (1967): Hann 50 % adds 36/19 DOF per segment for many segments; 120 DOF needs
+    # ceil((120 - c) / (36/19)) segments, about 64 (DOMAIN.md §3).
+    from liveshape.checks import segments_for_dof
+    from liveshape.spectra import welch_dof
+
+    k = segments_for_dof(120.0)
+    assert welch_dof(k) >= 120.0 > welch_dof(k - 1)
+    assert 62 <= k <= 65
+
+
+@pytest.mark.parametrize(
+    "content, words",
+    [
+        ("f_hz, asd_g2_hz\n20, 0.01\n", ["bad.csv"]),                       # fewer than 2 points
+        ("f_hz, asd_g2_hz\n20, 0.01\n20, 0.02\n", ["bad.csv", "line"]),     # duplicate frequency
+        ("f_hz, asd_g2_hz\n20, 0.01\n80, -0.02\n", ["bad.csv", "line"]),    # negative level
+        ("f_hz, asd_g2_hz\n20, 0.01\n80, x\n", ["bad.csv", "line"]),        # not a number
+    ],
+)
+def test_check_bad_csv_is_one_line(tmp_path: Path, content: str, words: list[str]) -> None:
+    p = tmp_path / "bad.csv"
+    p.write_text(content)
+    assert_one_line_error(run_cli("check", str(p)), *words)
+
+
+def test_check_misspelled_key_suggests(tmp_path: Path) -> None:
+    p = tmp_path / "typo.yaml"
+    p.write_text((EXAMPLES / "handlebar-nav-unit.yaml").read_text().replace("tolerance:", "tolerence:"))
+    assert_one_line_error(run_cli("check", str(p)), "typo.yaml", "tolerence", "tolerance")
+
+
+def test_check_malformed_yaml(tmp_path: Path) -> None:
+    p = tmp_path / "broken.yaml"
+    p.write_text("name: [unclosed\n")
+    assert_one_line_error(run_cli("check", str(p)), "broken.yaml", "line")
+
+
+def test_check_fmax_above_nyquist_names_fs() -> None:
+    proc = run_cli("check", str(EXAMPLES / "handlebar-nav-unit.yaml"), "--fs", "1500")
+    assert_one_line_error(proc, "1500")
+
+
+def test_bad_rig_option() -> None:
+    proc = run_cli("check", str(EXAMPLES / "handlebar-nav-unit.yaml"), "--rig", "lab")
+    assert_one_line_error(proc, "--rig", "lab")
+
+
+def test_missing_file() -> None:
+    assert_one_line_error(run_cli("check", "no-such-file.yaml"), "no-such-file.yaml")
