@@ -97,7 +97,8 @@ def test_check_bad_csv_is_one_line(tmp_path: Path, content: str, words: list[str
 
 def test_check_misspelled_key_suggests(tmp_path: Path) -> None:
     p = tmp_path / "typo.yaml"
-    p.write_text((EXAMPLES / "handlebar-nav-unit.yaml").read_text().replace("tolerance:", "tolerence:"))
+    text = (EXAMPLES / "handlebar-nav-unit.yaml").read_text()
+    p.write_text(text.replace("tolerance:", "tolerence:"))
     assert_one_line_error(run_cli("check", str(p)), "typo.yaml", "tolerence", "tolerance")
 
 
