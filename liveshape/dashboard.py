@@ -11,6 +11,7 @@ below it, and one control mark per column coloured by how far it is from the tar
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import time
 from collections.abc import Callable, Iterator, Mapping, Sequence
@@ -373,16 +374,24 @@ def _control_table(snapshot: Any) -> Table:
 
 def _drive_table(snapshot: Any) -> Table:
     table = _kv_table("drive")
-    for label, key, lim_key in (("rms", "drive_rms_fs", "drive_rms_max_fs"),
-                                ("peak", "drive_peak_fs", "drive_peak_max_fs")):
-        value, limit = _get(snapshot, key), _get(snapshot, lim_key)
+    rows = (("rms", "drive_rms_fs", ("drive_rms_limit_fs", "drive_rms_max_fs")),
+            ("peak", "drive_peak_fs", ("drive_peak_limit_fs", "drive_peak_max_fs")))
+    for label, key, lim_keys in rows:
+        value, limit = _get(snapshot, key), _get(snapshot, *lim_keys)
         v, lim = _num(value), _num(limit)
         frac = f"  ({100 * v / lim:.0f} %)" if v is not None and lim else ""
         table.add_row(label, Text(f"{_fmt(value, '.3f')} of {_fmt(limit, '.3f')} FS{frac}",
                                   style=_limit_style(value, limit)))
+    gain = _get(snapshot, "gain_db")
+    if gain is not None:
+        table.add_row("gain", _fmt(gain, "+.1f", "dB"))
+    delay = _get(snapshot, "loop_delay_samples")
+    if delay is not None:
+        table.add_row("loop delay", f"{int(delay)} samples")
     trip = _get(snapshot, "trip")
     if trip:
-        table.add_row("trip", Text(str(_get(trip, "message", "rule", default=trip)),
+        rule, message = _get(trip, "rule"), _get(trip, "message", default=trip)
+        table.add_row("trip", Text(f"{rule}: {message}" if rule else str(message),
                                    style=PALETTE.abort))
     return table
 
@@ -537,12 +546,30 @@ def progress_bar(console: Console | str | None = None, description: str = "worki
 _STATUS_STYLE = {"completed": "ok", "aborted": "abort", "stopped": "alarm", "crashed": "abort"}
 
 
-def run_summary(result: Mapping[str, Any]) -> RenderableType:
-    """The result of a run: status, abort reason, grms, error figures, DOF, time at level."""
+def _as_mapping(obj: Any) -> dict[str, Any]:
+    if isinstance(obj, Mapping):
+        return dict(obj)
+    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
+        return dataclasses.asdict(obj)
+    to_dict = getattr(obj, "to_dict", None)
+    if callable(to_dict):
+        return dict(to_dict())
+    raise TypeError(f"expected a mapping or a dataclass, got {type(obj).__name__}")
+
+
+def run_summary(result: Mapping[str, Any] | Any) -> RenderableType:
+    """The result of a run: status, abort reason, grms, error figures, DOF, time at level.
+
+    ``result`` is a mapping (``summary.json``) or the controller's result dataclass.
+    """
+    result = _as_mapping(result)
     status = str(result.get("status", "unknown"))
     table = _kv_table()
     style = getattr(PALETTE, _STATUS_STYLE.get(status, "value"))
     table.add_row("status", Text(status, style=style))
+    trip = result.get("trip")
+    if isinstance(trip, Mapping) and trip.get("rule"):
+        table.add_row("abort rule", Text(str(trip["rule"]), style=PALETTE.abort))
     if result.get("abort_reason"):
         table.add_row("abort reason", Text(str(result["abort_reason"]), style=PALETTE.abort))
     table.add_row("grms control / target", f"{_fmt(result.get('control_grms_g'), '.3f')} / "
@@ -557,15 +584,15 @@ def run_summary(result: Mapping[str, Any]) -> RenderableType:
     table.add_row("time at full level", _fmt(result.get("time_at_full_level_s"), ".1f", "s"))
     shown = {"status", "abort_reason", "control_grms_g", "target_grms_g", "final_rms_error_db",
              "final_max_dev_db", "final_lines_outside_alarm", "final_lines_outside_abort",
-             "updates_to_tolerance", "dof", "time_at_full_level_s", "record"}
+             "updates_to_tolerance", "dof", "time_at_full_level_s", "record", "trip"}
     _add_mapping_rows(table, result, skip=tuple(shown))
     return Panel(table, title="run result", title_align="left", border_style=PALETTE.border)
 
 
-def synth_summary(result: Mapping[str, Any]) -> RenderableType:
+def synth_summary(result: Mapping[str, Any] | Any) -> RenderableType:
     """The result of ``liveshape synth``: every figure by name, units from the key suffixes."""
     table = _kv_table()
-    _add_mapping_rows(table, result)
+    _add_mapping_rows(table, _as_mapping(result))
     return Panel(table, title="drive file", title_align="left", border_style=PALETTE.border)
 
 

@@ -64,7 +64,7 @@ UPDATES_DIR = "updates"
 
 #: Arrays stored in every update file; the scalar figures go next to them by name.
 UPDATE_ARRAYS = ("f_hz", "control_psd", "target_psd", "drive_psd", "h1", "coherence")
-_UPDATE_RESERVED = frozenset(UPDATE_ARRAYS) | {"index", "t_s", "numbers"}
+_UPDATE_RESERVED = frozenset(UPDATE_ARRAYS) | {"index", "t_s", "numbers", "arrays"}
 
 # libsndfile commands (sndfile.h): rewrite the header now; switch the float PEAK chunk off.
 _SFC_UPDATE_HEADER_NOW = 0x1060
@@ -404,6 +404,8 @@ class RunRecorder:
         drive_psd: Any,
         h1: Any = None,
         coherence: Any = None,
+        *,
+        arrays: Mapping[str, Any] | None = None,
         **numbers: float | int | bool | None,
     ) -> Path:
         """Write one control update as ``updates/NNNN.npz`` (atomically).
@@ -422,9 +424,11 @@ class RunRecorder:
             Drive PSD on the lines, FS²/Hz.
         h1, coherence : array, optional
             FRF estimate H1 (complex, g/FS or FS/FS) and coherence (0..1); NaN when not given.
+        arrays : mapping of str to array, optional
+            More per-line arrays (e.g. ``new_drive_psd``), each shaped like ``f_hz``.
         **numbers
             Scalar figures of the update (``rms_error_db``, ``max_dev_db``, ``level_db``,
-            ``dof`` ...); ``None`` is stored as NaN.
+            ``dof`` ...); ``None`` is stored as NaN, booleans as 1.0/0.0.
 
         Returns
         -------
@@ -434,7 +438,9 @@ class RunRecorder:
         idx = int(index)
         if idx < 0:
             raise ValueError(f"update index {index!r} must be >= 0")
-        bad = _UPDATE_RESERVED.intersection(numbers)
+        extra = dict(arrays or {})
+        bad = _UPDATE_RESERVED.intersection(numbers) | _UPDATE_RESERVED.intersection(extra)
+        bad |= set(numbers).intersection(extra) | {"arrays"}.intersection(extra)
         if bad:
             raise ValueError(f"update figure names clash with stored arrays: {sorted(bad)}")
         f = np.asarray(f_hz, dtype=float)
@@ -449,7 +455,12 @@ class RunRecorder:
         arrays["coherence"] = self._line_array("coherence", coherence, f.size, float)
         arrays["index"] = np.asarray(idx, dtype=np.int64)
         arrays["t_s"] = np.asarray(float(t_s))
+        for key, value in extra.items():
+            arr = np.asarray(value)
+            dtype = complex if np.iscomplexobj(arr) else float
+            arrays[key] = self._line_array(key, arr, f.size, dtype)
         arrays["numbers"] = np.asarray(sorted(numbers), dtype=str)
+        arrays["arrays"] = np.asarray(sorted(extra), dtype=str)
         for key, value in numbers.items():
             arrays[key] = np.asarray(np.nan if value is None else float(value))
         path = self.root / UPDATES_DIR / f"{idx:04d}.npz"
@@ -458,6 +469,33 @@ class RunRecorder:
             _atomic_write(path, lambda fh: np.savez(fh, **arrays), fsync=self._fsync)
             self.n_updates += 1
         return path
+
+    def update_from(self, record: Any, **numbers: float | int | bool | None) -> Path:
+        """Write an update given as the controller's update record (plus more figures).
+
+        ``record`` has ``index``, ``t_s``, ``f_hz``, ``control_psd``, ``target_psd``,
+        ``drive_psd``, ``h1``, ``coherence``; its other number fields (``level_db``, ``dof``,
+        ``rms_error_db``, ``max_dev_db``, ...) and other per-line arrays (``new_drive_psd``) are
+        stored too. Strings (``stage``) are left out: the events carry them.
+        """
+        fields = (
+            {f.name: getattr(record, f.name) for f in dataclasses.fields(record)}
+            if dataclasses.is_dataclass(record) else dict(vars(record))
+        )
+        base = {k: fields.pop(k, None) for k in ("index", "t_s", *UPDATE_ARRAYS)}
+        n = np.asarray(base["f_hz"]).size
+        figures: dict[str, Any] = {}
+        extra: dict[str, Any] = {}
+        for key, value in fields.items():
+            if isinstance(value, (bool, int, float, np.integer, np.floating, np.bool_)):
+                figures[key] = value
+            elif isinstance(value, np.ndarray) and value.shape == (n,):
+                extra[key] = value
+        figures.update(numbers)
+        return self.update(
+            base["index"], base["t_s"], base["f_hz"], base["control_psd"], base["target_psd"],
+            base["drive_psd"], base["h1"], base["coherence"], arrays=extra, **figures,
+        )
 
     @staticmethod
     def _line_array(key: str, value: Any, n: int, dtype: type) -> np.ndarray:
@@ -587,6 +625,8 @@ class UpdateSeries:
     coherence : ndarray, shape (n, m)
     numbers : dict of str to ndarray, shape (n,)
         Scalar figures by name; NaN where an update did not give one.
+    arrays : dict of str to ndarray, shape (n, m)
+        More per-line arrays by name (``new_drive_psd`` ...); NaN rows where missing.
     """
 
     index: np.ndarray
@@ -598,6 +638,7 @@ class UpdateSeries:
     h1: np.ndarray
     coherence: np.ndarray
     numbers: dict[str, np.ndarray]
+    arrays: dict[str, np.ndarray] = dataclasses.field(default_factory=dict)
 
     @property
     def n(self) -> int:
@@ -709,6 +750,7 @@ def _read_updates(folder: Path) -> UpdateSeries:
     files.sort()
     rows: list[dict[str, Any]] = []
     names: list[str] = []
+    extra_names: list[str] = []
     for _, p in files:
         try:
             with np.load(p, allow_pickle=False) as z:
@@ -726,6 +768,9 @@ def _read_updates(folder: Path) -> UpdateSeries:
         for name in row.get("numbers", np.zeros(0, dtype=str)).tolist():
             if name not in names:
                 names.append(name)
+        for name in row.get("arrays", np.zeros(0, dtype=str)).tolist():
+            if name not in extra_names:
+                extra_names.append(name)
         rows.append(row)
     stack = {
         key: _frozen(np.stack([r[key] for r in rows]))
@@ -735,11 +780,17 @@ def _read_updates(folder: Path) -> UpdateSeries:
         name: _frozen(np.array([float(r[name]) if name in r else np.nan for r in rows]))
         for name in names
     }
+    extra = {}
+    for name in extra_names:
+        like = next(r[name] for r in rows if name in r)
+        fill = np.full(like.shape, np.nan, dtype=like.dtype)
+        extra[name] = _frozen(np.stack([r.get(name, fill) for r in rows]))
     return UpdateSeries(
         index=_frozen(np.array([int(r["index"]) for r in rows], dtype=np.int64)),
         t_s=_frozen(np.array([float(r["t_s"]) for r in rows])),
         f_hz=_frozen(np.array(rows[-1]["f_hz"], dtype=float)),
         numbers=numbers,
+        arrays=extra,
         **stack,
     )
 

@@ -60,8 +60,10 @@ class _Snapshot:
     target_grms_g: float = 6.058
     drive_rms_fs: float = 0.231
     drive_peak_fs: float = 0.93
-    drive_rms_max_fs: float = 0.5
-    drive_peak_max_fs: float = 1.0
+    drive_rms_limit_fs: float = 0.5
+    drive_peak_limit_fs: float = 1.0
+    gain_db: float = -1.5
+    loop_delay_samples: int = 1536
     f_hz: np.ndarray = dataclasses.field(default_factory=lambda: np.arange(513) * 8000 / 1024)
     control_psd: np.ndarray | None = None
     target_psd: np.ndarray | None = None
@@ -77,7 +79,7 @@ class _Snapshot:
     updates: int = 31
     status: str = "running"
     trip: object = None
-    events: tuple = (
+    recent_events: tuple = (
         _Event(1.5, "stage", "identify: low-level noise", {}),
         _Event(30.0, "level", "level 0 dB", {"level_db": 0.0}),
         _Event(40.0, "alarm", "17 lines outside alarm", {"lines": 17}),
@@ -119,7 +121,7 @@ def test_dashboard_chi2_band_matches_chi_square(dof):
 
 def test_dashboard_without_spectrum_and_nan_numbers():
     snap = _snapshot(stage="connect", f_hz=np.zeros(0), control_grms_g=float("nan"),
-                     dof=float("nan"), events=())
+                     dof=float("nan"), recent_events=())
     snap = dataclasses.replace(snap, target_psd=np.zeros(0), control_psd=None)
     out = _render(dash.dashboard(snap))
     assert "connect" in out and "no spectrum yet" in out and "none yet" in out
@@ -285,3 +287,47 @@ def test_live_view_rate_limit_and_flush():
         assert not view.update(_snapshot(stage="ramp_down"))
     assert view.builds == 2  # the first and the flushed last one
     assert "ramp down" in console.file.getvalue()
+
+
+def test_run_summary_from_result_dataclass_with_trip():
+    @dataclasses.dataclass(frozen=True)
+    class Trip:
+        rule: str
+        message: str
+        t_s: float = 0.0
+        detail: dict = dataclasses.field(default_factory=dict)
+
+    @dataclasses.dataclass(frozen=True)
+    class Result:  # the controller's result fields (demo values)
+        status: str
+        abort_reason: str | None
+        trip: Trip | None
+        updates_to_tolerance: int | None
+        final_rms_error_db: float
+        control_grms_g: float
+        target_grms_g: float
+        dof: float
+        time_at_full_level_s: float
+        updates: int
+
+    res = Result("aborted", "control silent for 2 updates", Trip("sensor_silent", "silent"),
+                 None, float("nan"), 0.01, 6.058, 120.0, 0.0, 9)
+    out = _render(dash.run_summary(res))
+    assert "sensor_silent" in out and "control silent for 2 updates" in out
+    assert re.search(r"updates\s+9", out) and "0.010 / 6.058 g" in out
+    assert "detail" not in out  # the trip's own fields are not repeated as rows
+
+
+def test_drive_table_limits_delay_and_trip():
+    @dataclasses.dataclass(frozen=True)
+    class Trip:
+        rule: str
+        message: str
+
+    out = _render(dash.dashboard(dataclasses.replace(_snapshot(), drive_rms_limit_fs=None)))
+    assert "0.231 of — FS" in out  # no limit given
+    snap = dataclasses.replace(_snapshot(), trip=Trip("drive_limit", "drive rms 0.6 FS"),
+                               drive_rms_fs=0.6)
+    out = _render(dash.dashboard(snap))
+    assert "drive_limit: drive rms 0.6 FS" in out and "0.600 of 0.500 FS  (120 %)" in out
+    assert "1536 samples" in out and "gain" in out and "-1.5 dB" in out

@@ -283,3 +283,39 @@ def test_load_run_errors_are_one_line(tmp_path):
     (tmp_path / "other" / "run.json").write_text('{"format": "something-else"}')
     with pytest.raises(ConfigError, match="format"):
         load_run(tmp_path / "other")
+
+
+def test_update_from_record_keeps_figures_and_extra_arrays(tmp_path):
+    @dataclasses.dataclass(frozen=True)
+    class Update:  # the controller's update record fields (demo values)
+        index: int
+        t_s: float
+        stage: str
+        level_db: float
+        dof: float
+        f_hz: np.ndarray
+        control_psd: np.ndarray
+        target_psd: np.ndarray
+        drive_psd: np.ndarray
+        new_drive_psd: np.ndarray
+        h1: np.ndarray
+        coherence: np.ndarray
+        rms_error_db: float
+        applied: bool
+        lines_held: int
+
+    f = np.arange(9.0)
+    rec = _recorder(tmp_path)
+    for i in (1, 2):
+        rec.update_from(
+            Update(i, 1.5 * i, "equalize", -6.0, 60.0, f, f + i, f * 0 + 1, f * 2, f * 3 + i,
+                   (1 + 1j) * f, f / 9, -0.5 / i, i == 2, 3),
+            lines_outside_alarm=7,
+        )
+    up = load_run(rec.root).updates
+    np.testing.assert_array_equal(up.arrays["new_drive_psd"], [f * 3 + 1, f * 3 + 2])
+    np.testing.assert_array_equal(up.h1[1], (1 + 1j) * f)
+    np.testing.assert_array_equal(up.numbers["applied"], [0.0, 1.0])
+    np.testing.assert_array_equal(up.numbers["rms_error_db"], [-0.5, -0.25])
+    np.testing.assert_array_equal(up.numbers["lines_outside_alarm"], [7.0, 7.0])
+    assert "stage" not in up.numbers and set(up.numbers) >= {"level_db", "dof", "lines_held"}
