@@ -331,3 +331,25 @@ def test_drive_table_limits_delay_and_trip():
     out = _render(dash.dashboard(snap))
     assert "drive_limit: drive rms 0.6 FS" in out and "0.600 of 0.500 FS  (120 %)" in out
     assert "1536 samples" in out and "gain" in out and "-1.5 dB" in out
+
+
+def test_check_table_same_from_report_mapping_and_objects():
+    from liveshape.checks import check_report
+    from liveshape.spec import spec_from_mapping
+
+    points = [{"f_hz": f, "asd": a} for f, a in zip(_navmat().f_hz, _navmat().asd_g2_hz,
+                                                    strict=True)]
+    spec = spec_from_mapping(
+        {"name": "navmat", "profile": {"units": "g2/Hz", "breakpoints": points},
+         "tolerance": {"bands": [{"f_lo_hz": 20, "f_hi_hz": 40, "alarm_db": 4.5,
+                                  "abort_db": 7.5}]}},
+        source="navmat.yaml",
+    )
+    from_report = _render(dash.check_table(check_report(spec)))
+    from_objects = _render(dash.check_table(spec.profile, spec.tolerance, spec.control))
+    assert "band 20 – 40 Hz" in from_report and "±4.5 / ±7.5 dB" in from_report
+    # The report has no averaging word; everything else is the same figures.
+    def words(text: str) -> list[str]:
+        return text.replace(f" ({spec.control.averaging} averaging)", "").split()
+
+    assert words(from_report) == words(from_objects)
