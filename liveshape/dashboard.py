@@ -284,9 +284,16 @@ def spectrum_plot(
     for r in range(height):
         text.append(f"{labels.get(r, ''):>{label_w - 1}} ", style=PALETTE.label)
         text.append("│", style=PALETTE.border)
-        for ch, style in grid[r]:
-            text.append(ch, style=style)
-        text.append("\n")
+        run_chars, run_style = "", None
+        for ch, style in grid[r]:  # one span per run of equal style keeps rendering cheap
+            if ch == " ":
+                style = run_style if run_style is not None else style
+            if style != run_style and run_chars:
+                text.append(run_chars, style=run_style)
+                run_chars = ""
+            run_chars += ch
+            run_style = style
+        text.append(run_chars + "\n", style=run_style)
     text.append(" " * label_w + "└" + "─" * width + "\n", style=PALETTE.border)
     axis = [" "] * (width + 8)
     for ftick in _nice_ticks(10**x0, 10**x1):
@@ -439,13 +446,15 @@ def dashboard(snapshot: Any, *, plot_width: int = 72, plot_height: int = 15) -> 
 class LiveView:
     """A live terminal view that the shell feeds with snapshots.
 
-    ``update(snapshot)`` rebuilds the dashboard at most ``refresh_hz`` times a second (calls in
-    between are dropped, the last snapshot is kept for :meth:`flush`); rich redraws it on its
-    own thread. Use as a context manager.
+    ``update(snapshot)`` rebuilds and redraws the dashboard at most ``refresh_hz`` times a
+    second (calls in between are dropped, the last one is kept for :meth:`flush`). Drawing
+    happens in the caller's thread, only when a snapshot is taken (no refresh thread): a full
+    redraw costs a few tens of milliseconds of pure Python, so keep ``refresh_hz`` at 4-10.
+    Use as a context manager.
     """
 
     def __init__(
-        self, console: Console | None = None, *, refresh_hz: float = 5.0,
+        self, console: Console | None = None, *, refresh_hz: float = 4.0,
         clock: Callable[[], float] = time.monotonic, transient: bool = False,
     ) -> None:
         self.refresh_hz = float(refresh_hz)
@@ -453,7 +462,7 @@ class LiveView:
         self._last_build = -math.inf
         self._pending: Any = None
         self._live = Live(Text(""), console=console, refresh_per_second=self.refresh_hz,
-                          transient=transient, auto_refresh=True)
+                          transient=transient, auto_refresh=False)
         self.builds = 0
 
     def update(self, snapshot: Any, *, force: bool = False) -> bool:
@@ -465,7 +474,7 @@ class LiveView:
         self._pending = None
         self._last_build = now
         width = min(max(self._live.console.width - 14, 40), 110)
-        self._live.update(dashboard(snapshot, plot_width=width))
+        self._live.update(dashboard(snapshot, plot_width=width), refresh=True)
         self.builds += 1
         return True
 

@@ -161,7 +161,9 @@ def test_plot_control_beyond_abort_is_marked_outside():
     control_rows = {i for i, row in enumerate(grid) if "●" in row}
     abort_rows = [i for i, row in enumerate(grid) if ":" in row]
     assert max(control_rows) < min(abort_rows)  # above the upper abort limit
-    styles = {span.style for span in text.spans if text.plain[span.start:span.end] == "●"}
+    end = text.plain.index("└")  # spans of the plot area (the legend comes after the axis)
+    styles = {span.style for span in text.spans
+              if span.end <= end and "●" in text.plain[span.start:span.end]}
     assert styles == {dash.PALETTE.abort}
     # Off the plot: drawn as arrows on the edge rows.
     text = dash.spectrum_plot(f, t * 1e-4, t, 3.0, 6.0, width=60, height=15)
