@@ -189,6 +189,15 @@ def _as_lines(value: Any, n: int) -> np.ndarray:
     return np.broadcast_to(arr, (n,)) if arr.ndim == 0 or arr.size == 1 else arr.reshape(n)
 
 
+def _span(values: np.ndarray) -> str:
+    """``3`` for equal values, ``3…4.5`` for a range (limits that vary by band)."""
+    ok = values[np.isfinite(values)]
+    if ok.size == 0:
+        return _DASH
+    lo, hi = float(ok.min()), float(ok.max())
+    return f"{lo:g}" if lo == hi else f"{lo:g}…{hi:g}"
+
+
 def spectrum_plot(
     f_hz: Any,
     control_psd: Any,
@@ -305,8 +314,8 @@ def spectrum_plot(
     text.append(" " * (label_w + 1) + "".join(axis).rstrip() + "  Hz\n", style=PALETTE.label)
     legend = Text(" " * (label_w + 1))
     legend.append("─ target  ", style=PALETTE.target)
-    legend.append(f"· alarm ±{_fmt(np.max(al), 'g')} dB  ", style=PALETTE.alarm)
-    legend.append(f": abort ±{_fmt(np.max(ab), 'g')} dB  ", style=PALETTE.abort)
+    legend.append(f"· alarm ±{_span(al)} dB  ", style=PALETTE.alarm)
+    legend.append(f": abort ±{_span(ab)} dB  ", style=PALETTE.abort)
     legend.append("● control  ", style=PALETTE.control)
     legend.append("y: g²/Hz", style=PALETTE.label)
     text.append_text(legend)

@@ -98,7 +98,10 @@ def _last_number(run: RunData, name: str) -> float | None:
 
 
 def _level_track(run: RunData) -> tuple[np.ndarray, np.ndarray]:
-    """Level in dB against run time: every event with ``level_db`` in its data, and updates."""
+    """Level in dB against run time: the events with ``level_db`` in their data (level steps).
+
+    A record without such events falls back to the level each update file gives.
+    """
     t, lv = [], []
     for ev in run.events:
         value = ev.data.get("level_db") if isinstance(ev.data, Mapping) else None
@@ -106,13 +109,17 @@ def _level_track(run: RunData) -> tuple[np.ndarray, np.ndarray]:
             t.append(ev.t_s)
             lv.append(float(value))
     levels = run.updates.numbers.get("level_db")
-    if levels is not None:
+    if not t and levels is not None:
         for ts, value in zip(run.updates.t_s, levels, strict=True):
             if np.isfinite(value):
                 t.append(float(ts))
                 lv.append(float(value))
     order = np.argsort(np.asarray(t, dtype=float), kind="stable")
-    return np.asarray(t, dtype=float)[order], np.asarray(lv, dtype=float)[order]
+    t_arr, lv_arr = np.asarray(t, dtype=float)[order], np.asarray(lv, dtype=float)[order]
+    ends = [ev.t_s for ev in run.events if math.isfinite(ev.t_s)]
+    if t_arr.size and ends and max(ends) > t_arr[-1]:  # hold the last level to the last event
+        t_arr, lv_arr = np.append(t_arr, max(ends)), np.append(lv_arr, lv_arr[-1])
+    return t_arr, lv_arr
 
 
 def _finite(x: Any) -> bool:
@@ -201,6 +208,15 @@ def _import_matplotlib() -> tuple[Any, Any]:
     return Figure, FigureCanvasAgg
 
 
+def _log_axis(axis: Any) -> None:
+    """Log frequency axis labelled in plain numbers at 1, 2, 5 per decade."""
+    from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
+
+    axis.set_major_locator(LogLocator(base=10.0, subs=(1.0, 2.0, 5.0)))
+    axis.set_major_formatter(FuncFormatter(lambda x, _pos: f"{x:g}"))
+    axis.set_minor_formatter(NullFormatter())
+
+
 def _save(fig: Any, canvas_cls: Any, path: Path) -> Path:
     canvas_cls(fig)
     fig.savefig(path, dpi=110)
@@ -232,6 +248,7 @@ def _plot_control(fig: Any, run: RunData, tol: Tolerance, tol_note: str, units: 
     ax.set_xscale("log")
     ax.set_yscale("log")
     ax.set_xlim(fb[0], fb[-1])
+    _log_axis(ax.xaxis)
     ax.set_xlabel("frequency (Hz)")
     ax.set_ylabel(f"ASD ({units})")
     note = f", tolerance {tol_note}" if tol_note else ""
@@ -256,6 +273,7 @@ def _plot_drive(fig: Any, run: RunData) -> None:
         ax.axvspan(f[band][0], f[band][-1], color="#f2f2f2", zorder=0, label="test band")
     ax.set_xscale("log")
     ax.set_yscale("log")
+    _log_axis(ax.xaxis)
     ax.set_xlabel("frequency (Hz)")
     ax.set_ylabel("drive PSD (FS²/Hz)")
     ax.set_title("drive", fontsize=10)
@@ -287,6 +305,7 @@ def _plot_frf(fig: Any, run: RunData, units: str) -> None:
     band = _band(f, up.target_psd[-1])
     for ax in axes:
         ax.set_xscale("log")
+        _log_axis(ax.xaxis)
         ax.grid(True, which="both", color="#dddddd", lw=0.5)
         if band.any():
             ax.axvspan(f[band][0], f[band][-1], color="#f4f4f4", zorder=0)
@@ -324,7 +343,6 @@ def _plot_level(fig: Any, run: RunData) -> None:
         ax.text(0.5, 0.5, "no level recorded", ha="center", va="center", transform=ax.transAxes)
     else:
         ax.step(t, lv, where="post", color="#2f6f9f", lw=1.2)
-        ax.plot(t, lv, "o", ms=3, color="#2f6f9f")
     ax.axhline(0.0, color="#888888", lw=0.6)
     ax.set_xlabel("run time (s)")
     ax.set_ylabel("level (dB re full test level)")

@@ -355,3 +355,12 @@ def test_check_table_same_from_report_mapping_and_objects():
         return text.replace(f" ({spec.control.averaging} averaging)", "").split()
 
     assert words(from_report) == words(from_objects)
+
+
+def test_plot_legend_shows_limits_that_vary_by_band():
+    f = np.linspace(0, 4000, 4097)
+    t = np.where((f >= 20) & (f <= 2000), 0.04, 0.0)
+    alarm = np.where(f < 40, 4.5, 3.0)
+    abort = np.where(f < 40, 7.5, 6.0)
+    text = dash.spectrum_plot(f, t, t, alarm, abort).plain
+    assert "alarm ±3…4.5 dB" in text and "abort ±6…7.5 dB" in text

@@ -169,3 +169,18 @@ def test_summary_text_needs_no_matplotlib(tmp_path):
 
     text = summary_text(load_run(_demo_run(tmp_path, n_updates=2)))
     assert text.startswith("liveshape run report: demo\n")
+
+
+def test_level_track_follows_events_to_the_end(tmp_path):
+    from liveshape.record import load_run
+    from liveshape.report import _level_track
+
+    root = _demo_run(tmp_path, close=False, n_updates=2)
+    rec_events = root / "events.jsonl"
+    with open(rec_events, "a", encoding="utf-8") as fh:
+        fh.write('{"t_s": 9.5, "kind": "stage", "message": "done", "data": {}}\n')
+    t, lv = _level_track(load_run(root))
+    # Level events at 0, 2, 4 s (-12, -6, 0 dB); the updates' own level_db figures are not
+    # mixed in; the last level holds to the last event.
+    np.testing.assert_array_equal(t, [0.0, 2.0, 4.0, 9.5])
+    np.testing.assert_array_equal(lv, [-12.0, -6.0, 0.0, 0.0])
