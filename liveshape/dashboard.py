@@ -110,6 +110,12 @@ def _fmt_time(seconds: Any) -> str:
     return f"{h}:{m:02d}:{s:02d}" if h else f"{m}:{s:02d}"
 
 
+def _count(value: Any) -> int | None:
+    """A count of lines; negative (the controller's 'none yet') and missing give None."""
+    v = _num(value)
+    return None if v is None or v < 0 else int(v)
+
+
 def _limit_style(value: Any, limit: Any) -> str:
     v, lim = _num(value), _num(limit)
     if v is None or lim is None or lim <= 0:
@@ -373,8 +379,8 @@ def _control_table(snapshot: Any) -> Table:
     table.add_row("rms error", _fmt_db(_get(snapshot, "rms_error_db")))
     table.add_row("line deviation max / min", f"{_fmt_db(_get(snapshot, 'max_dev_db'))} / "
                   f"{_fmt_db(_get(snapshot, 'min_dev_db'))}")
-    n_al = _get(snapshot, "lines_outside_alarm")
-    n_ab = _get(snapshot, "lines_outside_abort")
+    n_al = _count(_get(snapshot, "lines_outside_alarm"))
+    n_ab = _count(_get(snapshot, "lines_outside_abort"))
     out = Text()
     out.append(f"{_fmt_value(n_al)} alarm", style=PALETTE.alarm if n_al else PALETTE.ok)
     out.append("  ")
@@ -595,8 +601,8 @@ def run_summary(result: Mapping[str, Any] | Any) -> RenderableType:
     table.add_row("final rms error", _fmt_db(result.get("final_rms_error_db")))
     table.add_row("final max line deviation", _fmt_db(result.get("final_max_dev_db")))
     table.add_row("lines outside alarm / abort",
-                  f"{_fmt_value(result.get('final_lines_outside_alarm'))} / "
-                  f"{_fmt_value(result.get('final_lines_outside_abort'))}")
+                  f"{_fmt_value(_count(result.get('final_lines_outside_alarm')))} / "
+                  f"{_fmt_value(_count(result.get('final_lines_outside_abort')))}")
     table.add_row("updates to tolerance", _fmt_value(result.get("updates_to_tolerance")))
     table.add_row("DOF", _fmt(result.get("dof"), ".0f"))
     table.add_row("time at full level", _fmt(result.get("time_at_full_level_s"), ".1f", "s"))

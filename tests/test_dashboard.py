@@ -121,11 +121,13 @@ def test_dashboard_chi2_band_matches_chi_square(dof):
 
 def test_dashboard_without_spectrum_and_nan_numbers():
     snap = _snapshot(stage="connect", f_hz=np.zeros(0), control_grms_g=float("nan"),
-                     dof=float("nan"), recent_events=())
+                     dof=float("nan"), recent_events=(), lines_outside_alarm=-1,
+                     lines_outside_abort=-1)
     snap = dataclasses.replace(snap, target_psd=np.zeros(0), control_psd=None)
     out = _render(dash.dashboard(snap))
     assert "connect" in out and "no spectrum yet" in out and "none yet" in out
     assert "— / 6.058 g" in out
+    assert "— alarm  — abort" in out  # -1: no decision yet
 
 
 def _plot_rows(text) -> list[str]:
