@@ -1,0 +1,585 @@
+"""The simulated rig: a :class:`~liveshape.rigs.plant.Plant` as a seeded, stateful block processor.
+
+Pure (numpy/scipy). ``SimRig.process(drive_fs)`` returns the response (FS) to a drive block (FS) of
+any length; the state (filters, delay line, coil temperature, faults) carries over exactly from
+block to block, so the output does not depend on how the drive is split into blocks: it is
+bit-identical for the same seed.
+
+Signal path, per sample::
+
+    drive -> clip ±1 FS -> loop delay -> card out high-pass -> x out_v_per_fs x gain
+      -> subsonic high-pass -> [plant_gain] -> clip ±v_out_max -> [trip: 0 V from then on]
+      -> shaker + payload (currents, excursion, acceleration at the control point)
+      -> Xmax compression -> /g0 [sensor_detached: 0] + sensor noise -> [sensor_gain]
+      -> accelerometer high-pass -> x mV/g / in_v_per_fs -> card in high-pass
+      -> + card noise [+ noise_burst] -> clip ±1 FS -> [dropout: 0]
+
+Discretization: every linear stage uses the trapezoidal rule (bilinear transform, no prewarp) at
+the rig's sample rate. The shaker with its payload is kept as a physical state-space model,
+diagonalized so each mode is a first-order complex recursion run by :func:`scipy.signal.lfilter`
+with a carried state. When the coil resistance (heating) or the modal frequencies (fault) change,
+the physical state (current, displacements, velocities) is carried over unchanged into the new
+model, so nothing jumps.
+
+Nonlinear and protective behaviour (simple models, documented):
+
+* Converters clip at ±1 FS; the amplifier clips at ``±v_out_max_v``.
+* Current trip: the first sample whose current magnitude exceeds ``i_max_a`` trips the amplifier;
+  from the next sample on its output is 0 V (a shorted coil) and stays so.
+* Xmax: the excursion is computed by the linear model. Where ``|x| > xmax`` the acceleration
+  reaching the sensor is scaled by ``xmax/|x|`` (the motor force falls as the coil leaves the gap);
+  such samples are counted. The compression does not feed back into the excursion.
+* Coil heating (when the plant has ``coil_heating``): every 0.1 s of rig time the mean electrical
+  power ``mean(i²) Re`` drives the first-order thermal model and ``Re`` is updated.
+
+Faults (objects with ``kind, at_s, value, duration_s``, as :class:`liveshape.spec.FaultSpec`) act
+from sample ``round(at_s fs)`` for ``duration_s`` (None: to the end); see :data:`FAULT_RULES`.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from scipy import signal
+
+from liveshape.chain import ChainCalibration
+from liveshape.errors import ConfigError
+from liveshape.profile import G0_M_S2
+from liveshape.rigs.plant import (
+    IdealShaker,
+    Plant,
+    electromechanical_ss,
+)
+
+#: What each fault kind does (value meaning in brackets).
+FAULT_RULES: dict[str, str] = {
+    "sensor_detached": "the response is sensor and card noise only",
+    "sensor_gain": "the sensor sensitivity is multiplied by value (a factor >= 0)",
+    "amp_trip": "the amplifier trips: 0 V output from at_s on (duration ignored)",
+    "resonance_shift": "every payload resonance frequency is multiplied by value (> 0)",
+    "plant_gain": "the amplifier gain changes by value dB",
+    "noise_burst": "white noise of value FS rms is added to the response",
+    "dropout": "the response is zeros",
+}
+FAULT_KINDS = tuple(FAULT_RULES)
+_NEEDS_VALUE = {"sensor_gain": 0.0, "resonance_shift": None, "plant_gain": None, "noise_burst": 0.0}
+
+#: Period of the coil-temperature update, seconds of rig time.
+THERMAL_STEP_S = 0.1
+
+
+@dataclass(frozen=True)
+class SimStatus:
+    """What the simulated rig did so far (counts and peaks since the start).
+
+    ``excursion_peak_m`` and ``current_peak_a`` are None when the shaker model has none (ideal);
+    ``re_ohm_now``/``coil_rise_k`` are None without a coil model.
+    """
+
+    t_s: float
+    samples: int
+    excursion_peak_m: float | None
+    excursion_last_peak_m: float | None
+    xmax_exceeded_samples: int
+    current_peak_a: float | None
+    amp_tripped: bool
+    amp_trip_t_s: float | None
+    drive_clipped_samples: int
+    amp_clipped_samples: int
+    input_clipped_samples: int
+    re_ohm_now: float | None
+    coil_rise_k: float | None
+    active_faults: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class _Fault:
+    kind: str
+    start: int
+    end: float  # sample index (math.inf: to the end)
+    value: float
+
+
+class _Modal:
+    """Trapezoidal discretization of ``(A, B, C, D)`` run in modal coordinates.
+
+    With ``M1 = I - h A/2`` the discrete system is ``Ad = M1^-1 (I + h A/2)``, ``Bd = h M1^-1 B``,
+    ``Cd = C M1^-1``, ``Dd = D + Cd h B/2`` (bilinear transform); its state relates to the
+    physical one by ``x = M1^-1 (xd + h B u / 2)``. ``Ad`` shares the eigenvectors ``W`` of ``A``,
+    with eigenvalues ``(1 + h mu/2)/(1 - h mu/2)``. A real mode ``zeta`` runs as a first-order real
+    recursion. A complex pair ``(lambda, conj lambda)`` runs as one real all-pole recursion
+    ``p = u/((1 - lambda z^-1)(1 - conj(lambda) z^-1))``, since its modal state is
+    ``zeta[n] = beta (p[n-1] - conj(lambda) p[n-2])`` and contributes ``2 Re(gamma zeta)``.
+    """
+
+    def __init__(self, a: np.ndarray, b: np.ndarray, c: np.ndarray, d: np.ndarray, fs: float):
+        n = a.shape[0]
+        self.n, self.h = n, 1.0 / fs
+        self.b = b[:, 0]
+        self.m1 = np.eye(n) - 0.5 * self.h * a
+        self.n_out = c.shape[0]
+        if not n:
+            self.lam = self.beta = np.zeros(0, complex)
+            self.gamma = np.zeros((self.n_out, 0), complex)
+            self.d = d[:, 0].astype(float)
+            self.real_k, self.pair_k, self.real_ba, self.real_c = [], [], [], []
+            self.pair_a, self.pair_c1, self.pair_c2 = [], [], []
+            return
+        cd = np.linalg.solve(self.m1.T, c.T).T
+        bd = self.h * np.linalg.solve(self.m1, b)
+        mu, w = np.linalg.eig(a)
+        if np.linalg.cond(w) > 1e10:
+            raise ConfigError(
+                "plant: the shaker/payload model has (nearly) repeated modes; make the "
+                "resonances differ in f_hz or q"
+            )
+        self.w, self.winv = w, np.linalg.inv(w)
+        self.lam = (1.0 + 0.5 * self.h * mu) / (1.0 - 0.5 * self.h * mu)
+        self.beta = (self.winv @ bd)[:, 0]
+        self.gamma = cd @ w
+        self.d = (d + 0.5 * self.h * (cd @ b))[:, 0]
+        self.real_k = [k for k in range(n) if mu[k].imag == 0.0]
+        self.pair_k = [k for k in range(n) if mu[k].imag > 0.0]
+        # Real modes: lfilter([0, beta], [1, -lam]); output gamma * zeta.
+        self.real_ba = [([0.0, self.beta[k].real], [1.0, -self.lam[k].real]) for k in self.real_k]
+        self.real_c = [self.gamma[:, k].real for k in self.real_k]
+        # Pairs: lfilter([1], [1, -a1, -a2]); output c1 p[n-1] + c2 p[n-2].
+        self.pair_a, self.pair_c1, self.pair_c2 = [], [], []
+        for k in self.pair_k:
+            lam, gb = self.lam[k], self.gamma[:, k] * self.beta[k]
+            self.pair_a.append([1.0, -2.0 * lam.real, abs(lam) ** 2])
+            self.pair_c1.append(2.0 * gb.real)
+            self.pair_c2.append(-2.0 * (gb * np.conj(lam)).real)
+
+    def zero_state(self) -> tuple[list, list]:
+        """State: per real mode ``[zeta]``; per pair ``(lfilter zi (2,), [p[n-2], p[n-1]])``."""
+        return ([np.zeros(1) for _ in self.real_k],
+                [(np.zeros(2), np.zeros(2)) for _ in self.pair_k])
+
+    def run(self, u: np.ndarray, state: tuple[list, list]) -> tuple[np.ndarray, tuple]:
+        """Outputs ``(n_out, len(u))`` for one segment, and the state after it."""
+        out = self.d[:, None] * u[None, :]
+        real_new, pair_new = [], []
+        for (bb, aa), c, zi in zip(self.real_ba, self.real_c, state[0], strict=True):
+            z, zf = signal.lfilter(bb, aa, u, zi=zi)
+            real_new.append(zf)
+            for o in range(self.n_out):
+                out[o] += c[o] * z
+        for aa, c1, c2, (zi, last) in zip(self.pair_a, self.pair_c1, self.pair_c2, state[1],
+                                          strict=True):
+            p, zf = signal.lfilter([1.0], aa, u, zi=zi)
+            ext = np.concatenate((last, p))
+            p1, p2 = ext[1:-1], ext[:-2]
+            for o in range(self.n_out):
+                out[o] += c1[o] * p1 + c2[o] * p2
+            pair_new.append((zf, ext[-2:].copy()))
+        return out, (real_new, pair_new)
+
+    def _modal(self, state: tuple[list, list]) -> np.ndarray:
+        """Complex modal coordinates ``zeta`` (all n modes) of a state."""
+        zeta = np.zeros(self.n, complex)
+        for k, zi in zip(self.real_k, state[0], strict=True):
+            zeta[k] = zi[0]
+        for k, (_, last) in zip(self.pair_k, state[1], strict=True):
+            lam = self.lam[k]
+            zeta[k] = self.beta[k] * (last[1] - np.conj(lam) * last[0])
+        conj = [k for k in range(self.n) if k not in self.real_k and k not in self.pair_k]
+        for k in conj:  # the partner of each pair (numpy orders a pair as k, k+1)
+            zeta[k] = np.conj(zeta[k - 1])
+        return zeta
+
+    def to_physical(self, state: tuple[list, list], u0: float) -> np.ndarray:
+        """Physical state at the sample whose input is ``u0``."""
+        if not self.n:
+            return np.zeros(0)
+        xd = (self.w @ self._modal(state)).real
+        return np.linalg.solve(self.m1, xd + 0.5 * self.h * self.b * u0)
+
+    def from_physical(self, x: np.ndarray, u0: float) -> tuple[list, list]:
+        """State of this model holding physical state ``x`` at the sample whose input is ``u0``."""
+        if not self.n:
+            return self.zero_state()
+        zeta = self.winv @ (self.m1 @ x - 0.5 * self.h * self.b * u0)
+        real = [np.array([zeta[k].real]) for k in self.real_k]
+        pairs = []
+        for k, aa in zip(self.pair_k, self.pair_a, strict=True):
+            lam = self.lam[k]
+            q = zeta[k] / self.beta[k] if self.beta[k] != 0 else 0j
+            p2 = q.imag / lam.imag
+            p1 = q.real + lam.real * p2
+            zi = np.array([-aa[1] * p1 - aa[2] * p2, -aa[2] * p1])
+            pairs.append((zi, np.array([p2, p1])))
+        return real, pairs
+
+    def response(self, z: np.ndarray) -> np.ndarray:
+        """Discrete transfer functions ``(n_out, len(z))`` at the points ``z``."""
+        h = np.repeat(self.d[:, None].astype(complex), z.size, axis=1)
+        for k in range(self.n):
+            h += self.gamma[:, k:k + 1] * (self.beta[k] / (z - self.lam[k]))[None, :]
+        return h
+
+
+def _highpass_sections(corners: Iterable[tuple[float | None, int]], gain: float, fs: float):
+    """Bilinear second-order sections ``[(b, a), ...]`` of Butterworth high-passes in cascade.
+
+    None corners are skipped; no corners at all gives None (a plain gain). Each section runs
+    through :func:`scipy.signal.lfilter` (the same direct form II transposed as ``sosfilt``, with
+    less call overhead for these short cascades).
+    """
+    z_all: list[complex] = []
+    p_all: list[complex] = []
+    k_all = float(gain)
+    for f_hz, order in corners:
+        if f_hz is None:
+            continue
+        z, p, k = signal.butter(order, 2 * math.pi * f_hz, "highpass", analog=True, output="zpk")
+        zd, pd, kd = signal.bilinear_zpk(z, p, k, fs)
+        z_all.extend(zd)
+        p_all.extend(pd)
+        k_all *= float(np.real(kd))
+    if not p_all:
+        return None
+    sos = signal.zpk2sos(np.asarray(z_all), np.asarray(p_all), k_all)
+    return [(row[:3].copy(), row[3:].copy()) for row in sos]
+
+
+def _run_sections(sections, x: np.ndarray, zis: list[np.ndarray]) -> tuple[np.ndarray, list]:
+    new = []
+    for (b, a), zi in zip(sections, zis, strict=True):
+        x, zf = signal.lfilter(b, a, x, zi=zi)
+        new.append(zf)
+    return x, new
+
+
+def _sections_response(sections, w: np.ndarray) -> np.ndarray:
+    h = np.ones(w.size, complex)
+    for b, a in sections:
+        h *= signal.freqz(b, a, worN=w)[1]
+    return h
+
+
+def _check_fault(i: int, f: Any, plant: Plant, fs: float) -> _Fault:
+    kind = getattr(f, "kind", None)
+    at_s = getattr(f, "at_s", None)
+    label = f"faults[{i}] {kind}@{at_s}"
+    if kind not in FAULT_RULES:
+        raise ConfigError(f"faults[{i}].kind = {kind!r} is not one of {', '.join(FAULT_KINDS)}")
+    if isinstance(at_s, bool) or not isinstance(at_s, (int, float)) or not at_s >= 0:
+        raise ConfigError(f"faults[{i}].at_s = {at_s!r} must be a number >= 0")
+    value, dur = getattr(f, "value", None), getattr(f, "duration_s", None)
+    if kind in _NEEDS_VALUE:
+        if value is None or not math.isfinite(value):
+            raise ConfigError(f"{label}: value is required ({FAULT_RULES[kind]})")
+        lo = _NEEDS_VALUE[kind]
+        if (lo is not None and value < lo) or (kind == "resonance_shift" and not value > 0):
+            raise ConfigError(f"{label}: value = {value!r} out of range ({FAULT_RULES[kind]})")
+    if kind == "resonance_shift":
+        if not plant.payload.resonances:
+            raise ConfigError(f"{label}: plant {plant.name!r} has no payload resonances")
+        top = max(r.f_hz for r in plant.payload.resonances) * value
+        if top >= 0.45 * fs:
+            raise ConfigError(f"{label}: shifted resonance {top:g} Hz is above 0.45 fs")
+    if dur is not None and not (math.isfinite(dur) and dur > 0):
+        raise ConfigError(f"{label}: duration_s = {dur!r} must be > 0")
+    start = int(round(at_s * fs))
+    end = math.inf if dur is None or kind == "amp_trip" else start + int(round(dur * fs))
+    return _Fault(kind, start, end, 1.0 if value is None else float(value))
+
+
+def _check_rate(plant: Plant, fs: float) -> None:
+    top = 0.45 * fs
+    named = [
+        ("card.out_highpass_hz", plant.card.out_highpass_hz),
+        ("card.in_highpass_hz", plant.card.in_highpass_hz),
+        ("amplifier.highpass_hz", plant.amplifier.highpass_hz),
+        ("accelerometer.highpass_hz", plant.accelerometer.highpass_hz),
+    ] + [(f"payload.resonances[{j}].f_hz", r.f_hz) for j, r in enumerate(plant.payload.resonances)]
+    for key, v in named:
+        if v is not None and v >= top:
+            raise ConfigError(
+                f"{plant.source or plant.name}: {key} = {v:g} must be below 0.45 x {fs:g} Hz"
+            )
+
+
+class SimRig:
+    """A simulated rig: drive blocks in, response blocks out (both in FS), seeded and stateful.
+
+    Parameters
+    ----------
+    plant : Plant
+        The chain to simulate (see :mod:`liveshape.rigs.plant`).
+    fs_hz : float
+        Sample rate in Hz; every corner and resonance must lie below ``0.45 fs_hz``.
+    seed : int or None
+        Seed of the noise generators (sensor, card, burst noise each get their own stream from
+        :class:`numpy.random.SeedSequence`, so the output does not depend on block sizes).
+    faults : iterable
+        Objects with ``kind``, ``at_s``, ``value``, ``duration_s``
+        (:class:`liveshape.spec.FaultSpec`).
+
+    Raises
+    ------
+    ConfigError
+        A bad fault (unknown kind, missing value) or a plant that does not fit the sample rate.
+    """
+
+    def __init__(self, plant: Plant, fs_hz: float, *, seed: int | None = None,
+                 faults: Iterable[Any] = ()) -> None:
+        fs = float(fs_hz)
+        if not (math.isfinite(fs) and fs > 0):
+            raise ConfigError(f"sim: fs_hz = {fs_hz!r} must be a finite number > 0")
+        _check_rate(plant, fs)
+        self._plant, self._fs = plant, fs
+        self._faults = tuple(_check_fault(i, f, plant, fs) for i, f in enumerate(faults))
+        self._bounds = sorted({f.start for f in self._faults}
+                              | {int(f.end) for f in self._faults if f.end != math.inf})
+        streams = np.random.SeedSequence(seed).spawn(3)
+        self._rng_sensor, self._rng_card, self._rng_burst = (np.random.default_rng(s)
+                                                              for s in streams)
+        card, amp, acc = plant.card, plant.amplifier, plant.accelerometer
+        self._up_gain = card.out_v_per_fs * amp.gain_v_per_v
+        self._up = _highpass_sections(
+            [(card.out_highpass_hz, 1), (amp.highpass_hz, amp.highpass_order)], self._up_gain, fs)
+        self._down_gain = acc.sens_mv_per_g * 1e-3 / card.in_v_per_fs
+        self._down = _highpass_sections(
+            [(acc.highpass_hz, 1), (card.in_highpass_hz, 1)], self._down_gain, fs)
+        self._up_zi = [np.zeros(2) for _ in self._up or ()]
+        self._down_zi = [np.zeros(2) for _ in self._down or ()]
+        self._delay = np.zeros(card.delay_samples)
+        sh = plant.shaker
+        self._motor = not isinstance(sh, IdealShaker)
+        self._re0 = getattr(sh, "re_ohm", None)
+        self._re_now = self._re_model = self._re0
+        self._heat = sh.coil_heating
+        self._rise_k = 0.0
+        self._n_th = max(1, int(round(THERMAL_STEP_S * fs)))
+        self._th_buf = np.zeros(self._n_th)
+        self._f_factor = 1.0
+        self._model = _Modal(*electromechanical_ss(plant), fs)
+        self._zeta = self._model.zero_state()
+        self._n = 0
+        self._tripped_at: int | None = None
+        self._counts = {"xmax": 0, "drive": 0, "amp": 0, "input": 0}
+        self._x_peak = 0.0
+        self._x_last = 0.0
+        self._i_peak = 0.0
+
+    # -- properties ---------------------------------------------------------------------------
+    @property
+    def plant(self) -> Plant:
+        """The simulated plant."""
+        return self._plant
+
+    @property
+    def fs_hz(self) -> float:
+        """Sample rate in Hz."""
+        return self._fs
+
+    @property
+    def calibration(self) -> ChainCalibration:
+        """The simulation's truth of the chain units and loop delay."""
+        p = self._plant
+        return ChainCalibration(
+            out_v_per_fs=p.card.out_v_per_fs,
+            in_v_per_fs=p.card.in_v_per_fs,
+            accel_mv_per_g=p.accelerometer.sens_mv_per_g,
+            loop_delay_samples=p.card.delay_samples,
+            calibrated=True,
+            source=f"sim:{p.name}",
+        )
+
+    @property
+    def status(self) -> SimStatus:
+        """Counts, peaks and the state of protections and faults so far."""
+        c = self._counts
+        return SimStatus(
+            t_s=self._n / self._fs,
+            samples=self._n,
+            excursion_peak_m=self._x_peak if self._motor else None,
+            excursion_last_peak_m=self._x_last if self._motor else None,
+            xmax_exceeded_samples=c["xmax"],
+            current_peak_a=self._i_peak if self._motor else None,
+            amp_tripped=self._tripped_at is not None,
+            amp_trip_t_s=None if self._tripped_at is None else self._tripped_at / self._fs,
+            drive_clipped_samples=c["drive"],
+            amp_clipped_samples=c["amp"],
+            input_clipped_samples=c["input"],
+            re_ohm_now=self._re_now,
+            coil_rise_k=self._rise_k if self._heat is not None else None,
+            active_faults=tuple(sorted({f.kind for f in self._active(self._n)})),
+        )
+
+    # -- transfer function --------------------------------------------------------------------
+    def frf(self, f_hz: Any) -> np.ndarray:
+        """FRF drive FS -> response FS of the discrete system as simulated, delay included.
+
+        It reflects the present coil resistance and the ``resonance_shift``, ``plant_gain`` and
+        ``sensor_gain`` faults in effect now; clipping, protections and on/off faults (trip,
+        ``sensor_detached``, ``dropout``) are not in it.
+        """
+        f = np.asarray(f_hz, dtype=float)
+        w = 2.0 * math.pi * f / self._fs
+        z = np.exp(1j * w.ravel())
+        h = self._model.response(z)[2] / G0_M_S2
+        for ba, gain in ((self._up, self._up_gain), (self._down, self._down_gain)):
+            h = h * (gain if ba is None else _sections_response(ba, w.ravel()))
+        st = self._state(self._n)
+        h = h * st["plant_gain"] * st["sensor_gain"] * z ** (-self._plant.card.delay_samples)
+        return h.reshape(f.shape)
+
+    # -- processing -----------------------------------------------------------------------------
+    def process(self, drive_fs: Any) -> np.ndarray:
+        """Response (FS) to one drive block (FS), same length; the state carries over.
+
+        Raises
+        ------
+        ValueError
+            If ``drive_fs`` is not one-dimensional.
+        """
+        d = np.asarray(drive_fs, dtype=float)
+        if d.ndim != 1:
+            raise ValueError(f"drive_fs must be one-dimensional, got shape {d.shape}")
+        n = d.size
+        out = np.empty(n)
+        if n == 0:
+            return out
+        over = np.abs(d) > 1.0
+        self._counts["drive"] += int(np.count_nonzero(over))
+        d = np.clip(d, -1.0, 1.0)
+        if self._delay.size:
+            joined = np.concatenate((self._delay, d))
+            d, self._delay = joined[:n], joined[n:]
+        self._x_last = 0.0
+        pos = 0
+        while pos < n:
+            start = self._n + pos
+            stop = min(self._n + n, self._next_boundary(start))
+            out[pos:stop - self._n] = self._segment(d[pos:stop - self._n], start)
+            pos = stop - self._n
+        self._n += n
+        return out
+
+    def _next_boundary(self, a: int) -> int:
+        nxt = math.inf
+        for b in self._bounds:
+            if b > a:
+                nxt = b
+                break
+        if self._heat is not None:
+            nxt = min(nxt, (a // self._n_th + 1) * self._n_th)
+        return int(min(nxt, a + 10**12))
+
+    def _active(self, a: int) -> list[_Fault]:
+        return [f for f in self._faults if f.start <= a < f.end]
+
+    def _state(self, a: int) -> dict[str, Any]:
+        st: dict[str, Any] = {"sensor_gain": 1.0, "plant_gain": 1.0, "f_factor": 1.0,
+                              "burst_var": 0.0, "detached": False, "dropout": False,
+                              "trip": False}
+        for f in self._active(a):
+            if f.kind == "sensor_gain":
+                st["sensor_gain"] *= f.value
+            elif f.kind == "plant_gain":
+                st["plant_gain"] *= 10.0 ** (f.value / 20.0)
+            elif f.kind == "resonance_shift":
+                st["f_factor"] *= f.value
+            elif f.kind == "noise_burst":
+                st["burst_var"] += f.value**2
+            elif f.kind == "sensor_detached":
+                st["detached"] = True
+            elif f.kind == "dropout":
+                st["dropout"] = True
+            elif f.kind == "amp_trip":
+                st["trip"] = True
+        return st
+
+    def _update_heat(self, a: int) -> None:
+        """At a thermal step boundary: mean coil power over the last step -> temperature, Re."""
+        h = self._heat
+        if h is None or a == 0 or a % self._n_th:
+            return
+        power_w = float(np.dot(self._th_buf, self._th_buf)) / self._n_th * self._re_now
+        target = power_w * h.thermal_resistance_k_per_w
+        decay = math.exp(-self._n_th / (self._fs * h.time_constant_s))
+        self._rise_k = target + (self._rise_k - target) * decay
+        self._re_now = self._re0 * (1.0 + h.tempco_per_k * self._rise_k)
+
+    def _segment(self, d: np.ndarray, a: int) -> np.ndarray:
+        """One stretch of samples starting at rig sample ``a`` with constant fault state."""
+        n = d.size
+        self._update_heat(a)
+        st = self._state(a)
+        # Card output and amplifier.
+        if self._up is None:
+            v = d * self._up_gain
+        else:
+            v, self._up_zi = _run_sections(self._up, d, self._up_zi)
+        if st["plant_gain"] != 1.0:
+            v = v * st["plant_gain"]
+        vmax = self._plant.amplifier.v_out_max_v
+        if vmax is not None:
+            self._counts["amp"] += int(np.count_nonzero(np.abs(v) > vmax))
+            v = np.clip(v, -vmax, vmax)
+        if self._tripped_at is None and st["trip"]:
+            self._tripped_at = a
+        if self._tripped_at is not None:
+            v = np.zeros(n)
+        # Shaker and payload: rebuild the model if its parameters moved.
+        rel = 0.0 if self._re0 is None else abs(self._re_now - self._re_model) / self._re0
+        if st["f_factor"] != self._f_factor or rel > 1e-6:
+            x_phys = self._model.to_physical(self._zeta, float(v[0]))
+            self._model = _Modal(*electromechanical_ss(
+                self._plant, re_ohm=self._re_now, f_factor=st["f_factor"]), self._fs)
+            self._zeta = self._model.from_physical(x_phys, float(v[0]))
+            self._f_factor, self._re_model = st["f_factor"], self._re_now
+        zeta0 = self._zeta
+        outs, self._zeta = self._model.run(v, zeta0)
+        i_max = self._plant.amplifier.i_max_a
+        if self._motor and i_max is not None and self._tripped_at is None:
+            over = np.abs(outs[0]) > i_max
+            if over.any():
+                k = int(np.argmax(over))
+                self._tripped_at = a + k + 1
+                v = v.copy()
+                v[k + 1:] = 0.0
+                outs, self._zeta = self._model.run(v, zeta0)
+        cur, x, acc = outs
+        if self._heat is not None:
+            j = a % self._n_th
+            self._th_buf[j:j + n] = cur
+        if self._motor:
+            ax = np.abs(x)
+            peak = float(ax.max())
+            self._x_peak = max(self._x_peak, peak)
+            self._x_last = max(self._x_last, peak)
+            self._i_peak = max(self._i_peak, float(np.abs(cur).max()))
+            xmax = self._plant.shaker.xmax_m
+            if xmax is not None and peak > xmax:
+                beyond = ax > xmax
+                self._counts["xmax"] += int(np.count_nonzero(beyond))
+                acc = np.where(beyond, acc * (xmax / np.where(beyond, ax, 1.0)), acc)
+        # Sensor and card input.
+        g = np.zeros(n) if st["detached"] else acc / G0_M_S2
+        noise_g = self._plant.accelerometer.noise_g_rms
+        if noise_g > 0:
+            g = g + noise_g * self._rng_sensor.standard_normal(n)
+        if st["sensor_gain"] != 1.0:
+            g = g * st["sensor_gain"]
+        if self._down is None:
+            r = g * self._down_gain
+        else:
+            r, self._down_zi = _run_sections(self._down, g, self._down_zi)
+        noise_fs = self._plant.card.in_noise_fs_rms
+        if noise_fs > 0:
+            r = r + noise_fs * self._rng_card.standard_normal(n)
+        if st["burst_var"] > 0:
+            r = r + math.sqrt(st["burst_var"]) * self._rng_burst.standard_normal(n)
+        self._counts["input"] += int(np.count_nonzero(np.abs(r) > 1.0))
+        r = np.clip(r, -1.0, 1.0)
+        if st["dropout"]:
+            r = np.zeros(n)
+        return r
