@@ -388,7 +388,7 @@ def test_set_psd_takes_effect_from_the_next_frame():
     assert np.array_equal(xa[: 3 * hop], ref[: 3 * hop])  # nothing changes before the next frame
     tail = xz[3 * hop : 4 * hop]  # the transition block holds only the old frame's tail
     assert np.all(xz[4 * hop :] == 0.0) and np.any(tail != 0.0)
-    # 4x the PSD is 2x the amplitude from the next frame on (the draws do not depend on the PSD)
+    # 4x the PSD is 2x the amplitude from the next frame on (same span of lines, same draws)
     assert np.allclose(xa[3 * hop : 4 * hop], 2 * ref[3 * hop : 4 * hop] - tail, atol=1e-12)
     assert np.allclose(xa[4 * hop :], 2 * ref[4 * hop :], atol=1e-12)
 
@@ -506,3 +506,25 @@ def test_sine_window_is_power_complementary():
     # Princen-Bradley condition w(n)^2 + w(n + N/2)^2 = 1 [mem], exact for the sine window
     w = sine_window(512)
     assert np.allclose(w[:256] ** 2 + w[256:] ** 2, 1.0, atol=1e-15)
+
+
+@pytest.mark.parametrize("line", ["dc", "nyquist"])
+def test_fixed_real_lines_get_a_random_sign_of_fixed_size(line):
+    n, fs = 64, 1000.0
+    hop = n // 2
+    psd = np.zeros(n // 2 + 1)
+    k = 0 if line == "dc" else n // 2
+    psd[k] = 2.0
+    s = make_synth(fs, n, psd, seed=4, amplitudes="fixed")
+    x = s.read(400 * hop).reshape(-1, hop)
+    c = math.sqrt(2.0 * fs / n)  # a real line of mean square psd * delta_f has amplitude c
+    carrier = np.cos(np.pi * k * np.arange(hop) / (n // 2))  # 1 at DC, (-1)^n at Nyquist
+    w = sine_window(n)
+    u = x / (c * carrier)  # each block is s_prev * w_tail + s_new * w_head, s = +-1
+    same, flip = np.abs(w[hop:] + w[:hop]), np.abs(w[hop:] - w[:hop])
+    is_same = np.all(np.isclose(np.abs(u), same, atol=1e-12), axis=1)
+    is_flip = np.all(np.isclose(np.abs(u), flip, atol=1e-12), axis=1)
+    assert np.all(is_same | is_flip)
+    # independent fair signs: sign changes between frames are binomial(399, 1/2)
+    lo, hi = stats.binom.interval(1 - P_FAIL, is_flip[1:].size, 0.5)
+    assert lo <= np.count_nonzero(is_flip[1:]) <= hi
