@@ -70,6 +70,9 @@ _UPDATE_RESERVED = frozenset(UPDATE_ARRAYS) | {"index", "t_s", "numbers", "array
 _SFC_UPDATE_HEADER_NOW = 0x1060
 _SFC_SET_ADD_PEAK_CHUNK = 0x1050
 
+#: Largest data chunk written to a WAV file (the RIFF size field is 32 bits), less a margin.
+WAV_MAX_DATA_BYTES = 2**32 - 2**20
+
 _NAME_BAD = re.compile(r"[^A-Za-z0-9_.-]+")
 
 
@@ -159,18 +162,25 @@ class _WavStream:
     libsndfile writes the data-chunk size into the header only when asked
     (``SFC_UPDATE_HEADER_NOW``) or at close, so the header is rewritten each ``period`` samples;
     a killed run leaves a WAV that every reader opens, holding the samples up to that point.
+
+    A RIFF chunk size is a 32-bit number, so a WAV holds at most 4 GiB of samples (about 6 h of
+    one float32 channel at 48 kHz); blocks past ``max_bytes`` are dropped and :attr:`full` set.
     """
 
-    def __init__(self, path: Path, samplerate: int, period_samples: int) -> None:
+    def __init__(self, path: Path, samplerate: int, period_samples: int,
+                 max_bytes: int | None = None) -> None:
         self.path = path
         self.samplerate = samplerate
         self.period = max(int(period_samples), 1)
+        self.max_bytes = int(WAV_MAX_DATA_BYTES if max_bytes is None else max_bytes)
         self.channels: int | None = None
         self.frames = 0
+        self.full = False
         self._since_header = 0
         self._file: Any = None
 
-    def write(self, block: Any) -> None:
+    def write(self, block: Any) -> bool:
+        """Append a block; False when it was dropped because the file is full."""
         data = np.asarray(block, dtype=np.float32)
         if data.ndim == 1:
             data = data[:, None]
@@ -183,12 +193,16 @@ class _WavStream:
                 f"{self.path.name}: block has {data.shape[1]} channels, file has {self.channels}"
             )
         if data.shape[0] == 0:
-            return
+            return True
+        if (self.frames + data.shape[0]) * data.shape[1] * 4 > self.max_bytes:
+            self.full = True
+            return False
         self._file.write(data)
         self.frames += data.shape[0]
         self._since_header += data.shape[0]
         if self._since_header >= self.period:
             self.sync()
+        return True
 
     def _open(self, channels: int) -> None:
         import soundfile
@@ -510,14 +524,23 @@ class RunRecorder:
         """Append one block of drive and response (full scale) to the two WAV files.
 
         Blocks are 1-D (one channel) or ``(samples, channels)``; the channel count is fixed by
-        the first block. The WAV headers are rewritten every ``flush_every_s`` of signal.
+        the first block. The WAV headers are rewritten every ``flush_every_s`` of signal. When
+        a file reaches the WAV size limit (4 GiB) later blocks are dropped and one
+        ``record_full`` event says so; the rest of the record goes on.
         """
         with self._lock:
             self._check_open()
+            was_full = self._drive.full or self._response.full
             if drive_block is not None:
                 self._drive.write(drive_block)
             if response_block is not None:
                 self._response.write(response_block)
+            now_full = self._drive.full or self._response.full
+        if now_full and not was_full:
+            seconds = max(self._drive.frames, self._response.frames) / self.fs_hz
+            self.event(float(seconds), "record_full",
+                       f"signal files full after {seconds:.0f} s (WAV limit 4 GiB); "
+                       "later samples are not recorded", {"recorded_s": seconds})
 
     def sync(self) -> None:
         """Bring both WAV headers and the event log up to date now."""

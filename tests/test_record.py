@@ -319,3 +319,20 @@ def test_update_from_record_keeps_figures_and_extra_arrays(tmp_path):
     np.testing.assert_array_equal(up.numbers["rms_error_db"], [-0.5, -0.25])
     np.testing.assert_array_equal(up.numbers["lines_outside_alarm"], [7.0, 7.0])
     assert "stage" not in up.numbers and set(up.numbers) >= {"level_db", "dof", "lines_held"}
+
+
+def test_wav_size_limit_drops_later_blocks_once(tmp_path, monkeypatch):
+    import liveshape.record as record
+
+    # The RIFF size field is 32 bits (4 GiB); shrink the limit to 4000 bytes = 1000 float32.
+    monkeypatch.setattr(record, "WAV_MAX_DATA_BYTES", 4000)
+    x = np.arange(300, dtype=np.float32) / 300
+    with _recorder(tmp_path) as rec:
+        for _ in range(5):  # 1500 samples offered, 900 fit in whole blocks
+            rec.signals(x, x)
+        rec.close({"status": "completed"})
+    run = load_run(rec.root)
+    d, r, _ = read_signals(run)
+    assert d.size == r.size == 900
+    full = [e for e in run.events if e.kind == "record_full"]
+    assert len(full) == 1 and full[0].data["recorded_s"] == pytest.approx(900 / FS_HZ)
