@@ -11,9 +11,16 @@ preceding buffer copy, which is the memory ordering the scheme needs.
 
 The audio callback uses only :meth:`FloatRing.write` (from ``indata``) and
 :meth:`FloatRing.read_into` (into a preallocated block); neither allocates a buffer.
+
+:class:`StreamCore` is the callback's whole job around two such rings (drive out, response in),
+kept here, free of the audio library, so that its fades, underflow handling and stop sequence
+are tested offline; :mod:`liveshape.rigs.audio` calls it from the PortAudio callback.
 """
 
 from __future__ import annotations
+
+import time
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -179,3 +186,332 @@ class FloatRing:
             return 0
         self._read = start + k
         return k
+
+
+class StreamCore:
+    """Everything the audio callback does, without the audio library (so it is testable offline).
+
+    The core owns two rings: the drive ring (producer: the worker via :meth:`write_drive`;
+    consumer: the callback) and the input ring (producer: the callback; consumer: the worker via
+    :meth:`read_input`). All buffers, fade tables and counters are allocated here, once.
+
+    Parameters
+    ----------
+    block_size : int
+        Nominal frames per callback; also the length of every fade.
+    input_channels, output_channels : int
+        Channels of the stream.
+    drive_channel : int
+        Output channel that carries the drive.
+    loopback_out : int or None
+        Output channel that carries a copy of the drive (loopback cable), or None.
+    drive_capacity, input_capacity : int
+        Frames the drive and input rings hold.
+    stop_zero_blocks : int
+        Zero blocks sent after the closing fade before :meth:`process` asks the stream to stop.
+    max_frames : int, optional
+        Largest callback the core accepts (larger ones output silence and are counted).
+
+    Notes
+    -----
+    Fades are raised-cosine gains ``g(p) = (1 - cos(pi p / R)) / 2``, ``p = 0..R`` with
+    ``R = block_size``, precomputed for every offset. The largest sample-to-sample change a fade
+    adds to a signal of peak ``A`` is ``A * pi / (2 R)`` (the slope bound of the raised cosine).
+    """
+
+    def __init__(
+        self,
+        *,
+        block_size: int,
+        input_channels: int,
+        output_channels: int,
+        drive_channel: int,
+        loopback_out: int | None,
+        drive_capacity: int,
+        input_capacity: int,
+        stop_zero_blocks: int = 3,
+        max_frames: int = 16384,
+    ) -> None:
+        self.block_size = r = int(block_size)
+        self.max_frames = int(max(max_frames, block_size))
+        self.drive_channel = int(drive_channel)
+        self.loopback_out = loopback_out
+        self.stop_zero_blocks = int(stop_zero_blocks)
+        self._drive = FloatRing(drive_capacity, 1)
+        self._input = FloatRing(input_capacity, input_channels)
+        self._buf = np.zeros((self.max_frames, 1), np.float32)
+        g = 0.5 - 0.5 * np.cos(np.pi * np.arange(r + 1) / r)
+        tail = self.max_frames + 2
+        # rise[j] = g(min(j, R)); fall[j] = g(max(R - j, 0)); a block starting at gain position p
+        # uses rise[p+1 : p+1+frames] or fall[R-p+1 : R-p+1+frames].
+        self._rise = np.concatenate([g, np.ones(tail)]).astype(np.float32).reshape(-1, 1)
+        self._fall = np.concatenate([g[::-1], np.zeros(tail)]).astype(np.float32).reshape(-1, 1)
+        self._pos = 0  # gain position 0..R (0 = silent); only the callback writes it
+        self._holding = False  # the drive ran dry: fading the held last value to zero
+        self._hold = np.float32(0.0)
+        self._last = np.float32(0.0)
+        self._debt = 0  # slots played without drive data: skip that many late samples
+        self._stop = 0  # 0 run, 1 drain then stop, 2 fade out now; written by the worker
+        self._zeros_sent = 0
+        self.durations_s = np.zeros(1 << 16, np.float64)
+        # counters (written only by the callback)
+        self.callbacks = 0
+        self.dry_blocks = 0
+        self.dry_spells = 0  # times the drive went from playing to dry
+        self.dry_frames = 0
+        self.input_overflows = 0
+        self.output_underflows = 0
+        self.input_dropped = 0
+        self.oversize_blocks = 0
+        self.errors = 0
+        self.last_error: BaseException | None = None
+        self.finished = False
+
+    # -- worker side ----------------------------------------------------------------------
+
+    def write_drive(self, drive: np.ndarray) -> int:
+        """Queue drive samples (1-D, full scale); returns frames queued."""
+        return self._drive.write(np.asarray(drive, np.float32).reshape(-1, 1))
+
+    @property
+    def drive_queued(self) -> int:
+        """Drive frames queued and not yet played."""
+        return self._drive.available
+
+    @property
+    def input_available(self) -> int:
+        """Input frames recorded and not yet read."""
+        return self._input.available
+
+    def read_input(self, n: int) -> np.ndarray:
+        """Return up to ``n`` recorded frames as a new ``(n, input_channels)`` array."""
+        k = min(int(n), self._input.available)
+        out = np.empty((k, self._input.channels), np.float32)
+        self._input.read_into(out)
+        return out
+
+    def request_stop(self, *, now: bool) -> None:
+        """Stop after the queued drive has played (``now=False``) or fade out at once."""
+        self._stop = max(self._stop, 2 if now else 1)
+
+    # -- callback side --------------------------------------------------------------------
+
+    def count_status(self, input_overflow: bool, output_underflow: bool) -> None:
+        """Count the stream's status flags (called from the callback)."""
+        if input_overflow:
+            self.input_overflows += 1
+        if output_underflow:
+            self.output_underflows += 1
+
+    def process(self, indata: np.ndarray, outdata: np.ndarray, frames: int) -> bool:
+        """Fill ``outdata`` in place from the drive ring and store ``indata``; True means stop.
+
+        Contract (the audio callback's): called from the audio thread for every block; copies
+        and counts only. It writes every sample of ``outdata`` each time, never blocks, never
+        allocates a buffer and never raises: an internal error silences the output, is counted
+        in ``errors`` and ends the stream after the zero blocks. It returns True once the stream
+        should stop (the caller raises ``CallbackStop``); the output of that call is zeros.
+        """
+        t0 = time.perf_counter()
+        try:
+            stop = self._step(indata, outdata, frames)
+        except Exception as exc:  # noqa: BLE001 - the callback must never raise
+            outdata.fill(0.0)
+            self.errors += 1
+            self.last_error = exc
+            self._pos = 0
+            self._stop = 2
+            stop = False
+        self.durations_s[self.callbacks % self.durations_s.size] = time.perf_counter() - t0
+        self.callbacks += 1
+        if stop:
+            self.finished = True
+        return stop
+
+    def _step(self, indata: np.ndarray, outdata: np.ndarray, frames: int) -> bool:
+        got = self._input.write(indata)
+        if got < frames:
+            self.input_dropped += frames - got
+        if frames > self.max_frames:
+            outdata.fill(0.0)
+            self.oversize_blocks += 1
+            self._pos = 0
+            return False
+        r = self.block_size
+        buf = self._buf[:frames]
+        stop = self._stop
+        if self._pos == 0 and (stop == 2 or (stop == 1 and self._drive.available == 0)):
+            buf.fill(0.0)
+            self._zeros_sent += 1
+            self._write_out(outdata, buf)
+            return self._zeros_sent > self.stop_zero_blocks
+        n = 0
+        if not self._holding:
+            if self._debt:
+                self._debt -= self._drive.skip(self._debt)
+            if self._debt == 0:
+                n = self._drive.read_into(buf)
+            if n < frames:
+                self._hold = buf[n - 1, 0] if n else self._last
+                self._holding = True
+                if stop == 0:
+                    self.dry_blocks += 1
+                    if self._pos > 0:
+                        self.dry_spells += 1
+        if self._holding:
+            buf[n:] = self._hold
+            if stop == 0:
+                self.dry_frames += frames - n
+                self._debt += frames - n
+        self._last = buf[frames - 1, 0]
+        p = self._pos
+        if self._holding or stop == 2:
+            np.multiply(buf, self._fall[r - p + 1 : r - p + 1 + frames], out=buf)
+            p = max(p - frames, 0)
+            if p == 0 and self._holding:
+                self._holding = False
+                self._hold = self._last = np.float32(0.0)
+        elif p < r:
+            np.multiply(buf, self._rise[p + 1 : p + 1 + frames], out=buf)
+            p = min(p + frames, r)
+        self._pos = p
+        np.clip(buf, -1.0, 1.0, out=buf)
+        self._write_out(outdata, buf)
+        return False
+
+    def _write_out(self, outdata: np.ndarray, buf: np.ndarray) -> None:
+        outdata.fill(0.0)
+        outdata[:, self.drive_channel] = buf[:, 0]
+        if self.loopback_out is not None:
+            outdata[:, self.loopback_out] = buf[:, 0]
+
+
+@dataclass(frozen=True)
+class BlockIO:
+    """One block of a run, slot-aligned: what was scheduled to play and what was recorded.
+
+    ``drive_fs`` is the drive the source produced for this stream slot (silence replaces it only
+    if it arrived late); ``response_fs`` the control channel, ``loopback_fs`` and ``monitor_fs``
+    the loopback and monitor inputs recorded in the same slot (None when not configured).
+    """
+
+    index: int
+    drive_fs: np.ndarray
+    response_fs: np.ndarray
+    loopback_fs: np.ndarray | None
+    monitor_fs: np.ndarray | None
+
+
+@dataclass(frozen=True)
+class StreamStats:
+    """Counters and timings of a run (durations in seconds).
+
+    ``dry_blocks``: callbacks that found the drive ring short (each faded to zero, reported to
+    the source); ``dry_spells``: how often the drive went from playing to dry.
+    ``output_underflows`` / ``input_overflows``: PortAudio's own status flags.
+    ``callback_*``: time spent inside the callback; ``update_*``: time of ``source.exchange``.
+    """
+
+    callbacks: int
+    dry_blocks: int
+    dry_spells: int
+    dry_frames: int
+    output_underflows: int
+    input_overflows: int
+    input_dropped_frames: int
+    callback_errors: int
+    callback_median_s: float
+    callback_max_s: float
+    update_median_s: float
+    update_max_s: float
+    updates: int
+
+
+def summarize(core: StreamCore, update_s: list[float]) -> StreamStats:
+    """Build :class:`StreamStats` from a core's counters and the worker's update durations."""
+    n = min(core.callbacks, core.durations_s.size)
+    cb = core.durations_s[:n] if n else np.zeros(1)
+    up = np.asarray(update_s, float) if update_s else np.zeros(1)
+    return StreamStats(
+        callbacks=core.callbacks,
+        dry_blocks=core.dry_blocks,
+        dry_spells=core.dry_spells,
+        dry_frames=core.dry_frames,
+        output_underflows=core.output_underflows,
+        input_overflows=core.input_overflows,
+        input_dropped_frames=core.input_dropped,
+        callback_errors=core.errors,
+        callback_median_s=float(np.median(cb)),
+        callback_max_s=float(np.max(cb)),
+        update_median_s=float(np.median(up)),
+        update_max_s=float(np.max(up)),
+        updates=len(update_s),
+    )
+
+
+@dataclass(frozen=True)
+class Recording:
+    """A finite play-and-record through a rig, slot-aligned (sample ``i`` of every array belongs to
+    the same stream slot): ``drive_fs`` as scheduled, and the inputs recorded meanwhile.
+    """
+
+    fs_hz: float
+    drive_fs: np.ndarray
+    response_fs: np.ndarray
+    loopback_fs: np.ndarray | None = None
+    monitor_fs: np.ndarray | None = None
+
+    @classmethod
+    def from_blocks(cls, fs_hz: float, blocks: list[BlockIO]) -> Recording:
+        """Concatenate the blocks of a run."""
+
+        def cat(name: str) -> np.ndarray | None:
+            parts = [getattr(b, name) for b in blocks]
+            if not parts or parts[0] is None:
+                return None
+            return np.concatenate(parts).astype(np.float32)
+
+        empty = np.zeros(0, np.float32)
+        return cls(
+            fs_hz=float(fs_hz),
+            drive_fs=cat("drive_fs") if blocks else empty,
+            response_fs=cat("response_fs") if blocks else empty,
+            loopback_fs=cat("loopback_fs"),
+            monitor_fs=cat("monitor_fs"),
+        )
+
+
+class BufferSource:
+    """A source (the controller's block protocol) that plays a fixed signal once, then zeros.
+
+    ``exchange(response)`` returns the next block; ``finished`` becomes True once the signal and
+    ``tail_frames`` of silence have been handed out; ``request_stop`` ends it at once (the
+    stream core fades whatever is queued).
+    """
+
+    def __init__(self, signal_fs: np.ndarray, block_size: int, *, tail_frames: int = 0) -> None:
+        x = np.asarray(signal_fs, np.float32).ravel()
+        total = x.size + int(tail_frames)
+        n_blocks = -(-total // block_size)
+        self._data = np.zeros(n_blocks * block_size, np.float32)
+        self._data[: x.size] = x
+        self._block = int(block_size)
+        self._pos = 0
+        self.stop_reason: str | None = None
+        self.underflows = 0
+
+    def exchange(self, response_fs: np.ndarray) -> np.ndarray:
+        b = self._block
+        out = self._data[self._pos : self._pos + b]
+        self._pos += b
+        return out if out.size == b else np.zeros(b, np.float32)
+
+    @property
+    def finished(self) -> bool:
+        return self.stop_reason is not None or self._pos >= self._data.size
+
+    def request_stop(self, reason: str) -> None:
+        self.stop_reason = reason
+
+    def report_underflow(self, count: int) -> None:
+        self.underflows += int(count)

@@ -1,0 +1,574 @@
+"""The audio-interface rig: one full-duplex PortAudio stream driven block by block.
+
+This is the only module that imports :mod:`sounddevice`, and only inside functions, so every
+command that does not need audio works without PortAudio installed.
+
+Design (see DEVELOPERS.md, "The realtime path"):
+
+* ONE full-duplex :class:`sounddevice.Stream` on one device (one clock), float32, a fixed block
+  size, callback mode (the blocking mode crashed with mono streams on JACK).
+* The callback (:meth:`StreamCore.process`) only copies: the next drive samples from a
+  preallocated ring into ``outdata``, ``indata`` into another ring, and counts status flags.
+  It applies precomputed fades: in at the start, out when the drive ring runs dry, out when asked
+  to stop, followed by a few zero blocks before :class:`sounddevice.CallbackStop`.
+* A worker thread keeps the drive ring ``lead_blocks`` ahead by calling ``source.exchange`` with
+  the response blocks read from the input ring (``source`` is a
+  :class:`liveshape.controller.Controller` or anything with the same methods).
+
+Timeline: drive block ``j`` returned by the source is always played in the stream slot
+``[j*B, (j+1)*B)`` (B = block size) or not at all: samples that were missing when their slot
+came (an underflow) are skipped when they arrive late, so the loop delay seen by the source never
+changes during a run.
+"""
+
+from __future__ import annotations
+
+import difflib
+import sys
+import threading
+import time
+from collections import deque
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from liveshape.errors import DeviceError
+from liveshape.rigs.ring import (
+    BlockIO,
+    BufferSource,
+    Recording,
+    StreamCore,
+    StreamStats,
+    summarize,
+)
+
+__all__ = [
+    "AudioRig",
+    "BlockIO",
+    "DeviceInfo",
+    "Recording",
+    "StreamCore",
+    "StreamStats",
+    "check_settings",
+    "import_sounddevice",
+    "list_devices",
+    "match_device",
+    "rescan_devices",
+]
+
+PORTAUDIO_MISSING = (
+    "PortAudio library not found: install the system package libportaudio2 "
+    "(apt-get install libportaudio2)"
+)
+
+
+def import_sounddevice() -> Any:
+    """Import :mod:`sounddevice`, turning a missing PortAudio into one-line :class:`DeviceError`."""
+    try:
+        import sounddevice
+    except OSError as exc:
+        if "PortAudio" in str(exc):
+            raise DeviceError(PORTAUDIO_MISSING) from None
+        raise DeviceError(f"cannot load the audio library: {exc}") from None
+    except ImportError:
+        raise DeviceError(
+            "the Python package sounddevice is not installed (pip install sounddevice)"
+        ) from None
+    return sounddevice
+
+
+@dataclass(frozen=True)
+class DeviceInfo:
+    """One audio device as PortAudio lists it.
+
+    ``default_fs_hz`` is the device's default sample rate; ``full_duplex`` is True when it has
+    both inputs and outputs (needed: one device, one clock).
+    """
+
+    index: int
+    name: str
+    host_api: str
+    max_input_channels: int
+    max_output_channels: int
+    default_fs_hz: float
+    full_duplex: bool
+
+
+def list_devices() -> list[DeviceInfo]:
+    """All audio devices PortAudio knows (JACK clients appear only if JACK ran at start-up)."""
+    sd = import_sounddevice()
+    apis = sd.query_hostapis()
+    out = []
+    for d in sd.query_devices():
+        n_in, n_out = int(d["max_input_channels"]), int(d["max_output_channels"])
+        out.append(
+            DeviceInfo(
+                index=int(d["index"]),
+                name=str(d["name"]),
+                host_api=str(apis[d["hostapi"]]["name"]),
+                max_input_channels=n_in,
+                max_output_channels=n_out,
+                default_fs_hz=float(d["default_samplerate"]),
+                full_duplex=n_in > 0 and n_out > 0,
+            )
+        )
+    return out
+
+
+def rescan_devices() -> None:
+    """Re-initialize PortAudio so that devices (e.g. a JACK server) started since are listed.
+
+    Must not be called while a stream is open (PortAudio closes every stream on terminate).
+    """
+    sd = import_sounddevice()
+    sd._terminate()
+    sd._initialize()
+
+
+def match_device(devices: list[DeviceInfo], device: int | str | None) -> DeviceInfo:
+    """Pick one device by index, exact name, or a unique case-insensitive part of the name.
+
+    Raises
+    ------
+    DeviceError
+        Unknown index or name (listing close matches), or an ambiguous part of a name.
+    """
+    if not devices:
+        raise DeviceError("no audio devices found (is the interface connected and powered?)")
+    names = [d.name for d in devices]
+    if device is None:
+        duplex = [d for d in devices if d.full_duplex]
+        if not duplex:
+            raise DeviceError(f"no full-duplex audio device among: {', '.join(names)}")
+        return duplex[0]
+    if isinstance(device, int) or (isinstance(device, str) and device.strip().isdigit()):
+        idx = int(device)
+        for d in devices:
+            if d.index == idx:
+                return d
+        raise DeviceError(f"audio device index {idx} does not exist (valid: 0..{len(devices) - 1})")
+    exact = [d for d in devices if d.name == device]
+    if len(exact) == 1:
+        return exact[0]
+    part = [d for d in devices if device.lower() in d.name.lower()]
+    if len(part) == 1:
+        return part[0]
+    if len(part) > 1:
+        raise DeviceError(
+            f"audio device {device!r} is ambiguous: matches {', '.join(d.name for d in part)}"
+        )
+    near = difflib.get_close_matches(device, names, n=3, cutoff=0.4)
+    hint = f"; close matches: {', '.join(near)}" if near else f"; available: {', '.join(names)}"
+    raise DeviceError(f"audio device {device!r} not found{hint}")
+
+
+def device_error(message: str, info: DeviceInfo, fs_hz: float) -> DeviceError:
+    """Turn a PortAudio error text into a one-line :class:`DeviceError` naming the device."""
+    low = message.lower()
+    if "sample rate" in low:
+        return DeviceError(
+            f"audio device {info.name!r} does not support fs_hz = {fs_hz:g} "
+            f"(its default rate is {info.default_fs_hz:g} Hz)"
+        )
+    if "unavailable" in low or "busy" in low:
+        return DeviceError(f"audio device {info.name!r} is busy (another program is using it)")
+    if "channel" in low:
+        return DeviceError(f"audio device {info.name!r} refuses the channel count ({message})")
+    return DeviceError(f"audio device {info.name!r}: {message}")
+
+
+def check_settings(
+    device: int | str | None,
+    fs_hz: float,
+    *,
+    input_channels: int = 1,
+    output_channels: int = 1,
+    devices: list[DeviceInfo] | None = None,
+) -> DeviceInfo:
+    """Check that ``device`` can run full duplex at ``fs_hz`` with the given channel counts.
+
+    Returns the resolved :class:`DeviceInfo`; raises a one-line :class:`DeviceError` naming what
+    is wrong (unknown device with close matches, too few channels, unsupported rate, busy).
+    """
+    infos = list_devices() if devices is None else devices
+    info = match_device(infos, device)
+    if info.max_output_channels < output_channels:
+        raise DeviceError(
+            f"audio device {info.name!r} has {info.max_output_channels} output channel(s), "
+            f"needs {output_channels}"
+        )
+    if info.max_input_channels < input_channels:
+        raise DeviceError(
+            f"audio device {info.name!r} has {info.max_input_channels} input channel(s), "
+            f"needs {input_channels}"
+        )
+    if devices is None:
+        sd = import_sounddevice()
+        try:
+            sd.check_output_settings(
+                device=info.index, channels=output_channels, dtype="float32", samplerate=fs_hz
+            )
+            sd.check_input_settings(
+                device=info.index, channels=input_channels, dtype="float32", samplerate=fs_hz
+            )
+        except sd.PortAudioError as exc:
+            raise device_error(str(exc), info, fs_hz) from None
+    return info
+
+
+class AudioRig:
+    """A full-duplex audio interface (or JACK client) as a rig for a block-driven source.
+
+    Parameters
+    ----------
+    device : int, str or None
+        Device index, name or unique part of a name (None: first full-duplex device).
+    fs_hz : float
+        Sample rate of the stream, Hz.
+    block_size : int, optional
+        Frames per stream block and per ``exchange`` call (default 1024).
+    drive_channel, control_channel : int, optional
+        Output channel carrying the drive; input channel carrying the control accelerometer.
+    monitor_channel : int or None, optional
+        Extra input channel recorded alongside (a second accelerometer, amplifier current...).
+    loopback : (int, int) or None, optional
+        ``(out_ch, in_ch)``: a cable from a second output to a second input. The drive is copied
+        to ``out_ch``; ``in_ch`` returns the true drive reference (and the loop delay).
+    lead_blocks : int, optional
+        Drive blocks produced ahead of the stream (default 4): the margin against late updates.
+    stop_zero_blocks : int, optional
+        Zero blocks sent after the closing ramp before the stream stops (default 3).
+    host_period : bool, optional
+        Open the stream with PortAudio's unspecified block size (the host's own period). On JACK
+        this removes PortAudio's extra block of buffering (measured: loop delay period + block
+        size with a fixed block, one period with the host's).
+    latency : str or float or None, optional
+        Passed to :class:`sounddevice.Stream` (None: sounddevice's default).
+    stall_timeout_s : float, optional
+        No input for this long while running is a :class:`DeviceError` (server or device gone).
+    stop_timeout_s : float, optional
+        Longest wait for the source to finish its ramp-down after a stop request.
+    switch_interval_s : float or None, optional
+        :func:`sys.setswitchinterval` during a run so the callback thread gets the interpreter
+        promptly (None: leave it).
+    """
+
+    def __init__(
+        self,
+        device: int | str | None,
+        fs_hz: float,
+        *,
+        block_size: int = 1024,
+        drive_channel: int = 0,
+        control_channel: int = 0,
+        monitor_channel: int | None = None,
+        loopback: tuple[int, int] | None = None,
+        lead_blocks: int = 4,
+        stop_zero_blocks: int = 3,
+        host_period: bool = False,
+        latency: str | float | None = None,
+        stall_timeout_s: float = 2.0,
+        stop_timeout_s: float = 5.0,
+        switch_interval_s: float | None = 0.001,
+    ) -> None:
+        if block_size < 16:
+            raise ValueError(f"block_size = {block_size} must be >= 16")
+        if lead_blocks < 1:
+            raise ValueError(f"lead_blocks = {lead_blocks} must be >= 1")
+        self.device = device
+        self.fs_hz = float(fs_hz)
+        self.block_size = int(block_size)
+        self.drive_channel = int(drive_channel)
+        self.control_channel = int(control_channel)
+        self.monitor_channel = monitor_channel
+        self.loopback = loopback
+        self.lead_blocks = int(lead_blocks)
+        self.stop_zero_blocks = int(stop_zero_blocks)
+        self.host_period = bool(host_period)
+        self.latency = latency
+        self.stall_timeout_s = float(stall_timeout_s)
+        self.stop_timeout_s = float(stop_timeout_s)
+        self.switch_interval_s = switch_interval_s
+        outs = [self.drive_channel] + ([loopback[0]] if loopback else [])
+        ins = [self.control_channel] + ([loopback[1]] if loopback else [])
+        if monitor_channel is not None:
+            ins.append(int(monitor_channel))
+        if min(outs + ins) < 0:
+            raise ValueError("channel numbers must be >= 0")
+        if loopback and loopback[0] == self.drive_channel:
+            raise ValueError("the loopback output must differ from the drive channel")
+        self.output_channels = max(outs) + 1
+        self.input_channels = max(ins) + 1
+        self.info: DeviceInfo | None = None
+        self._stream: Any = None
+        self._core: StreamCore | None = None
+        self._thread: threading.Thread | None = None
+        self._done = threading.Event()
+        self._stream_done = threading.Event()
+        self._stop_reason: str | None = None
+        self._error: BaseException | None = None
+        self._update_s: list[float] = []
+        self._interval_before: float | None = None
+        self._source: Any = None
+        self._poll_s: float | None = None  # worker poll period override (tests)
+
+    # -- public control -------------------------------------------------------------------
+
+    def run(
+        self,
+        source: Any,
+        *,
+        on_block: Callable[[BlockIO], None] | None = None,
+        should_stop: Callable[[], bool] | None = None,
+    ) -> Any:
+        """Run ``source`` through the stream until it finishes; return ``source.result()``.
+
+        Ctrl-C (KeyboardInterrupt) or ``should_stop()`` returning True asks the source to stop
+        (``request_stop``), and the run continues until its ramp-down has played out. A second
+        Ctrl-C ramps down inside the callback at once; a third aborts the stream.
+
+        Raises
+        ------
+        DeviceError
+            The device cannot be opened, or the stream stalled (device or server gone).
+        """
+        self.start(source, on_block=on_block, should_stop=should_stop)
+        interrupts = 0
+        while True:
+            try:
+                while not self._done.wait(0.05):
+                    pass
+                break
+            except KeyboardInterrupt:
+                interrupts += 1
+                if interrupts == 1:
+                    self.request_stop("interrupted by the user (Ctrl-C)")
+                elif interrupts == 2 and self._core is not None:
+                    self._core.request_stop(now=True)
+                else:
+                    self._abort_stream()
+        return self.wait()
+
+    def start(
+        self,
+        source: Any,
+        *,
+        on_block: Callable[[BlockIO], None] | None = None,
+        should_stop: Callable[[], bool] | None = None,
+    ) -> None:
+        """Open the stream, pre-roll ``lead_blocks`` drive blocks and start the worker."""
+        if self._thread is not None:
+            raise RuntimeError("this AudioRig is already running")
+        sd = import_sounddevice()
+        self.info = check_settings(
+            self.device,
+            self.fs_hz,
+            input_channels=self.input_channels,
+            output_channels=self.output_channels,
+        )
+        b = self.block_size
+        capacity_in = max(64 * b, int(4 * self.fs_hz))
+        self._core = core = StreamCore(
+            block_size=b,
+            input_channels=self.input_channels,
+            output_channels=self.output_channels,
+            drive_channel=self.drive_channel,
+            loopback_out=self.loopback[0] if self.loopback else None,
+            # both rings span the same horizon: a worker late by more than that is fatal
+            drive_capacity=capacity_in + self.lead_blocks * b,
+            input_capacity=capacity_in,
+            stop_zero_blocks=self.stop_zero_blocks,
+        )
+        self._source = source
+        self._done.clear()
+        self._stream_done.clear()
+        self._stop_reason = None
+        self._error = None
+        self._update_s = []
+        produced: deque[np.ndarray] = deque()
+        for _ in range(self.lead_blocks):
+            drive = self._exchange(source, np.zeros(b, np.float32))
+            core.write_drive(drive)
+            produced.append(drive)
+        stop_exc = sd.CallbackStop
+
+        def callback(indata, outdata, frames, time_info, status):  # noqa: ARG001
+            """PortAudio callback: copy and count only (see StreamCore.process)."""
+            if status:
+                core.count_status(status.input_overflow, status.output_underflow)
+            if core.process(indata, outdata, frames):
+                raise stop_exc
+
+        try:
+            kwargs = {} if self.latency is None else {"latency": self.latency}
+            self._stream = sd.Stream(
+                device=(self.info.index, self.info.index),
+                samplerate=self.fs_hz,
+                blocksize=0 if self.host_period else b,
+                dtype="float32",
+                channels=(self.input_channels, self.output_channels),
+                callback=callback,
+                finished_callback=self._stream_done.set,
+                clip_off=False,
+                **kwargs,
+            )
+        except sd.PortAudioError as exc:
+            raise device_error(str(exc), self.info, self.fs_hz) from None
+        if self.switch_interval_s is not None:
+            self._interval_before = sys.getswitchinterval()
+            sys.setswitchinterval(self.switch_interval_s)
+        self._stream.start()
+        self._thread = threading.Thread(
+            target=self._work,
+            args=(source, produced, on_block, should_stop),
+            name="liveshape-audio-worker",
+            daemon=True,
+        )
+        self._thread.start()
+
+    def play_record(
+        self, drive_fs: np.ndarray, *, pad_s: float = 0.1, tail_s: float = 0.25
+    ) -> Recording:
+        """Play ``drive_fs`` once and record the inputs, slot-aligned.
+
+        ``pad_s`` of silence precede the signal (the stream's start-up fade acts on silence) and
+        ``tail_s`` follow it (room for the loop delay). The returned drive includes the padding.
+        """
+        pad = np.zeros(int(round(pad_s * self.fs_hz)), np.float32)
+        signal = np.concatenate([pad, np.asarray(drive_fs, np.float32).ravel()])
+        source = BufferSource(signal, self.block_size, tail_frames=int(tail_s * self.fs_hz))
+        blocks: list[BlockIO] = []
+        self.run(source, on_block=blocks.append)
+        return Recording.from_blocks(self.fs_hz, blocks)
+
+    def request_stop(self, reason: str = "stop requested") -> None:
+        """Ask the source to ramp down and finish (forwarded by the worker thread)."""
+        if self._stop_reason is None:
+            self._stop_reason = reason
+
+    def wait(self, timeout_s: float | None = None) -> Any:
+        """Wait for the run to end, close the stream and return ``source.result()`` if any."""
+        if self._thread is None:
+            raise RuntimeError("this AudioRig was not started")
+        if not self._done.wait(timeout_s):
+            raise TimeoutError("the audio run has not finished")
+        self._thread.join()
+        if not self._stream_done.wait(self.stop_timeout_s):
+            self._abort_stream()
+        try:
+            self._stream.close()
+        finally:
+            if self._interval_before is not None:
+                sys.setswitchinterval(self._interval_before)
+                self._interval_before = None
+            self._thread = None
+        if self._error is not None:
+            raise self._error
+        result = getattr(self._source, "result", None)
+        return result() if callable(result) else None
+
+    @property
+    def stats(self) -> StreamStats:
+        """Counters and timings of the current or last run."""
+        if self._core is None:
+            raise RuntimeError("this AudioRig was not started")
+        return summarize(self._core, self._update_s)
+
+    # -- worker ---------------------------------------------------------------------------
+
+    def _exchange(self, source: Any, response: np.ndarray) -> np.ndarray:
+        t0 = time.perf_counter()
+        drive = np.asarray(source.exchange(response), dtype=np.float32)
+        self._update_s.append(time.perf_counter() - t0)
+        if drive.shape != (self.block_size,):
+            raise ValueError(
+                f"source returned a drive block of shape {drive.shape}, "
+                f"expected ({self.block_size},)"
+            )
+        if not np.all(np.isfinite(drive)):
+            raise ValueError("source returned a drive block with non-finite samples")
+        return drive
+
+    def _abort_stream(self) -> None:
+        if self._stream is not None:
+            try:
+                self._stream.abort()
+            except Exception:  # noqa: BLE001 - best effort on the way out
+                pass
+            self._stream_done.set()
+
+    def _work(self, source, produced, on_block, should_stop) -> None:
+        core = self._core
+        b = self.block_size
+        poll_s = self._poll_s or max(0.0005, b / self.fs_hz / 8)
+        exchanging = True
+        forwarded = False
+        stop_asked_at: float | None = None
+        reported = 0
+        index = 0
+        last_input = time.monotonic()
+        ctrl, mon = self.control_channel, self.monitor_channel
+        loop_in = self.loopback[1] if self.loopback else None
+        try:
+            while not (self._stream_done.is_set() and core.input_available < b):
+                now = time.monotonic()
+                if exchanging:
+                    if self._stop_reason is None and should_stop is not None and should_stop():
+                        self._stop_reason = "stop requested"
+                    if self._stop_reason is not None and not forwarded:
+                        source.request_stop(self._stop_reason)
+                        forwarded, stop_asked_at = True, now
+                    dry = core.dry_blocks
+                    if dry > reported and hasattr(source, "report_underflow"):
+                        source.report_underflow(dry - reported)
+                        reported = dry
+                    if getattr(source, "finished", False):
+                        core.request_stop(now=False)
+                        exchanging = False
+                    elif stop_asked_at is not None and now - stop_asked_at > self.stop_timeout_s:
+                        core.request_stop(now=True)
+                        exchanging = False
+                if core.input_dropped:
+                    raise DeviceError(
+                        "the audio worker fell behind: input samples were lost "
+                        f"({core.input_dropped} frames); use a larger block_size"
+                    )
+                if core.input_available < b:
+                    if now - last_input > self.stall_timeout_s:
+                        raise DeviceError(
+                            f"audio stream stalled: no input for {self.stall_timeout_s:g} s "
+                            "(device unplugged or audio server stopped?)"
+                        )
+                    time.sleep(poll_s)
+                    continue
+                last_input = now
+                frames = core.read_input(b)
+                response = np.ascontiguousarray(frames[:, ctrl])
+                if exchanging:
+                    drive = self._exchange(source, response)
+                    if core.write_drive(drive) < b:
+                        raise DeviceError(
+                            "the audio worker fell behind: the drive queue overflowed; "
+                            "use a larger block_size"
+                        )
+                    produced.append(drive)
+                slot_drive = produced.popleft() if produced else np.zeros(b, np.float32)
+                if on_block is not None:
+                    on_block(
+                        BlockIO(
+                            index=index,
+                            drive_fs=slot_drive,
+                            response_fs=response,
+                            loopback_fs=None if loop_in is None else frames[:, loop_in].copy(),
+                            monitor_fs=None if mon is None else frames[:, mon].copy(),
+                        )
+                    )
+                index += 1
+        except BaseException as exc:  # noqa: BLE001 - re-raised by wait()
+            self._error = exc
+            core.request_stop(now=True)
+            self._stream_done.wait(self.stop_timeout_s)
+        finally:
+            self._done.set()
