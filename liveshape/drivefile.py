@@ -11,10 +11,13 @@ chi-square band (Welch 1967; Bendat & Piersol, Random Data).
 Both files are written under temporary names in the target folder and renamed when complete
 (:func:`os.replace` is atomic on POSIX): an error or Ctrl-C leaves no partial output.
 
-Scaling is deterministic in two passes: a statistics pass finds the peak of a realization, and
-the writing pass regenerates the same realization from the same seed. Realization ``k`` (0, 1,
-...) draws from ``numpy.random.default_rng(numpy.random.SeedSequence([seed, k]))``; with crest
-factor limits, realizations are tried in turn until one meets them.
+Scaling: no written sample exceeds ±1. With clipping (``clip_sigma``), full scale is the clip
+level, ``clip_sigma`` times the target's rms, known before synthesis, so each realization is
+written in one pass (over a long record the peak is the clip level anyway). Without clipping,
+full scale is the realization's peak, found by a statistics pass; the writing pass then
+regenerates the same realization from its seed. Realization ``k`` (0, 1, ...) draws from
+``numpy.random.default_rng(numpy.random.SeedSequence([seed, k]))``; with crest-factor limits,
+realizations are tried in turn until one meets them.
 """
 
 from __future__ import annotations
@@ -83,8 +86,11 @@ class PsdCheck:
 class DriveFileResult:
     """What :func:`make_drive_file` wrote, and its verification (also in the sidecar).
 
-    ``sample * full_scale_g`` is the acceleration in g. The statistics are those of the
-    realization written (float32 rounding in the file changes them by < 1e-7 relative).
+    ``sample * full_scale_g`` is the acceleration in g: full scale is the clip level
+    (``clip_sigma`` times the target grms) with clipping, else the record's peak. The statistics
+    (``rms_g``, ``crest_factor``, ``kurtosis``, ``clipped_fraction``) are those of the realization
+    written; float32 rounding in the file changes them by < 1e-7 relative. ``tries`` counts the
+    realizations made; the one written is number ``tries - 1``.
     """
 
     path: str
@@ -210,8 +216,8 @@ def make_drive_file(
         Realizations to try before giving up (ConfigError naming the limits and the best crest
         factor reached).
     progress : callable, optional
-        Called with the fraction done (0 .. 1, never decreasing): the statistics passes take
-        the first half, the writing pass the second.
+        Called with the fraction of the planned work done (0 .. 1, never decreasing; it jumps
+        ahead when a realization is accepted before ``max_tries``).
 
     Returns
     -------
@@ -231,67 +237,64 @@ def make_drive_file(
     opts = _resolve(spec, out, duration_s, fs_hz, seed, clip_sigma, crest_min, crest_max, max_tries)
     fs, n_frame, n_samples, base_seed, clip = opts
     lines = spec.profile.lines(fs, n_frame)
+    if not np.any(lines > 0):
+        raise ConfigError(
+            f"fs_hz = {fs:g}, frame_length = {n_frame}: no line falls in the profile band "
+            f"{spec.profile.f_min_hz:g}-{spec.profile.f_max_hz:g} Hz"
+        )
     report = _Progress(progress)
 
-    # statistics passes: find a realization that meets the crest limits
+    job = _Job(
+        lines=lines,
+        fs_hz=fs,
+        frame_length=n_frame,
+        seed=base_seed,
+        clip_sigma=clip,
+        n_samples=n_samples,
+        wav_format="RF64" if 4 * n_samples > _WAV_MAX_BYTES else "WAV",
+        f_min_hz=spec.profile.f_min_hz,
+        f_max_hz=spec.profile.f_max_hz,
+    )
     limits = crest_min is not None or crest_max is not None
     n_tries = max_tries if limits else 1
-    best: tuple[float, float] | None = None  # (distance to the limits, crest)
-    chosen: tuple[int, SynthStats] | None = None
-    for k in range(n_tries):
-        span = (0.5 * k / n_tries, 0.5 * (k + 1) / n_tries)
-        st = _realization(lines, fs, n_frame, base_seed, k, clip, n_samples, report, span, None)
-        crest = st.crest_factor
-        miss = max((crest_min or crest) - crest, crest - (crest_max or crest), 0.0)
-        if best is None or miss < best[0]:
-            best = (miss, crest)
-        if miss == 0.0:
-            chosen = (k, st)
-            break
-    if chosen is None:
-        assert best is not None
-        hint = ""
-        if clip is not None and crest_min is not None and crest_min > clip:
-            hint = f"; clip_sigma = {clip:g} keeps the crest factor near {clip:g}"
-        raise ConfigError(
-            f"crest_min = {crest_min}, crest_max = {crest_max}: no realization met the limits in "
-            f"max_tries = {max_tries} (best crest factor {best[1]:.3f}, seed {base_seed}){hint}"
-        )
-    k, st = chosen
-    if not st.peak > 0:
-        raise ConfigError(f"{spec.source or 'spec'}: profile gives a silent record on these lines")
-    full_scale_g = st.peak
-
-    # writing pass: the same realization, scaled to full scale, streamed to a temporary file
+    # With clipping, full scale is the clip level, known before synthesis: each realization is
+    # written while its statistics are gathered (one pass). Without clipping a statistics pass
+    # finds the peak, then the writing pass regenerates the same realization.
+    one_pass = clip is not None
+    full_scale_g = clip * math.sqrt(float(np.sum(lines)) * fs / n_frame) if one_pass else 0.0
     sidecar = out.with_suffix(".json")
-    fmt = "RF64" if 4 * n_samples > _WAV_MAX_BYTES else "WAV"
-    averager = PsdAverager(fs, n_frame)
     tmp_wav = _temp_name(out)
     try:
-        with sf.SoundFile(
-            tmp_wav, "w", samplerate=int(fs), channels=1, format=fmt, subtype="FLOAT"
-        ) as wav:
-            buf32 = np.empty(BLOCK, dtype=np.float32)
-            scale = 1.0 / full_scale_g
-
-            def write(x: np.ndarray) -> None:
-                y = buf32[: x.size]
-                np.multiply(x, scale, out=y, casting="same_kind")
-                np.clip(y, -1.0, 1.0, out=y)
-                wav.write(y)
-                averager.push(x)
-
-            st2 = _realization(
-                lines, fs, n_frame, base_seed, k, clip, n_samples, report, (0.5, 1.0), write
+        best: tuple[float, float] | None = None  # (distance to the limits, crest)
+        chosen: tuple[int, SynthStats, PsdCheck | None] | None = None
+        for k in range(n_tries):
+            if one_pass:
+                span = (k / n_tries, (k + 1) / n_tries)
+                st, check = _write_realization(sf, tmp_wav, job, k, full_scale_g, report, span)
+            else:
+                span = (0.5 * k / n_tries, 0.5 * (k + 1) / n_tries)
+                st, check = _realization(job, k, report, span, None), None
+            crest = st.crest_factor
+            miss = max((crest_min or crest) - crest, crest - (crest_max or crest), 0.0)
+            if best is None or miss < best[0]:
+                best = (miss, crest)
+            if miss == 0.0:
+                chosen = (k, st, check)
+                break
+        if chosen is None:
+            hint = ""
+            if clip is not None and crest_min is not None and crest_min > clip:
+                hint = f"; clip_sigma = {clip:g} keeps the crest factor near {clip:g}"
+            raise ConfigError(
+                f"crest_min = {crest_min}, crest_max = {crest_max}: no realization met the "
+                f"limits in max_tries = {max_tries} (best crest factor "
+                f"{best[1] if best else math.nan:.3f}, seed {base_seed}){hint}"
             )
-        check = check_psd(
-            averager.f_hz,
-            averager.psd,
-            lines,
-            welch_dof(averager.n_segments),
-            spec.profile.f_min_hz,
-            spec.profile.f_max_hz,
-        )
+        k, st, check = chosen
+        if not one_pass:
+            full_scale_g = st.peak
+            st, check = _write_realization(sf, tmp_wav, job, k, full_scale_g, report, (0.5, 1.0))
+        assert check is not None
         result = DriveFileResult(
             path=str(out),
             sidecar_path=str(sidecar),
@@ -301,11 +304,11 @@ def make_drive_file(
             seed=base_seed,
             frame_length=n_frame,
             full_scale_g=full_scale_g,
-            rms_g=st2.rms,
+            rms_g=st.rms,
             target_grms=float(spec.profile.grms),
-            crest_factor=st2.crest_factor,
-            kurtosis=st2.kurtosis,
-            clipped_fraction=st2.clipped_fraction,
+            crest_factor=st.crest_factor,
+            kurtosis=st.kurtosis,
+            clipped_fraction=st.clipped_fraction,
             tries=k + 1,
             settings={
                 "profile": spec.profile.name,
@@ -315,7 +318,7 @@ def make_drive_file(
                 "crest_min": crest_min,
                 "crest_max": crest_max,
                 "max_tries": max_tries,
-                "wav_format": f"{fmt} float32 mono",
+                "wav_format": f"{job.wav_format} float32 mono",
                 "realization_seed": f"numpy SeedSequence([{base_seed}, {k}])",
             },
             psd_check=check,
@@ -337,6 +340,67 @@ def make_drive_file(
         raise
     report(1.0)
     return result
+
+
+@dataclass(frozen=True)
+class _Job:
+    """What every realization of one drive file shares."""
+
+    lines: np.ndarray
+    fs_hz: float
+    frame_length: int
+    seed: int
+    clip_sigma: float | None
+    n_samples: int
+    wav_format: str
+    f_min_hz: float
+    f_max_hz: float
+
+
+def _realization(job: _Job, k: int, report, span, sink) -> SynthStats:
+    """Synthesize realization ``k`` block by block, feeding ``sink``; return its statistics."""
+    rng = np.random.default_rng(np.random.SeedSequence([job.seed, k]))
+    synth = RandomPhaseSynth(job.fs_hz, job.frame_length, seed=rng, clip_sigma=job.clip_sigma)
+    synth.set_psd(job.lines)
+    buf = np.empty(BLOCK)
+    n = job.n_samples
+    done = 0
+    while done < n:
+        m = min(BLOCK, n - done)
+        x = synth.read(m, out=buf[:m])
+        if sink is not None:
+            sink(x)
+        done += m
+        report(span[0] + (span[1] - span[0]) * done / n)
+    return synth.stats
+
+
+def _write_realization(sf, path, job: _Job, k: int, full_scale_g: float, report, span):
+    """Write realization ``k`` scaled by ``1 / full_scale_g``; return its stats and PSD check."""
+    averager = PsdAverager(job.fs_hz, job.frame_length)
+    buf32 = np.empty(BLOCK, dtype=np.float32)
+    scale = 1.0 / full_scale_g
+    with sf.SoundFile(
+        path, "w", samplerate=int(job.fs_hz), channels=1, format=job.wav_format, subtype="FLOAT"
+    ) as wav:
+
+        def write(x: np.ndarray) -> None:
+            y = buf32[: x.size]
+            np.multiply(x, scale, out=y, casting="same_kind")
+            np.clip(y, -1.0, 1.0, out=y)  # guards the last rounding at the clip level
+            wav.write(y)
+            averager.push(x)
+
+        st = _realization(job, k, report, span, write)
+    check = check_psd(
+        averager.f_hz,
+        averager.psd,
+        job.lines,
+        welch_dof(averager.n_segments),
+        job.f_min_hz,
+        job.f_max_hz,
+    )
+    return st, check
 
 
 # ------------------------------------------------------------------------------------- helpers
@@ -387,23 +451,6 @@ def _resolve(spec, out, duration_s, fs_hz, seed, clip_sigma, crest_min, crest_ma
     if not os.access(folder, os.W_OK):
         raise ConfigError(f"out_path = {str(out)!r}: folder {str(folder)!r} is not writable")
     return fs, n_frame, n_samples, int(seed), clip
-
-
-def _realization(lines, fs, n_frame, seed, k, clip, n_samples, report, span, sink):
-    """Synthesize realization ``k`` block by block; return its statistics."""
-    rng = np.random.default_rng(np.random.SeedSequence([seed, k]))
-    synth = RandomPhaseSynth(fs, n_frame, seed=rng, clip_sigma=clip)
-    synth.set_psd(lines)
-    buf = np.empty(BLOCK)
-    done = 0
-    while done < n_samples:
-        m = min(BLOCK, n_samples - done)
-        x = synth.read(m, out=buf[:m])
-        if sink is not None:
-            sink(x)
-        done += m
-        report(span[0] + (span[1] - span[0]) * done / n_samples)
-    return synth.stats
 
 
 class _Progress:

@@ -49,8 +49,9 @@ def small_spec(seed: int | None = 5, clip_sigma: float | None = 4.0) -> TestSpec
     )
 
 
-def test_wav_matches_sidecar_and_psd_check_passes(tmp_path):
-    spec = small_spec()
+@pytest.mark.parametrize("clip_sigma", [4.0, None])  # one pass / statistics + writing pass
+def test_wav_matches_sidecar_and_psd_check_passes(tmp_path, clip_sigma):
+    spec = small_spec(clip_sigma=clip_sigma)
     out = tmp_path / "drive.wav"
     res = make_drive_file(spec, out, duration_s=20.0)
     assert isinstance(res, DriveFileResult)
@@ -70,8 +71,14 @@ def test_wav_matches_sidecar_and_psd_check_passes(tmp_path):
     assert side["rms_g"] == pytest.approx(np.sqrt(np.mean(x**2)), rel=1e-6)
     assert side["crest_factor"] == pytest.approx(np.max(np.abs(x)) / side["rms_g"], rel=1e-6)
     assert side["kurtosis"] == pytest.approx(stats.kurtosis(x, fisher=False), rel=1e-5)
-    # clipped samples sit at the clip level, which is the peak, so they read back as +-1
-    assert round(side["clipped_fraction"] * y.size) == np.count_nonzero(np.abs(y) == 1.0) > 1
+    n_full = np.count_nonzero(np.abs(y) == 1.0)
+    if clip_sigma is None:
+        assert side["clipped_fraction"] == 0.0 and n_full == 1  # only the peak is at full scale
+    else:
+        # full scale is the clip level: the clipped samples read back as +-1
+        nominal = math.sqrt(np.sum(spec.profile.lines(8000.0, 512)) * 8000.0 / 512)  # Parseval
+        assert side["full_scale_g"] == pytest.approx(clip_sigma * nominal, rel=1e-12)
+        assert round(side["clipped_fraction"] * y.size) == n_full > 1
     # Parseval: the rms is the target grms (clipping at 4 sigma removes < 0.1 % of the power);
     # the relative error of an rms from N_eff ~ 2 B T independent samples is 1/sqrt(4 B T)
     bt = (2000.0 - 50.0) * res.duration_s  # bandwidth x duration [Bendat & Piersol, mem]
@@ -147,6 +154,21 @@ def test_crest_selection_honours_the_limits(tmp_path):
     lo = sorted(crests)[-3]
     res2 = make_drive_file(spec, tmp_path / "d.wav", duration_s=2.0, crest_min=lo, crest_max=9.0)
     assert res2.crest_factor >= lo
+
+
+def test_crest_selection_with_clipping_rewrites_until_accepted(tmp_path):
+    spec = small_spec(seed=3, clip_sigma=4.5)
+    first = make_drive_file(spec, tmp_path / "a.wav", duration_s=2.0)
+    assert first.tries == 1
+    # a limit just below the first realization's crest factor forces another one
+    res = make_drive_file(
+        spec, tmp_path / "b.wav", duration_s=2.0, crest_max=first.crest_factor * 0.999
+    )
+    assert res.tries >= 2 and res.crest_factor < first.crest_factor * 0.999
+    y, _ = sf.read(str(tmp_path / "b.wav"), dtype="float32")
+    x = y.astype(float) * res.full_scale_g
+    assert np.max(np.abs(x)) / np.sqrt(np.mean(x**2)) == pytest.approx(res.crest_factor, rel=1e-6)
+    assert y.size == res.n_samples  # the rewritten file holds one realization, not several
 
 
 def test_max_tries_spent_is_an_error_and_leaves_nothing(tmp_path):
