@@ -30,7 +30,8 @@ Nonlinear and protective behaviour (simple models, documented):
   reaching the sensor is scaled by ``xmax/|x|`` (the motor force falls as the coil leaves the gap);
   such samples are counted. The compression does not feed back into the excursion.
 * Coil heating (when the plant has ``coil_heating``): every 0.1 s of rig time the mean electrical
-  power ``mean(i²) Re`` drives the first-order thermal model and ``Re`` is updated.
+  power ``mean(i²) Re`` drives the first-order thermal model; the shaker model follows ``Re``
+  whenever it has moved by more than :data:`RE_STEP` (relative) since the last rebuild.
 
 Faults (objects with ``kind, at_s, value, duration_s``, as :class:`liveshape.spec.FaultSpec`) act
 from sample ``round(at_s fs)`` for ``duration_s`` (None: to the end); see :data:`FAULT_RULES`.
@@ -70,6 +71,9 @@ _NEEDS_VALUE = {"sensor_gain": 0.0, "resonance_shift": None, "plant_gain": None,
 
 #: Period of the coil-temperature update, seconds of rig time.
 THERMAL_STEP_S = 0.1
+#: The shaker model is rebuilt when Re has moved by this fraction since the last build (a gain
+#: step of at most 0.001 dB).
+RE_STEP = 1e-4
 
 
 @dataclass(frozen=True)
@@ -132,12 +136,14 @@ class _Modal:
         cd = np.linalg.solve(self.m1.T, c.T).T
         bd = self.h * np.linalg.solve(self.m1, b)
         mu, w = np.linalg.eig(a)
-        if np.linalg.cond(w) > 1e10:
+        winv = np.linalg.inv(w)
+        # Infinity-norm condition number of the eigenvectors (cheap; exact enough as a guard).
+        if np.abs(w).sum(axis=1).max() * np.abs(winv).sum(axis=1).max() > 1e10:
             raise ConfigError(
                 "plant: the shaker/payload model has (nearly) repeated modes; make the "
                 "resonances differ in f_hz or q"
             )
-        self.w, self.winv = w, np.linalg.inv(w)
+        self.w, self.winv = w, winv
         self.lam = (1.0 + 0.5 * self.h * mu) / (1.0 - 0.5 * self.h * mu)
         self.beta = (self.winv @ bd)[:, 0]
         self.gamma = cd @ w
@@ -447,9 +453,7 @@ class SimRig:
         out = np.empty(n)
         if n == 0:
             return out
-        over = np.abs(d) > 1.0
-        self._counts["drive"] += int(np.count_nonzero(over))
-        d = np.clip(d, -1.0, 1.0)
+        d = self._clip(d, 1.0, "drive")
         if self._delay.size:
             joined = np.concatenate((self._delay, d))
             d, self._delay = joined[:n], joined[n:]
@@ -462,6 +466,13 @@ class SimRig:
             pos = stop - self._n
         self._n += n
         return out
+
+    def _clip(self, x: np.ndarray, limit: float, counter: str) -> np.ndarray:
+        """``x`` clipped to ±limit, counting the samples beyond."""
+        if x.size == 0 or max(float(x.max()), -float(x.min())) <= limit:
+            return x
+        self._counts[counter] += int(np.count_nonzero(np.abs(x) > limit))
+        return np.clip(x, -limit, limit)
 
     def _next_boundary(self, a: int) -> int:
         nxt = math.inf
@@ -522,15 +533,14 @@ class SimRig:
             v = v * st["plant_gain"]
         vmax = self._plant.amplifier.v_out_max_v
         if vmax is not None:
-            self._counts["amp"] += int(np.count_nonzero(np.abs(v) > vmax))
-            v = np.clip(v, -vmax, vmax)
+            v = self._clip(v, vmax, "amp")
         if self._tripped_at is None and st["trip"]:
             self._tripped_at = a
         if self._tripped_at is not None:
             v = np.zeros(n)
         # Shaker and payload: rebuild the model if its parameters moved.
         rel = 0.0 if self._re0 is None else abs(self._re_now - self._re_model) / self._re0
-        if st["f_factor"] != self._f_factor or rel > 1e-6:
+        if st["f_factor"] != self._f_factor or rel > RE_STEP:
             x_phys = self._model.to_physical(self._zeta, float(v[0]))
             self._model = _Modal(*electromechanical_ss(
                 self._plant, re_ohm=self._re_now, f_factor=st["f_factor"]), self._fs)
@@ -578,8 +588,7 @@ class SimRig:
             r = r + noise_fs * self._rng_card.standard_normal(n)
         if st["burst_var"] > 0:
             r = r + math.sqrt(st["burst_var"]) * self._rng_burst.standard_normal(n)
-        self._counts["input"] += int(np.count_nonzero(np.abs(r) > 1.0))
-        r = np.clip(r, -1.0, 1.0)
+        r = self._clip(r, 1.0, "input")
         if st["dropout"]:
             r = np.zeros(n)
         return r
