@@ -27,6 +27,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import special
 
 LAWS = ("direct", "blend")
 
@@ -74,6 +75,16 @@ class DriveResult:
     @property
     def n_held(self) -> int:
         return int(np.count_nonzero(self.held))
+
+
+def log_bias_db(dof: float) -> float:
+    """Mean of ``10 log10(Ĝ/G)`` for a χ²_ν estimate, dB: ``4.343 (ψ(ν/2) − ln(ν/2))``.
+
+    ``ln(χ²_ν/2)`` has mean ψ(ν/2) (digamma); the result is negative, about −4.343/ν.
+    """
+    if not dof > 0:
+        raise ValueError(f"dof must be > 0, got {dof}")
+    return float(10.0 / np.log(10.0) * (special.digamma(dof / 2.0) - np.log(dof / 2.0)))
 
 
 def _readonly(a: np.ndarray) -> np.ndarray:
@@ -212,6 +223,7 @@ def update_drive(
     frozen: np.ndarray | None = None,
     law: str = "direct",
     h1: np.ndarray | None = None,
+    control_dof: float | None = None,
 ) -> DriveResult:
     """One equalization step of the drive PSD.
 
@@ -238,6 +250,11 @@ def update_drive(
     law : {"direct", "blend"}
         ``direct``: ``ΔD_dB = γ (R_dB − Ĉ_dB)``;
         ``blend``: ``D_{k+1} = D_k^(1−γ) (R/|Ĥ|²)^γ``, needs ``h1`` (g/FS).
+    control_dof : float, optional
+        DOF ν of ``control_psd``. When given, the direct law removes the mean of the dB error of
+        a χ²_ν estimate, ``E[10 log10(χ²_ν/ν)] = 4.343 (ψ(ν/2) − ln(ν/2))`` (≈ −4.343/ν dB),
+        so the loop settles on the target in mean square, not on its geometric mean (which
+        sits 0.07 dB high at ν = 60).
 
     Returns
     -------
@@ -271,9 +288,12 @@ def update_drive(
     hold &= band
     act = band & ~hold
     step = np.zeros(n)
+    bias_db = 0.0
+    if control_dof is not None and law == "direct":
+        bias_db = log_bias_db(control_dof)
     with np.errstate(divide="ignore", invalid="ignore"):
         if law == "direct":
-            step[act] = gain * 10.0 * np.log10(target[act] / control[act])
+            step[act] = gain * (10.0 * np.log10(target[act] / control[act]) + bias_db)
         else:
             ideal = target[act] / mag2[act]
             step[act] = gain * 10.0 * np.log10(ideal / drive[act])

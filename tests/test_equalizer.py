@@ -146,6 +146,28 @@ def test_steady_state_error_variance_matches_loop_theory(gamma):
     assert abs(s2 - pred) < 4 * se, (s2, pred, se)
 
 
+@pytest.mark.parametrize("correct", [False, True])
+def test_steady_state_mean_error_and_log_bias_correction(correct):
+    # The direct law in dB settles where E[10 log10 Ĉ] = 10 log10 R, i.e. the true control sits
+    # above target by −E[10 log10(χ²_ν/ν)] = 4.343·(ln(ν/2) − ψ(ν/2)) (digamma, scipy). With
+    # control_dof the bias is removed and the mean true error is 0.
+    nu, n, gamma = 16, 20000, 0.5
+    band = np.ones(n, dtype=bool)
+    rng = np.random.default_rng(99)
+    target = np.ones(n)
+    drive = target.copy()
+    for _ in range(30):
+        control = drive * rng.chisquare(nu, n) / nu
+        drive = eq.update_drive(drive, target, control, gain=gamma, max_step_db=100.0,
+                                band=band, control_dof=nu if correct else None).drive_psd
+    err = 10 * np.log10(drive)
+    expect = 0.0 if correct else 10 / np.log(10) * (np.log(nu / 2) - special.digamma(nu / 2))
+    se = err.std(ddof=1) / np.sqrt(n)
+    assert abs(err.mean() - expect) < 4 * se, (err.mean(), expect, se)
+    assert eq.log_bias_db(nu) == pytest.approx(-10 / np.log(10) * (np.log(nu / 2)
+                                                - special.digamma(nu / 2)), rel=1e-12)
+
+
 # ---- limits ------------------------------------------------------------------------------
 
 
