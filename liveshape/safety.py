@@ -17,8 +17,8 @@ itself (the controller ramps it down when :class:`Supervisor` returns a :class:`
     rule                trips when
     ==================  =======================================================================
     ``rms_abort``       control grms above target by more than ``rms_abort_db`` (update
-                        estimate; also a fast check on the running partial average with a
-                        5-sigma statistical allowance, so a jump is caught within a segment)
+                        estimate; also a fast check on each new Welch segment with a 5-sigma
+                        statistical allowance, so a jump is caught within a segment)
     ``lines_abort``     ≥ ``abort_min_lines`` lines beyond the abort band on
                         ``abort_persist_updates`` consecutive (independent) update estimates;
                         the band is widened where the χ² scatter of the estimate alone could
@@ -27,7 +27,8 @@ itself (the controller ramps it down when :class:`Supervisor` returns a :class:`
                         below target by more than ``rms_alarm_db``, persistent
     ``input_overload``  ``|response| >= input_overload_fs`` on any sample
     ``loop_open``       control below what the identified FRF predicts for the drive played
-                        by more than ``loop_open_db``, persistent
+                        by more than ``loop_open_db``, persistent (and the same fast
+                        per-segment check as rms_abort)
     ``response_silent`` response rms below ``silent_floor_fs`` for a hop while drive is up
     ``non_finite``      a NaN or infinity in the response
     ``controller_late`` the rig reports a drive underflow (the output ran dry)
@@ -72,6 +73,8 @@ RULES: tuple[str, ...] = tuple(EXIT_STATUS)
 #: abort band (lines_abort): a control exactly on target shows ``abort_min_lines`` lines beyond
 #: the widened band with probability at most this, from χ² scatter alone.
 LINES_FALSE_ALARM = 1e-6
+#: Chunk length (samples) on which silence is judged.
+SILENT_CHUNK = 64
 #: z of the statistical allowance of the fast rms check (one-sided normal tail 2.9e-7).
 FAST_RMS_Z = 5.0
 # Correlation of Hann-window periodogram values one and two lines apart, for white noise:
@@ -334,6 +337,7 @@ class Supervisor:
         self.fs_hz = float(fs_hz)
         self.silent_window = int(silent_window)
         self._silent_run = 0
+        self._silent_seen = False
         self._persist: dict[str, int] = {"lines_abort": 0, "drive_limit": 0, "loop_open": 0}
 
     def reset_persistence(self) -> None:
@@ -342,20 +346,23 @@ class Supervisor:
             self._persist[k] = 0
 
     # -- per block ----------------------------------------------------------------------
-    def check_block(self, t_s: float, response_fs: np.ndarray, *, drive_up: bool) -> Trip | None:
+    def check_block(
+        self, t_s: float, response_fs: np.ndarray, *, drive_up: bool | None
+    ) -> Trip | None:
         """Sample-level rules on one response block: non_finite, input_overload, silence.
 
         ``drive_up`` says the drive that produced this block was on (silence is only a fault
-        then).
+        then); None skips the silence rule and leaves its count alone (for a caller that checks
+        silence separately on the delay-aligned block).
         """
         y = np.asarray(response_fs, dtype=float)
         if y.size == 0:
             return None
-        if not np.isfinite(y).all():
+        peak = float(np.max(np.abs(y)))  # nan or inf when a sample is not finite
+        if not math.isfinite(peak):
             bad = int(np.count_nonzero(~np.isfinite(y)))
             return Trip("non_finite", f"response contains {bad} non-finite samples (NaN/inf)",
                         t_s, {"samples_bad": bad})
-        peak = float(np.max(np.abs(y)))
         limit = float(self.safety.input_overload_fs)
         if peak >= limit:
             return Trip(
@@ -363,21 +370,59 @@ class Supervisor:
                 f"control input overload: |response| {peak:.3f} FS >= {limit:.3f} FS",
                 t_s, {"response_peak_fs": peak, "input_overload_fs": limit},
             )
-        rms = float(np.sqrt(np.mean(y * y)))
-        floor = float(self.safety.silent_floor_fs)
-        if drive_up and rms < floor:
-            self._silent_run += y.size
-        else:
+        if drive_up is None:
+            return None
+        return self.check_silence(t_s, y, drive_up=drive_up)
+
+    def check_silence(self, t_s: float, response_fs: np.ndarray, *, drive_up: bool) -> Trip | None:
+        """``response_silent``: the response below ``silent_floor_fs`` rms for
+        ``silent_window`` consecutive samples while ``drive_up``.
+
+        Silence is judged on chunks of :data:`SILENT_CHUNK` samples, so a dropout inside a block
+        is seen (:attr:`silent_in_last_block`) and runs carry over from block to block.
+        """
+        y = np.asarray(response_fs, dtype=float)
+        self._silent_seen = False
+        if y.size == 0:
+            return None
+        if not drive_up:
             self._silent_run = 0
-        if self._silent_run >= self.silent_window:
-            dur = self._silent_run / self.fs_hz
+            return None
+        floor = float(self.safety.silent_floor_fs)
+        c = SILENT_CHUNK
+        m = -(-y.size // c)
+        sq = np.zeros(m * c)
+        sq[: y.size] = y * y
+        sizes = np.full(m, c)
+        sizes[-1] = y.size - c * (m - 1)
+        quiet = sq.reshape(m, c).sum(axis=1) < floor * floor * sizes
+        if not quiet.any():
+            self._silent_run = 0
+            return None
+        self._silent_seen = True
+        if quiet.all():
+            self._silent_run += y.size
+            longest = self._silent_run
+        else:
+            lead = int(np.argmin(quiet))  # first loud chunk
+            trail = int(np.argmin(quiet[::-1]))
+            edges = np.diff(np.concatenate(([0], quiet.astype(np.int8), [0])))
+            runs = np.flatnonzero(edges == -1) - np.flatnonzero(edges == 1)
+            longest = max(self._silent_run + lead * c, int(runs.max()) * c)
+            self._silent_run = int(np.sum(sizes[m - trail:])) if trail else 0
+        if longest >= self.silent_window:
+            dur = longest / self.fs_hz
             return Trip(
                 "response_silent",
-                f"control input silent for {dur:.3f} s while driving: rms {rms:.2e} FS < "
-                f"{floor:.2e} FS",
-                t_s, {"response_rms_fs": rms, "silent_floor_fs": floor, "silent_s": dur},
+                f"control input silent for {dur:.3f} s while driving (rms < {floor:.2e} FS)",
+                t_s, {"silent_floor_fs": floor, "silent_s": dur},
             )
         return None
+
+    @property
+    def silent_in_last_block(self) -> bool:
+        """The last block given to :meth:`check_silence` had a silent chunk while driving."""
+        return self._silent_seen
 
     def report_underflow(self, t_s: float, count: int) -> Trip | None:
         """The rig ran out of drive samples ``count`` times: trips ``controller_late``."""
@@ -389,30 +434,54 @@ class Supervisor:
             t_s, {"underflows": int(count)},
         )
 
-    def check_rms_fast(
-        self, t_s: float, control_psd: np.ndarray, target_psd: np.ndarray, dof: float
-    ) -> Trip | None:
-        """``rms_abort`` on a running partial average (few segments).
+    @property
+    def silent_run_samples(self) -> int:
+        """Consecutive silent samples seen so far while driving."""
+        return self._silent_run
 
-        Trips when the band rms error exceeds ``rms_abort_db`` plus ``FAST_RMS_Z`` standard
-        deviations of the band sum's dB scatter (Satterthwaite DOF, :func:`band_sum_dof`).
+    def check_segment(
+        self,
+        t_s: float,
+        *,
+        control_sum: float,
+        target_sum: float,
+        band_dof: float,
+        predicted_sum: float | None = None,
+    ) -> Trip | None:
+        """Fast rules on the newest Welch segment alone: ``rms_abort`` and ``loop_open``.
+
+        ``control_sum``, ``target_sum`` and ``predicted_sum`` are band sums of PSD lines (g²/Hz)
+        of the newest segment, the target at the level played and the FRF prediction for the
+        drive played. The limits are widened by ``FAST_RMS_Z`` standard deviations of the band
+        sum's dB scatter (``band_dof`` from :func:`band_sum_dof`, Satterthwaite), so one
+        segment's χ² scatter cannot trip them, while a jump of the plant or sensor trips within
+        one segment instead of waiting for the update estimate.
         """
-        c = float(np.sum(control_psd))
-        r = float(np.sum(target_psd))
-        nu = band_sum_dof(control_psd, dof)
-        if not (c > 0 and r > 0 and nu > 0):
+        if not (band_dof > 0 and target_sum > 0):
             return None
-        err = _DB * math.log(c / r)
-        allow = FAST_RMS_Z * db_std(nu)
+        allow = FAST_RMS_Z * db_std(band_dof)
+        err = _DB * math.log(control_sum / target_sum) if control_sum > 0 else -math.inf
         limit = float(self.tolerance.rms_abort_db)
         if err > limit + allow:
             return Trip(
                 "rms_abort",
-                f"control rms {err:+.2f} dB above target (limit +{limit:.2f} dB, "
-                f"+{allow:.2f} dB allowed for a {nu:.0f}-DOF partial estimate)",
+                f"control rms {err:+.2f} dB above target in the newest segment (limit "
+                f"+{limit:.2f} dB, +{allow:.2f} dB allowed for its {band_dof:.0f} DOF)",
                 t_s, {"rms_error_db": err, "rms_abort_db": limit, "allowance_db": allow,
-                      "band_dof": nu},
+                      "band_dof": band_dof},
             )
+        if predicted_sum is not None and predicted_sum > 0:
+            gap = _DB * math.log(control_sum / predicted_sum) if control_sum > 0 else -math.inf
+            lo = float(self.safety.loop_open_db)
+            if gap < -(lo + allow):
+                return Trip(
+                    "loop_open",
+                    f"loop open: control {gap:+.1f} dB below what the identified FRF predicts "
+                    f"for the drive in the newest segment (limit -{lo:.1f} dB, "
+                    f"-{allow:.2f} dB allowed for its {band_dof:.0f} DOF)",
+                    t_s, {"loop_gap_db": gap, "loop_open_db": lo, "allowance_db": allow,
+                          "band_dof": band_dof},
+                )
         return None
 
     # -- per update ---------------------------------------------------------------------
@@ -467,47 +536,46 @@ class Supervisor:
         abort = np.asarray(abort_db, dtype=float)
         beyond = (dev > np.maximum(abort, hi_s)) | (dev < -np.maximum(abort, lo_s))
         n_beyond = int(np.count_nonzero(beyond))
-        pending: list[str] = []
-        trip = self._persistent(
-            "lines_abort", n_beyond >= int(s.abort_min_lines), t_s, pending,
-            lambda n: (
-                f"{n_beyond} lines beyond the abort limits for {n} consecutive updates "
-                f"(max {float(np.max(dev)):+.1f} dB, min {float(np.min(dev)):+.1f} dB)"
-            ),
-            {**detail_base, "lines_beyond_abort": n_beyond,
-             "max_dev_db": float(np.max(dev)), "min_dev_db": float(np.min(dev)),
-             "scatter_lo_db": lo_s, "scatter_hi_db": hi_s},
-        )
-        if trip is not None:
-            return self._verdict(trip, (), rms_err, n_beyond, lo_s, hi_s, math.nan)
-
-        # drive_limit
-        below = rms_err < -float(lim.rms_alarm_db)
-        trip = self._persistent(
-            "drive_limit", bool(drive_at_limit) and below, t_s, pending,
-            lambda n: (
-                f"drive limit reached: control {rms_err:+.2f} dB below target with the drive at "
-                f"its limit for {n} consecutive updates"
-            ),
-            {**detail_base, "rms_alarm_db": float(lim.rms_alarm_db)},
-        )
-        if trip is not None:
-            return self._verdict(trip, (), rms_err, n_beyond, lo_s, hi_s, math.nan)
-
-        # loop_open
         gap = math.nan
         if predicted_psd is not None:
             p_sum = float(np.sum(predicted_psd))
             if p_sum > 0:
                 gap = _DB * math.log(c_sum / p_sum) if c_sum > 0 else -math.inf
-        trip = self._persistent(
-            "loop_open", gap < -float(s.loop_open_db), t_s, pending,
-            lambda n: (
-                f"loop open: control {gap:+.1f} dB below what the identified FRF predicts for "
-                f"the drive (limit -{float(s.loop_open_db):.1f} dB) for {n} consecutive updates"
+        below = rms_err < -float(lim.rms_alarm_db)
+        # every persistent rule keeps its count; the most specific diagnosis wins
+        pending: list[str] = []
+        trips = [
+            self._persistent(
+                "loop_open", gap < -float(s.loop_open_db), t_s, pending,
+                lambda n: (
+                    f"loop open: control {gap:+.1f} dB below what the identified FRF predicts "
+                    f"for the drive (limit -{float(s.loop_open_db):.1f} dB) for {n} "
+                    "consecutive updates"
+                ),
+                {**detail_base, "loop_gap_db": gap, "loop_open_db": float(s.loop_open_db)},
             ),
-            {**detail_base, "loop_gap_db": gap, "loop_open_db": float(s.loop_open_db)},
-        )
+            self._persistent(
+                "drive_limit", bool(drive_at_limit) and below, t_s, pending,
+                lambda n: (
+                    f"drive limit reached: control {rms_err:+.2f} dB below target with the "
+                    f"drive at its limit for {n} consecutive updates"
+                ),
+                {**detail_base, "rms_alarm_db": float(lim.rms_alarm_db)},
+            ),
+            self._persistent(
+                "lines_abort", n_beyond >= int(s.abort_min_lines), t_s, pending,
+                lambda n: (
+                    f"{n_beyond} lines beyond the abort limits for {n} consecutive updates "
+                    f"(max {float(np.max(dev)):+.1f} dB, min {float(np.min(dev)):+.1f} dB)"
+                ),
+                {**detail_base, "lines_beyond_abort": n_beyond,
+                 "max_dev_db": float(np.max(dev)), "min_dev_db": float(np.min(dev)),
+                 "scatter_lo_db": lo_s, "scatter_hi_db": hi_s},
+            ),
+        ]
+        trip = next((t for t in trips if t is not None), None)
+        if trip is not None:
+            pending = []
         return self._verdict(trip, tuple(pending), rms_err, n_beyond, lo_s, hi_s, gap)
 
     def _persistent(self, rule, condition, t_s, pending, message, detail) -> Trip | None:

@@ -255,13 +255,51 @@ def test_loop_open_trips_when_control_far_below_prediction():
         assert _update(s, np.full(n, -0.5), predicted=pred * 10 ** 0.75).trip is None
 
 
-def test_fast_rms_check_allows_scatter_of_a_partial_estimate():
+def test_segment_checks_allow_one_segments_scatter_and_catch_jumps():
     s = _sup()
     tgt = np.full(300, 0.01)
-    nu1 = welch_dof(1)
-    # one segment: ν_eff ≈ 300·2/1.94 = 309, σ = 4.343·√ψ1(154) = 0.35 dB, 5σ ≈ 1.75 dB
-    allow = sf.FAST_RMS_Z * sf.db_std(sf.band_sum_dof(tgt, nu1))
+    nu = sf.band_sum_dof(tgt, 2.0)  # one periodogram: 2 DOF a line
+    # ν_eff ≈ 300·2/1.94 = 309, σ = 4.343·√ψ1(154) = 0.35 dB, 5σ ≈ 1.75 dB
+    allow = sf.FAST_RMS_Z * sf.db_std(nu)
     assert 1.6 < allow < 1.9
-    assert s.check_rms_fast(0.0, tgt * 10 ** 0.2, tgt, nu1) is None  # +2 dB: inside allowance
-    trip = s.check_rms_fast(0.0, tgt * 10 ** 0.6, tgt, nu1)  # +6 dB: far beyond
+    r = float(tgt.sum())
+    assert s.check_segment(0.0, control_sum=r * 10**0.3, target_sum=r, band_dof=nu) is None
+    trip = s.check_segment(0.0, control_sum=r * 10**0.6, target_sum=r, band_dof=nu)
     assert trip.rule == "rms_abort" and trip.detail["allowance_db"] == pytest.approx(allow)
+    # loop open: 11 dB below the prediction is inside 10 dB + 1.75 dB, 13 dB is not
+    assert s.check_segment(0.0, control_sum=r, target_sum=r, band_dof=nu,
+                           predicted_sum=r * 10**1.1) is None
+    trip = s.check_segment(0.0, control_sum=r, target_sum=r, band_dof=nu,
+                           predicted_sum=r * 10**1.3)
+    assert trip.rule == "loop_open" and trip.detail["loop_gap_db"] == pytest.approx(-13.0)
+
+
+def test_segment_check_false_trip_rate_on_real_periodograms():
+    # Reference: single Hann periodograms (scipy.signal.welch with one segment) of white noise
+    # exactly on target: with the 5σ allowance none of 3000 may trip (normal tail 2.9e−7 each;
+    # the band sum of 300 lines is close to normal).
+    rng = np.random.default_rng(31)
+    x = rng.standard_normal((3000, 1024))
+    _, p = signal.welch(x, 1.0, nperseg=1024, axis=-1)
+    band = slice(100, 400)
+    s = _sup(loop_open_db=1.0)  # a tight loop-open limit tests the lower side too
+    tgt = np.full(300, 2.0)
+    nu = sf.band_sum_dof(tgt, 2.0)
+    trips = [s.check_segment(0.0, control_sum=float(row[band].sum()), target_sum=600.0,
+                             band_dof=nu, predicted_sum=600.0) for row in p]
+    assert not any(trips)
+
+
+def test_silence_inside_a_block_is_seen_and_runs_carry_over():
+    s = _sup()  # window 100 samples, chunks of 64
+    loud = np.full(256, 1e-3)
+    y = loud.copy()
+    y[64:128] = 0.0  # one silent chunk inside the block
+    assert s.check_silence(0.0, y, drive_up=True) is None and s.silent_in_last_block
+    assert s.check_silence(0.0, loud, drive_up=True) is None and not s.silent_in_last_block
+    y = loud.copy()
+    y[192:] = 0.0  # 64 trailing silent samples ...
+    assert s.check_silence(0.0, y, drive_up=True) is None
+    y = loud.copy()
+    y[:64] = 0.0  # ... and 64 leading in the next block: a run of 128 >= 100
+    assert s.check_silence(0.0, y, drive_up=True).rule == "response_silent"
