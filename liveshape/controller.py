@@ -1,0 +1,754 @@
+"""The block-driven control loop: response block in, drive block out.
+
+Pure of I/O: no files, no printing, no clock (time is samples / fs). The same
+:class:`Controller` drives the simulated rig, the JACK virtual rig and a real card; the shell
+calls :meth:`Controller.exchange` with each response block and plays what it returns.
+
+Streams and alignment
+    The drive stream is everything :meth:`~Controller.exchange` returned, the response stream
+    everything it was given (the first call's zeros included). Both grow by the same count per
+    call, so the response sample ``i`` belongs to the drive sample ``i − L`` where the loop
+    delay ``L`` (exchange latency plus the rig's own) is measured by cross-correlation in the
+    ``connect`` stage. A short drive history keeps the samples still needed for alignment.
+
+Stages (``connect → identify → equalize → full_level → ramp_down → done``)
+    connect
+        A silent look at the background, then flat band-limited noise at
+        ``safety.connect_level_fs`` rms for 16 Welch segments. The loop delay comes from
+        :func:`liveshape.spectra.estimate_delay`; coherence over the band below
+        ``safety.connect_coherence_min`` stops the run *before any real level*
+        (``connect_check``), a response below ``silent_floor_fs`` too (``response_silent``).
+    identify
+        The drive fades out, then in again at 6 dB below the first schedule step with the
+        spectrum ``target / |H_connect|²``. H1 and coherence (aligned) are estimated with
+        ``control.target_dof`` DOF; the initial drive is
+        :func:`liveshape.equalizer.initial_drive` for the target.
+    equalize / full_level
+        The synthesizer holds the drive PSD at full level, the level itself is its gain
+        ``10^(step_db/20)``; steps are dB ramps at ``schedule.rate_db_s`` (per sample, never a
+        step). Each update estimate is a fresh linear Welch average of
+        :func:`~liveshape.stages.update_dof_for` DOF, started only after a drive change has
+        fully arrived: one frame for the overlap-add transition, half a frame for the plant to
+        settle, and the loop delay. The update law (``control.law``) acts on it, limited by
+        ``max_step_db`` and the drive ceiling. Decisions (tolerance, level steps, display) use
+        the :class:`~liveshape.stages.DecisionPool` of whole update estimates, with at least
+        ``target_dof`` DOF. Time at full level counts only at 0 dB with the gain settled.
+    ramp_down → done
+        At the end a 1 s cosine fade, then zeros. On a safety trip or a stop request the fade
+        lasts ``safety.abort_ramp_s``.
+
+Drive ceiling
+    The drive rms is held at or below ``drive_rms_max_fs`` and, with clipping at
+    ``clip_sigma``·rms, at or below ``drive_peak_max_fs / clip_sigma`` so the clipped peaks stay
+    inside the peak limit; the output is also hard-limited to ``±drive_peak_max_fs``.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import deque
+from typing import Any
+
+import numpy as np
+
+from liveshape import equalizer
+from liveshape.chain import ChainCalibration
+from liveshape.errors import ConfigError
+from liveshape.runstate import ControlSnapshot, Event, RunResult, UpdateRecord, frozen_array
+from liveshape.safety import LevelSchedule, Supervisor, Trip, band_sum_dof
+from liveshape.spectra import CrossSpectrum, chi2_interval_db, welch_dof
+from liveshape.stages import (
+    CONNECT_SEGMENTS,
+    DecisionPool,
+    analyse_connection,
+    segments_for_dof,
+    update_dof_for,
+)
+from liveshape.synth import RandomPhaseSynth
+
+_DB = 10.0 / math.log(10.0)
+#: Fade in of the connection and identification drives, s.
+FADE_IN_S = 0.1
+#: The identification level below the first schedule step, dB.
+IDENTIFY_BELOW_DB = 6.0
+
+
+class Controller:
+    """Closed-loop random-vibration controller, one block at a time.
+
+    Parameters
+    ----------
+    spec : spec.TestSpec
+    calibration : ChainCalibration
+        Units of the chain (``g_per_fs`` converts the response to g).
+    seed : int, optional
+        Seed of the drive synthesis (default ``spec.seed``). The same seed and the same
+        responses give a bit-identical drive.
+    update_dof : float, optional
+        DOF of one update estimate (default :func:`~liveshape.stages.update_dof_for`).
+    end_ramp_s : float
+        Duration of the cosine fade at the end of a completed test, s.
+    background_s : float
+        Duration of the silent look at the start, s (at least two frames).
+    max_delay_s : float
+        Largest loop delay searched, s.
+    """
+
+    def __init__(self, spec: Any, calibration: ChainCalibration, *, seed: int | None = None,
+                 update_dof: float | None = None, end_ramp_s: float = 1.0,
+                 background_s: float = 0.5, max_delay_s: float = 0.5) -> None:
+        c, s = spec.control, spec.safety
+        self.spec = spec
+        self.calibration = calibration
+        self.fs_hz = fs = float(c.fs_hz)
+        self.frame_length = n = int(c.frame_length)
+        self.df_hz = fs / n
+        self._hop = n // 2
+        f_all = np.arange(n // 2 + 1) * self.df_hz
+        target = np.asarray(spec.profile.lines(fs, n), dtype=float)
+        band = target > 0
+        band[0] = band[-1] = False
+        if not band.any():
+            raise ConfigError(
+                f"{spec.source or spec.name}: profile {spec.profile.f_min_hz:g}-"
+                f"{spec.profile.f_max_hz:g} Hz has no line at df = {self.df_hz:g} Hz "
+                f"(control.frame_length = {n})"
+            )
+        self._band = band
+        self._target = target  # g²/Hz at full level, all lines
+        self.f_hz = frozen_array(f_all[band])
+        self._alarm_db = frozen_array(spec.tolerance.alarm_db_at(self.f_hz))
+        self._abort_db = frozen_array(spec.tolerance.abort_db_at(self.f_hz))
+        self._gpf2 = calibration.g_per_fs ** 2
+        self._gamma = float(c.update_gain)
+        rate = min(float(spec.schedule.rate_db_s), float(s.max_rate_db_s))
+        self._rate_db_s = rate
+        self._abort_ramp_s = float(s.abort_ramp_s)
+        self._end_ramp_s = float(end_ramp_s)
+        clip = s.clip_sigma
+        self._rms_limit_fs = float(s.drive_rms_max_fs)
+        if clip is not None:
+            self._rms_limit_fs = min(self._rms_limit_fs, float(s.drive_peak_max_fs) / clip)
+        self._peak_limit_fs = float(s.drive_peak_max_fs)
+        seed = spec.seed if seed is None else seed
+        self._synth = RandomPhaseSynth(fs, n, seed=seed, clip_sigma=clip, gain=0.0,
+                                       rate_db_s=rate, fade_s=self._abort_ramp_s)
+        self.schedule = LevelSchedule(spec.schedule)
+        self.supervisor = Supervisor(s, spec.tolerance, fs_hz=fs, silent_window=self._hop)
+        self._update_dof_target = float(update_dof or update_dof_for(c.target_dof))
+        self._k_update = segments_for_dof(self._update_dof_target)
+        self._k_identify = segments_for_dof(float(c.target_dof))
+        self._nu_update = welch_dof(self._k_update)
+        self._pool = DecisionPool(float(c.target_dof), self._nu_update, c.averaging)
+        self._settle = self._hop  # plant settling after a drive change, samples
+        self._max_lag = max(1, int(round(max_delay_s * fs)))
+        self._bg_len = max(int(round(background_s * fs)), 2 * n)
+        self._fade_in = max(1, int(math.ceil(FADE_IN_S * fs)))
+
+        # streams
+        self._n_in = 0  # response samples received
+        self._n_out = 0  # drive samples produced
+        self._y_next = 0  # next response sample to process
+        self._ypend: list[np.ndarray] = []
+        self._hist = np.zeros(0)
+        self._hist0 = 0
+        self._delay: int | None = None
+        # state
+        self._stage = "connect"
+        self._phase = "background"
+        self._status = "running"
+        self._trip: Trip | None = None
+        self._stop_reason: str | None = None
+        self._events: list[Event] = []
+        self._recent: deque[Event] = deque(maxlen=12)
+        self._bg: list[np.ndarray] = []
+        self._rec_x: list[np.ndarray] = []
+        self._rec_y: list[np.ndarray] = []
+        self._rec_start = 0
+        self._rec_len = self._fade_in + (CONNECT_SEGMENTS + 1) * self._hop + self._max_lag
+        self._connection = None
+        self._drive = np.zeros(target.size)  # drive PSD at full level, FS²/Hz
+        self._h1 = np.full(target.size, np.nan + 0j)  # g/FS
+        self._coh = np.zeros(target.size)
+        self._frozen = np.zeros(target.size, dtype=bool)
+        self._est = CrossSpectrum(fs, n, averaging="linear")
+        self._valid_from = math.inf  # first response index usable for the estimate
+        self._est_gain = 0.0  # gain the estimate's data was played at
+        self._est_segments = 0
+        self._est_total = 0.0
+        self._target_sum = float(target[band].sum())
+        self._seg_band_dof = band_sum_dof(target[band], 2.0)  # one periodogram: 2 DOF a line
+        self._switch_to: tuple[np.ndarray, float] | None = None
+        self._ceiling_hit = False
+        self._clipped = 0
+        self._peak = 0.0
+        self._tail_left: int | None = None
+        self._updates = 0
+        self._updates_to_tol: int | None = None
+        self._last_update: UpdateRecord | None = None
+        self._decision: dict[str, Any] | None = None
+        self._alarm_on = False
+        self._emit("stage", "connect: looking at the background noise", {"stage": "connect"})
+
+    # ------------------------------------------------------------------ public properties
+    @property
+    def t_s(self) -> float:
+        """Run time, s: response samples received / fs."""
+        return self._n_in / self.fs_hz
+
+    @property
+    def stage(self) -> str:
+        return self._stage
+
+    @property
+    def status(self) -> str:
+        """``running``, then ``completed``, ``aborted`` or ``stopped``."""
+        return self._status
+
+    @property
+    def finished(self) -> bool:
+        return self._stage == "done"
+
+    @property
+    def trip(self) -> Trip | None:
+        return self._trip
+
+    @property
+    def loop_delay_samples(self) -> int | None:
+        return self._delay
+
+    @property
+    def last_update(self) -> UpdateRecord | None:
+        return self._last_update
+
+    @property
+    def connection(self):
+        """The :class:`~liveshape.stages.ConnectionCheck`, once made."""
+        return self._connection
+
+    @property
+    def update_interval_s(self) -> float:
+        """Run time between two equalizer updates, s: the drive change's transition (one
+        frame), plant settling (half a frame) and loop delay, then the update's segments."""
+        n = self.frame_length + self._settle + (self._delay or 0) + (self._k_update + 1) * self._hop
+        return n / self.fs_hz
+
+    @property
+    def drive_rms_limit_fs(self) -> float:
+        """Effective drive rms ceiling, FS."""
+        return self._rms_limit_fs
+
+    def drain_events(self) -> list[Event]:
+        """Events since the last call, oldest first."""
+        out, self._events = self._events, []
+        return out
+
+    # ------------------------------------------------------------------ control from the shell
+    def request_stop(self, reason: str = "stop requested") -> None:
+        """Ramp the drive down within ``abort_ramp_s`` and finish with status ``stopped``."""
+        if self._status != "running":
+            return
+        self._status = "stopped"
+        self._stop_reason = reason
+        self._emit("stop", f"stop: {reason}", {"reason": reason})
+        self._begin_ramp_down(self._abort_ramp_s)
+
+    def report_underflow(self, count: int) -> None:
+        """The rig's output ran dry ``count`` times: trips ``controller_late``."""
+        if count > 0:
+            self._emit("underflow", f"{count} drive underflows", {"underflows": int(count)})
+        trip = self.supervisor.report_underflow(self.t_s, count)
+        if trip is not None:
+            self._abort(trip)
+
+    # ------------------------------------------------------------------ the exchange
+    def exchange(self, response_fs: Any) -> np.ndarray:
+        """Take the response recorded while the previous drive block played; return the next.
+
+        Parameters
+        ----------
+        response_fs : array_like
+            Response block, FS (first call: zeros of the wanted block length).
+
+        Returns
+        -------
+        ndarray
+            Drive block of the same length, FS, within ``±drive_peak_max_fs``.
+        """
+        y = np.array(response_fs, dtype=float).reshape(-1)
+        n = y.size
+        t0 = self._n_in / self.fs_hz
+        if self._stage != "done" and self._status != "aborted":
+            trip = self.supervisor.check_block(t0, y, drive_up=None)
+            if trip is not None:
+                self._abort(trip)
+        if not np.isfinite(y).all():
+            y[~np.isfinite(y)] = 0.0
+        self._ypend.append(y)
+        self._n_in += n
+        self._process()
+        return self._make_drive(n)
+
+    # ------------------------------------------------------------------ processing
+    def _process(self) -> None:
+        lag = self._delay if self._delay is not None else 0
+        end = min(self._n_in, self._n_out + lag)
+        if end <= self._y_next:
+            return
+        ys = np.concatenate(self._ypend) if len(self._ypend) > 1 else self._ypend[0]
+        k = end - self._y_next
+        y, rest = ys[:k], ys[k:]
+        self._ypend = [rest] if rest.size else []
+        i0 = self._y_next
+        x = self._history(i0 - lag, end - lag)
+        self._y_next = end
+        self._trim_history()
+        if self._stage == "connect":
+            self._connect(x, y, i0)
+        elif self._stage in ("identify", "equalize", "full_level"):
+            if self._status == "running":
+                trip = self.supervisor.check_silence(i0 / self.fs_hz, y,
+                                                     drive_up=bool(np.any(x)))
+                if trip is not None:
+                    self._abort(trip)
+                    return
+                if self.supervisor.silent_in_last_block and self._valid_from < math.inf:
+                    # a dropout shorter than the rule's window: its data must not enter an
+                    # estimate (it would read as low control and pull the drive up)
+                    self._restart_estimate(after=self._n_out)
+                    self._emit("dropout", "response silent: estimate restarted",
+                               {"silent_samples": self.supervisor.silent_run_samples})
+            self._estimate(x, y, i0)
+
+    def _history(self, a: int, b: int) -> np.ndarray:
+        out = np.zeros(b - a)
+        lo, hi = max(a, self._hist0), min(b, self._hist0 + self._hist.size)
+        if hi > lo:
+            out[lo - a: hi - a] = self._hist[lo - self._hist0: hi - self._hist0]
+        return out
+
+    def _trim_history(self) -> None:
+        keep_from = self._y_next - (self._delay if self._delay is not None else self._max_lag)
+        cut = keep_from - self._hist0
+        if cut > 4 * self.frame_length:
+            self._hist = self._hist[cut:].copy()
+            self._hist0 += cut
+
+    # ------------------------------------------------------------------ connect
+    def _connect(self, x: np.ndarray, y: np.ndarray, i0: int) -> None:
+        if self._phase == "background":
+            self._bg.append(y[: max(0, self._bg_len - i0)])
+            return
+        a = max(i0, self._rec_start)
+        if a < i0 + y.size:
+            self._rec_x.append(x[a - i0:])
+            self._rec_y.append(y[a - i0:])
+        have = i0 + y.size - self._rec_start
+        if self._phase != "drive" or have < self._rec_len:
+            return
+        self._phase = "analysed"
+        xr = np.concatenate(self._rec_x)[: self._rec_len]
+        yr = np.concatenate(self._rec_y)[: self._rec_len]
+        bg = np.concatenate(self._bg) if self._bg else np.zeros(0)
+        chk = analyse_connection(xr, yr, bg, fs_hz=self.fs_hz, nperseg=self.frame_length,
+                                 band=self._band, max_lag=self._max_lag, skip=self._fade_in)
+        self._connection = chk
+        self._rec_x, self._rec_y, self._bg = [], [], []
+        t = self.t_s
+        s = self.spec.safety
+        data = {"loop_delay_samples": chk.delay_samples, "delay_peak": chk.delay_peak,
+                "mean_coherence": chk.mean_coherence, "response_rms_fs": chk.response_rms_fs,
+                "background_rms_fs": chk.background_rms_fs, "snr_db": chk.snr_db,
+                "calibration_delay_samples": self.calibration.loop_delay_samples}
+        self._emit("connect", f"connect: loop delay {chk.delay_samples} samples, mean coherence "
+                   f"{chk.mean_coherence:.2f}, SNR {chk.snr_db:.1f} dB", data)
+        if chk.response_rms_fs < s.silent_floor_fs:
+            self._abort(Trip("response_silent",
+                             f"control channel silent during the connection check: rms "
+                             f"{chk.response_rms_fs:.2e} FS < {s.silent_floor_fs:.2e} FS", t, data))
+            return
+        if chk.mean_coherence < s.connect_coherence_min:
+            self._abort(Trip("connect_check",
+                             f"control channel does not respond to the drive: mean coherence "
+                             f"{chk.mean_coherence:.2f} < {s.connect_coherence_min:g}", t, data))
+            return
+        self._delay = chk.delay_samples
+        # identification drive: the target shape through the connection FRF, 6 dB below step 1
+        c = self.spec.control
+        h = chk.h1 * self.calibration.g_per_fs
+        self._h1 = np.where(np.isfinite(h), h, 0.0)  # until the identification replaces it
+        g_id = 10.0 ** ((self.schedule.steps_db[0] - IDENTIFY_BELOW_DB) / 20.0)
+        res = equalizer.initial_drive(self._target, h, chk.coherence, max_boost_db=c.max_boost_db,
+                                      coherence_min=s.connect_coherence_min, band=self._band,
+                                      ceiling_ms_fs2=self._ceiling_ms(g_id), df_hz=self.df_hz)
+        self._switch_to = (np.array(res.drive_psd), g_id)
+        self._set_stage("identify", f"identify: H1 at {20 * math.log10(g_id):.1f} dB")
+        self._synth.set_gain(0.0, duration_s=FADE_IN_S)
+
+    # ------------------------------------------------------------------ estimation
+    def _estimate(self, x: np.ndarray, y: np.ndarray, i0: int) -> None:
+        a = self._valid_from
+        if a >= i0 + y.size or self._status != "running":
+            return
+        j = int(max(0, a - i0))
+        self._est.push(x[j:], y[j:])
+        k = self._est.n_segments
+        if k == self._est_segments:
+            return
+        m = k - self._est_segments
+        self._est_segments = k
+        t = self.t_s
+        # fast rules on the newest segment(s) alone: the band sum of their periodograms is the
+        # difference of the running sums (linear averaging)
+        ctrl = self._est.gyy[self._band] * self._gpf2
+        total = float(ctrl.sum()) * k
+        newest = (total - self._est_total) / m
+        self._est_total = total
+        g_ref = self._est_gain
+        if self._stage == "identify":  # the identification runs 6 dB below the first step
+            g_ref = 10.0 ** (self.schedule.steps_db[0] / 20.0)
+        g = self._est_gain
+        predicted = float(np.sum(np.abs(self._h1[self._band]) ** 2 * self._drive[self._band]))
+        trip = self.supervisor.check_segment(
+            t, control_sum=newest, target_sum=self._target_sum * g_ref**2,
+            band_dof=self._seg_band_dof * m, predicted_sum=predicted * g * g)
+        if trip is not None:
+            self._abort(trip)
+            return
+        if self._stage == "identify" and k >= self._k_identify:
+            self._identified()
+        elif self._stage in ("equalize", "full_level") and k >= self._k_update:
+            self._update(ctrl)
+
+    def _restart_estimate(self, *, after: int) -> None:
+        """New estimate from drive sample ``after`` on (plus transition, settling and delay)."""
+        self._est.reset()
+        self._est_segments = 0
+        self._est_total = 0.0
+        self._valid_from = after + self._settle + (self._delay or 0)
+        self._clipped = 0
+        self._peak = 0.0
+
+    def _identified(self) -> None:
+        c = self.spec.control
+        self._h1 = self._est.h1 * self.calibration.g_per_fs
+        self._coh = np.nan_to_num(self._est.coherence, nan=0.0)
+        self._frozen = self._band & (self._coh < c.coherence_min)
+        g1 = 10.0 ** (self.schedule.level_db / 20.0)
+        res = equalizer.initial_drive(self._target, self._h1, self._coh,
+                                      max_boost_db=c.max_boost_db, coherence_min=c.coherence_min,
+                                      band=self._band, ceiling_ms_fs2=self._ceiling_ms(g1),
+                                      df_hz=self.df_hz)
+        self._drive = np.array(res.drive_psd)
+        self._ceiling_hit = res.ceiling_hit
+        coh_b = self._coh[self._band]
+        self._emit("identify", f"identified: mean coherence {float(np.mean(coh_b)):.3f}, "
+                   f"{int(np.count_nonzero(self._frozen))} lines frozen, "
+                   f"{res.n_step_limited} boost-limited",
+                   {"mean_coherence": float(np.mean(coh_b)), "min_coherence": float(coh_b.min()),
+                    "lines_frozen": int(np.count_nonzero(self._frozen)),
+                    "lines_boost_limited": res.n_step_limited, "dof": welch_dof(self._k_identify),
+                    "ceiling_scale": res.ceiling_scale})
+        self._synth.set_psd(self._drive)
+        self._set_stage("equalize", "equalize")
+        self._go_to_level(self.schedule.level_db)
+
+    def _go_to_level(self, level_db: float) -> None:
+        g = 10.0 ** (level_db / 20.0)
+        g_now = self._synth.gain_target
+        ramp = 0 if g_now <= 0 else int(math.ceil(abs(20 * math.log10(g / g_now))
+                                                  * self.fs_hz / self._rate_db_s))
+        self._synth.set_gain(g, rate_db_s=self._rate_db_s)
+        self._est_gain = g
+        self._pool.reset()
+        self.supervisor.reset_persistence()
+        self._restart_estimate(after=self._n_out + max(ramp, self.frame_length))
+        self._emit("level", f"level {level_db:+.1f} dB (ramp {ramp / self.fs_hz:.2f} s)",
+                   {"level_db": level_db, "step_index": self.schedule.index,
+                    "ramp_s": ramp / self.fs_hz})
+
+    def _ceiling_ms(self, gain: float) -> float:
+        """Mean-square ceiling of the full-level drive PSD when played at ``gain``, FS²."""
+        return (self._rms_limit_fs / gain) ** 2
+
+    def _update(self, ctrl: np.ndarray) -> None:
+        c = self.spec.control
+        t = self.t_s
+        g = self._est_gain
+        band = self._band
+        target_b = self._target[band] * g * g
+        played = self._drive[band] * g * g
+        predicted = np.abs(self._h1[band]) ** 2 * played
+        at_limit = self._ceiling_hit or self._clipped > 0
+        verdict = self.supervisor.check_update(
+            t, control_psd=ctrl, target_psd=target_b, dof=self._nu_update,
+            abort_db=self._abort_db, predicted_psd=predicted, drive_at_limit=at_limit)
+        self._updates += 1
+        if verdict.trip is not None:
+            self._record_update(t, ctrl, target_b, played, None, verdict.rms_error_db, None)
+            self._abort(verdict.trip)
+            return
+        self._pool.push(ctrl, self._nu_update)
+        res = None
+        if verdict.pending:
+            self._emit("hold", f"update {self._updates} held: {', '.join(verdict.pending)} "
+                       "pending", {"update": self._updates, "pending": list(verdict.pending)})
+            self._restart_estimate(after=self._n_out - self._settle)
+        else:
+            full = np.zeros(self._target.size)
+            full[band] = ctrl / (g * g)
+            res = equalizer.update_drive(
+                self._drive, self._target, full, gain=self._gamma, max_step_db=c.max_step_db,
+                band=band, ceiling_ms_fs2=self._ceiling_ms(g), df_hz=self.df_hz,
+                frozen=self._frozen, law=c.law, h1=self._h1,
+                control_dof=self._nu_update)
+            self._drive = np.array(res.drive_psd)
+            self._ceiling_hit = res.ceiling_hit
+            self._synth.set_psd(self._drive)
+            self._restart_estimate(after=self._n_out + self.frame_length)
+        decision = self._decide(t)
+        self._record_update(t, ctrl, target_b, played, res, verdict.rms_error_db, decision)
+
+    def _record_update(self, t, ctrl, target_b, played, res, rms_err, in_tol) -> None:
+        with np.errstate(divide="ignore"):
+            dev = _DB * np.log(np.maximum(ctrl, 1e-300) / target_b)
+        rec = UpdateRecord(
+            index=self._updates, t_s=t, stage=self._stage, level_db=self.schedule.level_db,
+            dof=self._nu_update, f_hz=self.f_hz, control_psd=frozen_array(ctrl),
+            target_psd=frozen_array(target_b), drive_psd=frozen_array(played),
+            new_drive_psd=frozen_array(self._drive[self._band]),
+            h1=frozen_array(self._h1[self._band], complex),
+            coherence=frozen_array(self._coh[self._band]), rms_error_db=float(rms_err),
+            max_dev_db=float(dev.max()), min_dev_db=float(dev.min()), applied=res is not None,
+            lines_step_limited=0 if res is None else res.n_step_limited,
+            lines_held=0 if res is None else res.n_held,
+            ceiling_scale=1.0 if res is None else res.ceiling_scale)
+        self._last_update = rec
+        self._emit("update", f"update {rec.index}: rms {rec.rms_error_db:+.2f} dB, lines "
+                   f"{rec.min_dev_db:+.1f}..{rec.max_dev_db:+.1f} dB",
+                   {"update": rec.index, "rms_error_db": rec.rms_error_db,
+                    "max_dev_db": rec.max_dev_db, "min_dev_db": rec.min_dev_db,
+                    "dof": rec.dof, "applied": rec.applied, "level_db": rec.level_db,
+                    "lines_step_limited": rec.lines_step_limited,
+                    "ceiling_scale": rec.ceiling_scale, "in_tolerance": in_tol,
+                    "drive_rms_fs": math.sqrt(float(played.sum()) * self.df_hz)})
+
+    def _decide(self, t: float) -> bool | None:
+        """Tolerance decision on the pool; steps the level when due. None: not enough DOF."""
+        if not self._pool.ready:
+            return None
+        g = self._est_gain
+        ctrl = self._pool.psd
+        target_b = self._target[self._band] * g * g
+        with np.errstate(divide="ignore"):
+            dev = _DB * np.log(np.maximum(ctrl, 1e-300) / target_b)
+        rms_err = _DB * math.log(float(ctrl.sum()) / float(target_b.sum()))
+        n_alarm = int(np.count_nonzero(np.abs(dev) > self._alarm_db))
+        n_abort = int(np.count_nonzero(np.abs(dev) > self._abort_db))
+        rms_ok = abs(rms_err) <= self.spec.tolerance.rms_alarm_db
+        in_tol = n_alarm == 0 and rms_ok
+        self._decision = {"t_s": t, "control_psd": ctrl, "target_psd": target_b, "dev_db": dev,
+                          "rms_error_db": rms_err, "lines_outside_alarm": n_alarm,
+                          "lines_outside_abort": n_abort, "dof": self._pool.dof}
+        if in_tol and self._updates_to_tol is None:
+            self._updates_to_tol = self._updates
+        if not in_tol and not self._alarm_on:
+            self._alarm_on = True
+            self._emit("alarm", f"alarm: {n_alarm} lines outside the alarm limits, rms "
+                       f"{rms_err:+.2f} dB", {"lines_outside_alarm": n_alarm,
+                                              "rms_error_db": rms_err})
+        elif in_tol and self._alarm_on:
+            self._alarm_on = False
+            self._emit("alarm_clear", "control back inside tolerance", {"rms_error_db": rms_err})
+        if self.schedule.observe(t, in_tol) and self._status == "running":
+            level, _ = self.schedule.step_up()
+            g_new = 10.0 ** (level / 20.0)
+            scale = self._rescale_for(g_new)
+            self._go_to_level(level)
+            if scale < 1.0:
+                self._emit("ceiling", f"drive scaled by {scale:.3f} to stay within the ceiling",
+                           {"ceiling_scale": scale})
+        return in_tol
+
+    def _rescale_for(self, gain: float) -> float:
+        ms = float(self._drive.sum()) * self.df_hz
+        cap = self._ceiling_ms(gain)
+        if ms <= cap:
+            return 1.0
+        scale = cap / ms
+        self._drive *= scale
+        self._ceiling_hit = True
+        self._synth.set_psd(self._drive)
+        return scale
+
+    # ------------------------------------------------------------------ drive generation
+    def _make_drive(self, n: int) -> np.ndarray:
+        synth = self._synth
+        if self._stage == "connect" and self._phase == "background" and self._n_out >= \
+                self._bg_len and self._status == "running":
+            flat = np.where(self._band, 1.0, 0.0)
+            flat *= self.spec.safety.connect_level_fs ** 2 / (flat.sum() * self.df_hz)
+            synth.set_psd(flat)
+            synth.set_gain(1.0, duration_s=FADE_IN_S)
+            self._phase = "drive"
+            self._rec_start = self._n_out
+            self._emit("stage", f"connect: flat noise at {self.spec.safety.connect_level_fs:g} "
+                       "FS rms", {"stage": "connect",
+                                  "connect_level_fs": self.spec.safety.connect_level_fs})
+        if self._switch_to is not None and synth.gain == 0.0 and not synth.ramping:
+            psd, g = self._switch_to
+            self._switch_to = None
+            if self._status == "running":
+                self._drive = psd
+                synth.set_psd(psd)
+                synth.set_gain(g, duration_s=FADE_IN_S)
+                self._est_gain = g
+                self._restart_estimate(after=self._n_out + max(self._fade_in, self.frame_length))
+        if self._stage == "done":
+            out = np.zeros(n)
+        else:
+            settled_before = not synth.ramping and synth.gain == 1.0
+            out = synth.read(n)
+            peak = float(np.max(np.abs(out))) if n else 0.0
+            if peak >= self._peak_limit_fs:  # hard limit, counted (the ceiling should prevent it)
+                np.clip(out, -self._peak_limit_fs, self._peak_limit_fs, out=out)
+                self._clipped += int(np.count_nonzero(np.abs(out) >= self._peak_limit_fs))
+                peak = self._peak_limit_fs
+            self._peak = max(self._peak, peak)
+            self._after_read(n, settled_before and not synth.ramping)
+        self._hist = np.concatenate((self._hist, out))
+        self._n_out += n
+        return out
+
+    def _after_read(self, n: int, settled_full: bool) -> None:
+        synth = self._synth
+        if self._status == "running" and self._stage in ("equalize", "full_level"):
+            if self._stage == "equalize" and self.schedule.at_last_step and settled_full:
+                self._set_stage("full_level", "full level: counting test time")
+            if self._stage == "full_level":
+                self.schedule.count_full_level(n / self.fs_hz, settled=settled_full)
+                if self.schedule.complete:
+                    self._status = "completed"
+                    self._begin_ramp_down(self._end_ramp_s)
+        if self._stage == "ramp_down" and synth.gain == 0.0 and not synth.ramping:
+            if self._tail_left is None:
+                self._tail_left = (self._delay or self._max_lag) + self.frame_length
+            self._tail_left -= n
+            if self._tail_left <= 0:
+                self._set_stage("done", f"done: {self._status}")
+
+    def _begin_ramp_down(self, duration_s: float) -> None:
+        self._switch_to = None
+        self._synth.set_gain(0.0, duration_s=duration_s)
+        if self._stage not in ("ramp_down", "done"):
+            self._set_stage("ramp_down", f"ramp down in {duration_s:g} s")
+
+    def _abort(self, trip: Trip) -> None:
+        if self._status == "aborted":
+            self._emit("trip", f"also tripped: {trip.message}", {"rule": trip.rule})
+            return
+        self._trip = trip
+        self._status = "aborted"
+        self._emit("trip", f"ABORT {trip.rule}: {trip.message}",
+                   {"rule": trip.rule, **trip.detail})
+        if self._stage != "done":
+            self._begin_ramp_down(self._abort_ramp_s)
+
+    # ------------------------------------------------------------------ events and views
+    def _set_stage(self, stage: str, message: str) -> None:
+        self._stage = stage
+        self._emit("stage", message, {"stage": stage})
+
+    def _emit(self, kind: str, message: str, data: dict[str, Any]) -> None:
+        ev = Event(self.t_s, kind, message, dict(data))
+        self._events.append(ev)
+        self._recent.append(ev)
+
+    def snapshot(self) -> ControlSnapshot:
+        """A frozen view of the loop now."""
+        band = self._band
+        g = self._synth.gain
+        lvl_gain = self._est_gain if self._stage in ("equalize", "full_level") else g
+        target_b = self._target[band] * lvl_gain ** 2
+        d = self._decision
+        if d is not None:
+            ctrl, dev, dof = d["control_psd"], d["dev_db"], d["dof"]
+            rms_err, n_al, n_ab = d["rms_error_db"], d["lines_outside_alarm"], \
+                d["lines_outside_abort"]
+            target_b = d["target_psd"]
+        elif self._last_update is not None:
+            u = self._last_update
+            ctrl, dof, target_b = u.control_psd, u.dof, u.target_psd
+            with np.errstate(divide="ignore"):
+                dev = _DB * np.log(np.maximum(ctrl, 1e-300) / target_b)
+            rms_err = u.rms_error_db
+            n_al = int(np.count_nonzero(np.abs(dev) > self._alarm_db))
+            n_ab = int(np.count_nonzero(np.abs(dev) > self._abort_db))
+        else:
+            ctrl, dev, dof, rms_err, n_al, n_ab = None, None, 0.0, math.nan, -1, -1
+        lo, hi = chi2_interval_db(dof) if dof > 0 else (math.nan, math.nan)
+        drive_b = self._drive[band] * g * g
+        return ControlSnapshot(
+            t_s=self.t_s, stage=self._stage, status=self._status,
+            level_db=self.schedule.level_db,
+            gain_db=20 * math.log10(g) if g > 0 else -math.inf,
+            step_index=self.schedule.index, n_steps=len(self.schedule.steps_db),
+            elapsed_s=self.t_s, remaining_s=self.schedule.remaining_s,
+            time_at_full_level_s=self.schedule.time_at_full_level_s,
+            full_level_s=self.schedule.full_level_s,
+            control_grms_g=math.sqrt(float(np.sum(ctrl)) * self.df_hz) if ctrl is not None
+            else math.nan,
+            target_grms_g=math.sqrt(float(np.sum(target_b)) * self.df_hz),
+            drive_rms_fs=math.sqrt(float(np.sum(drive_b)) * self.df_hz),
+            drive_rms_limit_fs=self._rms_limit_fs, drive_peak_fs=self._peak,
+            drive_peak_limit_fs=self._peak_limit_fs, f_hz=self.f_hz,
+            control_psd=None if ctrl is None else frozen_array(ctrl),
+            target_psd=frozen_array(target_b), drive_psd=frozen_array(drive_b),
+            alarm_db=self._alarm_db, abort_db=self._abort_db,
+            max_dev_db=float(np.max(dev)) if dev is not None else math.nan,
+            min_dev_db=float(np.min(dev)) if dev is not None else math.nan,
+            lines_outside_alarm=n_al, lines_outside_abort=n_ab, rms_error_db=float(rms_err),
+            dof=float(dof), chi2_lo_db=float(lo), chi2_hi_db=float(hi), updates=self._updates,
+            loop_delay_samples=self._delay, trip=self._trip, recent_events=tuple(self._recent))
+
+    def result(self) -> RunResult:
+        """Outcome so far (final once :attr:`finished`)."""
+        d = self._decision
+        status = self._status if self._status != "running" else "running"
+        reason = self._trip.message if self._trip is not None else self._stop_reason
+        if d is None:
+            vals = (math.nan, math.nan, -1, -1, math.nan, math.nan, 0.0)
+        else:
+            vals = (d["rms_error_db"], float(np.max(np.abs(d["dev_db"]))),
+                    d["lines_outside_alarm"], d["lines_outside_abort"],
+                    math.sqrt(float(np.sum(d["control_psd"])) * self.df_hz),
+                    math.sqrt(float(np.sum(d["target_psd"])) * self.df_hz), d["dof"])
+        return RunResult(
+            status=status, abort_reason=reason, trip=self._trip,
+            updates_to_tolerance=self._updates_to_tol, final_rms_error_db=vals[0],
+            final_max_dev_db=vals[1], final_lines_outside_alarm=vals[2],
+            final_lines_outside_abort=vals[3], control_grms_g=vals[4], target_grms_g=vals[5],
+            dof=vals[6], time_at_full_level_s=self.schedule.time_at_full_level_s,
+            updates=self._updates)
+
+
+def run_offline(controller: Controller, rig: Any, block_size: int, *,
+                max_s: float | None = None) -> RunResult:
+    """Step ``controller`` and ``rig`` (``process(drive) -> response``) as fast as possible.
+
+    The first exchange gets zeros; each drive block goes through ``rig.process`` and its
+    response is the next exchange's input. After ``max_s`` of run time (default: a generous
+    bound from the schedule) the controller is asked to stop.
+    """
+    if max_s is None:
+        sch = controller.spec.schedule
+        max_s = 120.0 + 4.0 * sch.full_level_s + 60.0 * len(sch.steps_db)
+    response = np.zeros(int(block_size))
+    stopped = False
+    while not controller.finished:
+        drive = controller.exchange(response)
+        response = rig.process(drive)
+        if not stopped and controller.t_s >= max_s:
+            controller.request_stop(f"run_offline time limit of {max_s:g} s")
+            stopped = True
+    return controller.result()
