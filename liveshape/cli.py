@@ -12,7 +12,6 @@ import json
 import math
 import sys
 from collections.abc import Sequence
-from pathlib import Path
 from typing import Any
 
 from liveshape import __version__
@@ -89,7 +88,7 @@ def _feasibility(spec: Any) -> Any:
             f"--rig = audio:{spec.rig.device}: feasibility needs a plant model; "
             "check against the simulated rig that models it (--rig sim:PLANT.yaml)"
         )
-    plant = load_plant(spec.rig.plant, base_dir=Path(spec.source).parent if spec.source else None)
+    plant = load_plant(spec.rig.plant)
     return assess(
         spec.profile, plant, fs_hz=spec.control.fs_hz, frame_length=spec.control.frame_length
     )
@@ -121,6 +120,61 @@ def _cmd_synth(args: argparse.Namespace) -> int:
     with dashboard.progress_bar(console, f"writing {args.output}") as progress:
         result = make_drive_file(spec, args.output, progress=progress, **kwargs)
     console.print(dashboard.synth_summary(result.to_dict()))
+    return 0
+
+
+def _cmd_run(args: argparse.Namespace) -> int:
+    from liveshape import dashboard
+    from liveshape.spec import load_spec, parse_fault
+
+    overrides = _rig_overrides(args.rig)
+    if args.fault:
+        faults = [parse_fault(text) for text in args.fault]
+        overrides["faults"] = faults
+    if args.duration is not None:
+        overrides["schedule.full_level_s"] = args.duration
+    if args.calibration is not None:
+        overrides["rig.calibration"] = args.calibration
+    if args.uncalibrated:
+        overrides["rig.uncalibrated"] = True
+    if args.seed is not None:
+        overrides["seed"] = args.seed
+    spec = load_spec(args.spec, overrides)
+    # The cautions come first, before anything is driven (on stderr with --json).
+    notice_console = dashboard.make_console(stderr=args.json)
+    notice_console.print(dashboard.safety_notice())
+    if spec.rig.kind == "audio":
+        from liveshape.session import run_audio_session
+
+        runner: Any = run_audio_session
+        kwargs: dict[str, Any] = {}
+    else:
+        from liveshape.session import run_session
+
+        runner = run_session
+        kwargs = {"fast": args.fast}
+    if args.block_size is not None:
+        kwargs["block_size"] = args.block_size
+    if args.json:
+        session = runner(spec, out_dir=args.out, **kwargs)
+        _print_json(session.summary())
+        return session.result.exit_status
+    console = dashboard.make_console()
+    with dashboard.LiveView(console) as view:
+        session = runner(spec, out_dir=args.out, on_snapshot=view.update, **kwargs)
+    console.print(dashboard.run_summary(session.summary()))
+    console.print(f"record: {session.run_dir}  (liveshape report {session.run_dir})")
+    return session.result.exit_status
+
+
+def _cmd_report(args: argparse.Namespace) -> int:
+    from liveshape.report import render_report
+
+    result = render_report(args.run_dir, out_dir=args.out)
+    sys.stdout.write(result.summary.rstrip("\n") + "\n")
+    for name, path in result.pngs.items():
+        sys.stdout.write(f"{name}: {path}\n")
+    sys.stdout.write(f"summary: {result.summary_path}\n")
     return 0
 
 
@@ -176,6 +230,35 @@ def build_parser() -> argparse.ArgumentParser:
                    help="realizations to try for the crest-factor criterion (default 10)")
     s.add_argument("--json", action="store_true", help="print the sidecar as one JSON object")
     s.set_defaults(func=_cmd_synth)
+
+    r = sub.add_parser("run", help="run a closed-loop test (simulated rig unless told otherwise)",
+                       description="Run a closed-loop random test. The simulated rig is the "
+                       "default; a real card is driven only with --rig audio:DEVICE. Ctrl-C "
+                       "or SIGTERM ramps the drive down and stops.")
+    r.add_argument("spec", metavar="SPEC", help="test definition (.yaml) or profile (.csv)")
+    r.add_argument("--rig", help="sim (default), sim:PRESET, sim:PLANT.yaml or audio:DEVICE")
+    r.add_argument("--calibration", metavar="FILE", help="chain calibration file (audio rigs)")
+    r.add_argument("--uncalibrated", action="store_true",
+                   help="run an audio rig without calibration (levels in full scale only; "
+                   "the record says so)")
+    r.add_argument("--fast", action="store_true",
+                   help="simulated rig: run as fast as the CPU allows (same results per seed)")
+    r.add_argument("--seed", type=_whole, metavar="N", help="random seed")
+    r.add_argument("--fault", action="append", metavar="KIND@SECONDS",
+                   help="inject a fault into the simulated rig, e.g. sensor_gain@12=0.5 "
+                   "or noise_burst@20=0.1/0.5 (repeatable)")
+    r.add_argument("--duration", type=_positive_float, metavar="S",
+                   help="time at full level, s (overrides schedule.full_level_s)")
+    r.add_argument("--block-size", type=_whole, metavar="N", help="samples per block")
+    r.add_argument("--out", default="runs", metavar="DIR",
+                   help="folder for run records (default: runs)")
+    r.add_argument("--json", action="store_true", help="print the run summary as JSON")
+    r.set_defaults(func=_cmd_run)
+
+    rp = sub.add_parser("report", help="plots and a text summary from a run record")
+    rp.add_argument("run_dir", metavar="RUN_DIR", help="a run folder made by liveshape run")
+    rp.add_argument("--out", metavar="DIR", help="where to write (default RUN_DIR/report)")
+    rp.set_defaults(func=_cmd_report)
     return p
 
 

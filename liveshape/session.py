@@ -1,0 +1,261 @@
+"""The shell around one run: rig, controller, record, pacing, stop signals, live view.
+
+This is the only place where wall-clock time enters a run: the controller counts samples, the
+session decides whether to pace the loop in real time (the default on the simulated rig) or run
+it as fast as the CPU allows (``fast=True``, identical results for the same seed). It joins the
+pure core (:class:`~liveshape.controller.Controller`, :class:`~liveshape.rigs.sim.SimRig`) with
+the record (:mod:`liveshape.record`) and the view callback, and turns Ctrl-C and SIGTERM into
+the controller's controlled ramp-down.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import signal
+import threading
+import time
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from liveshape.chain import ChainCalibration
+from liveshape.controller import Controller
+from liveshape.errors import ConfigError
+from liveshape.record import RunRecorder
+from liveshape.runstate import ControlSnapshot, RunResult
+from liveshape.spec import TestSpec, spec_to_mapping
+
+#: Default block size of the simulated rig, samples (about 21 ms at 48 kHz).
+SIM_BLOCK = 1024
+
+
+@dataclass(frozen=True)
+class SessionResult:
+    """What a run left: the controller's result, the record folder and rig figures."""
+
+    result: RunResult
+    run_dir: Path
+    rig: dict[str, Any]
+    calibration: dict[str, Any]
+
+    def summary(self) -> dict[str, Any]:
+        """The JSON summary of the run (``run --json`` and ``summary.json``)."""
+        r = self.result
+        trip = r.trip
+        out: dict[str, Any] = {
+            "status": r.status,
+            "abort_reason": r.abort_reason,
+            "abort_rule": r.abort_rule,
+            "exit_status": r.exit_status,
+            "updates_to_tolerance": r.updates_to_tolerance,
+            "final_rms_error_db": r.final_rms_error_db,
+            "final_max_dev_db": r.final_max_dev_db,
+            "final_lines_outside_alarm": r.final_lines_outside_alarm,
+            "final_lines_outside_abort": r.final_lines_outside_abort,
+            "control_grms_g": r.control_grms_g,
+            "target_grms_g": r.target_grms_g,
+            "dof": r.dof,
+            "time_at_full_level_s": r.time_at_full_level_s,
+            "updates": r.updates,
+            "trip": None if trip is None else dataclasses.asdict(trip),
+            "run_dir": str(self.run_dir),
+            "rig": self.rig,
+            "calibration": self.calibration,
+        }
+        return out
+
+
+class StopFlag:
+    """A stop request set from a signal handler or another thread, read by the loop."""
+
+    def __init__(self) -> None:
+        self._event = threading.Event()
+        self.reason = ""
+
+    def set(self, reason: str) -> None:
+        if not self._event.is_set():
+            self.reason = reason
+            self._event.set()
+
+    def is_set(self) -> bool:
+        return self._event.is_set()
+
+
+@contextmanager
+def sigterm_stops(flag: StopFlag) -> Iterator[None]:
+    """While inside, SIGTERM sets ``flag`` (main thread only; elsewhere a no-op)."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+
+    def handler(signum: int, frame: Any) -> None:
+        flag.set("SIGTERM received")
+
+    previous = signal.signal(signal.SIGTERM, handler)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+
+
+def build_sim_rig(spec: TestSpec, seed: int | None) -> tuple[Any, ChainCalibration, dict]:
+    """The simulated rig named by the spec, its calibration (the simulated truth) and mapping."""
+    from liveshape.rigs.plant import load_plant, plant_to_mapping
+    from liveshape.rigs.sim import SimRig
+
+    plant = load_plant(spec.rig.plant)
+    rig = SimRig(plant, spec.control.fs_hz, seed=seed, faults=spec.faults)
+    mapping = {"kind": "sim", "plant": plant_to_mapping(plant)}
+    return rig, rig.calibration, mapping
+
+
+def _calibration_mapping(cal: ChainCalibration) -> dict[str, Any]:
+    data = dataclasses.asdict(cal)
+    data["g_per_fs"] = cal.g_per_fs
+    return data
+
+
+class RunLoop:
+    """Feeds the controller, the rig, the record and the view for one run.
+
+    Parameters
+    ----------
+    controller : Controller
+    recorder : RunRecorder
+    on_snapshot : callable, optional
+        Called with a :class:`ControlSnapshot` at most ``view_hz`` times per wall-clock second.
+    view_hz : float
+    """
+
+    def __init__(
+        self,
+        controller: Controller,
+        recorder: RunRecorder,
+        *,
+        on_snapshot: Callable[[ControlSnapshot], None] | None = None,
+        view_hz: float = 4.0,
+        clock: Callable[[], float] = time.monotonic,
+    ) -> None:
+        self.controller = controller
+        self.recorder = recorder
+        self.on_snapshot = on_snapshot
+        self.view_period_s = 1.0 / view_hz
+        self.clock = clock
+        self._last_view = -np.inf
+        self._last_update: Any = None
+
+    def after_block(self, drive: np.ndarray, response: np.ndarray) -> None:
+        """Record one block pair and whatever the controller has to say since the last one."""
+        ctrl = self.controller
+        self.recorder.signals(drive, response)
+        for ev in ctrl.drain_events():
+            self.recorder.event(ev.t_s, ev.kind, ev.message, ev.data)
+        upd = ctrl.last_update
+        if upd is not None and upd is not self._last_update:
+            self._last_update = upd
+            self.recorder.update_from(upd)
+        if self.on_snapshot is not None:
+            now = self.clock()
+            if now - self._last_view >= self.view_period_s or ctrl.finished:
+                self._last_view = now
+                self.on_snapshot(ctrl.snapshot())
+
+    def run_sim(
+        self, rig: Any, *, block_size: int, fast: bool, stop: StopFlag,
+        sleep: Callable[[float], None] = time.sleep,
+    ) -> RunResult:
+        """Step controller and simulated rig until the controller is done.
+
+        Paced so that run time never gets ahead of wall time unless ``fast``. A stop request
+        (``stop`` set, or Ctrl-C) becomes :meth:`Controller.request_stop`: the loop goes on
+        through the controlled ramp-down.
+        """
+        ctrl = self.controller
+        fs = ctrl.spec.control.fs_hz
+        response = np.zeros(block_size)
+        t0 = self.clock()
+        asked = False
+        while not ctrl.finished:
+            try:
+                if stop.is_set() and not asked:
+                    ctrl.request_stop(stop.reason)
+                    asked = True
+                drive = ctrl.exchange(response)
+                response = rig.process(drive)
+                self.after_block(drive, response)
+                if not fast:
+                    ahead = (ctrl.t_s - block_size / fs) - (self.clock() - t0)
+                    if ahead > 0:
+                        sleep(ahead)
+            except KeyboardInterrupt:
+                stop.set("Ctrl-C")
+        self.after_block(np.zeros(0), np.zeros(0))
+        return ctrl.result()
+
+
+def run_session(
+    spec: TestSpec,
+    *,
+    out_dir: str | Path,
+    fast: bool = False,
+    seed: int | None = None,
+    block_size: int = SIM_BLOCK,
+    on_snapshot: Callable[[ControlSnapshot], None] | None = None,
+    stop: StopFlag | None = None,
+) -> SessionResult:
+    """Run one test on the rig the spec selects and leave a record folder.
+
+    Parameters
+    ----------
+    spec : TestSpec
+        Resolved test definition (``spec.rig.kind`` is ``sim`` here; real cards go through
+        :func:`liveshape.rigs.audio` in :func:`run_audio_session`).
+    out_dir : path
+        Folder under which the run folder is made.
+    fast : bool
+        Run as fast as the CPU allows instead of in real time (same results for the same seed).
+    seed : int, optional
+        Seed of the drive synthesis and the simulated noise (default: ``spec.seed``).
+    block_size : int
+        Samples per exchange with the rig.
+    on_snapshot : callable, optional
+        Live view callback.
+    stop : StopFlag, optional
+        Set it (or send SIGTERM, or press Ctrl-C) to ramp down and stop.
+    """
+    if spec.rig.kind != "sim":
+        raise ConfigError(
+            f"rig.kind = {spec.rig.kind!r}: this session runs the simulated rig; "
+            "use run_audio_session for audio devices"
+        )
+    if block_size < 16:
+        raise ConfigError(f"--block-size = {block_size} must be at least 16 samples")
+    seed = spec.seed if seed is None else seed
+    rig, cal, rig_mapping = build_sim_rig(spec, seed)
+    controller = Controller(spec, cal, seed=seed)
+    stop = stop or StopFlag()
+    recorder = RunRecorder.create(
+        out_dir,
+        name=spec.name,
+        spec_mapping=spec_to_mapping(spec),
+        rig_mapping=rig_mapping,
+        calibration=_calibration_mapping(cal),
+        fs_hz=spec.control.fs_hz,
+        extra={"seed": seed, "fast": fast, "block_size": block_size},
+    )
+    with recorder, sigterm_stops(stop):
+        loop = RunLoop(controller, recorder, on_snapshot=on_snapshot)
+        result = loop.run_sim(rig, block_size=block_size, fast=fast, stop=stop)
+        rig_figures = {"kind": "sim", "plant": spec.rig.plant, **dataclasses.asdict(rig.status)}
+        session = SessionResult(
+            result=result,
+            run_dir=recorder.root,
+            rig=rig_figures,
+            calibration=_calibration_mapping(cal),
+        )
+        recorder.close(session.summary())
+    return session
