@@ -1,0 +1,182 @@
+"""Speed and memory of drive synthesis (figures, not pass/fail tests).
+
+Synthesis of a 48 kHz float32 WAV of 10 and 60 minutes, measured side by side:
+
+``stream``
+    liveshape's :func:`~liveshape.drivefile.make_drive_file`: random-phase overlap-add frames
+    streamed to disk, two passes (statistics, then writing with the Welch check).
+``loop``
+    The bare :class:`~liveshape.synth.RandomPhaseSynth` loop written with soundfile (one pass, no
+    check, no scaling pass): the floor under ``stream``.
+``naive``
+    The whole record in one inverse FFT (random coefficients on ``n / 2 + 1`` lines, ``irfft``,
+    scale to the peak, write at once), implemented only here, for comparison.
+
+Each run is a fresh subprocess so its peak RSS (``ru_maxrss`` of that child, from
+:func:`os.wait4`) is honest. Targets for ``stream``: peak RSS < 200 MB at any duration and at
+least 100x real time. WAVs go to a temporary folder and are deleted after each run.
+
+The profile is the NAVMAT P-9492 screening shape (20-80 Hz +3 dB/oct to 0.04 g²/Hz, flat to
+350 Hz, -3 dB/oct to 2000 Hz), a public broadband example.
+
+Run with ``python -m tests.benchmarks synth`` or ``python -m tests.benchmarks.bench_synth``.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from collections.abc import Callable
+from pathlib import Path
+
+import numpy as np
+
+FS_HZ = 48_000
+FRAME_LENGTH = 8192
+DURATIONS_MIN = (10, 60)
+METHODS = ("stream", "loop", "naive")
+SEED = 1
+_REPO = Path(__file__).resolve().parents[2]
+
+
+def _spec():
+    from liveshape.profile import Profile
+    from liveshape.spec import ControlSettings, TestSpec
+
+    asd_350 = 0.04
+    prof = Profile(
+        (20.0, 80.0, 350.0, 2000.0),
+        (0.04 * (20 / 80), 0.04, asd_350, asd_350 * (350 / 2000)),  # +-3 dB/oct ~ f^(+-1)
+        name="navmat-p9492-shape",
+    )
+    return TestSpec(
+        name="bench", profile=prof, control=ControlSettings(fs_hz=FS_HZ, frame_length=FRAME_LENGTH)
+    )
+
+
+# ------------------------------------------------------------------------------ child side
+def _child_stream(out: Path, duration_s: float) -> dict:
+    from liveshape.drivefile import make_drive_file
+
+    res = make_drive_file(_spec(), out, duration_s=duration_s, seed=SEED)
+    return {"fraction_inside": res.psd_check.fraction_inside, "crest_factor": res.crest_factor}
+
+
+def _child_loop(out: Path, duration_s: float) -> dict:
+    import soundfile as sf
+
+    from liveshape.synth import RandomPhaseSynth
+
+    spec = _spec()
+    synth = RandomPhaseSynth(FS_HZ, FRAME_LENGTH, seed=SEED, clip_sigma=4.0)
+    synth.set_psd(spec.profile.lines(FS_HZ, FRAME_LENGTH))
+    n = round(duration_s * FS_HZ)
+    block = 1 << 16
+    buf = np.empty(block)
+    scale = 1.0 / (4.0 * synth.nominal_rms)  # the clip level is full scale
+    with sf.SoundFile(out, "w", FS_HZ, 1, subtype="FLOAT", format="WAV") as wav:
+        done = 0
+        while done < n:
+            m = min(block, n - done)
+            x = synth.read(m, out=buf[:m])
+            wav.write((x * scale).astype(np.float32))
+            done += m
+    return {"crest_factor": synth.stats.crest_factor}
+
+
+def _child_naive(out: Path, duration_s: float) -> dict:
+    import soundfile as sf
+
+    spec = _spec()
+    n = round(duration_s * FS_HZ)
+    df = FS_HZ / n
+    f = np.fft.rfftfreq(n, 1.0 / FS_HZ)
+    psd = spec.profile.asd_at(f)
+    rng = np.random.default_rng(SEED)
+    amp = n * np.sqrt(psd * df / 2) / np.sqrt(2)  # complex Gaussian, mean square psd * df
+    coef = (rng.standard_normal(f.size) + 1j * rng.standard_normal(f.size)) * amp
+    x = np.fft.irfft(coef, n)
+    x /= np.max(np.abs(x))
+    sf.write(out, x.astype(np.float32), FS_HZ, subtype="FLOAT", format="WAV")
+    return {}
+
+
+def _child(method: str, out: str, duration_s: float) -> None:
+    work = {"stream": _child_stream, "loop": _child_loop, "naive": _child_naive}[method]
+    # imports before the clock starts: the figure is synthesis and writing, not start-up
+    import soundfile  # noqa: F401
+
+    import liveshape.drivefile  # noqa: F401
+    import liveshape.spec  # noqa: F401
+
+    _spec()
+    t0 = time.perf_counter()
+    extra = work(Path(out), duration_s)
+    wall = time.perf_counter() - t0
+    print(json.dumps({"wall_s": wall, **extra}), flush=True)
+
+
+# ------------------------------------------------------------------------------ parent side
+def _measure(method: str, duration_s: float, folder: Path) -> dict:
+    """Run one synthesis in a fresh interpreter; return its wall time and peak RSS."""
+    out = folder / f"{method}-{int(duration_s)}s.wav"
+    cmd = [sys.executable, "-m", "tests.benchmarks.bench_synth", "--child", method, str(out),
+           repr(float(duration_s))]  # fmt: skip
+    with tempfile.TemporaryFile("w+") as log:
+        proc = subprocess.Popen(cmd, cwd=_REPO, stdout=log)
+        _, status, usage = os.wait4(proc.pid, 0)
+        proc.returncode = os.waitstatus_to_exitcode(status)
+        log.seek(0)
+        text = log.read()
+    for p in folder.iterdir():
+        p.unlink()
+    if proc.returncode != 0:
+        raise RuntimeError(f"bench_synth child {method} {duration_s} s exited {proc.returncode}")
+    result = json.loads(text.strip().splitlines()[-1])
+    result["peak_rss_mb"] = usage.ru_maxrss / 1024.0  # Linux: kB
+    return result
+
+
+def _stream_rate(psd_band_hz: tuple[float, float], seconds: float) -> float:
+    """Real-time factor of RandomPhaseSynth.read alone at 48 kHz, 1024-sample blocks."""
+    from liveshape.synth import RandomPhaseSynth
+
+    synth = RandomPhaseSynth(FS_HZ, FRAME_LENGTH, seed=SEED)
+    f = synth.f_hz
+    synth.set_psd(np.where((f >= psd_band_hz[0]) & (f <= psd_band_hz[1]), 1e-3, 0.0))
+    out = np.empty(1024)
+    n = int(seconds * FS_HZ) // 1024
+    t0 = time.perf_counter()
+    for _ in range(n):
+        synth.read(1024, out=out)
+    return n * 1024 / FS_HZ / (time.perf_counter() - t0)
+
+
+def run(report: Callable[[str, float, str], None]) -> None:
+    report("synth.read_block1024_20_2000hz_realtime_factor", _stream_rate((20, 2000), 60), "x")
+    report("synth.read_block1024_20_20000hz_realtime_factor", _stream_rate((20, 20000), 60), "x")
+    with tempfile.TemporaryDirectory(prefix="liveshape-bench-") as tmp:
+        folder = Path(tmp)
+        for minutes in DURATIONS_MIN:
+            duration_s = 60.0 * minutes
+            for method in METHODS:
+                r = _measure(method, duration_s, folder)
+                key = f"synth.wav_{minutes}min_{method}"
+                report(f"{key}_wall_time", r["wall_s"], "s")
+                report(f"{key}_realtime_factor", duration_s / r["wall_s"], "x")
+                report(f"{key}_peak_rss", r["peak_rss_mb"], "MB")
+                if "fraction_inside" in r:
+                    report(f"{key}_psd_fraction_inside", r["fraction_inside"], "")
+
+
+if __name__ == "__main__":
+    if len(sys.argv) == 5 and sys.argv[1] == "--child":
+        _child(sys.argv[2], sys.argv[3], float(sys.argv[4]))
+    else:
+        from tests.benchmarks.__main__ import report as _report
+
+        run(_report)
