@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import re
 import time
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
@@ -136,7 +137,7 @@ def _kv_table(title: str | None = None) -> Table:
 _UNITS = (
     ("_g2_hz", "g²/Hz"), ("_fs2_hz", "FS²/Hz"), ("_db_oct", "dB/oct"), ("_db_s", "dB/s"),
     ("_m_s", "m/s"), ("_hz", "Hz"), ("_db", "dB"), ("_fs", "FS"), ("_g", "g"), ("_s", "s"),
-    ("_m", "m"), ("_v", "V"),
+    ("_m", "m"), ("_v", "V"), ("_a", "A"), ("_w", "W"), ("_ohm", "Ω"), ("_k", "K"),
 )
 
 
@@ -155,7 +156,9 @@ def _fmt_value(value: Any, unit: str = "") -> str:
     if isinstance(value, (int, np.integer)):
         return f"{int(value)}{' ' + unit if unit else ''}"
     if isinstance(value, (float, np.floating)):
-        return _fmt(value, ".4g", unit)
+        v = _num(value)
+        spec = ".0f" if v is not None and 1e4 <= abs(v) < 1e9 else ".4g"
+        return _fmt(value, spec, unit)
     if isinstance(value, (list, tuple)) and all(_num(v) is not None for v in value):
         return ", ".join(_fmt(v, ".4g") for v in value) + (f" {unit}" if unit else "")
     return str(value)
@@ -630,6 +633,54 @@ def _segments_for_dof(target_dof: float) -> int:
     return k
 
 
+_BUDGET_KEY = re.compile(r"^(?P<name>.+)_(?P<what>rms|peak_3sigma|limit)_(?P<unit>[a-z0-9]+)$")
+_SHOWN_UNITS = {"fs": ("FS", 1.0), "v": ("V", 1.0), "a": ("A", 1.0), "m": ("mm", 1e3)}
+
+
+def _feasibility_parts(rows: dict[str, Any]) -> list[RenderableType]:
+    """Budgets (``<name>_rms_<unit>``, ``_peak_3sigma_``, ``_limit_``, ``<name>_headroom_db``)
+    as one table with a verdict per budget; every other entry as a name/value row."""
+    budgets: dict[str, dict[str, Any]] = {}
+    for key, value in rows.items():
+        m = _BUDGET_KEY.match(key)
+        if m and m["unit"] in _SHOWN_UNITS:
+            budgets.setdefault(m["name"], {"unit": m["unit"]})[m["what"]] = value
+    parts: list[RenderableType] = []
+    used: set[str] = set()
+    if budgets:
+        table = Table(title="rig budgets (3σ peaks)", title_style=PALETTE.title,
+                      title_justify="left", box=None, header_style=PALETTE.label,
+                      pad_edge=False, padding=(0, 2, 0, 0))
+        for name in ("", "rms", "3σ peak", "limit", "headroom", ""):
+            table.add_column(name, justify="left" if not name else "right")
+        for name, b in budgets.items():
+            unit, scale = _SHOWN_UNITS[b["unit"]]
+            headroom = _num(rows.get(f"{name}_headroom_db"))
+            used |= {f"{name}_{w}_{b['unit']}" for w in ("rms", "peak_3sigma", "limit")}
+            used.add(f"{name}_headroom_db")
+
+            def scaled(x: Any, unit: str = unit, scale: float = scale) -> str:
+                v = _num(x)
+                return _DASH if v is None else f"{v * scale:.3g} {unit}"
+
+            verdict = (Text("no limit", style=PALETTE.dim) if headroom is None else
+                       Text("over", style=PALETTE.abort) if headroom < 0 else
+                       Text("tight", style=PALETTE.alarm) if headroom < 3.0 else
+                       Text("ok", style=PALETTE.ok))
+            table.add_row(name.replace("_", " "), scaled(b.get("rms")),
+                          scaled(b.get("peak_3sigma")), scaled(b.get("limit")),
+                          _fmt(headroom, "+.1f", "dB"), verdict)
+        parts.append(table)
+    other = _kv_table("rig feasibility")
+    feasible = rows.get("feasible")
+    if isinstance(feasible, bool):
+        other.add_row("feasible", Text("yes" if feasible else "no",
+                                       style=PALETTE.ok if feasible else PALETTE.abort))
+        used.add("feasible")
+    _add_mapping_rows(other, {k: v for k, v in rows.items() if k not in used})
+    return [other, Text(""), *parts] if parts else [other]
+
+
 def _check_mapping(profile: Any, tolerance: Any, control: Any) -> dict[str, Any]:
     """The figures of :func:`check_table` from profile, tolerance and control settings."""
     areas = np.asarray(profile.segment_areas_g2(), dtype=float)
@@ -744,9 +795,7 @@ def check_table(profile: Any, tolerance: Any = None, control: Any = None,
 
     parts: list[RenderableType] = [overall, Text(""), segs, Text(""), tol, Text(""), ctl]
     if report.get("rig") is not None:
-        feas = _kv_table("rig feasibility")
-        _add_mapping_rows(feas, dict(report["rig"]))
-        parts += [Text(""), feas]
+        parts += [Text(""), *_feasibility_parts(dict(report["rig"]))]
     title = report.get("name") or "test"
     return Panel(Group(*parts), title=f"check: {title}", title_align="left",
                  border_style=PALETTE.border)

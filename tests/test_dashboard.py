@@ -13,6 +13,7 @@ import dataclasses
 import io
 import math
 import re
+from types import SimpleNamespace
 
 import numpy as np
 import pytest
@@ -227,16 +228,39 @@ def test_check_table_profile_figures():
 def test_check_table_with_feasibility_rows():
     from types import SimpleNamespace
 
-    class Feas:
+    class Feas:  # demo budgets in the flat form of Feasibility.to_dict()
         def to_dict(self):
-            return {"ok": False, "stroke_pp_m": 0.0042, "drive_rms_v": 3.1, "notes": "too deep"}
+            return {"feasible": False, "excursion_rms_m": 0.0007, "excursion_peak_3sigma_m": 0.0021,
+                    "excursion_limit_m": 0.002, "excursion_headroom_db": -0.42,
+                    "drive_rms_fs": 0.2, "drive_peak_3sigma_fs": 0.6, "drive_limit_fs": 1.0,
+                    "drive_headroom_db": 2.2, "card_input_rms_fs": 0.1,
+                    "card_input_peak_3sigma_fs": 0.3, "card_input_limit_fs": 1.0,
+                    "card_input_headroom_db": 10.5, "coil_power_w": 0.25,
+                    "limits_exceeded": "excursion", "unreachable": "none"}
 
     control = SimpleNamespace(fs_hz=8000.0, frame_length=1024, target_dof=60.0,
                               averaging="linear")
     out = _render(dash.check_table(_navmat(), Tolerance(), control, Feas()))
-    assert "rig feasibility" in out
-    assert re.search(r"ok\s+no", out) and re.search(r"stroke pp\s+0.0042 m", out)
-    assert re.search(r"drive rms\s+3.1 V", out) and "too deep" in out
+    assert "rig feasibility" in out and re.search(r"feasible\s+no", out)
+    # Metres shown in millimetres; a negative headroom is over, under 3 dB tight.
+    assert re.search(r"excursion\s+0.7 mm\s+2.1 mm\s+2 mm\s+-0.4 dB\s+over", out)
+    assert re.search(r"drive\s+0.2 FS\s+0.6 FS\s+1 FS\s+\+2.2 dB\s+tight", out)
+    assert re.search(r"card input\s+0.1 FS\s+0.3 FS\s+1 FS\s+\+10.5 dB\s+ok", out)
+    assert re.search(r"coil power\s+0.25 W", out) and re.search(r"limits exceeded\s+excursion", out)
+
+
+def test_check_table_with_real_feasibility():
+    from liveshape.rigs.feasibility import assess
+    from liveshape.rigs.plant import load_plant
+
+    prof = Profile((20.0, 40.0, 400.0), (0.0005, 0.002, 0.002), name="demo")
+    feas = assess(prof, load_plant("loudspeaker"), fs_hz=48000.0, frame_length=8192)
+    control = SimpleNamespace(fs_hz=48000.0, frame_length=8192, target_dof=120.0,
+                              averaging="linear")
+    out = _render(dash.check_table(prof, Tolerance(), control, feas))
+    assert "rig budgets" in out and "excursion" in out
+    mm = f"{feas.excursion.rms * 1e3:.3g} mm"
+    assert mm in out
 
 
 def test_run_summary_and_synth_summary():
