@@ -156,8 +156,10 @@ def test_band_above_nyquist_and_dict_form():
     r = assess(flat(1.0, 20.0, 30000.0), load_plant("ideal"), fs_hz=FS, frame_length=N)
     assert any(u.reason == "above fs/2" and u.f_lo_hz == FS / 2 for u in r.unreachable)
     d = json.loads(json.dumps(r.to_dict()))
-    assert d["plant"] == "ideal" and d["drive"]["unit"] == "FS"
-    assert d["unreachable"][-1]["reason"] == "above fs/2"
+    assert d["plant"] == "ideal" and d["drive_rms_fs"] == r.drive.rms
+    assert d["drive_headroom_db"] == r.drive.headroom_db and "amp_current_rms_a" not in d
+    assert d["unreachable"].endswith("24000-30000 Hz: above fs/2")
+    assert d["feasible"] is False and d["limits_exceeded"] == "none"
 
 
 def test_bad_arguments():

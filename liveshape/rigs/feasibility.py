@@ -29,7 +29,7 @@ unreachable bands with their reasons.
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -98,9 +98,43 @@ class Feasibility:
     feasible: bool
 
     def to_dict(self) -> dict[str, Any]:
-        """Plain data (dicts, lists, numbers, strings, None)."""
-        d = asdict(self)
-        d["unreachable"] = [asdict(u) for u in self.unreachable]
+        """Flat plain data with units in the key names (for records, JSON and the screen).
+
+        Budgets appear as ``<name>_rms_<unit>``, ``<name>_peak_3sigma_<unit>``,
+        ``<name>_limit_<unit>`` and ``<name>_headroom_db``; ``unreachable`` is one line of text
+        (``"none"`` when empty); ``limits_exceeded`` names the budgets over their limit.
+        """
+        d: dict[str, Any] = {
+            "feasible": self.feasible,
+            "plant": self.plant,
+            "profile": self.profile,
+            "grms_g": self.grms,
+        }
+        budgets = [("drive", "fs", self.drive), ("amp_voltage", "v", self.amp_voltage),
+                   ("amp_current", "a", self.amp_current), ("excursion", "m", self.excursion),
+                   ("card_input", "fs", self.card_input)]
+        for key, unit, b in budgets:
+            if b is None:
+                continue
+            d[f"{key}_rms_{unit}"] = b.rms
+            d[f"{key}_peak_3sigma_{unit}"] = b.peak_3sigma
+            d[f"{key}_limit_{unit}"] = b.limit
+            d[f"{key}_headroom_db"] = b.headroom_db
+        over = [key for key, _, b in budgets if b is not None and not b.ok]
+        d["limits_exceeded"] = ", ".join(over) if over else "none"
+        d.update({
+            "snr_worst_db": self.snr_worst_db,
+            "snr_worst_f_hz": self.snr_worst_hz,
+            "snr_min_db": self.snr_min_db,
+            "lowest_controllable_hz": self.lowest_controllable_hz,
+            "coil_power_w": self.coil_power_w,
+            "coil_rise_k": self.coil_rise_k,
+            "fs_hz": self.fs_hz,
+            "frame_length": self.frame_length,
+            "unreachable": "; ".join(
+                f"{u.f_lo_hz:.6g}-{u.f_hi_hz:.6g} Hz: {u.reason}" for u in self.unreachable
+            ) or "none",
+        })
         return d
 
 
