@@ -1,0 +1,172 @@
+"""``liveshape run`` end to end on the simulated rig: record, JSON, stop signals, faults, errors.
+
+Stop signals are sent to a real subprocess once its event log shows the loop running; the run
+uses ``--fast`` so nothing here waits for real time to pass.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+import soundfile as sf
+
+from liveshape.record import load_run
+
+REPO = Path(__file__).resolve().parents[1]
+SPEC = REPO / "examples" / "handlebar-nav-unit.yaml"
+JSON_KEYS = (
+    "status", "abort_reason", "updates_to_tolerance", "final_rms_error_db", "final_max_dev_db",
+    "final_lines_outside_alarm", "final_lines_outside_abort", "control_grms_g", "target_grms_g",
+    "dof", "time_at_full_level_s", "run_dir",
+)
+
+
+def cli(*args: str) -> list[str]:
+    return [sys.executable, "-m", "liveshape", *args]
+
+
+def run_json(tmp_path: Path, *args: str) -> tuple[int, dict, str]:
+    proc = subprocess.run(
+        cli("run", str(SPEC), "--fast", "--json", "--out", str(tmp_path), *args),
+        capture_output=True, text=True, cwd=REPO, timeout=600,
+    )
+    assert "Traceback" not in proc.stderr, proc.stderr
+    return proc.returncode, json.loads(proc.stdout), proc.stderr
+
+
+def max_step(x: np.ndarray) -> float:
+    return float(np.max(np.abs(np.diff(x)))) if x.size > 1 else 0.0
+
+
+@pytest.fixture(scope="module")
+def completed(tmp_path_factory: pytest.TempPathFactory) -> tuple[int, dict, str]:
+    return run_json(tmp_path_factory.mktemp("runs"), "--duration", "6", "--seed", "7")
+
+
+def test_run_completes_with_record(completed: tuple[int, dict, str]) -> None:
+    rc, data, stderr = completed
+    assert rc == 0
+    for key in JSON_KEYS:
+        assert key in data
+    assert data["status"] == "completed"
+    # The safety cautions come before the drive (on stderr with --json).
+    assert "hearing protection" in stderr
+    # IEC 60068-2-64 / common practice: ±3 dB alarm band per line, rms within tolerance.
+    assert data["final_lines_outside_alarm"] == 0
+    assert abs(data["final_rms_error_db"]) < 1.0
+    assert data["time_at_full_level_s"] >= 6.0
+    run = load_run(data["run_dir"])
+    assert run.complete and run.status == "completed"
+    kinds = {e.kind for e in run.events}
+    assert {"stage", "level", "update"} <= kinds
+    drive, fs = sf.read(Path(data["run_dir"]) / "drive.wav")
+    response, _ = sf.read(Path(data["run_dir"]) / "response.wav")
+    assert fs == 48000 and drive.size == response.size > 0
+    # The run ends with a controlled ramp-down then zeros.
+    assert np.all(drive[-256:] == 0.0)
+
+
+def test_report_from_the_record(completed: tuple[int, dict, str], tmp_path: Path) -> None:
+    _, data, _ = completed
+    proc = subprocess.run(cli("report", data["run_dir"], "--out", str(tmp_path)),
+                          capture_output=True, text=True, cwd=REPO, timeout=300)
+    assert proc.returncode == 0, proc.stderr
+    pngs = sorted(p.name for p in tmp_path.glob("*.png"))
+    assert {"control.png", "drive.png", "frf.png", "convergence.png", "level.png"} <= set(pngs)
+    assert "completed" in (tmp_path / "summary.txt").read_text()
+
+
+def test_same_seed_same_drive(completed: tuple[int, dict, str], tmp_path: Path) -> None:
+    _, first, _ = completed
+    rc, second, _ = run_json(tmp_path, "--duration", "6", "--seed", "7")
+    assert rc == 0
+    a, _ = sf.read(Path(first["run_dir"]) / "drive.wav", dtype="float32")
+    b, _ = sf.read(Path(second["run_dir"]) / "drive.wav", dtype="float32")
+    assert a.shape == b.shape and np.array_equal(a, b)
+
+
+def test_fault_aborts_with_distinct_status(tmp_path: Path) -> None:
+    from liveshape.safety import EXIT_STATUS
+
+    rc, data, _ = run_json(tmp_path, "--fault", "sensor_gain@25=4", "--seed", "3")
+    assert data["status"] == "aborted"
+    rule = data["abort_rule"]
+    assert rule in EXIT_STATUS and rc == EXIT_STATUS[rule] and rc not in (0, 1, 2, 130)
+    run = load_run(data["run_dir"])
+    assert any(e.kind == "trip" for e in run.events)
+
+
+def wait_for_event(run_root: Path, kind: str, proc: subprocess.Popen, timeout_s: float) -> None:
+    """Poll the run's event log until an event of ``kind`` shows (the loop is running)."""
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline:
+        for log in run_root.glob("*/events.jsonl"):
+            for line in log.read_text().splitlines():
+                try:
+                    if json.loads(line)["kind"] == kind:
+                        return
+                except (ValueError, KeyError):
+                    continue
+        if proc.poll() is not None:
+            raise AssertionError(f"run ended before a {kind!r} event: {proc.stderr.read()}")
+        time.sleep(0.05)
+    raise AssertionError(f"no {kind!r} event within {timeout_s} s")
+
+
+@pytest.mark.parametrize("signum", [signal.SIGINT, signal.SIGTERM])
+def test_stop_signal_ramps_down(tmp_path: Path, signum: int) -> None:
+    proc = subprocess.Popen(
+        cli("run", str(SPEC), "--fast", "--json", "--out", str(tmp_path), "--duration", "120"),
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=REPO,
+    )
+    try:
+        wait_for_event(tmp_path, "update", proc, timeout_s=300)
+        os.kill(proc.pid, signum)
+        out, err = proc.communicate(timeout=120)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert "Traceback" not in err, err
+    assert proc.returncode == 130
+    data = json.loads(out)
+    assert data["status"] == "stopped"
+    drive, fs = sf.read(Path(data["run_dir"]) / "drive.wav")
+    rms = float(np.sqrt(np.mean(drive[: int(2 * fs)] ** 2)))
+    assert np.all(drive[-64:] == 0.0)
+    # The stop is a cosine fade over abort_ramp_s, not a cut: the last non-zero stretch has no
+    # sample-to-sample step larger than the drive's own (random) steps. Bound: 6 x the rms
+    # step of band-limited noise is far above a smooth fade and far below a cut to zero from
+    # a 4-sigma peak (common practice: no click at stop).
+    nz = np.flatnonzero(drive)
+    tail = drive[max(0, nz[-1] - int(0.25 * fs)) : nz[-1] + 2]
+    assert max_step(tail) <= 6 * rms
+
+
+def test_bad_plant_file_is_one_line(tmp_path: Path) -> None:
+    plant = tmp_path / "plant.yaml"
+    plant.write_text("shaker:\n  re_ohm: -3\n")
+    proc = subprocess.run(
+        cli("run", str(SPEC), "--fast", "--rig", f"sim:{plant}", "--out", str(tmp_path)),
+        capture_output=True, text=True, cwd=REPO, timeout=120,
+    )
+    assert proc.returncode == 2
+    lines = [ln for ln in proc.stderr.splitlines() if ln.startswith("liveshape:")]
+    assert len(lines) == 1 and "plant.yaml" in lines[0]
+    assert "Traceback" not in proc.stderr
+    assert not list(tmp_path.glob("2*")), "no run folder for a run that never started"
+
+
+def test_bad_fault_option(tmp_path: Path) -> None:
+    proc = subprocess.run(
+        cli("run", str(SPEC), "--fast", "--fault", "meltdown@3", "--out", str(tmp_path)),
+        capture_output=True, text=True, cwd=REPO, timeout=120,
+    )
+    assert proc.returncode == 2 and "meltdown" in proc.stderr and "Traceback" not in proc.stderr
