@@ -339,9 +339,9 @@ def _chi2_band(snapshot: Any, dof: float | None) -> tuple[float | None, float | 
     band = _get(snapshot, "chi2_band_db", "chi2_db")
     if band is not None and len(band) == 2:
         return _num(band[0]), _num(band[1])
-    lo, hi = _get(snapshot, "chi2_lo_db"), _get(snapshot, "chi2_hi_db")
-    if lo is not None or hi is not None or dof is None or dof <= 0:
-        return _num(lo), _num(hi)
+    lo, hi = _num(_get(snapshot, "chi2_lo_db")), _num(_get(snapshot, "chi2_hi_db"))
+    if (lo is not None and hi is not None) or dof is None or dof <= 0:
+        return lo, hi
     from liveshape.spectra import chi2_interval_db
 
     lo, hi = chi2_interval_db(dof, 0.90)

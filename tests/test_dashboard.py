@@ -9,7 +9,6 @@ integral of a power-law segment (see /work/shared/DOMAIN.md §1), and the decibe
 
 from __future__ import annotations
 
-import dataclasses
 import io
 import math
 import re
@@ -21,6 +20,8 @@ import scipy.stats
 
 from liveshape import dashboard as dash
 from liveshape.profile import Profile, Tolerance
+from liveshape.runstate import ControlSnapshot, Event, RunResult
+from liveshape.safety import Trip
 
 WIDTH = 120
 
@@ -37,62 +38,31 @@ def _navmat() -> Profile:
     return Profile((20.0, 80.0, 350.0, 2000.0), (0.01, 0.04, 0.04, 0.007), name="navmat")
 
 
-@dataclasses.dataclass(frozen=True)
-class _Event:
-    t_s: float
-    kind: str
-    message: str
-    data: dict
+_F_HZ = np.arange(513) * 8000 / 1024
 
 
-@dataclasses.dataclass(frozen=True)
-class _Snapshot:
-    """Stand-in with the agreed field names of the controller's snapshot (demo values)."""
-
-    t_s: float = 42.0
-    stage: str = "full_level"
-    level_db: float = 0.0
-    step_index: int = 4
-    n_steps: int = 5
-    elapsed_s: float = 42.0
-    remaining_s: float = 55.0
-    time_at_full_level_s: float = 5.0
-    control_grms_g: float = 5.912
-    target_grms_g: float = 6.058
-    drive_rms_fs: float = 0.231
-    drive_peak_fs: float = 0.93
-    drive_rms_limit_fs: float = 0.5
-    drive_peak_limit_fs: float = 1.0
-    gain_db: float = -1.5
-    loop_delay_samples: int = 1536
-    f_hz: np.ndarray = dataclasses.field(default_factory=lambda: np.arange(513) * 8000 / 1024)
-    control_psd: np.ndarray | None = None
-    target_psd: np.ndarray | None = None
-    drive_psd: np.ndarray | None = None
-    alarm_db: float = 3.0
-    abort_db: float = 6.0
-    max_dev_db: float = 3.7
-    min_dev_db: float = -2.4
-    lines_outside_alarm: int = 17
-    lines_outside_abort: int = 2
-    rms_error_db: float = -0.21
-    dof: float = 120.0
-    updates: int = 31
-    status: str = "running"
-    trip: object = None
-    recent_events: tuple = (
-        _Event(1.5, "stage", "identify: low-level noise", {}),
-        _Event(30.0, "level", "level 0 dB", {"level_db": 0.0}),
-        _Event(40.0, "alarm", "17 lines outside alarm", {"lines": 17}),
+def _snapshot(**kw) -> ControlSnapshot:
+    """A real controller snapshot filled with demo values (the controller's own numbers are
+    tested in test_controller.py; here only how they are shown)."""
+    target = _navmat().asd_at(_F_HZ)
+    values = dict(
+        t_s=42.0, stage="full_level", status="running", level_db=0.0, gain_db=-1.5,
+        step_index=4, n_steps=5, elapsed_s=42.0, remaining_s=55.0, time_at_full_level_s=5.0,
+        full_level_s=60.0, control_grms_g=5.912, target_grms_g=6.058, drive_rms_fs=0.231,
+        drive_rms_limit_fs=0.5, drive_peak_fs=0.93, drive_peak_limit_fs=1.0, f_hz=_F_HZ,
+        control_psd=target * 10 ** (0.5 / 10), target_psd=target, drive_psd=target * 1e-3,
+        alarm_db=np.full(_F_HZ.size, 3.0), abort_db=np.full(_F_HZ.size, 6.0), max_dev_db=3.7,
+        min_dev_db=-2.4, lines_outside_alarm=17, lines_outside_abort=2, rms_error_db=-0.21,
+        dof=120.0, chi2_lo_db=float("nan"), chi2_hi_db=float("nan"), updates=31,
+        loop_delay_samples=1536, trip=None,
+        recent_events=(
+            Event(1.5, "stage", "identify: low-level noise", {}),
+            Event(30.0, "level", "level 0 dB", {"level_db": 0.0}),
+            Event(40.0, "alarm", "17 lines outside alarm", {"lines": 17}),
+        ),
     )
-
-
-def _snapshot(**kw) -> _Snapshot:
-    snap = _Snapshot(**kw)
-    if snap.target_psd is None:
-        t = _navmat().asd_at(snap.f_hz)
-        snap = dataclasses.replace(snap, target_psd=t, control_psd=t * 10 ** (0.5 / 10))
-    return snap
+    values.update(kw)
+    return ControlSnapshot(**values)
 
 
 def test_dashboard_shows_the_numbers():
@@ -116,15 +86,22 @@ def test_dashboard_chi2_band_matches_chi_square(dof):
     # (Bendat & Piersol); e.g. nu = 120 gives -0.87 / +0.98 dB.
     lo = 10 * math.log10(dof / scipy.stats.chi2.ppf(0.95, dof))
     hi = 10 * math.log10(dof / scipy.stats.chi2.ppf(0.05, dof))
-    out = _render(dash.dashboard(_snapshot(dof=dof)))
+    out = _render(dash.dashboard(_snapshot(dof=dof)))  # band not given: computed from dof
     assert f"DOF                       {dof:.0f}   90 % χ² band {lo:+.2f} / {hi:+.2f} dB" in out
+
+
+def test_dashboard_shows_the_snapshot_chi2_band_as_given():
+    out = _render(dash.dashboard(_snapshot(dof=120.0, chi2_lo_db=-0.5, chi2_hi_db=0.75)))
+    assert "90 % χ² band -0.50 / +0.75 dB" in out
+    out = _render(dash.dashboard(_snapshot(dof=0.0)))  # no estimate yet
+    assert "90 % χ² band — / — dB" in out
 
 
 def test_dashboard_without_spectrum_and_nan_numbers():
     snap = _snapshot(stage="connect", f_hz=np.zeros(0), control_grms_g=float("nan"),
-                     dof=float("nan"), recent_events=(), lines_outside_alarm=-1,
-                     lines_outside_abort=-1)
-    snap = dataclasses.replace(snap, target_psd=np.zeros(0), control_psd=None)
+                     dof=0.0, recent_events=(), lines_outside_alarm=-1, lines_outside_abort=-1,
+                     target_psd=np.zeros(0), control_psd=None, drive_psd=np.zeros(0),
+                     alarm_db=np.zeros(0), abort_db=np.zeros(0))
     out = _render(dash.dashboard(snap))
     assert "connect" in out and "no spectrum yet" in out and "none yet" in out
     assert "— / 6.058 g" in out
@@ -317,45 +294,27 @@ def test_live_view_rate_limit_and_flush():
     assert "ramp down" in console.file.getvalue()
 
 
-def test_run_summary_from_result_dataclass_with_trip():
-    @dataclasses.dataclass(frozen=True)
-    class Trip:
-        rule: str
-        message: str
-        t_s: float = 0.0
-        detail: dict = dataclasses.field(default_factory=dict)
-
-    @dataclasses.dataclass(frozen=True)
-    class Result:  # the controller's result fields (demo values)
-        status: str
-        abort_reason: str | None
-        trip: Trip | None
-        updates_to_tolerance: int | None
-        final_rms_error_db: float
-        control_grms_g: float
-        target_grms_g: float
-        dof: float
-        time_at_full_level_s: float
-        updates: int
-
-    res = Result("aborted", "control silent for 2 updates", Trip("sensor_silent", "silent"),
-                 None, float("nan"), 0.01, 6.058, 120.0, 0.0, 9)
+def test_run_summary_from_run_result_with_trip():
+    res = RunResult(
+        status="aborted", abort_reason="control silent for 2 updates",
+        trip=Trip("response_silent", "control silent for 2 updates", 12.0, {"rms_fs": 0.0}),
+        updates_to_tolerance=None, final_rms_error_db=float("nan"),
+        final_max_dev_db=float("nan"), final_lines_outside_alarm=-1,
+        final_lines_outside_abort=-1, control_grms_g=0.01, target_grms_g=6.058, dof=120.0,
+        time_at_full_level_s=0.0, updates=9,
+    )
     out = _render(dash.run_summary(res))
-    assert "sensor_silent" in out and "control silent for 2 updates" in out
+    assert re.search(r"abort rule\s+response_silent", out)
+    assert "control silent for 2 updates" in out
     assert re.search(r"updates\s+9", out) and "0.010 / 6.058 g" in out
+    assert re.search(r"lines outside alarm / abort\s+— / —", out)
     assert "detail" not in out  # the trip's own fields are not repeated as rows
 
 
 def test_drive_table_limits_delay_and_trip():
-    @dataclasses.dataclass(frozen=True)
-    class Trip:
-        rule: str
-        message: str
-
-    out = _render(dash.dashboard(dataclasses.replace(_snapshot(), drive_rms_limit_fs=None)))
+    out = _render(dash.dashboard(_snapshot(drive_rms_limit_fs=float("nan"))))
     assert "0.231 of — FS" in out  # no limit given
-    snap = dataclasses.replace(_snapshot(), trip=Trip("drive_limit", "drive rms 0.6 FS"),
-                               drive_rms_fs=0.6)
+    snap = _snapshot(trip=Trip("drive_limit", "drive rms 0.6 FS"), drive_rms_fs=0.6)
     out = _render(dash.dashboard(snap))
     assert "drive_limit: drive rms 0.6 FS" in out and "0.600 of 0.500 FS  (120 %)" in out
     assert "1536 samples" in out and "gain" in out and "-1.5 dB" in out
@@ -390,3 +349,33 @@ def test_plot_legend_shows_limits_that_vary_by_band():
     abort = np.where(f < 40, 7.5, 6.0)
     text = dash.spectrum_plot(f, t, t, alarm, abort).plain
     assert "alarm ±3…4.5 dB" in text and "abort ±6…7.5 dB" in text
+
+
+def test_dashboard_of_a_real_controller_snapshot():
+    from pathlib import Path
+
+    from liveshape.controller import Controller
+    from liveshape.rigs.plant import load_plant
+    from liveshape.rigs.sim import SimRig
+    from liveshape.spec import load_spec
+
+    example = Path(__file__).resolve().parents[1] / "examples" / "handlebar-nav-unit.yaml"
+    spec = load_spec(example, {"control.fs_hz": 8000, "control.lines": 512,
+                               "control.target_dof": 60})
+    rig = SimRig(load_plant("loudspeaker"), spec.control.fs_hz, seed=1)
+    ctl = Controller(spec, rig.calibration, seed=2)
+    response = np.zeros(1024)
+    while ctl.last_update is None or ctl.last_update.index < 2:
+        response = rig.process(ctl.exchange(response))
+    snap = ctl.snapshot()
+    out = _render(dash.dashboard(snap))
+    assert "equalize" in out
+    assert f"{snap.control_grms_g:.3f} / {snap.target_grms_g:.3f} g" in out
+    assert f"{snap.lines_outside_alarm} alarm" in out and f"{snap.lines_outside_abort} abort" in out
+    # The band shown is the 90 % chi-square interval at the snapshot's DOF (Bendat & Piersol;
+    # scipy.stats.chi2 as reference).
+    nu = snap.dof
+    lo = 10 * math.log10(nu / scipy.stats.chi2.ppf(0.95, nu))
+    hi = 10 * math.log10(nu / scipy.stats.chi2.ppf(0.05, nu))
+    assert f"{nu:.0f}   90 % χ² band {lo:+.2f} / {hi:+.2f} dB" in out
+    assert snap.recent_events[-1].message in out
