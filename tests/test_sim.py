@@ -10,6 +10,7 @@ import numpy as np
 import pytest
 from scipy import integrate, signal, stats
 
+from liveshape import spec
 from liveshape.errors import ConfigError
 from liveshape.rigs.plant import (
     CoilHeating,
@@ -222,6 +223,16 @@ def pair(p: Plant, faults, x, seed=7):
 def test_fault_kinds_are_the_agreed_seven():
     assert FAULT_KINDS == ("sensor_detached", "sensor_gain", "amp_trip", "resonance_shift",
                            "plant_gain", "noise_burst", "dropout")
+    assert FAULT_KINDS == spec.FAULT_KINDS
+
+
+def test_faults_from_the_test_definition_are_accepted():
+    x = white(8000, 0.2)
+    fault = spec.parse_fault(f"noise_burst@{T0}=0.1/0.25")
+    assert isinstance(fault, spec.FaultSpec)
+    base, y, _ = pair(ideal(True), [fault], x)
+    _, y_local, _ = pair(ideal(True), [Fault("noise_burst", T0, 0.1, 0.25)], x)
+    assert np.array_equal(y, y_local) and not np.array_equal(y, base)
 
 
 @pytest.mark.parametrize("kind, value, factor", [("sensor_gain", 0.5, 0.5),

@@ -114,11 +114,11 @@ class ThieleSmallShaker:
     """
 
     re_ohm: float
-    le_h: float
     bl_tm: float
     mms_kg: float
     cms_m_per_n: float
     rms_kg_s: float
+    le_h: float = 0.0
     xmax_m: float | None = None
     coil_heating: CoilHeating | None = None
     model: str = field(default="thiele_small", init=False)
@@ -209,116 +209,83 @@ class Plant:
 
 
 # -- reading --------------------------------------------------------------------------------------
-def _opt_float(d: dict, key: str, where: Where, default: float | None = None, **bounds: float):
-    if key not in d or d[key] is None:
-        return default
-    return as_float(d[key], where.key(key), **bounds)
+# Per section: key -> (kind, bounds). Defaults are the dataclass defaults; ``null`` gives them too.
+_G0, _GE0 = {"gt": 0.0}, {"ge": 0.0}
+_RULES: dict[type, dict[str, tuple[str, dict]]] = {
+    SoundCard: {"out_v_per_fs": ("float", _G0), "in_v_per_fs": ("float", _G0),
+                "out_highpass_hz": ("corner", {}), "in_highpass_hz": ("corner", {}),
+                "delay_samples": ("int", {"ge": 0}), "in_noise_fs_rms": ("float", _GE0)},
+    Amplifier: {"gain_v_per_v": ("float", _G0), "v_out_max_v": ("float", _G0),
+                "i_max_a": ("float", _G0), "highpass_hz": ("corner", {}),
+                "highpass_order": ("int", {"ge": 1, "le": 2})},
+    CoilHeating: {"thermal_resistance_k_per_w": ("float", _G0), "time_constant_s": ("float", _G0),
+                  "tempco_per_k": ("float", {"gt": 0.0, "lt": 0.1})},
+    ThieleSmallShaker: {"model": ("model", {}), "re_ohm": ("float", _G0), "le_h": ("float", _GE0),
+                        "bl_tm": ("float", _G0), "mms_kg": ("float", _G0),
+                        "cms_m_per_n": ("float", _G0), "rms_kg_s": ("float", _GE0),
+                        "xmax_m": ("float", _G0), "coil_heating": ("heating", {})},
+    IdealShaker: {"model": ("model", {}), "g_per_v": ("float", _G0)},
+    Resonance: {"name": ("str", {}), "f_hz": ("float", _G0), "q": ("float", _G0),
+                "mass_kg": ("float", _G0)},
+    Accelerometer: {"sens_mv_per_g": ("float", _G0), "noise_g_rms": ("float", _GE0),
+                    "highpass_hz": ("corner", {})},
+}
+_REQUIRED: dict[type, tuple[str, ...]] = {
+    CoilHeating: ("thermal_resistance_k_per_w", "time_constant_s"),
+    ThieleSmallShaker: ("re_ohm", "bl_tm", "mms_kg", "cms_m_per_n", "rms_kg_s"),
+    Resonance: ("f_hz", "q", "mass_kg"),
+}
 
 
-def _corner(d: dict, key: str, where: Where) -> float | None:
-    """A high-pass corner in Hz; null or 0 means none (DC-coupled)."""
-    v = _opt_float(d, key, where, ge=0.0)
-    return None if v is None or v == 0.0 else v
-
-
-def _card(data: Any, where: Where) -> SoundCard:
-    keys = ("out_v_per_fs", "in_v_per_fs", "out_highpass_hz", "in_highpass_hz",
-            "delay_samples", "in_noise_fs_rms")
-    d = check_keys(data, keys, where)
-    return SoundCard(
-        out_v_per_fs=_opt_float(d, "out_v_per_fs", where, 1.0, gt=0.0),
-        in_v_per_fs=_opt_float(d, "in_v_per_fs", where, 1.0, gt=0.0),
-        out_highpass_hz=_corner(d, "out_highpass_hz", where),
-        in_highpass_hz=_corner(d, "in_highpass_hz", where),
-        delay_samples=as_int(d.get("delay_samples", 0), where.key("delay_samples"), ge=0),
-        in_noise_fs_rms=_opt_float(d, "in_noise_fs_rms", where, 0.0, ge=0.0),
-    )
-
-
-def _amplifier(data: Any, where: Where) -> Amplifier:
-    keys = ("gain_v_per_v", "v_out_max_v", "i_max_a", "highpass_hz", "highpass_order")
-    d = check_keys(data, keys, where)
-    order = as_int(d.get("highpass_order", 2), where.key("highpass_order"), ge=1, le=2)
-    return Amplifier(
-        gain_v_per_v=_opt_float(d, "gain_v_per_v", where, 1.0, gt=0.0),
-        v_out_max_v=_opt_float(d, "v_out_max_v", where, None, gt=0.0),
-        i_max_a=_opt_float(d, "i_max_a", where, None, gt=0.0),
-        highpass_hz=_corner(d, "highpass_hz", where),
-        highpass_order=order,
-    )
-
-
-def _coil_heating(data: Any, where: Where) -> CoilHeating | None:
-    if data is None:
-        return None
-    keys = ("thermal_resistance_k_per_w", "time_constant_s", "tempco_per_k")
-    d = check_keys(data, keys, where, required=keys[:2])
-    return CoilHeating(
-        thermal_resistance_k_per_w=as_float(
-            d["thermal_resistance_k_per_w"], where.key("thermal_resistance_k_per_w"), gt=0.0
-        ),
-        time_constant_s=as_float(d["time_constant_s"], where.key("time_constant_s"), gt=0.0),
-        tempco_per_k=_opt_float(d, "tempco_per_k", where, COPPER_TEMPCO_PER_K, gt=0.0, lt=0.1),
-    )
-
-
-_TS_KEYS = ("model", "re_ohm", "le_h", "bl_tm", "mms_kg", "cms_m_per_n", "rms_kg_s", "xmax_m",
-            "coil_heating")
+def _section(cls: type, data: Any, where: Where) -> Any:
+    """Read one section into ``cls`` by :data:`_RULES`, strictly; one-line errors."""
+    rules, required = _RULES[cls], _REQUIRED.get(cls, ())
+    d = check_keys(data, rules, where, required=required)
+    kwargs: dict[str, Any] = {}
+    for key, (kind, bounds) in rules.items():
+        value, w = d.get(key), where.key(key)
+        if value is None:
+            if key in required:
+                raise w.fail(value, "is required")
+            continue
+        if kind == "float":
+            kwargs[key] = as_float(value, w, **bounds)
+        elif kind == "corner":  # a high-pass corner in Hz; 0 means none (DC-coupled)
+            kwargs[key] = as_float(value, w, ge=0.0) or None
+        elif kind == "int":
+            kwargs[key] = as_int(value, w, **bounds)
+        elif kind == "str":
+            kwargs[key] = as_str(value, w)
+        elif kind == "heating":
+            kwargs[key] = _section(CoilHeating, value, w)
+    return cls(**kwargs)
 
 
 def _shaker(data: Any, where: Where) -> ThieleSmallShaker | IdealShaker:
     model = "thiele_small"
-    if isinstance(data, dict) and "model" in data:
+    if isinstance(data, dict) and data.get("model") is not None:
         model = as_choice(data["model"], where.key("model"), ("thiele_small", "ideal"))
-    if model == "ideal":
-        d = check_keys(data, ("model", "g_per_v"), where)
-        return IdealShaker(g_per_v=_opt_float(d, "g_per_v", where, 1.0, gt=0.0))
-    d = check_keys(data, _TS_KEYS, where,
-                   required=("re_ohm", "bl_tm", "mms_kg", "cms_m_per_n", "rms_kg_s"))
-    return ThieleSmallShaker(
-        re_ohm=as_float(d["re_ohm"], where.key("re_ohm"), gt=0.0),
-        le_h=_opt_float(d, "le_h", where, 0.0, ge=0.0),
-        bl_tm=as_float(d["bl_tm"], where.key("bl_tm"), gt=0.0),
-        mms_kg=as_float(d["mms_kg"], where.key("mms_kg"), gt=0.0),
-        cms_m_per_n=as_float(d["cms_m_per_n"], where.key("cms_m_per_n"), gt=0.0),
-        rms_kg_s=as_float(d["rms_kg_s"], where.key("rms_kg_s"), ge=0.0),
-        xmax_m=_opt_float(d, "xmax_m", where, None, gt=0.0),
-        coil_heating=_coil_heating(d.get("coil_heating"), where.key("coil_heating")),
-    )
+    return _section(IdealShaker if model == "ideal" else ThieleSmallShaker, data, where)
 
 
 def _payload(data: Any, where: Where) -> Payload:
     d = check_keys(data, ("mass_kg", "resonances", "control_point"), where)
-    res = []
+    res: list[Resonance] = []
     items = d.get("resonances") or []
     for j, item in enumerate(as_list(items, where.key("resonances"))):
         w = where.key("resonances").index(j)
-        r = check_keys(item, ("name", "f_hz", "q", "mass_kg"), w, required=("f_hz", "q", "mass_kg"))
-        name = as_str(r["name"], w.key("name")) if "name" in r else f"mode{j + 1}"
-        if name == "table" or any(x.name == name for x in res):
-            raise w.key("name").fail(name, "must be unique and not 'table'")
-        res.append(Resonance(
-            f_hz=as_float(r["f_hz"], w.key("f_hz"), gt=0.0),
-            q=as_float(r["q"], w.key("q"), gt=0.0),
-            mass_kg=as_float(r["mass_kg"], w.key("mass_kg"), gt=0.0),
-            name=name,
-        ))
-    point = as_str(d.get("control_point", "table"), where.key("control_point"))
-    names = ["table"] + [r.name for r in res]
-    point = as_choice(point, where.key("control_point"), names)
+        r = _section(Resonance, item, w)
+        r = r if r.name else dataclasses.replace(r, name=f"mode{j + 1}")
+        if r.name == "table" or any(x.name == r.name for x in res):
+            raise w.key("name").fail(r.name, "must be unique and not 'table'")
+        res.append(r)
+    point = as_choice(as_str(d.get("control_point", "table"), where.key("control_point")),
+                      where.key("control_point"), ["table"] + [r.name for r in res])
+    mass = d.get("mass_kg")
     return Payload(
-        mass_kg=_opt_float(d, "mass_kg", where, 0.0, ge=0.0),
+        mass_kg=0.0 if mass is None else as_float(mass, where.key("mass_kg"), ge=0.0),
         resonances=tuple(res),
         control_point=point,
-    )
-
-
-def _accelerometer(data: Any, where: Where) -> Accelerometer:
-    d = check_keys(data, ("sens_mv_per_g", "noise_g_rms", "highpass_hz"), where)
-    return Accelerometer(
-        sens_mv_per_g=_opt_float(d, "sens_mv_per_g", where, 100.0, gt=0.0),
-        noise_g_rms=_opt_float(d, "noise_g_rms", where, 0.0, ge=0.0),
-        highpass_hz=_corner(d, "highpass_hz", where),
     )
 
 
@@ -354,10 +321,10 @@ def plant_from_mapping(data: Any, where: Where, *, default_name: str = "plant") 
     return Plant(
         name=name,
         shaker=shaker,
-        card=_card(d.get("card"), where.key("card")),
-        amplifier=_amplifier(d.get("amplifier"), where.key("amplifier")),
+        card=_section(SoundCard, d.get("card"), where.key("card")),
+        amplifier=_section(Amplifier, d.get("amplifier"), where.key("amplifier")),
         payload=payload,
-        accelerometer=_accelerometer(d.get("accelerometer"), where.key("accelerometer")),
+        accelerometer=_section(Accelerometer, d.get("accelerometer"), where.key("accelerometer")),
         description=desc.strip(),
         source=where.source,
     )
@@ -371,7 +338,7 @@ def preset_names() -> tuple[str, ...]:
 def load_plant(name_or_path: str | Path) -> Plant:
     """Load a packaged preset by name (``loudspeaker``, ``bench``, ``ideal``) or a plant YAML file.
 
-    A string without a path separator or ``.yaml``/``.yml`` suffix is a preset name.
+    A string without a path separator and without a ``.yaml``/``.yml`` suffix is a preset name.
 
     Raises
     ------
@@ -381,7 +348,8 @@ def load_plant(name_or_path: str | Path) -> Plant:
     from liveshape.config import read_yaml_file  # the one yaml importer; imported on use
 
     text = str(name_or_path)
-    is_path = isinstance(name_or_path, Path) or "/" in text or text.endswith((".yaml", ".yml"))
+    is_path = (isinstance(name_or_path, Path) or "/" in text or "\\" in text
+               or text.endswith((".yaml", ".yml")))
     if is_path:
         path = Path(text)
         return plant_from_mapping(read_yaml_file(path), Where(str(path)), default_name=path.stem)
@@ -407,7 +375,8 @@ def plant_to_mapping(plant: Plant) -> dict[str, Any]:
         shaker: dict[str, Any] = {"model": "ideal", "g_per_v": sh.g_per_v}
     else:
         shaker = {"model": "thiele_small"}
-        shaker.update({k: getattr(sh, k) for k in _TS_KEYS[1:-1]})
+        shaker.update({k: getattr(sh, k) for k in _RULES[ThieleSmallShaker] if k not in
+                       ("model", "coil_heating")})
         ch = sh.coil_heating
         shaker["coil_heating"] = None if ch is None else dataclasses.asdict(ch)
     pl = plant.payload
