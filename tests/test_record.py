@@ -336,3 +336,60 @@ def test_wav_size_limit_drops_later_blocks_once(tmp_path, monkeypatch):
     assert d.size == r.size == 900
     full = [e for e in run.events if e.kind == "record_full"]
     assert len(full) == 1 and full[0].data["recorded_s"] == pytest.approx(900 / FS_HZ)
+
+
+def _record_real_run(out_dir: Path):
+    """A short real run (controller + simulated rig) recorded the way the shell records one."""
+    from liveshape.controller import Controller
+    from liveshape.rigs.plant import load_plant
+    from liveshape.rigs.sim import SimRig
+    from liveshape.spec import load_spec, spec_to_mapping
+
+    spec = load_spec(REPO / "examples" / "handlebar-nav-unit.yaml", {
+        "control.fs_hz": 8000, "control.lines": 512, "control.target_dof": 60,
+        "schedule.full_level_s": 2, "schedule.hold_s": 0.5,
+    })
+    rig = SimRig(load_plant("loudspeaker"), spec.control.fs_hz, seed=1)
+    ctl = Controller(spec, rig.calibration, seed=2)
+    drives, responses, events = [], [], []
+    response = np.zeros(1024)
+    last = None
+    with RunRecorder.create(
+        out_dir, name=spec.name, spec_mapping=spec_to_mapping(spec),
+        rig_mapping={"kind": "sim", "plant": "loudspeaker"},
+        calibration=dataclasses.asdict(rig.calibration), fs_hz=spec.control.fs_hz, now=NOW,
+    ) as rec:
+        while not ctl.finished:
+            drive = ctl.exchange(response)
+            rec.signals(drive, response)
+            drives.append(drive)
+            responses.append(response)
+            response = rig.process(drive)
+            new = ctl.drain_events()
+            rec.events(new)
+            events += new
+            if ctl.last_update is not None and ctl.last_update is not last:
+                last = ctl.last_update
+                rec.update_from(last)
+        tail = ctl.drain_events()
+        rec.events(tail)
+        events += tail
+        result = ctl.result()
+        rec.close(result)
+    return rec.root, result, np.concatenate(drives), np.concatenate(responses), events
+
+
+def test_record_of_a_real_run(tmp_path):
+    root, result, drive, response, events = _record_real_run(tmp_path)
+    run = load_run(root)
+    assert run.status == result.status == "completed"
+    assert run.summary["final_rms_error_db"] == pytest.approx(result.final_rms_error_db,
+                                                              rel=1e-12)
+    assert [(e.kind, e.message) for e in run.events] == [(e.kind, e.message) for e in events]
+    n_update_events = sum(e.kind == "update" for e in events)
+    assert run.updates.n == n_update_events == result.updates
+    d, r, fs = read_signals(run)
+    assert fs == 8000
+    np.testing.assert_array_equal(d, drive.astype(np.float32))
+    np.testing.assert_array_equal(r, response.astype(np.float32))
+    assert "new_drive_psd" in run.updates.arrays and run.calibrated is True
