@@ -244,7 +244,7 @@ def test_missing_sounddevice_package_is_a_device_error(monkeypatch) -> None:
 def test_importing_the_rigs_does_not_import_sounddevice_or_jack() -> None:
     code = (
         "import sys\n"
-        "import liveshape.rigs.audio, liveshape.rigs.jackrig\n"
+        "import liveshape.rigs.audio, liveshape.rigs.jackrig, liveshape.rigs.calibration\n"
         "print('sounddevice' in sys.modules, 'jack' in sys.modules)\n"
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)

@@ -117,14 +117,20 @@ def list_devices() -> list[DeviceInfo]:
     return out
 
 
-def rescan_devices() -> None:
+def rescan_devices(between: Callable[[], None] | None = None) -> None:
     """Re-initialize PortAudio so that devices (e.g. a JACK server) started since are listed.
 
+    ``between`` runs while PortAudio is shut down: stop a JACK server there, because PortAudio's
+    JACK host aborts the process (an assertion in its terminate) when the server vanished first.
     Must not be called while a stream is open (PortAudio closes every stream on terminate).
     """
     sd = import_sounddevice()
     sd._terminate()
-    sd._initialize()
+    try:
+        if between is not None:
+            between()
+    finally:
+        sd._initialize()
 
 
 def match_device(devices: list[DeviceInfo], device: int | str | None) -> DeviceInfo:
@@ -322,6 +328,7 @@ class AudioRig:
         *,
         on_block: Callable[[BlockIO], None] | None = None,
         should_stop: Callable[[], bool] | None = None,
+        on_open: Callable[[], None] | None = None,
     ) -> Any:
         """Run ``source`` through the stream until it finishes; return ``source.result()``.
 
@@ -334,7 +341,7 @@ class AudioRig:
         DeviceError
             The device cannot be opened, or the stream stalled (device or server gone).
         """
-        self.start(source, on_block=on_block, should_stop=should_stop)
+        self.start(source, on_block=on_block, should_stop=should_stop, on_open=on_open)
         interrupts = 0
         while True:
             try:
@@ -357,8 +364,14 @@ class AudioRig:
         *,
         on_block: Callable[[BlockIO], None] | None = None,
         should_stop: Callable[[], bool] | None = None,
+        on_open: Callable[[], None] | None = None,
     ) -> None:
-        """Open the stream, pre-roll ``lead_blocks`` drive blocks and start the worker."""
+        """Open the stream, pre-roll ``lead_blocks`` drive blocks and start the worker.
+
+        ``on_block(BlockIO)`` is called by the worker for every block; ``should_stop()`` is
+        polled by it; ``on_open()`` runs once the stream is open and before it starts (e.g. to
+        connect a JACK tap to the stream's ports).
+        """
         if self._thread is not None:
             raise RuntimeError("this AudioRig is already running")
         sd = import_sounddevice()
@@ -416,6 +429,12 @@ class AudioRig:
             )
         except sd.PortAudioError as exc:
             raise device_error(str(exc), self.info, self.fs_hz) from None
+        if on_open is not None:
+            try:
+                on_open()
+            except BaseException:
+                self._stream.close()
+                raise
         if self.switch_interval_s is not None:
             self._interval_before = sys.getswitchinterval()
             sys.setswitchinterval(self.switch_interval_s)

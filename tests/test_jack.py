@@ -1,0 +1,167 @@
+"""The audio rig through a real audio server: JACK (dummy driver) with the virtual rig client.
+
+Realtime-paced by design (a few seconds per run). One private server for the session
+(conftest.py, tests/jackserver.py); PortAudio is re-initialized after the server and each virtual
+rig start, so the import order of sounddevice does not matter.
+
+Outside references: the known values of the simulated plant (its card scales and delay), the
+JACK period (one period of latency breaks the feedback cycle of the graph, DOMAIN.md §9), the
+raised-cosine fade bound g(d) = (1 - cos(pi d / R)) / 2 at distance d from silence (calculus),
+scipy.signal.sosfreqz for the loopback cable.
+"""
+
+from __future__ import annotations
+
+import threading
+
+import numpy as np
+import pytest
+from jackserver import virtual_rig
+from scipy import signal
+
+from liveshape.errors import DeviceError
+from liveshape.rigs import audio
+from liveshape.rigs import calibration as cal
+from liveshape.rigs.jackrig import CableModel, JackTap, PlantProcessor, jack_loop_delay_samples
+from liveshape.rigs.plant import plant_from_mapping
+from liveshape.schema import Where
+
+FS = 48000.0
+PLANT = "liveshape-plant"
+
+#: A chain with distinct, known scales: 2 V/FS out, 4 V/FS in, 3 Hz and 2 Hz AC coupling,
+#: 100 samples of card delay, flat ideal shaker (20 g/V) and a 100 mV/g sensor.
+SCALED = {
+    "name": "scaled",
+    "card": {"out_v_per_fs": 2.0, "in_v_per_fs": 4.0, "out_highpass_hz": 3.0,
+             "in_highpass_hz": 2.0, "delay_samples": 100, "in_noise_fs_rms": 1e-6},
+    "shaker": {"model": "ideal", "g_per_v": 1.0},
+}
+
+
+def scaled_plant():
+    return plant_from_mapping(SCALED, Where("test plant"))
+
+
+# -- offline parts of the virtual rig (no server) ---------------------------------------------
+
+
+def test_cable_model_matches_its_card_filters_delay_and_scale() -> None:
+    plant = scaled_plant()
+    cable = CableModel(plant.card, FS)
+    cable._noise = 0.0
+    x = np.zeros(96000)
+    x[0] = 0.5
+    h = np.concatenate([cable.process(x[:5000]), cable.process(x[5000:])]) / 0.5
+    assert np.all(h[:100] == 0.0)  # the card's delay
+    sos = np.vstack([signal.butter(1, f, "highpass", fs=FS, output="sos") for f in (3.0, 2.0)])
+    w = 2 * np.pi * np.array([1.0, 3.0, 10.0, 1000.0]) / FS
+    want = 0.5 * signal.sosfreqz(sos, worN=w)[1] * np.exp(-1j * w * 100)  # gain 2 V / 4 V
+    got = np.array([np.sum(h * np.exp(-1j * wk * np.arange(h.size))) for wk in w])
+    # the impulse response is cut after 2 s = 25 time constants of the 2 Hz corner
+    # (exp(-25) ~ 1e-11); the rest is float32 rounding of the output (~1e-7 per sample)
+    np.testing.assert_allclose(got, want, rtol=1e-4, atol=1e-5)
+
+
+def test_plant_processor_fills_outputs_in_place_and_never_raises() -> None:
+    proc = PlantProcessor("ideal", FS, seed=1)
+    drive = np.full(256, 0.25, np.float32)
+    out = np.zeros(256, np.float32)
+    loop_out = np.zeros(256, np.float32)
+    proc.run(drive, out, drive, loop_out)
+    assert proc.errors == 0 and proc.periods == 1
+    assert np.all(out[:32] == pytest.approx(0.0, abs=1e-6))  # ideal preset: 32 samples delay
+    assert np.allclose(out[32:], 0.25, atol=1e-6) and np.allclose(loop_out[32:], 0.25)
+    proc.run(np.zeros(256, np.float32), np.zeros(10, np.float32))  # wrong output size
+    assert proc.errors == 1 and proc.last_error.startswith("ValueError")
+
+
+def test_jack_path_delay_rule() -> None:
+    assert jack_loop_delay_samples(1024, 512) == 1536
+    assert jack_loop_delay_samples(1024, 512, host_period=True, plant_delay=32) == 1056
+
+
+# -- through the server -----------------------------------------------------------------------
+
+
+def raised_cosine(d, r):
+    return 0.5 - 0.5 * np.cos(np.pi * np.clip(d, 0, r) / r)
+
+
+def edge_report(x: np.ndarray, r: int) -> tuple[int, float]:
+    """Silence boundaries in ``x`` and the worst ratio |x[b +- d]| / (peak g(d)), d = 1..r.
+
+    A ratio <= 1 means every sample near the edge of silence lies inside the raised-cosine
+    envelope of an r-sample fade of the largest drive sample; an abrupt start or cut gives a
+    ratio of order (drive sample / peak) / g(1) ~ 1e5.
+    """
+    peak = float(np.max(np.abs(x)))
+    zero = x == 0.0
+    edges = np.flatnonzero(zero[:-1] != zero[1:])
+    g = raised_cosine(np.arange(1, r + 1), r)
+    worst = 0.0
+    for e in edges:
+        if zero[e]:  # silence ends at e: signal starts at e + 1
+            seg = x[e + 1 : e + 1 + r]
+        else:  # signal ends at e: silence from e + 1
+            seg = x[max(0, e + 1 - r) : e + 1][::-1]
+        worst = max(worst, float(np.max(np.abs(seg) / (peak * g[: seg.size]))))
+    return edges.size, worst
+
+
+@pytest.mark.jack
+def test_devices_list_the_virtual_rig_and_settings_are_checked(jack_server) -> None:
+    with virtual_rig("ideal", seed=1):
+        devs = {d.name: d for d in audio.list_devices()}
+        assert PLANT in devs, sorted(devs)
+        d = devs[PLANT]
+        assert "JACK" in d.host_api and d.full_duplex
+        assert (d.max_input_channels, d.max_output_channels, d.default_fs_hz) == (2, 2, FS)
+        with pytest.raises(DeviceError, match="does not support fs_hz = 44100"):
+            audio.check_settings(PLANT, 44100)
+        with pytest.raises(DeviceError, match="has 2 input channel.*needs 3"):
+            audio.check_settings(PLANT, FS, input_channels=3)
+        with pytest.raises(DeviceError, match="close matches: liveshape-plant"):
+            audio.check_settings("liveshape-plnat", FS)
+
+
+@pytest.mark.jack
+@pytest.mark.parametrize(("block", "host_period"), [(1024, False), (512, False), (1024, True)])
+def test_loop_delay_through_the_stream_is_the_known_path_delay(jack_server, block, host_period):
+    plant = scaled_plant()
+    with virtual_rig(plant, seed=2):
+        rig = audio.AudioRig(PLANT, FS, block_size=block, loopback=(1, 1),
+                             host_period=host_period)
+        for channel in ("control", "loopback"):
+            d = cal.measure_loop_delay(rig, channel=channel, repeats=3)
+            want = jack_loop_delay_samples(jack_server.period_frames, block,
+                                           host_period=host_period,
+                                           plant_delay=plant.card.delay_samples)
+            assert d.per_burst == (want,) * 3, (channel, d)  # error target: 0 samples
+        assert rig.stats.dry_blocks == 0
+
+
+@pytest.mark.jack
+def test_volts_per_full_scale_through_the_stream(jack_server) -> None:
+    plant = scaled_plant()
+    with virtual_rig(plant, seed=3), JackTap(["PortAudio:out_0"]) as tap:
+        rig = audio.AudioRig(PLANT, FS, loopback=(1, 1))
+
+        def voltmeter(f_hz, level_fs):
+            # an ideal true-rms meter across the card output: the tap sees the stream's output
+            # port; the card turns FS into volts by out_v_per_fs (the plant's known value)
+            start = tap.frames + int(0.3 * FS)  # after the source's 0.2 s ramp
+            while tap.frames < start + int(0.5 * FS):
+                threading.Event().wait(0.02)
+            x = tap.data()[start : start + int(0.5 * FS), 0].astype(float)
+            return float(np.sqrt(np.mean(x**2))) * plant.card.out_v_per_fs
+
+        original = rig.start
+        rig.start = lambda src, **kw: original(src, on_open=tap.connect, **kw)
+        out = cal.calibrate_output(rig, voltmeter, level_fs=0.5)
+        del rig.start
+        # 0.5 s of a 400 Hz tone is 200 whole periods: the rms is exact up to float32 rounding
+        assert out.v_per_fs == pytest.approx(plant.card.out_v_per_fs, rel=1e-4)
+        inp = cal.calibrate_input(rig, out_v_per_fs=out.v_per_fs)
+        # 400 Hz through 3 Hz and 2 Hz first-order corners loses 4.1e-5 of the amplitude
+        assert inp.v_per_fs == pytest.approx(plant.card.in_v_per_fs, rel=2e-4)
