@@ -336,7 +336,7 @@ def make_drive_file(
     except BaseException as exc:
         _unlink(tmp_wav)
         if isinstance(exc, (OSError, getattr(sf, "LibsndfileError", OSError))):
-            raise ConfigError(f"out_path = {str(out)!r} cannot be written ({exc})") from exc
+            raise ConfigError(f"--output = {str(out)!r} cannot be written ({exc})") from exc
         raise
     report(1.0)
     return result
@@ -442,14 +442,14 @@ def _resolve(spec, out, duration_s, fs_hz, seed, clip_sigma, crest_min, crest_ma
     if isinstance(max_tries, bool) or not isinstance(max_tries, (int, np.integer)) or max_tries < 1:
         raise ConfigError(f"max_tries = {max_tries!r} must be a whole number >= 1")
     if out.suffix.lower() != ".wav":
-        raise ConfigError(f"out_path = {str(out)!r} must end in .wav")
+        raise ConfigError(f"--output = {str(out)!r} must end in .wav")
     folder = out.parent
     if not folder.is_dir():
-        raise ConfigError(f"out_path = {str(out)!r}: folder {str(folder)!r} does not exist")
+        raise ConfigError(f"--output = {str(out)!r}: folder {str(folder)!r} does not exist")
     if out.is_dir():
-        raise ConfigError(f"out_path = {str(out)!r} is a folder, not a file")
+        raise ConfigError(f"--output = {str(out)!r} is a folder, not a file")
     if not os.access(folder, os.W_OK):
-        raise ConfigError(f"out_path = {str(out)!r}: folder {str(folder)!r} is not writable")
+        raise ConfigError(f"--output = {str(out)!r}: folder {str(folder)!r} is not writable")
     return fs, n_frame, n_samples, int(seed), clip
 
 
@@ -475,7 +475,7 @@ def _temp_name(path: Path) -> str:
     try:
         fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
     except OSError as exc:
-        raise ConfigError(f"out_path = {str(path)!r} cannot be written ({exc.strerror})") from None
+        raise ConfigError(f"--output = {str(path)!r} cannot be written ({exc.strerror})") from None
     os.close(fd)
     return tmp
 

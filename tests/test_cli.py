@@ -120,3 +120,51 @@ def test_bad_rig_option() -> None:
 
 def test_missing_file() -> None:
     assert_one_line_error(run_cli("check", "no-such-file.yaml"), "no-such-file.yaml")
+
+
+def test_synth_json_and_sidecar(tmp_path: Path) -> None:
+    out = tmp_path / "drive.wav"
+    proc = run_cli("synth", str(EXAMPLES / "handlebar-nav-unit.yaml"), "--duration", "12",
+                   "-o", str(out), "--seed", "5", "--json")
+    assert proc.returncode == 0, proc.stderr
+    data = json.loads(proc.stdout)
+    for key in ("path", "fs_hz", "duration_s", "seed", "full_scale_g", "rms_g", "crest_factor",
+                "kurtosis", "tries", "psd_check"):
+        assert key in data
+    assert json.loads(out.with_suffix(".json").read_text()) == data
+    import soundfile as sf
+
+    x, fs = sf.read(out)
+    assert fs == 48000 and x.size == 12 * 48000
+    # sample x full_scale_g is acceleration in g: its rms is the profile grms (1.107 g, exact
+    # integral of the example's breakpoints) within the chi-square scatter of 12 s of data
+    # (well under 5 % for ~440 DOF per line over ~160 lines; common practice bound).
+    grms = float((x * data["full_scale_g"]).std())
+    assert grms == pytest.approx(1.107, rel=0.05)
+    assert grms == pytest.approx(data["rms_g"], rel=1e-5)
+    # Gaussian drive with clipping at 4 sigma: kurtosis a little below 3 (normal distribution).
+    assert 2.8 < data["kurtosis"] < 3.1
+
+
+def test_synth_unwritable_output_leaves_nothing(tmp_path: Path) -> None:
+    out = tmp_path / "missing-folder" / "drive.wav"
+    proc = run_cli("synth", str(EXAMPLES / "handlebar-nav-unit.yaml"), "--duration", "5",
+                   "-o", str(out))
+    assert_one_line_error(proc, "--output", "missing-folder")
+    assert not (tmp_path / "missing-folder").exists()
+
+
+def test_synth_clip_below_iec_floor(tmp_path: Path) -> None:
+    proc = run_cli("synth", str(EXAMPLES / "handlebar-nav-unit.yaml"), "--duration", "5",
+                   "-o", str(tmp_path / "d.wav"), "--clip-sigma", "2")
+    assert_one_line_error(proc, "clip_sigma", "2.5", "IEC 60068-2-64")
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_synth_crest_limits_unreachable(tmp_path: Path) -> None:
+    # With clipping at 4 sigma the crest factor cannot exceed 4: asking for >= 4.5 fails after
+    # --max-tries realizations with one line and no file.
+    proc = run_cli("synth", str(EXAMPLES / "handlebar-nav-unit.yaml"), "--duration", "5",
+                   "-o", str(tmp_path / "d.wav"), "--crest-min", "4.5", "--max-tries", "2")
+    assert_one_line_error(proc, "crest_min", "max_tries")
+    assert list(tmp_path.iterdir()) == []
