@@ -184,3 +184,40 @@ def test_level_track_follows_events_to_the_end(tmp_path):
     # mixed in; the last level holds to the last event.
     np.testing.assert_array_equal(t, [0.0, 2.0, 4.0, 9.5])
     np.testing.assert_array_equal(lv, [-12.0, -6.0, 0.0, 0.0])
+
+
+def test_report_of_a_real_simulated_run(tmp_path):
+    import dataclasses
+    from pathlib import Path
+
+    from liveshape.controller import Controller
+    from liveshape.rigs.plant import load_plant
+    from liveshape.rigs.sim import SimRig
+    from liveshape.spec import load_spec, spec_to_mapping
+
+    example = Path(__file__).resolve().parents[1] / "examples" / "handlebar-nav-unit.yaml"
+    spec = load_spec(example, {"control.fs_hz": 8000, "control.lines": 512,
+                               "control.target_dof": 60, "schedule.full_level_s": 2,
+                               "schedule.hold_s": 0.5})
+    rig = SimRig(load_plant("loudspeaker"), spec.control.fs_hz, seed=1)
+    ctl = Controller(spec, rig.calibration, seed=2)
+    response, last = np.zeros(1024), None
+    with RunRecorder.create(tmp_path, name=spec.name, spec_mapping=spec_to_mapping(spec),
+                            rig_mapping={"kind": "sim"}, fs_hz=spec.control.fs_hz, now=NOW,
+                            calibration=dataclasses.asdict(rig.calibration)) as rec:
+        while not ctl.finished:
+            response = rig.process(ctl.exchange(response))
+            rec.events(ctl.drain_events())
+            if ctl.last_update is not None and ctl.last_update is not last:
+                last = ctl.last_update
+                rec.update_from(last)
+        result = ctl.result()
+        rec.close(result)
+    res = render_report(rec.root)
+    text = res.summary
+    assert "status:          completed" in text
+    assert f"grms control:    {result.control_grms_g:.3f} g" in text
+    assert f"target: {result.target_grms_g:.3f} g" in text
+    assert f"DOF:             {result.dof:.0f}" in text
+    assert f"updates:         {result.updates}" in text
+    assert all(_png_size(p)[0] == 880 for p in res.pngs.values())
