@@ -13,9 +13,9 @@ checks; MIL-STD-810H 514.8 Annex C tabulates peak displacement on a 3-sigma basi
 the converter's ±1 FS (card output and input), the amplifier's ``v_out_max_v`` and ``i_max_a``, and
 the shaker's ``xmax_m``. Headroom is ``20 log10(limit / peak)`` in dB (positive = margin).
 
-Noise floor at the card input: sensor noise ``noise_g_rms² / (fs/2)`` g²/Hz through the sensor
-chain plus card noise ``in_noise_fs_rms² / (fs/2)`` FS²/Hz (both white over 0 .. fs/2). The SNR of a
-line is the target's measured PSD over this floor.
+Noise floor at the card input: sensor noise ``(noise_g_rms c)² / (fs/2)`` plus card noise
+``in_noise_fs_rms² / (fs/2)`` FS²/Hz, both white over 0 .. fs/2 as in the simulated rig. The SNR of
+a line is the target's measured PSD ``A_k c²`` over this floor.
 
 Rule for the lowest frequency the rig can honestly control (our own rule, documented here):
 a line ``f_k`` of the band qualifies when (1) its SNR is at least ``snr_min_db`` (default 10 dB:
@@ -35,13 +35,11 @@ from typing import Any
 import numpy as np
 
 from liveshape.errors import ConfigError
-from liveshape.profile import G0_M_S2
 from liveshape.rigs.plant import (
     IdealShaker,
     Plant,
     analytic_frf,
     drive_to_volts_tf,
-    sensor_tf,
     voltage_frf,
 )
 
@@ -226,13 +224,11 @@ def assess(
     x_psd = volts * np.abs(voltage_frf(plant, fb, "displacement_m_per_v")) ** 2
     motor = not isinstance(plant.shaker, IdealShaker)
     i_psd = volts * np.abs(voltage_frf(plant, fb, "current_a_per_v")) ** 2 if motor else None
-    # Noise floor at the card input (FS²/Hz), white sources through their chains.
-    sens_chain = np.abs(_poly_at(sensor_tf(plant), s) * G0_M_S2) ** 2  # FS² per g²
-    floor = (plant.accelerometer.noise_g_rms**2 / (fs / 2)) * sens_chain \
-        + plant.card.in_noise_fs_rms**2 / (fs / 2)
+    # Noise floor at the card input (FS²/Hz): sensor and card noise, white over 0 .. fs/2.
+    noise_ms = (plant.accelerometer.noise_g_rms * c) ** 2 + plant.card.in_noise_fs_rms**2
+    floor = noise_ms / (fs / 2)
     with np.errstate(divide="ignore"):
         snr_db = 10.0 * np.log10(resp / floor) if fb.size else np.zeros(0)
-    noise_ms = (plant.accelerometer.noise_g_rms * c) ** 2 + plant.card.in_noise_fs_rms**2
 
     amp, sh = plant.amplifier, plant.shaker
     limited = [("drive", drive, 1.0), ("amp_voltage", volts, amp.v_out_max_v),

@@ -10,9 +10,15 @@ Signal path, per sample::
     drive -> clip ±1 FS -> loop delay -> card out high-pass -> x out_v_per_fs x gain
       -> subsonic high-pass -> [plant_gain] -> clip ±v_out_max -> [trip: 0 V from then on]
       -> shaker + payload (currents, excursion, acceleration at the control point)
-      -> Xmax compression -> /g0 [sensor_detached: 0] + sensor noise -> [sensor_gain]
+      -> Xmax compression -> /g0 [sensor_detached: 0] -> [sensor_gain]
       -> accelerometer high-pass -> x mV/g / in_v_per_fs -> card in high-pass
-      -> + card noise [+ noise_burst] -> clip ±1 FS -> [dropout: 0]
+      -> + sensor noise [x sensor_gain] + card noise [+ noise_burst] -> clip ±1 FS
+      -> [dropout: 0]
+
+Noise: the sensor's and the card's white noise are added together at the card input as one
+seeded white Gaussian source (the couplings' effect on sensor noise below their few-hertz corners
+is neglected); noise is drawn in float32, which is ample for a floor 60 dB or more below the
+signal.
 
 Discretization: every linear stage uses the trapezoidal rule (bilinear transform, no prewarp) at
 the rig's sample rate. The shaker with its payload is kept as a physical state-space model,
@@ -173,15 +179,12 @@ class _Modal:
         for (bb, aa), c, zi in zip(self.real_ba, self.real_c, state[0], strict=True):
             z, zf = signal.lfilter(bb, aa, u, zi=zi)
             real_new.append(zf)
-            for o in range(self.n_out):
-                out[o] += c[o] * z
+            out += c[:, None] * z[None, :]
         for aa, c1, c2, (zi, last) in zip(self.pair_a, self.pair_c1, self.pair_c2, state[1],
                                           strict=True):
             p, zf = signal.lfilter([1.0], aa, u, zi=zi)
             ext = np.concatenate((last, p))
-            p1, p2 = ext[1:-1], ext[:-2]
-            for o in range(self.n_out):
-                out[o] += c1[o] * p1 + c2[o] * p2
+            out += c1[:, None] * ext[None, 1:-1] + c2[:, None] * ext[None, :-2]
             pair_new.append((zf, ext[-2:].copy()))
         return out, (real_new, pair_new)
 
@@ -250,7 +253,13 @@ def _highpass_sections(corners: Iterable[tuple[float | None, int]], gain: float,
     if not p_all:
         return None
     sos = signal.zpk2sos(np.asarray(z_all), np.asarray(p_all), k_all)
-    return [(row[:3].copy(), row[3:].copy()) for row in sos]
+    out = []
+    for row in sos:
+        b, a = row[:3].copy(), row[3:].copy()
+        if b[2] == 0.0 and a[2] == 0.0:  # a first-order section: run it as one
+            b, a = b[:2], a[:2]
+        out.append((b, a))
+    return out
 
 
 def _run_sections(sections, x: np.ndarray, zis: list[np.ndarray]) -> tuple[np.ndarray, list]:
@@ -321,8 +330,9 @@ class SimRig:
     fs_hz : float
         Sample rate in Hz; every corner and resonance must lie below ``0.45 fs_hz``.
     seed : int or None
-        Seed of the noise generators (sensor, card, burst noise each get their own stream from
-        :class:`numpy.random.SeedSequence`, so the output does not depend on block sizes).
+        Seed of the noise generators (the sensor/card noise and the burst noise each get their
+        own stream from :class:`numpy.random.SeedSequence`; each stream is drawn in rig-time
+        order, so the output does not depend on block sizes).
     faults : iterable
         Objects with ``kind``, ``at_s``, ``value``, ``duration_s``
         (:class:`liveshape.spec.FaultSpec`).
@@ -343,18 +353,19 @@ class SimRig:
         self._faults = tuple(_check_fault(i, f, plant, fs) for i, f in enumerate(faults))
         self._bounds = sorted({f.start for f in self._faults}
                               | {int(f.end) for f in self._faults if f.end != math.inf})
-        streams = np.random.SeedSequence(seed).spawn(3)
-        self._rng_sensor, self._rng_card, self._rng_burst = (np.random.default_rng(s)
-                                                              for s in streams)
+        streams = np.random.SeedSequence(seed).spawn(2)
+        self._rng_noise, self._rng_burst = (np.random.default_rng(s) for s in streams)
         card, amp, acc = plant.card, plant.amplifier, plant.accelerometer
         self._up_gain = card.out_v_per_fs * amp.gain_v_per_v
         self._up = _highpass_sections(
             [(card.out_highpass_hz, 1), (amp.highpass_hz, amp.highpass_order)], self._up_gain, fs)
         self._down_gain = acc.sens_mv_per_g * 1e-3 / card.in_v_per_fs
+        self._sensor_noise_fs = acc.noise_g_rms * self._down_gain
+        self._card_noise_fs = card.in_noise_fs_rms
         self._down = _highpass_sections(
             [(acc.highpass_hz, 1), (card.in_highpass_hz, 1)], self._down_gain, fs)
-        self._up_zi = [np.zeros(2) for _ in self._up or ()]
-        self._down_zi = [np.zeros(2) for _ in self._down or ()]
+        self._up_zi = [np.zeros(len(a) - 1) for _, a in self._up or ()]
+        self._down_zi = [np.zeros(len(a) - 1) for _, a in self._down or ()]
         self._delay = np.zeros(card.delay_samples)
         sh = plant.shaker
         self._motor = not isinstance(sh, IdealShaker)
@@ -574,20 +585,19 @@ class SimRig:
                 acc = np.where(beyond, acc * (xmax / np.where(beyond, ax, 1.0)), acc)
         # Sensor and card input.
         g = np.zeros(n) if st["detached"] else acc / G0_M_S2
-        noise_g = self._plant.accelerometer.noise_g_rms
-        if noise_g > 0:
-            g = g + noise_g * self._rng_sensor.standard_normal(n)
         if st["sensor_gain"] != 1.0:
             g = g * st["sensor_gain"]
         if self._down is None:
             r = g * self._down_gain
         else:
             r, self._down_zi = _run_sections(self._down, g, self._down_zi)
-        noise_fs = self._plant.card.in_noise_fs_rms
-        if noise_fs > 0:
-            r = r + noise_fs * self._rng_card.standard_normal(n)
+        # Sensor noise (scaled by the sensor chain) and card noise: one white source.
+        noise_var = (self._sensor_noise_fs * st["sensor_gain"]) ** 2 + self._card_noise_fs**2
+        if noise_var > 0:
+            r = r + math.sqrt(noise_var) * self._rng_noise.standard_normal(n, dtype=np.float32)
         if st["burst_var"] > 0:
-            r = r + math.sqrt(st["burst_var"]) * self._rng_burst.standard_normal(n)
+            r = r + math.sqrt(st["burst_var"]) * self._rng_burst.standard_normal(
+                n, dtype=np.float32)
         r = self._clip(r, 1.0, "input")
         if st["dropout"]:
             r = np.zeros(n)
