@@ -35,7 +35,8 @@ Nonlinear and protective behaviour (simple models, documented):
 * Xmax: the excursion is computed by the linear model. Where ``|x| > xmax`` the acceleration
   reaching the sensor is scaled by ``xmax/|x|`` (the motor force falls as the coil leaves the gap);
   such samples are counted. The compression does not feed back into the excursion.
-* Coil heating (when the plant has ``coil_heating``): every 0.1 s of rig time the mean electrical
+* Coil heating (when the plant has ``coil_heating``): every thermal step (a twentieth of the
+  thermal time constant, at most :data:`THERMAL_STEP_MAX_S`) of rig time the mean electrical
   power ``mean(i²) Re`` drives the first-order thermal model; the shaker model follows ``Re``
   whenever it has moved by more than :data:`RE_STEP` (relative) since the last rebuild.
 
@@ -75,8 +76,9 @@ FAULT_RULES: dict[str, str] = {
 FAULT_KINDS = tuple(FAULT_RULES)
 _NEEDS_VALUE = {"sensor_gain": 0.0, "resonance_shift": None, "plant_gain": None, "noise_burst": 0.0}
 
-#: Period of the coil-temperature update, seconds of rig time.
-THERMAL_STEP_S = 0.1
+#: Longest period of the coil-temperature update, seconds of rig time (the step is a twentieth of
+#: the thermal time constant, at most this).
+THERMAL_STEP_MAX_S = 0.5
 #: The shaker model is rebuilt when Re has moved by this fraction since the last build (a gain
 #: step of at most 0.001 dB).
 RE_STEP = 1e-4
@@ -373,7 +375,8 @@ class SimRig:
         self._re_now = self._re_model = self._re0
         self._heat = sh.coil_heating
         self._rise_k = 0.0
-        self._n_th = max(1, int(round(THERMAL_STEP_S * fs)))
+        tau = self._heat.time_constant_s if self._heat is not None else 1.0
+        self._n_th = max(1, int(round(min(THERMAL_STEP_MAX_S, tau / 20.0) * fs)))
         self._th_buf = np.zeros(self._n_th)
         self._f_factor = 1.0
         self._model = _Modal(*electromechanical_ss(plant), fs)
@@ -491,8 +494,6 @@ class SimRig:
             if b > a:
                 nxt = b
                 break
-        if self._heat is not None:
-            nxt = min(nxt, (a // self._n_th + 1) * self._n_th)
         return int(min(nxt, a + 10**12))
 
     def _active(self, a: int) -> list[_Fault]:
@@ -524,32 +525,24 @@ class SimRig:
         h = self._heat
         if h is None or a == 0 or a % self._n_th:
             return
-        power_w = float(np.dot(self._th_buf, self._th_buf)) / self._n_th * self._re_now
+        # An elementwise square and a pairwise sum, not BLAS dot (threaded BLAS burns CPU).
+        power_w = float(np.square(self._th_buf).sum()) / self._n_th * self._re_now
         target = power_w * h.thermal_resistance_k_per_w
         decay = math.exp(-self._n_th / (self._fs * h.time_constant_s))
         self._rise_k = target + (self._rise_k - target) * decay
         self._re_now = self._re0 * (1.0 + h.tempco_per_k * self._rise_k)
 
-    def _segment(self, d: np.ndarray, a: int) -> np.ndarray:
-        """One stretch of samples starting at rig sample ``a`` with constant fault state."""
-        n = d.size
+    def _motor_piece(self, v: np.ndarray, a: int, st: dict[str, Any]) -> np.ndarray:
+        """Shaker outputs ``(3, n)`` for amplifier volts ``v`` from rig sample ``a``.
+
+        Updates the coil temperature on a step boundary, rebuilds the model (carrying the
+        physical state) when Re or the modal frequencies moved, and trips the amplifier on the
+        first sample whose current exceeds ``i_max_a`` (the piece is then run again with 0 V
+        from the next sample on).
+        """
         self._update_heat(a)
-        st = self._state(a)
-        # Card output and amplifier.
-        if self._up is None:
-            v = d * self._up_gain
-        else:
-            v, self._up_zi = _run_sections(self._up, d, self._up_zi)
-        if st["plant_gain"] != 1.0:
-            v = v * st["plant_gain"]
-        vmax = self._plant.amplifier.v_out_max_v
-        if vmax is not None:
-            v = self._clip(v, vmax, "amp")
-        if self._tripped_at is None and st["trip"]:
-            self._tripped_at = a
-        if self._tripped_at is not None:
-            v = np.zeros(n)
-        # Shaker and payload: rebuild the model if its parameters moved.
+        if self._tripped_at is not None and self._tripped_at <= a:
+            v = np.zeros(v.size)
         rel = 0.0 if self._re0 is None else abs(self._re_now - self._re_model) / self._re0
         if st["f_factor"] != self._f_factor or rel > RE_STEP:
             x_phys = self._model.to_physical(self._zeta, float(v[0]))
@@ -568,10 +561,39 @@ class SimRig:
                 v = v.copy()
                 v[k + 1:] = 0.0
                 outs, self._zeta = self._model.run(v, zeta0)
+        return outs
+
+    def _segment(self, d: np.ndarray, a: int) -> np.ndarray:
+        """One stretch of samples starting at rig sample ``a`` with constant fault state."""
+        n = d.size
+        st = self._state(a)
+        # Card output and amplifier.
+        if self._up is None:
+            v = d * self._up_gain
+        else:
+            v, self._up_zi = _run_sections(self._up, d, self._up_zi)
+        if st["plant_gain"] != 1.0:
+            v = v * st["plant_gain"]
+        vmax = self._plant.amplifier.v_out_max_v
+        if vmax is not None:
+            v = self._clip(v, vmax, "amp")
+        if self._tripped_at is None and st["trip"]:
+            self._tripped_at = a
+        if self._tripped_at is not None:
+            v = np.zeros(n)
+        # Shaker and payload, in pieces that end on the coil-temperature steps.
+        if self._heat is None:
+            outs = self._motor_piece(v, a, st)
+        else:
+            outs = np.empty((3, n))
+            pos = 0
+            while pos < n:
+                stop = min(n, ((a + pos) // self._n_th + 1) * self._n_th - a)
+                outs[:, pos:stop] = self._motor_piece(v[pos:stop], a + pos, st)
+                j = (a + pos) % self._n_th
+                self._th_buf[j:j + stop - pos] = outs[0, pos:stop]
+                pos = stop
         cur, x, acc = outs
-        if self._heat is not None:
-            j = a % self._n_th
-            self._th_buf[j:j + n] = cur
         if self._motor:
             ax = np.abs(x)
             peak = float(ax.max())
