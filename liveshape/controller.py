@@ -53,18 +53,24 @@ import numpy as np
 
 from liveshape import equalizer
 from liveshape.chain import ChainCalibration
+from liveshape.drivestream import DriveStream
 from liveshape.errors import ConfigError
 from liveshape.runstate import ControlSnapshot, Event, RunResult, UpdateRecord, frozen_array
 from liveshape.safety import LevelSchedule, Supervisor, Trip, band_sum_dof
-from liveshape.spectra import CrossSpectrum, chi2_interval_db, welch_dof
+from liveshape.spectra import chi2_interval_db, welch_dof
 from liveshape.stages import (
     CONNECT_SEGMENTS,
+    ConnectRecorder,
+    ControlEstimate,
     DecisionPool,
+    Judgement,
     analyse_connection,
+    connection_data,
+    connection_trip,
+    judge,
     segments_for_dof,
     update_dof_for,
 )
-from liveshape.synth import RandomPhaseSynth
 
 _DB = 10.0 / math.log(10.0)
 #: Fade in of the connection and identification drives, s.
@@ -122,17 +128,8 @@ class Controller:
         self._gpf2 = calibration.g_per_fs ** 2
         self._gamma = float(c.update_gain)
         rate = min(float(spec.schedule.rate_db_s), float(s.max_rate_db_s))
-        self._rate_db_s = rate
         self._abort_ramp_s = float(s.abort_ramp_s)
         self._end_ramp_s = float(end_ramp_s)
-        clip = s.clip_sigma
-        self._rms_limit_fs = float(s.drive_rms_max_fs)
-        if clip is not None:
-            self._rms_limit_fs = min(self._rms_limit_fs, float(s.drive_peak_max_fs) / clip)
-        self._peak_limit_fs = float(s.drive_peak_max_fs)
-        seed = spec.seed if seed is None else seed
-        self._synth = RandomPhaseSynth(fs, n, seed=seed, clip_sigma=clip, gain=0.0,
-                                       rate_db_s=rate, fade_s=self._abort_ramp_s)
         self.schedule = LevelSchedule(spec.schedule)
         self.supervisor = Supervisor(s, spec.tolerance, fs_hz=fs, silent_window=self._hop)
         self._update_dof_target = float(update_dof or update_dof_for(c.target_dof))
@@ -144,49 +141,41 @@ class Controller:
         self._max_lag = max(1, int(round(max_delay_s * fs)))
         self._bg_len = max(int(round(background_s * fs)), 2 * n)
         self._fade_in = max(1, int(math.ceil(FADE_IN_S * fs)))
+        self._out = DriveStream(
+            fs, n, seed=spec.seed if seed is None else seed, clip_sigma=s.clip_sigma,
+            rms_max_fs=s.drive_rms_max_fs, peak_max_fs=s.drive_peak_max_fs, rate_db_s=rate,
+            fade_s=self._abort_ramp_s, history=self._max_lag + 8 * n)
 
         # streams
         self._n_in = 0  # response samples received
-        self._n_out = 0  # drive samples produced
         self._y_next = 0  # next response sample to process
         self._ypend: list[np.ndarray] = []
-        self._hist = np.zeros(0)
-        self._hist0 = 0
         self._delay: int | None = None
         # state
         self._stage = "connect"
-        self._phase = "background"
         self._status = "running"
         self._trip: Trip | None = None
         self._stop_reason: str | None = None
         self._events: list[Event] = []
         self._recent: deque[Event] = deque(maxlen=12)
-        self._bg: list[np.ndarray] = []
-        self._rec_x: list[np.ndarray] = []
-        self._rec_y: list[np.ndarray] = []
-        self._rec_start = 0
-        self._rec_len = self._fade_in + (CONNECT_SEGMENTS + 1) * self._hop + self._max_lag
+        self._conn: ConnectRecorder | None = ConnectRecorder(
+            self._bg_len, self._fade_in + (CONNECT_SEGMENTS + 1) * self._hop + self._max_lag)
         self._connection = None
-        self._drive = np.zeros(target.size)  # drive PSD at full level, FS²/Hz
         self._h1 = np.full(target.size, np.nan + 0j)  # g/FS
         self._coh = np.zeros(target.size)
         self._frozen = np.zeros(target.size, dtype=bool)
-        self._est = CrossSpectrum(fs, n, averaging="linear")
-        self._valid_from = math.inf  # first response index usable for the estimate
+        # identification (and the blend law) need the cross spectrum; the direct law only the
+        # control's autospectrum, at half the FFT work
+        self._est = ControlEstimate(fs, n, band, self._gpf2, cross=True)
         self._est_gain = 0.0  # gain the estimate's data was played at
-        self._est_segments = 0
-        self._est_total = 0.0
         self._target_sum = float(target[band].sum())
         self._seg_band_dof = band_sum_dof(target[band], 2.0)  # one periodogram: 2 DOF a line
         self._switch_to: tuple[np.ndarray, float] | None = None
-        self._ceiling_hit = False
-        self._clipped = 0
-        self._peak = 0.0
         self._tail_left: int | None = None
         self._updates = 0
         self._updates_to_tol: int | None = None
         self._last_update: UpdateRecord | None = None
-        self._decision: dict[str, Any] | None = None
+        self._decision: Judgement | None = None
         self._alarm_on = False
         self._emit("stage", "connect: looking at the background noise", {"stage": "connect"})
 
@@ -236,7 +225,7 @@ class Controller:
     @property
     def drive_rms_limit_fs(self) -> float:
         """Effective drive rms ceiling, FS."""
-        return self._rms_limit_fs
+        return self._out.rms_limit_fs
 
     def drain_events(self) -> list[Event]:
         """Events since the last call, oldest first."""
@@ -282,8 +271,8 @@ class Controller:
             trip = self.supervisor.check_block(t0, y, drive_up=None)
             if trip is not None:
                 self._abort(trip)
-        if not np.isfinite(y).all():
-            y[~np.isfinite(y)] = 0.0
+        if self._trip is not None and self._trip.rule == "non_finite":
+            y[~np.isfinite(y)] = 0.0  # keep the estimators finite while ramping down
         self._ypend.append(y)
         self._n_in += n
         self._process()
@@ -292,7 +281,7 @@ class Controller:
     # ------------------------------------------------------------------ processing
     def _process(self) -> None:
         lag = self._delay if self._delay is not None else 0
-        end = min(self._n_in, self._n_out + lag)
+        end = min(self._n_in, self._out.n_out + lag)
         if end <= self._y_next:
             return
         ys = np.concatenate(self._ypend) if len(self._ypend) > 1 else self._ypend[0]
@@ -300,77 +289,45 @@ class Controller:
         y, rest = ys[:k], ys[k:]
         self._ypend = [rest] if rest.size else []
         i0 = self._y_next
-        x = self._history(i0 - lag, end - lag)
+        x = self._out.history.get(i0 - lag, end - lag)
         self._y_next = end
-        self._trim_history()
+        self._out.history.forget_before(end - (self._max_lag if self._delay is None else lag))
+        if self._status != "running":
+            return  # ramping down: nothing more to learn from the response
         if self._stage == "connect":
             self._connect(x, y, i0)
         elif self._stage in ("identify", "equalize", "full_level"):
-            if self._status == "running":
-                trip = self.supervisor.check_silence(i0 / self.fs_hz, y,
-                                                     drive_up=bool(np.any(x)))
-                if trip is not None:
-                    self._abort(trip)
-                    return
-                if self.supervisor.silent_in_last_block and self._valid_from < math.inf:
-                    # a dropout shorter than the rule's window: its data must not enter an
-                    # estimate (it would read as low control and pull the drive up)
-                    self._restart_estimate(after=self._n_out)
-                    self._emit("dropout", "response silent: estimate restarted",
-                               {"silent_samples": self.supervisor.silent_run_samples})
+            trip = self.supervisor.check_silence(i0 / self.fs_hz, y, drive_up=bool(np.any(x)))
+            if trip is not None:
+                self._abort(trip)
+                return
+            if self.supervisor.silent_in_last_block and self._est.active:
+                # a dropout shorter than the rule's window: its data must not enter an
+                # estimate (it would read as low control and pull the drive up)
+                self._restart_estimate(after=self._out.n_out)
+                self._emit("dropout", "response silent: estimate restarted",
+                           {"silent_samples": self.supervisor.silent_run_samples})
             self._estimate(x, y, i0)
-
-    def _history(self, a: int, b: int) -> np.ndarray:
-        out = np.zeros(b - a)
-        lo, hi = max(a, self._hist0), min(b, self._hist0 + self._hist.size)
-        if hi > lo:
-            out[lo - a: hi - a] = self._hist[lo - self._hist0: hi - self._hist0]
-        return out
-
-    def _trim_history(self) -> None:
-        keep_from = self._y_next - (self._delay if self._delay is not None else self._max_lag)
-        cut = keep_from - self._hist0
-        if cut > 4 * self.frame_length:
-            self._hist = self._hist[cut:].copy()
-            self._hist0 += cut
 
     # ------------------------------------------------------------------ connect
     def _connect(self, x: np.ndarray, y: np.ndarray, i0: int) -> None:
-        if self._phase == "background":
-            self._bg.append(y[: max(0, self._bg_len - i0)])
+        rec = self._conn
+        rec.feed(x, y, i0)
+        if self._connection is not None or not rec.complete:
             return
-        a = max(i0, self._rec_start)
-        if a < i0 + y.size:
-            self._rec_x.append(x[a - i0:])
-            self._rec_y.append(y[a - i0:])
-        have = i0 + y.size - self._rec_start
-        if self._phase != "drive" or have < self._rec_len:
-            return
-        self._phase = "analysed"
-        xr = np.concatenate(self._rec_x)[: self._rec_len]
-        yr = np.concatenate(self._rec_y)[: self._rec_len]
-        bg = np.concatenate(self._bg) if self._bg else np.zeros(0)
+        xr, yr, bg = rec.records()
         chk = analyse_connection(xr, yr, bg, fs_hz=self.fs_hz, nperseg=self.frame_length,
                                  band=self._band, max_lag=self._max_lag, skip=self._fade_in)
         self._connection = chk
-        self._rec_x, self._rec_y, self._bg = [], [], []
-        t = self.t_s
+        self._conn = None
         s = self.spec.safety
-        data = {"loop_delay_samples": chk.delay_samples, "delay_peak": chk.delay_peak,
-                "mean_coherence": chk.mean_coherence, "response_rms_fs": chk.response_rms_fs,
-                "background_rms_fs": chk.background_rms_fs, "snr_db": chk.snr_db,
+        data = {**connection_data(chk),
                 "calibration_delay_samples": self.calibration.loop_delay_samples}
         self._emit("connect", f"connect: loop delay {chk.delay_samples} samples, mean coherence "
                    f"{chk.mean_coherence:.2f}, SNR {chk.snr_db:.1f} dB", data)
-        if chk.response_rms_fs < s.silent_floor_fs:
-            self._abort(Trip("response_silent",
-                             f"control channel silent during the connection check: rms "
-                             f"{chk.response_rms_fs:.2e} FS < {s.silent_floor_fs:.2e} FS", t, data))
-            return
-        if chk.mean_coherence < s.connect_coherence_min:
-            self._abort(Trip("connect_check",
-                             f"control channel does not respond to the drive: mean coherence "
-                             f"{chk.mean_coherence:.2f} < {s.connect_coherence_min:g}", t, data))
+        trip = connection_trip(chk, s, self.t_s)
+        if trip is not None:
+            self._abort(trip)
             return
         self._delay = chk.delay_samples
         # identification drive: the target shape through the connection FRF, 6 dB below step 1
@@ -380,67 +337,51 @@ class Controller:
         g_id = 10.0 ** ((self.schedule.steps_db[0] - IDENTIFY_BELOW_DB) / 20.0)
         res = equalizer.initial_drive(self._target, h, chk.coherence, max_boost_db=c.max_boost_db,
                                       coherence_min=s.connect_coherence_min, band=self._band,
-                                      ceiling_ms_fs2=self._ceiling_ms(g_id), df_hz=self.df_hz)
+                                      ceiling_ms_fs2=self._out.ceiling_ms(g_id), df_hz=self.df_hz)
         self._switch_to = (np.array(res.drive_psd), g_id)
         self._set_stage("identify", f"identify: H1 at {20 * math.log10(g_id):.1f} dB")
-        self._synth.set_gain(0.0, duration_s=FADE_IN_S)
+        self._out.fade(0.0, FADE_IN_S)
 
     # ------------------------------------------------------------------ estimation
     def _estimate(self, x: np.ndarray, y: np.ndarray, i0: int) -> None:
-        a = self._valid_from
-        if a >= i0 + y.size or self._status != "running":
+        m = self._est.feed(x, y, i0)
+        if not m:
             return
-        j = int(max(0, a - i0))
-        self._est.push(x[j:], y[j:])
-        k = self._est.n_segments
-        if k == self._est_segments:
-            return
-        m = k - self._est_segments
-        self._est_segments = k
         t = self.t_s
-        # fast rules on the newest segment(s) alone: the band sum of their periodograms is the
-        # difference of the running sums (linear averaging)
-        ctrl = self._est.gyy[self._band] * self._gpf2
-        total = float(ctrl.sum()) * k
-        newest = (total - self._est_total) / m
-        self._est_total = total
+        # fast rules on the newest segment(s) alone
         g_ref = self._est_gain
         if self._stage == "identify":  # the identification runs 6 dB below the first step
             g_ref = 10.0 ** (self.schedule.steps_db[0] / 20.0)
         g = self._est_gain
-        predicted = float(np.sum(np.abs(self._h1[self._band]) ** 2 * self._drive[self._band]))
+        predicted = float(np.sum(np.abs(self._h1[self._band]) ** 2 * self._out.psd[self._band]))
         trip = self.supervisor.check_segment(
-            t, control_sum=newest, target_sum=self._target_sum * g_ref**2,
+            t, control_sum=self._est.newest_sum, target_sum=self._target_sum * g_ref**2,
             band_dof=self._seg_band_dof * m, predicted_sum=predicted * g * g)
         if trip is not None:
             self._abort(trip)
             return
+        k = self._est.n_segments
         if self._stage == "identify" and k >= self._k_identify:
             self._identified()
         elif self._stage in ("equalize", "full_level") and k >= self._k_update:
-            self._update(ctrl)
+            self._update(self._est.control_psd())
 
     def _restart_estimate(self, *, after: int) -> None:
         """New estimate from drive sample ``after`` on (plus transition, settling and delay)."""
-        self._est.reset()
-        self._est_segments = 0
-        self._est_total = 0.0
-        self._valid_from = after + self._settle + (self._delay or 0)
-        self._clipped = 0
-        self._peak = 0.0
+        self._est.restart(after + self._settle + (self._delay or 0))
+        self._out.reset_counters()
 
     def _identified(self) -> None:
         c = self.spec.control
-        self._h1 = self._est.h1 * self.calibration.g_per_fs
-        self._coh = np.nan_to_num(self._est.coherence, nan=0.0)
+        h1, self._coh = self._est.h1_coherence()
+        self._h1 = h1 * self.calibration.g_per_fs
         self._frozen = self._band & (self._coh < c.coherence_min)
         g1 = 10.0 ** (self.schedule.level_db / 20.0)
         res = equalizer.initial_drive(self._target, self._h1, self._coh,
                                       max_boost_db=c.max_boost_db, coherence_min=c.coherence_min,
-                                      band=self._band, ceiling_ms_fs2=self._ceiling_ms(g1),
+                                      band=self._band, ceiling_ms_fs2=self._out.ceiling_ms(g1),
                                       df_hz=self.df_hz)
-        self._drive = np.array(res.drive_psd)
-        self._ceiling_hit = res.ceiling_hit
+        self._out.set_psd(res.drive_psd, ceiling_hit=res.ceiling_hit)
         coh_b = self._coh[self._band]
         self._emit("identify", f"identified: mean coherence {float(np.mean(coh_b)):.3f}, "
                    f"{int(np.count_nonzero(self._frozen))} lines frozen, "
@@ -449,27 +390,22 @@ class Controller:
                     "lines_frozen": int(np.count_nonzero(self._frozen)),
                     "lines_boost_limited": res.n_step_limited, "dof": welch_dof(self._k_identify),
                     "ceiling_scale": res.ceiling_scale})
-        self._synth.set_psd(self._drive)
+        if c.law == "direct":
+            self._est = ControlEstimate(self.fs_hz, self.frame_length, self._band, self._gpf2,
+                                        cross=False)
         self._set_stage("equalize", "equalize")
         self._go_to_level(self.schedule.level_db)
 
     def _go_to_level(self, level_db: float) -> None:
         g = 10.0 ** (level_db / 20.0)
-        g_now = self._synth.gain_target
-        ramp = 0 if g_now <= 0 else int(math.ceil(abs(20 * math.log10(g / g_now))
-                                                  * self.fs_hz / self._rate_db_s))
-        self._synth.set_gain(g, rate_db_s=self._rate_db_s)
+        ramp = self._out.go_to(g)
         self._est_gain = g
         self._pool.reset()
         self.supervisor.reset_persistence()
-        self._restart_estimate(after=self._n_out + max(ramp, self.frame_length))
+        self._restart_estimate(after=self._out.n_out + max(ramp, self.frame_length))
         self._emit("level", f"level {level_db:+.1f} dB (ramp {ramp / self.fs_hz:.2f} s)",
                    {"level_db": level_db, "step_index": self.schedule.index,
                     "ramp_s": ramp / self.fs_hz})
-
-    def _ceiling_ms(self, gain: float) -> float:
-        """Mean-square ceiling of the full-level drive PSD when played at ``gain``, FS²."""
-        return (self._rms_limit_fs / gain) ** 2
 
     def _update(self, ctrl: np.ndarray) -> None:
         c = self.spec.control
@@ -477,9 +413,9 @@ class Controller:
         g = self._est_gain
         band = self._band
         target_b = self._target[band] * g * g
-        played = self._drive[band] * g * g
+        played = self._out.played_psd(band, g)
         predicted = np.abs(self._h1[band]) ** 2 * played
-        at_limit = self._ceiling_hit or self._clipped > 0
+        at_limit = self._out.ceiling_hit or self._out.clipped > 0
         verdict = self.supervisor.check_update(
             t, control_psd=ctrl, target_psd=target_b, dof=self._nu_update,
             abort_db=self._abort_db, predicted_psd=predicted, drive_at_limit=at_limit)
@@ -493,19 +429,22 @@ class Controller:
         if verdict.pending:
             self._emit("hold", f"update {self._updates} held: {', '.join(verdict.pending)} "
                        "pending", {"update": self._updates, "pending": list(verdict.pending)})
-            self._restart_estimate(after=self._n_out - self._settle)
+            self._restart_estimate(after=self._out.n_out - self._settle)
         else:
+            if self._est.cross:  # blend law: refresh the FRF where the coherence is good
+                h1, coh = self._est.h1_coherence()
+                good = band & (coh >= c.coherence_min)
+                self._h1 = np.where(good, h1 * self.calibration.g_per_fs, self._h1)
+                self._coh = np.where(good, coh, self._coh)
             full = np.zeros(self._target.size)
             full[band] = ctrl / (g * g)
             res = equalizer.update_drive(
-                self._drive, self._target, full, gain=self._gamma, max_step_db=c.max_step_db,
-                band=band, ceiling_ms_fs2=self._ceiling_ms(g), df_hz=self.df_hz,
+                self._out.psd, self._target, full, gain=self._gamma, max_step_db=c.max_step_db,
+                band=band, ceiling_ms_fs2=self._out.ceiling_ms(g), df_hz=self.df_hz,
                 frozen=self._frozen, law=c.law, h1=self._h1,
                 control_dof=self._nu_update)
-            self._drive = np.array(res.drive_psd)
-            self._ceiling_hit = res.ceiling_hit
-            self._synth.set_psd(self._drive)
-            self._restart_estimate(after=self._n_out + self.frame_length)
+            self._out.set_psd(res.drive_psd, ceiling_hit=res.ceiling_hit)
+            self._restart_estimate(after=self._out.n_out + self.frame_length)
         decision = self._decide(t)
         self._record_update(t, ctrl, target_b, played, res, verdict.rms_error_db, decision)
 
@@ -516,7 +455,7 @@ class Controller:
             index=self._updates, t_s=t, stage=self._stage, level_db=self.schedule.level_db,
             dof=self._nu_update, f_hz=self.f_hz, control_psd=frozen_array(ctrl),
             target_psd=frozen_array(target_b), drive_psd=frozen_array(played),
-            new_drive_psd=frozen_array(self._drive[self._band]),
+            new_drive_psd=frozen_array(self._out.psd[self._band]),
             h1=frozen_array(self._h1[self._band], complex),
             coherence=frozen_array(self._coh[self._band]), rms_error_db=float(rms_err),
             max_dev_db=float(dev.max()), min_dev_db=float(dev.min()), applied=res is not None,
@@ -538,18 +477,11 @@ class Controller:
         if not self._pool.ready:
             return None
         g = self._est_gain
-        ctrl = self._pool.psd
-        target_b = self._target[self._band] * g * g
-        with np.errstate(divide="ignore"):
-            dev = _DB * np.log(np.maximum(ctrl, 1e-300) / target_b)
-        rms_err = _DB * math.log(float(ctrl.sum()) / float(target_b.sum()))
-        n_alarm = int(np.count_nonzero(np.abs(dev) > self._alarm_db))
-        n_abort = int(np.count_nonzero(np.abs(dev) > self._abort_db))
-        rms_ok = abs(rms_err) <= self.spec.tolerance.rms_alarm_db
-        in_tol = n_alarm == 0 and rms_ok
-        self._decision = {"t_s": t, "control_psd": ctrl, "target_psd": target_b, "dev_db": dev,
-                          "rms_error_db": rms_err, "lines_outside_alarm": n_alarm,
-                          "lines_outside_abort": n_abort, "dof": self._pool.dof}
+        d = judge(self._pool.psd, self._target[self._band] * g * g, alarm_db=self._alarm_db,
+                  abort_db=self._abort_db, rms_alarm_db=self.spec.tolerance.rms_alarm_db,
+                  dof=self._pool.dof, df_hz=self.df_hz)
+        self._decision = d
+        in_tol, n_alarm, rms_err = d.in_tolerance, d.lines_outside_alarm, d.rms_error_db
         if in_tol and self._updates_to_tol is None:
             self._updates_to_tol = self._updates
         if not in_tol and not self._alarm_on:
@@ -563,65 +495,45 @@ class Controller:
         if self.schedule.observe(t, in_tol) and self._status == "running":
             level, _ = self.schedule.step_up()
             g_new = 10.0 ** (level / 20.0)
-            scale = self._rescale_for(g_new)
+            scale = self._out.rescale_for(g_new)
             self._go_to_level(level)
             if scale < 1.0:
                 self._emit("ceiling", f"drive scaled by {scale:.3f} to stay within the ceiling",
                            {"ceiling_scale": scale})
         return in_tol
 
-    def _rescale_for(self, gain: float) -> float:
-        ms = float(self._drive.sum()) * self.df_hz
-        cap = self._ceiling_ms(gain)
-        if ms <= cap:
-            return 1.0
-        scale = cap / ms
-        self._drive *= scale
-        self._ceiling_hit = True
-        self._synth.set_psd(self._drive)
-        return scale
-
     # ------------------------------------------------------------------ drive generation
     def _make_drive(self, n: int) -> np.ndarray:
-        synth = self._synth
-        if self._stage == "connect" and self._phase == "background" and self._n_out >= \
-                self._bg_len and self._status == "running":
-            flat = np.where(self._band, 1.0, 0.0)
-            flat *= self.spec.safety.connect_level_fs ** 2 / (flat.sum() * self.df_hz)
-            synth.set_psd(flat)
-            synth.set_gain(1.0, duration_s=FADE_IN_S)
-            self._phase = "drive"
-            self._rec_start = self._n_out
-            self._emit("stage", f"connect: flat noise at {self.spec.safety.connect_level_fs:g} "
-                       "FS rms", {"stage": "connect",
-                                  "connect_level_fs": self.spec.safety.connect_level_fs})
-        if self._switch_to is not None and synth.gain == 0.0 and not synth.ramping:
+        out_ = self._out
+        conn = self._conn
+        if (conn is not None and conn.start is None and out_.n_out >= self._bg_len
+                and self._status == "running"):
+            level = self.spec.safety.connect_level_fs
+            flat = np.where(self._band, level**2 / (np.count_nonzero(self._band) * self.df_hz),
+                            0.0)
+            out_.set_psd(flat)
+            out_.fade(1.0, FADE_IN_S)
+            conn.start_drive(out_.n_out)
+            self._emit("stage", f"connect: flat noise at {level:g} FS rms",
+                       {"stage": "connect", "connect_level_fs": level})
+        if self._switch_to is not None and out_.silent:
             psd, g = self._switch_to
             self._switch_to = None
             if self._status == "running":
-                self._drive = psd
-                synth.set_psd(psd)
-                synth.set_gain(g, duration_s=FADE_IN_S)
+                out_.set_psd(psd)
+                out_.fade(g, FADE_IN_S)
                 self._est_gain = g
-                self._restart_estimate(after=self._n_out + max(self._fade_in, self.frame_length))
+                self._restart_estimate(after=out_.n_out + max(self._fade_in, self.frame_length))
         if self._stage == "done":
             out = np.zeros(n)
-        else:
-            settled_before = not synth.ramping and synth.gain == 1.0
-            out = synth.read(n)
-            peak = float(np.max(np.abs(out))) if n else 0.0
-            if peak >= self._peak_limit_fs:  # hard limit, counted (the ceiling should prevent it)
-                np.clip(out, -self._peak_limit_fs, self._peak_limit_fs, out=out)
-                self._clipped += int(np.count_nonzero(np.abs(out) >= self._peak_limit_fs))
-                peak = self._peak_limit_fs
-            self._peak = max(self._peak, peak)
-            self._after_read(n, settled_before and not synth.ramping)
-        self._hist = np.concatenate((self._hist, out))
-        self._n_out += n
+            out_.push(out)
+            return out
+        settled_before = not out_.ramping and out_.gain == 1.0
+        out = out_.read(n)
+        self._after_read(n, settled_before and not out_.ramping)
         return out
 
     def _after_read(self, n: int, settled_full: bool) -> None:
-        synth = self._synth
         if self._status == "running" and self._stage in ("equalize", "full_level"):
             if self._stage == "equalize" and self.schedule.at_last_step and settled_full:
                 self._set_stage("full_level", "full level: counting test time")
@@ -630,7 +542,7 @@ class Controller:
                 if self.schedule.complete:
                     self._status = "completed"
                     self._begin_ramp_down(self._end_ramp_s)
-        if self._stage == "ramp_down" and synth.gain == 0.0 and not synth.ramping:
+        if self._stage == "ramp_down" and self._out.silent:
             if self._tail_left is None:
                 self._tail_left = (self._delay or self._max_lag) + self.frame_length
             self._tail_left -= n
@@ -639,7 +551,7 @@ class Controller:
 
     def _begin_ramp_down(self, duration_s: float) -> None:
         self._switch_to = None
-        self._synth.set_gain(0.0, duration_s=duration_s)
+        self._out.fade(0.0, duration_s)
         if self._stage not in ("ramp_down", "done"):
             self._set_stage("ramp_down", f"ramp down in {duration_s:g} s")
 
@@ -667,27 +579,21 @@ class Controller:
     def snapshot(self) -> ControlSnapshot:
         """A frozen view of the loop now."""
         band = self._band
-        g = self._synth.gain
+        g = self._out.gain
         lvl_gain = self._est_gain if self._stage in ("equalize", "full_level") else g
         target_b = self._target[band] * lvl_gain ** 2
         d = self._decision
-        if d is not None:
-            ctrl, dev, dof = d["control_psd"], d["dev_db"], d["dof"]
-            rms_err, n_al, n_ab = d["rms_error_db"], d["lines_outside_alarm"], \
-                d["lines_outside_abort"]
-            target_b = d["target_psd"]
-        elif self._last_update is not None:
+        if d is None and self._last_update is not None:  # before the first decision
             u = self._last_update
-            ctrl, dof, target_b = u.control_psd, u.dof, u.target_psd
-            with np.errstate(divide="ignore"):
-                dev = _DB * np.log(np.maximum(ctrl, 1e-300) / target_b)
-            rms_err = u.rms_error_db
-            n_al = int(np.count_nonzero(np.abs(dev) > self._alarm_db))
-            n_ab = int(np.count_nonzero(np.abs(dev) > self._abort_db))
-        else:
-            ctrl, dev, dof, rms_err, n_al, n_ab = None, None, 0.0, math.nan, -1, -1
+            d = judge(u.control_psd, u.target_psd, alarm_db=self._alarm_db,
+                      abort_db=self._abort_db, rms_alarm_db=self.spec.tolerance.rms_alarm_db,
+                      dof=u.dof, df_hz=self.df_hz)
+        ctrl = None if d is None else d.control_psd
+        dof = 0.0 if d is None else d.dof
+        if d is not None:
+            target_b = d.target_psd
         lo, hi = chi2_interval_db(dof) if dof > 0 else (math.nan, math.nan)
-        drive_b = self._drive[band] * g * g
+        drive_b = self._out.played_psd(band)
         return ControlSnapshot(
             t_s=self.t_s, stage=self._stage, status=self._status,
             level_db=self.schedule.level_db,
@@ -696,40 +602,38 @@ class Controller:
             elapsed_s=self.t_s, remaining_s=self.schedule.remaining_s,
             time_at_full_level_s=self.schedule.time_at_full_level_s,
             full_level_s=self.schedule.full_level_s,
-            control_grms_g=math.sqrt(float(np.sum(ctrl)) * self.df_hz) if ctrl is not None
-            else math.nan,
+            control_grms_g=math.nan if d is None else d.control_grms_g,
             target_grms_g=math.sqrt(float(np.sum(target_b)) * self.df_hz),
             drive_rms_fs=math.sqrt(float(np.sum(drive_b)) * self.df_hz),
-            drive_rms_limit_fs=self._rms_limit_fs, drive_peak_fs=self._peak,
-            drive_peak_limit_fs=self._peak_limit_fs, f_hz=self.f_hz,
+            drive_rms_limit_fs=self._out.rms_limit_fs, drive_peak_fs=self._out.peak_fs,
+            drive_peak_limit_fs=self._out.peak_limit_fs, f_hz=self.f_hz,
             control_psd=None if ctrl is None else frozen_array(ctrl),
             target_psd=frozen_array(target_b), drive_psd=frozen_array(drive_b),
             alarm_db=self._alarm_db, abort_db=self._abort_db,
-            max_dev_db=float(np.max(dev)) if dev is not None else math.nan,
-            min_dev_db=float(np.min(dev)) if dev is not None else math.nan,
-            lines_outside_alarm=n_al, lines_outside_abort=n_ab, rms_error_db=float(rms_err),
+            max_dev_db=math.nan if d is None else d.max_dev_db,
+            min_dev_db=math.nan if d is None else d.min_dev_db,
+            lines_outside_alarm=-1 if d is None else d.lines_outside_alarm,
+            lines_outside_abort=-1 if d is None else d.lines_outside_abort,
+            rms_error_db=math.nan if d is None else d.rms_error_db,
             dof=float(dof), chi2_lo_db=float(lo), chi2_hi_db=float(hi), updates=self._updates,
             loop_delay_samples=self._delay, trip=self._trip, recent_events=tuple(self._recent))
 
     def result(self) -> RunResult:
         """Outcome so far (final once :attr:`finished`)."""
         d = self._decision
-        status = self._status if self._status != "running" else "running"
         reason = self._trip.message if self._trip is not None else self._stop_reason
-        if d is None:
-            vals = (math.nan, math.nan, -1, -1, math.nan, math.nan, 0.0)
-        else:
-            vals = (d["rms_error_db"], float(np.max(np.abs(d["dev_db"]))),
-                    d["lines_outside_alarm"], d["lines_outside_abort"],
-                    math.sqrt(float(np.sum(d["control_psd"])) * self.df_hz),
-                    math.sqrt(float(np.sum(d["target_psd"])) * self.df_hz), d["dof"])
+        nan = math.nan
         return RunResult(
-            status=status, abort_reason=reason, trip=self._trip,
-            updates_to_tolerance=self._updates_to_tol, final_rms_error_db=vals[0],
-            final_max_dev_db=vals[1], final_lines_outside_alarm=vals[2],
-            final_lines_outside_abort=vals[3], control_grms_g=vals[4], target_grms_g=vals[5],
-            dof=vals[6], time_at_full_level_s=self.schedule.time_at_full_level_s,
-            updates=self._updates)
+            status=self._status, abort_reason=reason, trip=self._trip,
+            updates_to_tolerance=self._updates_to_tol,
+            final_rms_error_db=nan if d is None else d.rms_error_db,
+            final_max_dev_db=nan if d is None else float(np.max(np.abs(d.dev_db))),
+            final_lines_outside_alarm=-1 if d is None else d.lines_outside_alarm,
+            final_lines_outside_abort=-1 if d is None else d.lines_outside_abort,
+            control_grms_g=nan if d is None else d.control_grms_g,
+            target_grms_g=nan if d is None else d.target_grms_g,
+            dof=0.0 if d is None else d.dof,
+            time_at_full_level_s=self.schedule.time_at_full_level_s, updates=self._updates)
 
 
 def run_offline(controller: Controller, rig: Any, block_size: int, *,

@@ -8,6 +8,10 @@ Pure numpy/scipy, no state beyond the small :class:`DecisionPool`. The controlle
   channel responds at all.
 * :func:`segments_for_dof` turns a DOF requirement into a number of Welch segments (Welch 1967
   equivalent DOF of Hann segments at 50 % overlap, :func:`liveshape.spectra.welch_dof`).
+* :func:`judge` holds a control estimate against the target and the tolerance;
+  :class:`ConnectRecorder` collects the connection records.
+* :class:`ControlEstimate` is one fresh update estimate of the control spectrum.
+* :class:`DriveHistory` keeps the recent drive samples for the delay alignment.
 * :class:`DecisionPool` combines whole, independent update estimates into the estimate used for
   decisions (tolerance, display) with at least the target DOF.
 """
@@ -17,9 +21,11 @@ from __future__ import annotations
 import math
 from collections import deque
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
+from liveshape.safety import Trip
 from liveshape.spectra import CrossSpectrum, PsdAverager, estimate_delay, welch_dof
 
 #: Welch segments of the connection check (coherence bias for no response ≈ 1/16).
@@ -77,6 +83,33 @@ class ConnectionCheck:
     response_rms_fs: float
     background_rms_fs: float
     snr_db: float
+
+
+def connection_data(chk: ConnectionCheck) -> dict[str, float]:
+    """The connection check's numbers for events and trips (units in the keys)."""
+    return {"loop_delay_samples": chk.delay_samples, "delay_peak": chk.delay_peak,
+            "mean_coherence": chk.mean_coherence, "response_rms_fs": chk.response_rms_fs,
+            "background_rms_fs": chk.background_rms_fs, "snr_db": chk.snr_db}
+
+
+def connection_trip(chk: ConnectionCheck, safety: Any, t_s: float) -> Trip | None:
+    """``response_silent`` or ``connect_check`` when the control channel fails the check.
+
+    Silent: response rms below ``safety.silent_floor_fs``. No response: mean coherence over the
+    band below ``safety.connect_coherence_min``.
+    """
+    data = connection_data(chk)
+    floor = float(safety.silent_floor_fs)
+    if chk.response_rms_fs < floor:
+        return Trip("response_silent",
+                    f"control channel silent during the connection check: rms "
+                    f"{chk.response_rms_fs:.2e} FS < {floor:.2e} FS", t_s, data)
+    cmin = float(safety.connect_coherence_min)
+    if chk.mean_coherence < cmin:
+        return Trip("connect_check",
+                    f"control channel does not respond to the drive: mean coherence "
+                    f"{chk.mean_coherence:.2f} < {cmin:g}", t_s, data)
+    return None
 
 
 def analyse_connection(
@@ -137,6 +170,213 @@ def analyse_connection(
         else 0.0,
         snr_db=snr_db,
     )
+
+
+@dataclass(frozen=True)
+class Judgement:
+    """A control estimate held against the target and the tolerance (band lines).
+
+    ``dev_db`` per line, ``rms_error_db`` of the band sums, counts beyond the alarm and abort
+    limits, ``in_tolerance`` (every line within alarm and the rms within the rms alarm),
+    ``control_grms_g``/``target_grms_g`` and the estimate's ``dof``.
+    """
+
+    control_psd: np.ndarray
+    target_psd: np.ndarray
+    dev_db: np.ndarray
+    rms_error_db: float
+    lines_outside_alarm: int
+    lines_outside_abort: int
+    in_tolerance: bool
+    control_grms_g: float
+    target_grms_g: float
+    dof: float
+
+    @property
+    def max_dev_db(self) -> float:
+        return float(np.max(self.dev_db))
+
+    @property
+    def min_dev_db(self) -> float:
+        return float(np.min(self.dev_db))
+
+
+def judge(control_psd: np.ndarray, target_psd: np.ndarray, *, alarm_db: np.ndarray,
+          abort_db: np.ndarray, rms_alarm_db: float, dof: float, df_hz: float) -> Judgement:
+    """Hold a control PSD (g²/Hz) against the target with per-line limits (± dB)."""
+    ctrl = np.asarray(control_psd, dtype=float)
+    tgt = np.asarray(target_psd, dtype=float)
+    dev = 10.0 * np.log10(np.maximum(ctrl, 1e-300) / tgt)
+    c, r = float(ctrl.sum()), float(tgt.sum())
+    rms_err = 10.0 * math.log10(c / r) if c > 0 else -math.inf
+    n_alarm = int(np.count_nonzero(np.abs(dev) > alarm_db))
+    n_abort = int(np.count_nonzero(np.abs(dev) > abort_db))
+    return Judgement(
+        control_psd=ctrl, target_psd=tgt, dev_db=dev, rms_error_db=rms_err,
+        lines_outside_alarm=n_alarm, lines_outside_abort=n_abort,
+        in_tolerance=n_alarm == 0 and abs(rms_err) <= rms_alarm_db,
+        control_grms_g=math.sqrt(c * df_hz), target_grms_g=math.sqrt(r * df_hz), dof=float(dof))
+
+
+class ConnectRecorder:
+    """Collects the connection stage's records: the silent background, then the drive record.
+
+    :meth:`feed` takes pairs of (unaligned) drive and response samples by stream index;
+    :meth:`start_drive` marks the stream index where the connection drive starts.
+    :attr:`complete` turns True once ``record_len`` samples from there are in.
+    """
+
+    def __init__(self, background_len: int, record_len: int) -> None:
+        self.background_len = int(background_len)
+        self.record_len = int(record_len)
+        self.start: int | None = None
+        self._bg: list[np.ndarray] = []
+        self._x: list[np.ndarray] = []
+        self._y: list[np.ndarray] = []
+        self._have = 0
+
+    def start_drive(self, index: int) -> None:
+        self.start = int(index)
+
+    @property
+    def complete(self) -> bool:
+        return self.start is not None and self._have >= self.record_len
+
+    def feed(self, x: np.ndarray, y: np.ndarray, i0: int) -> None:
+        self._bg.append(y[: max(0, self.background_len - i0)])
+        if self.start is None or self.complete:
+            return
+        a = max(i0, self.start)
+        if a < i0 + y.size:
+            self._x.append(x[a - i0:])
+            self._y.append(y[a - i0:])
+            self._have += i0 + y.size - a
+
+    def records(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """``(x, y, background)``: the drive record, its response, the silent response."""
+        n = self.record_len
+        bg = np.concatenate(self._bg) if self._bg else np.zeros(0)
+        return np.concatenate(self._x)[:n], np.concatenate(self._y)[:n], bg
+
+
+class ControlEstimate:
+    """A fresh linear Welch estimate of the control (and, if asked, of H1 and coherence).
+
+    Data count only from response index :attr:`valid_from` on (set by :meth:`restart` after a
+    drive change). :meth:`feed` returns how many new segments came in; :attr:`newest_sum` is the
+    band sum of the newest segments' periodograms alone (the difference of the running sums,
+    exact for a linear average), for the fast per-segment rules.
+
+    Parameters
+    ----------
+    fs_hz, nperseg : float, int
+    band : ndarray of bool
+    g2_per_fs2 : float
+        (g per FS)², converting the response PSD to g²/Hz.
+    cross : bool
+        Keep the cross spectrum (H1, coherence) or only the response autospectrum (half the
+        FFT work).
+    """
+
+    def __init__(self, fs_hz: float, nperseg: int, band: np.ndarray, g2_per_fs2: float, *,
+                 cross: bool) -> None:
+        self.cross = bool(cross)
+        if self.cross:
+            self._w: CrossSpectrum | PsdAverager = CrossSpectrum(fs_hz, nperseg)
+        else:
+            self._w = PsdAverager(fs_hz, nperseg)
+        self._band = band
+        self._g2 = float(g2_per_fs2)
+        self.valid_from: float = math.inf
+        self._k = 0
+        self._total = 0.0
+        self.newest_sum = 0.0
+
+    @property
+    def active(self) -> bool:
+        return self.valid_from < math.inf
+
+    @property
+    def n_segments(self) -> int:
+        return self._k
+
+    def restart(self, valid_from: float) -> None:
+        self._w.reset()
+        self._k = 0
+        self._total = 0.0
+        self.valid_from = valid_from
+
+    def feed(self, x: np.ndarray, y: np.ndarray, i0: int) -> int:
+        """Push the aligned drive ``x`` and response ``y`` starting at response index ``i0``."""
+        if self.valid_from >= i0 + y.size:
+            return 0
+        j = int(max(0, self.valid_from - i0))
+        if self.cross:
+            self._w.push(x[j:], y[j:])
+        else:
+            self._w.push(y[j:])
+        k = self._w.n_segments
+        m = k - self._k
+        if m:
+            total = float(self.control_psd().sum()) * k
+            self.newest_sum = (total - self._total) / m
+            self._total = total
+            self._k = k
+        return m
+
+    def control_psd(self) -> np.ndarray:
+        """Control PSD on the band lines, g²/Hz."""
+        g = self._w.gyy if self.cross else self._w.psd
+        return g[self._band] * self._g2
+
+    def h1_coherence(self) -> tuple[np.ndarray, np.ndarray]:
+        """H1 (response FS per drive FS) and coherence on all lines (cross estimates only)."""
+        return self._w.h1, np.nan_to_num(self._w.coherence, nan=0.0)
+
+
+class DriveHistory:
+    """The recent drive samples by absolute stream index, for delay alignment.
+
+    A preallocated buffer: :meth:`append` writes at the end, :meth:`forget_before` marks what is
+    no longer needed (dropped lazily when the buffer is full), :meth:`get` returns samples
+    ``a .. b-1`` with zeros for indices before the stream or already forgotten.
+    """
+
+    def __init__(self, capacity: int) -> None:
+        self._buf = np.zeros(max(16, int(capacity)))
+        self._start = 0  # stream index of _buf[0]
+        self._n = 0  # valid samples in _buf
+        self._keep = 0  # stream index from which samples are still needed
+
+    @property
+    def end(self) -> int:
+        """Stream index after the last sample appended."""
+        return self._start + self._n
+
+    def forget_before(self, index: int) -> None:
+        self._keep = max(self._keep, int(index))
+
+    def append(self, x: np.ndarray) -> None:
+        m = x.size
+        if self._n + m > self._buf.size:
+            drop = min(max(0, self._keep - self._start), self._n)
+            if drop:
+                self._buf[: self._n - drop] = self._buf[drop: self._n]
+                self._start += drop
+                self._n -= drop
+            if self._n + m > self._buf.size:
+                grown = np.zeros(max(2 * self._buf.size, self._n + m))
+                grown[: self._n] = self._buf[: self._n]
+                self._buf = grown
+        self._buf[self._n: self._n + m] = x
+        self._n += m
+
+    def get(self, a: int, b: int) -> np.ndarray:
+        out = np.zeros(b - a)
+        lo, hi = max(a, self._start), min(b, self._start + self._n)
+        if hi > lo:
+            out[lo - a: hi - a] = self._buf[lo - self._start: hi - self._start]
+        return out
 
 
 class DecisionPool:

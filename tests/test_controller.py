@@ -362,3 +362,113 @@ def test_request_stop_ramps_down_with_status_stopped():
     bound = 6 * np.std(np.diff(before)) + math.pi / (2 * m) * np.max(np.abs(before))
     assert np.max(np.abs(np.diff(drive[i: i + m + BLOCK]))) <= bound
     assert any(e.kind == "stop" for e in events)
+
+
+# ---- pure pieces of the stages -----------------------------------------------------------------
+
+
+def test_segments_for_dof_is_the_smallest_count_reaching_the_dof():
+    from liveshape.spectra import welch_dof
+    from liveshape.stages import segments_for_dof
+    for dof in (16.0, 60.0, 120.0):
+        k = segments_for_dof(dof)
+        # Welch 1967 equivalent DOF (liveshape.spectra.welch_dof, checked against scipy there)
+        assert welch_dof(k) >= dof > welch_dof(k - 1)
+
+
+@pytest.mark.parametrize("averaging", ["linear", "exponential"])
+def test_decision_pool_dof_matches_monte_carlo_of_chi2_estimates(averaging):
+    # Pool independent χ²_ν/ν estimates; the pooled estimate's var/mean² must be 2/ν_pool
+    # (χ² variance 2ν). 20000 lines: relative standard error of the variance ≈ √(2/20000)·√κ
+    # with κ ≈ 1.5 for these weighted χ² sums; 4σ ≈ 7 %.
+    from liveshape.stages import DecisionPool
+    rng = np.random.default_rng(17)
+    nu_u, n = 60.0, 20000
+    pool = DecisionPool(120.0, nu_u, averaging)
+    for k in range(1, 7):
+        pool.push(rng.chisquare(nu_u, n) / nu_u, nu_u)
+        if k == 1:
+            assert not pool.ready and pool.dof == pytest.approx(60.0)
+        if k == 2:
+            assert pool.ready and pool.dof == pytest.approx(120.0)
+    p = pool.psd
+    nu_mc = 2 * p.mean() ** 2 / p.var(ddof=1)
+    assert nu_mc == pytest.approx(pool.dof, rel=0.07)
+    if averaging == "exponential":
+        # steady state of weight 1/n: ν_u (2n − 1) (exponential averaging, Bendat & Piersol)
+        assert pool.dof < 60.0 * 3 and pool.dof > 120.0
+
+
+def test_drive_history_returns_what_was_appended():
+    from liveshape.stages import DriveHistory
+    rng = np.random.default_rng(3)
+    h = DriveHistory(64)
+    ref = []
+    for _ in range(40):
+        x = rng.standard_normal(int(rng.integers(1, 50)))
+        h.append(x)
+        ref.append(x)
+        total = np.concatenate(ref)
+        h.forget_before(total.size - 100)
+        a = max(0, total.size - 90)
+        np.testing.assert_array_equal(h.get(a, total.size), total[a:])
+    np.testing.assert_array_equal(h.get(-5, 0), np.zeros(5))  # before the stream: zeros
+
+
+def test_analyse_connection_finds_delay_coherence_and_h1():
+    # Reference: scipy.signal.lfilter plant with a known pure delay; H1 compared with
+    # scipy.signal.freqz. Bendat & Piersol: with coherence ≈ 1 the H1 magnitude error is about
+    # √((1−γ²)/(2 n_d γ²)); with 1e−4 relative noise it is far below the 2 % allowed here.
+    from scipy import signal as sig
+
+    from liveshape.stages import analyse_connection
+    rng = np.random.default_rng(5)
+    fs, n, delay = 8000.0, 512, 137
+    b, a = sig.butter(2, [100, 1500], btype="band", fs=fs)
+    x = rng.standard_normal(40 * n)
+    y = np.concatenate((np.zeros(delay), sig.lfilter(b, a, x)[:-delay]))
+    y += 1e-4 * rng.standard_normal(y.size)
+    f = np.arange(n // 2 + 1) * fs / n
+    band = (f >= 200) & (f <= 1200)
+    chk = analyse_connection(x, y, 1e-4 * rng.standard_normal(4 * n), fs_hz=fs, nperseg=n,
+                             band=band, max_lag=400, skip=0)
+    # for white x the cross-correlation is σ²·h(k − delay): its peak sits at the delay plus the
+    # lag of the impulse response's largest magnitude (scipy.signal.lfilter of an impulse)
+    imp = sig.lfilter(b, a, np.r_[1.0, np.zeros(63)])
+    assert chk.delay_samples == delay + int(np.argmax(np.abs(imp)))
+    assert chk.mean_coherence > 0.99
+    _, h = sig.freqz(b, a, worN=f[band], fs=fs)
+    np.testing.assert_allclose(np.abs(chk.h1[band]), np.abs(h), rtol=0.02)
+    assert chk.snr_db > 40
+
+
+def test_control_estimate_newest_sum_is_the_newest_segment_alone():
+    # Reference: scipy.signal.welch of the newest segment by itself.
+    from scipy import signal as sig
+
+    from liveshape.stages import ControlEstimate
+    rng = np.random.default_rng(9)
+    fs, n = 1000.0, 256
+    band = np.zeros(n // 2 + 1, dtype=bool)
+    band[10:100] = True
+    est = ControlEstimate(fs, n, band, 4.0, cross=False)
+    est.restart(0)
+    y = rng.standard_normal(n // 2 * 7)
+    got = []
+    for i in range(0, y.size, 100):
+        if est.feed(y[i:i + 100], y[i:i + 100], i):
+            got.append(est.newest_sum)
+    k = est.n_segments
+    seg = y[(k - 1) * n // 2:(k - 1) * n // 2 + n]
+    _, p = sig.welch(seg, fs, nperseg=n)
+    assert est.newest_sum == pytest.approx(4.0 * p[band].sum(), rel=1e-9)
+
+
+def test_blend_law_converges_too():
+    spec = make_spec(full_s=3.0, law="blend")
+    rig = SimRig(load_plant("bench"), FS, seed=3)
+    ctl, _, _ = run(spec, rig)
+    res = ctl.result()
+    assert res.status == "completed", res.abort_reason
+    assert res.final_lines_outside_alarm == 0
+    assert abs(res.final_rms_error_db) <= spec.tolerance.rms_alarm_db

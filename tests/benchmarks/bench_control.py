@@ -1,0 +1,199 @@
+"""Figures of the control loop (not pass/fail tests).
+
+* ``control_updates_to_tolerance``: equalizer updates after identification until the first
+  decision with every line inside its alarm limit (±3 dB) and the rms inside ±1 dB, loudspeaker
+  preset, default test definition at 48 kHz / 8192 lines (target ≤ 2). The same count judged on
+  the *true* control (the expected estimate from the rig's analytic FRF and the drive PSD, see
+  ``_expected_control``) is reported beside it.
+* ``control_line_error_ratio_displayed`` / ``_true``: steady-state rms line error at full level
+  divided by the loop-theory prediction for the update DOF in use (DOMAIN.md §4: displayed error
+  variance 2σ²/(2−γ), true error γ/(2−γ)·σ², σ = 4.343·√ψ1(ν/2)); target ≤ 1.15.
+* ``control_alone_speed_*``: audio seconds per CPU second of the controller alone (synthesis,
+  estimation, update, supervision) at 48 kHz, fed by a wire rig whose cost is not timed
+  (target ≥ 500×).
+* ``control_loop_speed_*``: controller and SimRig (loudspeaker preset) together, as fast as
+  possible (target ≥ 50×).
+* ``control_fault_to_quiet_*``: time from a fault's onset to the drive staying below −60 dB re
+  its pre-fault rms, with the bound ``one update + abort_ramp_s`` beside it.
+
+Run with ``python -m tests.benchmarks control``.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from collections.abc import Callable
+
+import numpy as np
+
+from liveshape.chain import ChainCalibration
+from liveshape.controller import Controller
+from liveshape.profile import Profile
+from liveshape.rigs.plant import load_plant
+from liveshape.rigs.sim import SimRig
+from liveshape.spec import ControlSettings, FaultSpec, Schedule, TestSpec
+from liveshape.spectra import db_scatter_std
+
+FS_HZ = 48_000.0
+FRAME = 8192
+BLOCK = 4096
+
+
+def _spec(full_s: float = 60.0, **schedule) -> TestSpec:
+    prof = Profile((20.0, 1000.0), (1.0 / 980.0, 1.0 / 980.0), "flat 1 grms")
+    return TestSpec(name="bench", profile=prof,
+                    schedule=Schedule(full_level_s=full_s, **schedule),
+                    control=ControlSettings(fs_hz=FS_HZ, frame_length=FRAME), seed=1)
+
+
+class _Wire:
+    """Gain, delay, noise: a rig that costs next to nothing."""
+
+    calibration = ChainCalibration()
+
+    def __init__(self, gain: float = 1.0, delay: int = 512) -> None:
+        self.gain, self.buf = gain, np.zeros(delay)
+        self.rng = np.random.default_rng(0)
+
+    def process(self, x: np.ndarray) -> np.ndarray:
+        z = np.concatenate((self.buf, x))
+        self.buf = z[x.size:]
+        return self.gain * z[: x.size] + 1e-5 * self.rng.standard_normal(x.size)
+
+
+_OVER = 8  # frequency grid points per line for the expected spectrum
+_SPAN = 6  # kernel half-width, lines
+
+
+def _power_kernel(window: np.ndarray) -> np.ndarray:
+    """|W(ν)|² of a window on ν = −SPAN..SPAN lines in steps of 1/OVER, unit area (lines)."""
+    n = window.size
+    spec = np.abs(np.fft.fft(window, _OVER * n)) ** 2
+    m = np.arange(-_SPAN * _OVER, _SPAN * _OVER + 1)
+    k = spec[m % spec.size]
+    return k / (k.sum() / _OVER)
+
+
+def _expected_control(rig, f_hz: np.ndarray, drive_psd: np.ndarray, n: int) -> np.ndarray:
+    """Expected Welch estimate (g²/Hz) on the lines ``f_hz`` for a drive PSD on those lines.
+
+    The synthesized drive's PSD is its line PSD smoothed by the sine window's |W|²; the rig's
+    |H|² (analytic FRF) multiplies it on a fine grid; the Hann-window estimate smooths the
+    product by the Hann |W|² (Welch 1967; the synthesis and estimation kernels are the windows'
+    power spectra).
+    """
+    df = FS_HZ / n
+    k = np.rint(f_hz / df).astype(int)
+    lo, hi = k[0] - 2 * _SPAN, k[-1] + 2 * _SPAN
+    fine = np.zeros((hi - lo + 1) * _OVER)
+    fine[(k - lo) * _OVER] = drive_psd * _OVER  # lines as impulses of unit area
+    ks = _power_kernel(np.sin(np.pi * (np.arange(n) + 0.5) / n))
+    kh = _power_kernel(0.5 - 0.5 * np.cos(2 * np.pi * np.arange(n) / n))
+    sx = np.convolve(fine, ks, mode="same") / _OVER
+    f_fine = (lo + np.arange(fine.size) / _OVER) * df
+    h2 = np.abs(rig.frf(f_fine) * rig.calibration.g_per_fs) ** 2
+    y = np.convolve(sx * h2, kh, mode="same") / _OVER
+    return y[(k - lo) * _OVER]
+
+
+def _run(ctl: Controller, rig, block: int, *, on_update=None):
+    resp = np.zeros(block)
+    drive = []
+    t_ctl = t_rig = 0.0
+    last = None
+    while not ctl.finished:
+        t0 = time.process_time()
+        d = ctl.exchange(resp)
+        t1 = time.process_time()
+        resp = rig.process(d)
+        t_rig += time.process_time() - t1
+        t_ctl += t1 - t0
+        drive.append(d)
+        rec = ctl.last_update
+        if on_update is not None and rec is not None and rec is not last:
+            on_update(rec, rig)
+            last = rec
+    return np.concatenate(drive), t_ctl, t_rig
+
+
+def _convergence(report: Callable[[str, float, str], None]) -> None:
+    spec = _spec(full_s=60.0)
+    rig = SimRig(load_plant("loudspeaker"), FS_HZ, seed=2)
+    ctl = Controller(spec, rig.calibration)
+    gamma = spec.control.update_gain
+    true_first: list[int] = []
+    disp_err: list[np.ndarray] = []
+    true_err: list[np.ndarray] = []
+    alarm = spec.tolerance.alarm_db
+
+    def on_update(rec, rig):
+        target = rec.target_psd
+        # expected control of the drive just played (the rig's physics), and its error
+        true = _expected_control(rig, rec.f_hz, rec.drive_psd, FRAME)
+        e_true = 10 * np.log10(true / target)
+        if not true_first and np.all(np.abs(e_true) <= alarm):
+            true_first.append(rec.index - 1)  # the drive of update k−1 produced it
+        if rec.stage == "full_level" and rec.level_db == 0.0 and rec.index >= 3:
+            disp_err.append(10 * np.log10(rec.control_psd / target))
+            true_err.append(e_true)
+
+    _run(ctl, rig, BLOCK, on_update=on_update)
+    res = ctl.result()
+    report("control_updates_to_tolerance", res.updates_to_tolerance, "updates (decision)")
+    report("control_updates_to_true_tolerance", true_first[0] if true_first else -1,
+           "updates (true control)")
+    nu = ctl.last_update.dof
+    sigma = db_scatter_std(nu)
+    d = np.concatenate(disp_err)
+    t = np.concatenate([e - e.mean() for e in true_err])  # shape error about the true rms
+    pred_d = math.sqrt(2.0 / (2.0 - gamma)) * sigma
+    pred_t = math.sqrt(gamma / (2.0 - gamma)) * sigma
+    report("control_update_dof", nu, "DOF")
+    report("control_line_error_displayed", float(np.sqrt(np.mean((d - d.mean()) ** 2))), "dB")
+    report("control_line_error_ratio_displayed", float(np.std(d) / pred_d), "x predicted")
+    report("control_line_error_ratio_true", float(np.std(t) / pred_t), "x predicted")
+    report("control_final_rms_error", res.final_rms_error_db, "dB")
+    report("control_status_loudspeaker", res.status, "")
+
+
+def _speed(report: Callable[[str, float, str], None]) -> None:
+    for block in (1024, 4096):
+        ctl = Controller(_spec(full_s=60.0), _Wire.calibration)
+        _, t_ctl, _ = _run(ctl, _Wire(), block)
+        report(f"control_alone_speed_block{block}", ctl.t_s / t_ctl, "x real time")
+    spec = _spec(full_s=60.0)
+    rig = SimRig(load_plant("loudspeaker"), FS_HZ, seed=2)
+    ctl = Controller(spec, rig.calibration)
+    _, t_ctl, t_rig = _run(ctl, rig, BLOCK)
+    report("control_loop_speed_loudspeaker", ctl.t_s / (t_ctl + t_rig), "x real time")
+    report("control_loop_speed_controller_share", t_ctl / (t_ctl + t_rig), "of CPU")
+
+
+def _faults(report: Callable[[str, float, str], None]) -> None:
+    for fault in (FaultSpec("sensor_detached", 40.0), FaultSpec("plant_gain", 40.0, 10.0),
+                  FaultSpec("amp_trip", 40.0), FaultSpec("resonance_shift", 40.0, 1.25)):
+        spec = _spec(full_s=60.0, steps_db=(-6.0, 0.0), hold_s=1.0)
+        rig = SimRig(load_plant("loudspeaker"), FS_HZ, seed=2, faults=(fault,))
+        ctl = Controller(spec, rig.calibration)
+        drive, _, _ = _run(ctl, rig, BLOCK)
+        i = int(fault.at_s * FS_HZ)
+        ref = float(np.sqrt(np.mean(drive[i - int(FS_HZ): i] ** 2)))
+        loud = np.flatnonzero(np.abs(drive) > 1e-3 * ref)
+        quiet_s = (loud[-1] + 1) / FS_HZ - fault.at_s
+        rule = ctl.trip.rule if ctl.trip else "none"
+        report(f"control_fault_to_quiet_{fault.kind}", quiet_s, f"s ({rule})")
+    report("control_fault_bound", ctl.update_interval_s + spec.safety.abort_ramp_s,
+           "s (one update + abort ramp)")
+
+
+def run(report: Callable[[str, float, str], None]) -> None:
+    _convergence(report)
+    _speed(report)
+    _faults(report)
+
+
+if __name__ == "__main__":
+    from tests.benchmarks.__main__ import report as _report
+
+    run(_report)
