@@ -12,6 +12,7 @@ scipy.signal.sosfreqz for the loopback cable.
 
 from __future__ import annotations
 
+import _thread
 import threading
 
 import numpy as np
@@ -23,7 +24,7 @@ from liveshape.errors import DeviceError
 from liveshape.rigs import audio
 from liveshape.rigs import calibration as cal
 from liveshape.rigs.jackrig import CableModel, JackTap, PlantProcessor, jack_loop_delay_samples
-from liveshape.rigs.plant import plant_from_mapping
+from liveshape.rigs.plant import load_plant, plant_from_mapping
 from liveshape.schema import Where
 
 FS = 48000.0
@@ -165,3 +166,170 @@ def test_volts_per_full_scale_through_the_stream(jack_server) -> None:
         inp = cal.calibrate_input(rig, out_v_per_fs=out.v_per_fs)
         # 400 Hz through 3 Hz and 2 Hz first-order corners loses 4.1e-5 of the amplitude
         assert inp.v_per_fs == pytest.approx(plant.card.in_v_per_fs, rel=2e-4)
+
+
+# -- closed loop through the server -----------------------------------------------------------
+
+N_FRAME = 4096  # df = 11.7 Hz at 48 kHz: the update timing of the controller tests, twice as fast
+#: Drive blocks produced ahead: 170 ms. The controller's slowest exchange (the connection
+#: analysis) took 38 ms unloaded; the tests share two cores with other work and the in-process
+#: plant, so they keep a margin of 4x (bench_audio measures the update times).
+LEAD = 8
+
+
+def make_spec(*, steps=(-3.0, 0.0), hold_s=1.0, full_s=3.0, faults=(), seed=1):
+    from liveshape.profile import Profile, Tolerance
+    from liveshape.spec import ControlSettings, SafetyLimits, Schedule, TestSpec
+
+    prof = Profile((20.0, 1000.0), (1.0 / 980.0, 1.0 / 980.0), "flat 1 grms")
+    return TestSpec(
+        name="jack", profile=prof, tolerance=Tolerance(),
+        schedule=Schedule(steps_db=steps, hold_s=hold_s, full_level_s=full_s),
+        control=ControlSettings(fs_hz=FS, frame_length=N_FRAME), safety=SafetyLimits(),
+        faults=tuple(faults), seed=seed)
+
+
+def tapped_run(rig, controller, tap, **kw):
+    """Run ``controller`` through ``rig`` with ``tap`` connected before the stream starts."""
+    events: list = []
+
+    def on_block(_block):
+        events.extend(controller.drain_events())
+
+    result = rig.run(controller, on_open=tap.connect, on_block=on_block, **kw)
+    events.extend(controller.drain_events())
+    threading.Event().wait(0.1)  # let the tap record the closing zero blocks
+    return result, events, tap.data()[:, 0]
+
+
+def assert_no_step(x: np.ndarray, block: int) -> None:
+    """Every start and end of drive is inside the raised-cosine envelope of a one-block fade
+    (the callback's own fade; the controller's ramps are longer and lie below it)."""
+    n_edges, worst = edge_report(x, block)
+    assert n_edges >= 2, "the tap saw no start and end of the drive"
+    assert worst <= 1.0 + 1e-5, f"drive left the fade envelope by a factor {worst:.3g}"
+    peak = float(np.max(np.abs(x)))
+    edge = np.flatnonzero((x[:-1] == 0.0) != (x[1:] == 0.0))
+    # the first and last non-zero samples: at most g(1) = 2.4e-6 of the peak at R = 1024
+    assert max(abs(float(x[e + 1] if x[e] == 0.0 else x[e])) for e in edge) <= peak * 2.4e-6
+
+
+@pytest.mark.jack
+def test_closed_loop_converges_through_the_real_stream(jack_server) -> None:
+    from liveshape.controller import Controller
+    from liveshape.rigs.sim import SimRig
+
+    spec = make_spec()
+    with virtual_rig("loudspeaker", seed=4) as vr, JackTap(["PortAudio:out_0"]) as tap:
+        rig = audio.AudioRig(PLANT, FS, block_size=1024, lead_blocks=LEAD)
+        ctl = Controller(spec, vr.processor.calibration, seed=1)
+        result, events, drive = tapped_run(rig, ctl, tap)
+    st = rig.stats
+    assert result.status == "completed", result.abort_reason
+    assert result.time_at_full_level_s >= spec.schedule.full_level_s
+    assert abs(result.final_rms_error_db) < spec.tolerance.rms_alarm_db
+    assert result.final_lines_outside_abort == 0
+    assert st.dry_blocks == 0 and st.callback_errors == 0
+    # the controller's measured delay = exchange lead + JACK path + a lag on the main lobe of
+    # the plant's own impulse response (its band-limited correlation peak need not be the
+    # broadband peak sample): |h(lag)| >= max|h| / 2
+    probe = SimRig(load_plant("loudspeaker"), FS, seed=0)
+    imp = np.zeros(8192)
+    imp[0] = 1.0
+    h = np.abs(probe.process(imp))
+    path = LEAD * 1024 + jack_loop_delay_samples(jack_server.period_frames, 1024)
+    lag = ctl.loop_delay_samples - path
+    assert 0 <= lag < h.size and h[lag] >= 0.5 * h.max(), (lag, int(np.argmax(h)))
+    assert_no_step(drive, 1024)  # start and normal stop
+
+
+@pytest.mark.jack
+def test_ctrl_c_ramps_down_and_stops(jack_server) -> None:
+    from liveshape.controller import Controller
+
+    with virtual_rig("ideal", seed=5) as vr, JackTap(["PortAudio:out_0"]) as tap:
+        rig = audio.AudioRig(PLANT, FS, lead_blocks=LEAD)
+        ctl = Controller(make_spec(full_s=60.0), vr.processor.calibration, seed=2)
+        timer = threading.Timer(4.0, _thread.interrupt_main)  # Ctrl-C in the middle of identify
+        timer.start()
+        try:
+            result, events, drive = tapped_run(rig, ctl, tap)
+        finally:
+            timer.cancel()
+    assert result.status == "stopped" and "Ctrl-C" in result.abort_reason
+    assert np.max(np.abs(drive)) > 1e-3  # it was really driving when interrupted
+    assert_no_step(drive, 1024)
+
+
+@pytest.mark.jack
+def test_plant_fault_aborts_with_a_ramp(jack_server) -> None:
+    from liveshape.controller import Controller
+    from liveshape.spec import FaultSpec
+
+    faults = [FaultSpec("sensor_detached", at_s=7.0)]  # plant time since the rig started
+    with virtual_rig("ideal", seed=6, faults=faults) as vr, JackTap(["PortAudio:out_0"]) as tap:
+        rig = audio.AudioRig(PLANT, FS, lead_blocks=LEAD)
+        ctl = Controller(make_spec(full_s=60.0), vr.processor.calibration, seed=3)
+        result, events, drive = tapped_run(rig, ctl, tap)
+    assert result.status == "aborted", result
+    assert result.trip is not None
+    assert_no_step(drive, 1024)
+
+
+@pytest.mark.jack
+def test_virtual_rig_killed_mid_run_is_a_controlled_abort(jack_server) -> None:
+    from liveshape.controller import Controller
+    from liveshape.rigs.sim import SimRig
+
+    truth = SimRig(load_plant("ideal"), FS).calibration
+    with virtual_rig("ideal", seed=7, in_process=False) as vr, \
+            JackTap(["PortAudio:out_0"]) as tap:
+        rig = audio.AudioRig(PLANT, FS, lead_blocks=LEAD)
+        ctl = Controller(make_spec(full_s=60.0), truth, seed=4)
+        timer = threading.Timer(6.0, vr.kill)
+        timer.start()
+        try:
+            result, events, drive = tapped_run(rig, ctl, tap)
+        finally:
+            timer.cancel()
+    assert result.status == "aborted" and result.trip is not None, result
+    assert_no_step(drive, 1024)
+
+
+class LateController:
+    """Wraps a controller and stalls once for ``stall_s`` inside exchange (too slow on purpose)."""
+
+    def __init__(self, ctl, at_call: int, stall_s: float) -> None:
+        self.ctl, self.at, self.stall_s, self.calls = ctl, at_call, stall_s, 0
+        self.reported = 0
+
+    def exchange(self, response):
+        self.calls += 1
+        if self.calls == self.at:
+            threading.Event().wait(self.stall_s)
+        return self.ctl.exchange(response)
+
+    def report_underflow(self, count):
+        self.reported += count
+        self.ctl.report_underflow(count)
+
+    def __getattr__(self, name):
+        return getattr(self.ctl, name)
+
+
+@pytest.mark.jack
+def test_underflows_are_counted_reported_and_abort_the_run(jack_server) -> None:
+    from liveshape.controller import Controller
+
+    with virtual_rig("ideal", seed=8) as vr, JackTap(["PortAudio:out_0"]) as tap:
+        rig = audio.AudioRig(PLANT, FS, lead_blocks=LEAD)
+        ctl = Controller(make_spec(full_s=60.0), vr.processor.calibration, seed=5)
+        # call 30 is 0.64 s in (the silent background look); 0.5 s is 3x the 170 ms lead
+        late = LateController(ctl, at_call=30, stall_s=0.5)
+        result, events, drive = tapped_run(rig, late, tap)
+    st = rig.stats
+    assert st.dry_blocks >= 1 and late.reported == st.dry_blocks
+    assert result.status == "aborted" and result.trip.rule == "controller_late"
+    t_stall = 30 * 1024 / FS
+    assert t_stall <= result.trip.t_s <= t_stall + 0.5 + LEAD * 1024 / FS  # this stall tripped it
+    assert_no_step(drive, 1024)

@@ -254,6 +254,8 @@ class StreamCore:
         self._stop = 0  # 0 run, 1 drain then stop, 2 fade out now; written by the worker
         self._zeros_sent = 0
         self.durations_s = np.zeros(1 << 16, np.float64)
+        self.flagged_at = np.full(16, -1, np.int64)
+        self._n_flagged = 0
         # counters (written only by the callback)
         self.callbacks = 0
         self.dry_blocks = 0
@@ -297,11 +299,15 @@ class StreamCore:
     # -- callback side --------------------------------------------------------------------
 
     def count_status(self, input_overflow: bool, output_underflow: bool) -> None:
-        """Count the stream's status flags (called from the callback)."""
+        """Count the stream's status flags (called from the callback); the callback numbers of
+        the first 16 flagged callbacks are kept in ``flagged_at``."""
         if input_overflow:
             self.input_overflows += 1
         if output_underflow:
             self.output_underflows += 1
+        if (input_overflow or output_underflow) and self._n_flagged < self.flagged_at.size:
+            self.flagged_at[self._n_flagged] = self.callbacks
+            self._n_flagged += 1
 
     def process(self, indata: np.ndarray, outdata: np.ndarray, frames: int) -> bool:
         """Fill ``outdata`` in place from the drive ring and store ``indata``; True means stop.
@@ -408,7 +414,8 @@ class StreamStats:
 
     ``dry_blocks``: callbacks that found the drive ring short (each faded to zero, reported to
     the source); ``dry_spells``: how often the drive went from playing to dry.
-    ``output_underflows`` / ``input_overflows``: PortAudio's own status flags.
+    ``output_underflows`` / ``input_overflows``: PortAudio's own status flags;
+    ``flagged_callbacks``: numbers of the first 16 callbacks that carried one.
     ``callback_*``: time spent inside the callback; ``update_*``: time of ``source.exchange``.
     """
 
@@ -419,6 +426,7 @@ class StreamStats:
     output_underflows: int
     input_overflows: int
     input_dropped_frames: int
+    flagged_callbacks: tuple[int, ...]
     callback_errors: int
     callback_median_s: float
     callback_max_s: float
@@ -440,6 +448,7 @@ def summarize(core: StreamCore, update_s: list[float]) -> StreamStats:
         output_underflows=core.output_underflows,
         input_overflows=core.input_overflows,
         input_dropped_frames=core.input_dropped,
+        flagged_callbacks=tuple(int(i) for i in core.flagged_at if i >= 0),
         callback_errors=core.errors,
         callback_median_s=float(np.median(cb)),
         callback_max_s=float(np.max(cb)),
