@@ -22,10 +22,10 @@ signal.
 
 Discretization: every linear stage uses the trapezoidal rule (bilinear transform, no prewarp) at
 the rig's sample rate. The shaker with its payload is kept as a physical state-space model,
-diagonalized so each mode is a first-order complex recursion run by :func:`scipy.signal.lfilter`
-with a carried state. When the coil resistance (heating) or the modal frequencies (fault) change,
-the physical state (current, displacements, velocities) is carried over unchanged into the new
-model, so nothing jumps.
+diagonalized: each real mode runs as a first-order and each complex pair as a second-order real
+recursion through :func:`scipy.signal.lfilter` with a carried state. When the coil resistance
+(heating) or the modal frequencies (fault) change, the physical state (current, displacements,
+velocities) is carried over unchanged into the new model, so those continue without a jump.
 
 Nonlinear and protective behaviour (simple models, documented):
 
@@ -66,7 +66,8 @@ from liveshape.rigs.plant import (
 #: What each fault kind does (value meaning in brackets).
 FAULT_RULES: dict[str, str] = {
     "sensor_detached": "the response is sensor and card noise only",
-    "sensor_gain": "the sensor sensitivity is multiplied by value (a factor >= 0)",
+    "sensor_gain": "the sensor chain's output (signal and sensor noise) is multiplied by value "
+                   "(a factor >= 0)",
     "amp_trip": "the amplifier trips: 0 V output from at_s on (duration ignored)",
     "resonance_shift": "every payload resonance frequency is multiplied by value (> 0)",
     "plant_gain": "the amplifier gain changes by value dB",
@@ -88,8 +89,10 @@ RE_STEP = 1e-4
 class SimStatus:
     """What the simulated rig did so far (counts and peaks since the start).
 
-    ``excursion_peak_m`` and ``current_peak_a`` are None when the shaker model has none (ideal);
-    ``re_ohm_now``/``coil_rise_k`` are None without a coil model.
+    ``excursion_peak_m``, ``excursion_last_peak_m`` (peak of the last ``process`` call),
+    ``current_peak_a`` and ``re_ohm_now`` are None for the ideal shaker (no coil, no stroke);
+    ``coil_rise_k`` is None without a coil-heating model. ``active_faults`` are the fault kinds
+    in effect at ``t_s``.
     """
 
     t_s: float
