@@ -37,6 +37,25 @@ Stages (``connect → identify → equalize → full_level → ramp_down → don
         At the end a 1 s cosine fade, then zeros. On a safety trip or a stop request the fade
         lasts ``safety.abort_ramp_s``.
 
+Estimation design
+    Update estimates are independent: each starts after the last drive change has arrived and
+    holds one drive only, so consecutive updates are independent χ² estimates (what the
+    persistence of the abort rules relies on). Their DOF ν_u is half the decision DOF: the
+    equalizer's steady-state true error γ/(2−γ)·σ²(ν_u) (DOMAIN.md §4) stays below the display
+    scatter σ²(ν_d), and the first tolerance decision after a drive or level change needs two
+    updates. The direct law removes the mean dB bias of a χ²_ν estimate (≈ −4.343/ν dB), so it
+    settles on the target's mean square. The decision pool restarts at every level change.
+
+Safety
+    Every response block is checked for non-finite samples and input overload before anything
+    else; the delay-aligned block for silence while the drive is up (a dropout shorter than the
+    rule's window restarts the update estimate so its zeros never pull the drive up). Each new
+    Welch segment is checked on its own (rms above target, control far below the FRF prediction)
+    with a 5σ statistical allowance, so a jump trips within a segment; each update estimate goes
+    through all rules of :class:`~liveshape.safety.Supervisor`. While a persistent rule is
+    pending the drive is held, not updated. On a trip the drive fades to zero within
+    ``abort_ramp_s`` and the run ends ``aborted`` with the :class:`~liveshape.safety.Trip`.
+
 Drive ceiling
     The drive rms is held at or below ``drive_rms_max_fs`` and, with clipping at
     ``clip_sigma``·rms, at or below ``drive_peak_max_fs / clip_sigma`` so the clipped peaks stay
@@ -157,6 +176,7 @@ class Controller:
         self._trip: Trip | None = None
         self._stop_reason: str | None = None
         self._events: list[Event] = []
+        self._log: list[Event] = []
         self._recent: deque[Event] = deque(maxlen=12)
         self._conn: ConnectRecorder | None = ConnectRecorder(
             self._bg_len, self._fade_in + (CONNECT_SEGMENTS + 1) * self._hop + self._max_lag)
@@ -231,6 +251,11 @@ class Controller:
         """Events since the last call, oldest first."""
         out, self._events = self._events, []
         return out
+
+    @property
+    def events(self) -> tuple[Event, ...]:
+        """Every event of the run so far, oldest first."""
+        return tuple(self._log)
 
     # ------------------------------------------------------------------ control from the shell
     def request_stop(self, reason: str = "stop requested") -> None:
@@ -574,6 +599,7 @@ class Controller:
     def _emit(self, kind: str, message: str, data: dict[str, Any]) -> None:
         ev = Event(self.t_s, kind, message, dict(data))
         self._events.append(ev)
+        self._log.append(ev)
         self._recent.append(ev)
 
     def snapshot(self) -> ControlSnapshot:
