@@ -189,6 +189,7 @@ class Controller:
         self._est = ControlEstimate(fs, n, band, self._gpf2, cross=True)
         self._est_gain = 0.0  # gain the estimate's data was played at
         self._target_sum = float(target[band].sum())
+        self._predicted_sum = 0.0
         self._seg_band_dof = band_sum_dof(target[band], 2.0)  # one periodogram: 2 DOF a line
         self._switch_to: tuple[np.ndarray, float] | None = None
         self._tail_left: int | None = None
@@ -322,7 +323,8 @@ class Controller:
         if self._stage == "connect":
             self._connect(x, y, i0)
         elif self._stage in ("identify", "equalize", "full_level"):
-            trip = self.supervisor.check_silence(i0 / self.fs_hz, y, drive_up=bool(np.any(x)))
+            drive_up = bool(x[0] != 0.0 or x[-1] != 0.0 or np.any(x))  # short-circuits
+            trip = self.supervisor.check_silence(i0 / self.fs_hz, y, drive_up=drive_up)
             if trip is not None:
                 self._abort(trip)
                 return
@@ -377,11 +379,9 @@ class Controller:
         g_ref = self._est_gain
         if self._stage == "identify":  # the identification runs 6 dB below the first step
             g_ref = 10.0 ** (self.schedule.steps_db[0] / 20.0)
-        g = self._est_gain
-        predicted = float(np.sum(np.abs(self._h1[self._band]) ** 2 * self._out.psd[self._band]))
         trip = self.supervisor.check_segment(
             t, control_sum=self._est.newest_sum, target_sum=self._target_sum * g_ref**2,
-            band_dof=self._seg_band_dof * m, predicted_sum=predicted * g * g)
+            band_dof=self._seg_band_dof * m, predicted_sum=self._predicted_sum)
         if trip is not None:
             self._abort(trip)
             return
@@ -395,6 +395,10 @@ class Controller:
         """New estimate from drive sample ``after`` on (plus transition, settling and delay)."""
         self._est.restart(after + self._settle + (self._delay or 0))
         self._out.reset_counters()
+        # band sum of the control the FRF predicts for the drive the estimate will see
+        b = self._band
+        self._predicted_sum = float(np.sum(np.abs(self._h1[b]) ** 2 * self._out.played_psd(
+            b, self._est_gain)))
 
     def _identified(self) -> None:
         c = self.spec.control

@@ -263,7 +263,7 @@ class Supervisor:
         y = np.asarray(response_fs, dtype=float)
         if y.size == 0:
             return None
-        peak = float(np.max(np.abs(y)))  # nan or inf when a sample is not finite
+        peak = max(float(y.max()), -float(y.min()))  # nan or inf when a sample is not finite
         if not math.isfinite(peak):
             bad = int(np.count_nonzero(~np.isfinite(y)))
             return Trip("non_finite", f"response contains {bad} non-finite samples (NaN/inf)",
@@ -295,12 +295,17 @@ class Supervisor:
             return None
         floor = float(self.safety.silent_floor_fs)
         c = SILENT_CHUNK
-        m = -(-y.size // c)
-        sq = np.zeros(m * c)
-        sq[: y.size] = y * y
+        full = y.size // c
+        m = full + (1 if y.size % c else 0)
+        energy = np.empty(m)
+        v = y[: full * c].reshape(full, c)
+        np.einsum("ij,ij->i", v, v, out=energy[:full])
         sizes = np.full(m, c)
-        sizes[-1] = y.size - c * (m - 1)
-        quiet = sq.reshape(m, c).sum(axis=1) < floor * floor * sizes
+        if m > full:
+            tail = y[full * c:]
+            energy[full] = float(np.dot(tail, tail))
+            sizes[full] = tail.size
+        quiet = energy < floor * floor * sizes
         if not quiet.any():
             self._silent_run = 0
             return None
