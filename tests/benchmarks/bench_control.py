@@ -14,7 +14,8 @@
 * ``control_loop_speed_*``: controller and SimRig (loudspeaker preset) together, as fast as
   possible (target ≥ 50×).
 * ``control_fault_to_quiet_*``: time from a fault's onset to the drive staying below −60 dB re
-  its pre-fault rms, with the bound ``one update + abort_ramp_s`` beside it.
+  its pre-fault rms, with the bound ``one update + abort_ramp_s`` beside it (rules that need
+  ``abort_persist_updates`` consecutive updates, e.g. lines_abort, have their own bound).
 
 Run with ``python -m tests.benchmarks control``.
 """
@@ -172,7 +173,8 @@ def _speed(report: Callable[[str, float, str], None]) -> None:
 
 def _faults(report: Callable[[str, float, str], None]) -> None:
     for fault in (FaultSpec("sensor_detached", 40.0), FaultSpec("plant_gain", 40.0, 10.0),
-                  FaultSpec("amp_trip", 40.0), FaultSpec("resonance_shift", 40.0, 1.25)):
+                  FaultSpec("sensor_gain", 40.0, 1.6), FaultSpec("amp_trip", 40.0),
+                  FaultSpec("resonance_shift", 40.0, 1.25)):
         spec = _spec(full_s=60.0, steps_db=(-6.0, 0.0), hold_s=1.0)
         rig = SimRig(load_plant("loudspeaker"), FS_HZ, seed=2, faults=(fault,))
         ctl = Controller(spec, rig.calibration)
@@ -185,6 +187,10 @@ def _faults(report: Callable[[str, float, str], None]) -> None:
         report(f"control_fault_to_quiet_{fault.kind}", quiet_s, f"s ({rule})")
     report("control_fault_bound", ctl.update_interval_s + spec.safety.abort_ramp_s,
            "s (one update + abort ramp)")
+    persist = spec.safety.abort_persist_updates
+    report("control_fault_bound_persistent",
+           (persist + 1) * ctl.update_interval_s + spec.safety.abort_ramp_s,
+           f"s ({persist} whole updates after the one the fault fell into + abort ramp)")
 
 
 def run(report: Callable[[str, float, str], None]) -> None:
