@@ -333,3 +333,14 @@ def test_underflows_are_counted_reported_and_abort_the_run(jack_server) -> None:
     t_stall = 30 * 1024 / FS
     assert t_stall <= result.trip.t_s <= t_stall + 0.5 + LEAD * 1024 / FS  # this stall tripped it
     assert_no_step(drive, 1024)
+
+
+def test_missing_audio_stack_skips_locally_and_fails_in_ci(monkeypatch) -> None:
+    from jackserver import skip_or_fail
+
+    monkeypatch.setenv("CI", "true")
+    with pytest.raises(pytest.fail.Exception, match="cannot run in CI: no jackd"):
+        skip_or_fail("no jackd")
+    monkeypatch.setenv("CI", "false")
+    with pytest.raises(pytest.skip.Exception):
+        skip_or_fail("no jackd")

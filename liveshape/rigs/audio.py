@@ -259,6 +259,26 @@ class AudioRig:
     switch_interval_s : float or None, optional
         :func:`sys.setswitchinterval` during a run so the callback thread gets the interpreter
         promptly (None: leave it).
+
+    Notes
+    -----
+    The callback's contract (what PortAudio's thread runs for every block, see
+    :meth:`liveshape.rigs.ring.StreamCore.process`):
+
+    * it fills every sample of ``outdata`` in place: the drive channel from the drive ring (and
+      its copy on the loopback output), every other channel zero, clipped to ±1 FS;
+    * it copies ``indata`` into the input ring and counts the status flags;
+    * it does no DSP, no allocation of buffers, no logging, no locking, and never raises
+      except :class:`sounddevice.CallbackStop` at the end of the stop sequence;
+    * fades are per-sample raised cosines over one block: in at the start and after a dry
+      spell, out when the drive ring runs dry (the last value is held and faded; the late
+      samples are skipped when they arrive, keeping the timeline) and when asked to stop;
+    * the stop sequence is: the queued drive plays out (or fades at once on an urgent stop),
+      then ``stop_zero_blocks`` zero blocks, then ``CallbackStop``. ``abort()`` is used only
+      when the stream no longer calls back.
+
+    The worker thread calls ``source.exchange`` (and ``request_stop``, ``report_underflow``)
+    from one thread only, so the source needs no locking.
     """
 
     def __init__(
