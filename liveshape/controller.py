@@ -190,6 +190,7 @@ class Controller:
         self._est_gain = 0.0  # gain the estimate's data was played at
         self._target_sum = float(target[band].sum())
         self._predicted_sum = 0.0
+        self._live_from = math.inf  # response index from which silence is a fault
         self._seg_band_dof = band_sum_dof(target[band], 2.0)  # one periodogram: 2 DOF a line
         self._switch_to: tuple[np.ndarray, float] | None = None
         self._tail_left: int | None = None
@@ -323,8 +324,14 @@ class Controller:
         if self._stage == "connect":
             self._connect(x, y, i0)
         elif self._stage in ("identify", "equalize", "full_level"):
-            drive_up = bool(x[0] != 0.0 or x[-1] != 0.0 or np.any(x))  # short-circuits
-            trip = self.supervisor.check_silence(i0 / self.fs_hz, y, drive_up=drive_up)
+            # silence counts once the identification drive has faded in (the fades to and from
+            # zero around the switch of spectrum are no dropout)
+            j = self._live_from - i0
+            if j < y.size:
+                j = int(max(0, j))
+                trip = self.supervisor.check_silence(i0 / self.fs_hz, y[j:], drive_up=True)
+            else:
+                trip = self.supervisor.check_silence(i0 / self.fs_hz, y, drive_up=False)
             if trip is not None:
                 self._abort(trip)
                 return
@@ -552,6 +559,7 @@ class Controller:
                 out_.set_psd(psd)
                 out_.fade(g, FADE_IN_S)
                 self._est_gain = g
+                self._live_from = out_.n_out + self._fade_in + (self._delay or 0)
                 self._restart_estimate(after=out_.n_out + max(self._fade_in, self.frame_length))
         if self._stage == "done":
             out = np.zeros(n)
