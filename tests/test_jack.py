@@ -344,3 +344,36 @@ def test_missing_audio_stack_skips_locally_and_fails_in_ci(monkeypatch) -> None:
     monkeypatch.setenv("CI", "false")
     with pytest.raises(pytest.skip.Exception):
         skip_or_fail("no jackd")
+
+
+@pytest.mark.jack
+def test_serve_announces_itself_and_returns_when_the_server_stops(jack_server) -> None:
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    from jackserver import start_jack_server, stop_pid
+
+    other = start_jack_server()  # a second private server, never seen by PortAudio
+    root = str(Path(__file__).resolve().parents[1])
+    env = dict(os.environ, PYTHONPATH=root + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "liveshape.rigs.jackrig", "--plant", "ideal", "--server",
+         other.name, "--name", "plant-x", "--no-loopback"],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
+    try:
+        assert proc.stdout.readline().split() == ["ready", "plant-x", "48000", "1024"]
+    finally:
+        stop_pid(other.proc)
+    assert proc.wait(timeout=10) == 0
+    proc.stdout.close()
+    proc.stderr.close()
+
+
+def test_jackrig_command_line_refuses_unknown_options() -> None:
+    from liveshape.errors import ConfigError
+    from liveshape.rigs.jackrig import main
+
+    with pytest.raises(ConfigError, match="option '--plnt' is unknown"):
+        main(["--plnt", "ideal"])

@@ -236,6 +236,7 @@ class VirtualRig:
         self.fs_hz: float | None = None
         self._client: Any = None
         self._proc: subprocess.Popen | None = None
+        self.server_gone = threading.Event()  # set when the JACK server shuts down
 
     @property
     def pid(self) -> int | None:
@@ -273,6 +274,7 @@ class VirtualRig:
 
         client.set_process_callback(process)
         client.set_xrun_callback(xrun)
+        client.set_shutdown_callback(lambda status, reason: self.server_gone.set())
         client.activate()
         self.processor, self._client = proc, client
 
@@ -353,10 +355,9 @@ def serve(
     old = {s: signal.signal(s, lambda *_: done.set()) for s in (signal.SIGINT, signal.SIGTERM)}
     try:
         rig.start()
-        rig._client.set_shutdown_callback(lambda *_: done.set())
         if ready is not None:
             ready(rig)
-        while not done.wait(0.5):
+        while not done.wait(0.5) and not rig.server_gone.is_set():
             pass
     finally:
         for s, h in old.items():
