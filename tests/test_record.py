@@ -25,7 +25,8 @@ import soundfile
 
 from liveshape.config import read_yaml_file
 from liveshape.errors import ConfigError
-from liveshape.record import RunRecorder, json_safe, load_run, read_signals
+from liveshape.record import RunRecorder, json_safe
+from liveshape.runfolder import load_run, read_signals
 
 REPO = Path(__file__).resolve().parents[1]
 NOW = dt.datetime(2024, 5, 6, 7, 8, 9, tzinfo=dt.timezone.utc)
@@ -377,6 +378,26 @@ def _record_real_run(out_dir: Path):
         result = ctl.result()
         rec.close(result)
     return rec.root, result, np.concatenate(drives), np.concatenate(responses), events
+
+
+@pytest.mark.filterwarnings(_SCIPY_CHUNK_WARNING)
+def test_wav_header_fallback_without_soundfile_internals(tmp_path, monkeypatch):
+    import liveshape.record as record
+
+    # A soundfile whose internals changed: an open file without the private SNDFILE handle
+    # gets no command; the recorder goes on and the header written at close holds every
+    # sample (float32 storage: IEEE 754 single rounding).
+    assert record._sf_command(object(), 0x1060) is False
+    sent = []
+    monkeypatch.setattr(record, "_sf_command", lambda *args: sent.append(args[1:]) or False)
+    x = np.random.default_rng(3).normal(0, 0.2, 2000)
+    with _recorder(tmp_path, flush_every_s=0.01) as rec:
+        for k in range(0, 2000, 500):
+            rec.signals(x[k:k + 500], x[k:k + 500])
+        rec.close({"status": "completed"})
+    assert (0x1060,) in sent  # the header updates were asked for and not done
+    _, data = scipy.io.wavfile.read(load_run(rec.root).drive_wav)
+    np.testing.assert_array_equal(data, x.astype(np.float32))
 
 
 def test_record_of_a_real_run(tmp_path):
