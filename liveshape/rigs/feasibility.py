@@ -3,7 +3,7 @@
 Pure (numpy). :func:`assess` works on the control lines ``f_k = k fs/N`` (``k = 0 .. N/2``, line
 spacing ``df = fs/N``), the same lines the controller synthesizes and measures. For the target ASD
 ``A_k`` (g²/Hz) and the plant's drive-FS -> response-FS transfer function ``H_k``
-(:func:`~liveshape.rigs.plant.analytic_frf`), the equalized drive must have the PSD
+(:func:`~liveshape.rigs.plantmodel.analytic_frf`), the equalized drive must have the PSD
 ``D_k = A_k c² / |H_k|²`` (FS²/Hz, ``c`` = response FS per g), so that the measured response
 meets the target. From it follow, line by line through the plant's transfer functions, the
 amplifier voltage, the coil current and the table excursion; each rms is ``sqrt(sum PSD df)``.
@@ -35,13 +35,8 @@ from typing import Any
 import numpy as np
 
 from liveshape.errors import ConfigError
-from liveshape.rigs.plant import (
-    IdealShaker,
-    Plant,
-    analytic_frf,
-    drive_to_volts_tf,
-    voltage_frf,
-)
+from liveshape.rigs.plant import IdealShaker, Plant
+from liveshape.rigs.plantmodel import analytic_frf, drive_to_volts_tf, evaluate_tf, voltage_frf
 
 #: Peaks are this many standard deviations (3-sigma basis, see the module doc).
 PEAK_SIGMA = 3.0
@@ -145,10 +140,6 @@ def _budget(name: str, unit: str, ms: float, limit: float | None) -> Budget:
     return Budget(name, unit, rms, peak, limit, head, peak <= limit)
 
 
-def _poly_at(poly, s: np.ndarray) -> np.ndarray:
-    return np.polyval(poly[0], s) / np.polyval(poly[1], s)
-
-
 def _runs(mask: np.ndarray) -> list[tuple[int, int]]:
     """Index ranges ``[i, j]`` (inclusive) of contiguous True runs."""
     out, i, n = [], 0, mask.size
@@ -220,7 +211,7 @@ def assess(
     h = analytic_frf(plant, fb, fs_hz=fs)
     resp = ab * c * c                      # measured response PSD, FS²/Hz
     drive = resp / np.abs(h) ** 2          # FS²/Hz
-    volts = drive * np.abs(_poly_at(drive_to_volts_tf(plant), s)) ** 2
+    volts = drive * np.abs(evaluate_tf(drive_to_volts_tf(plant), s)) ** 2
     x_psd = volts * np.abs(voltage_frf(plant, fb, "displacement_m_per_v")) ** 2
     motor = not isinstance(plant.shaker, IdealShaker)
     i_psd = volts * np.abs(voltage_frf(plant, fb, "current_a_per_v")) ** 2 if motor else None

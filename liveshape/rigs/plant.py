@@ -1,6 +1,6 @@
 """A physical model of the drive/response chain, described by a YAML file a user can write.
 
-Pure (numpy and the standard library; files are read through :mod:`liveshape.config`).
+Pure (the standard library; files are read through :mod:`liveshape.config`).
 
 The chain is: sound-card output (full scale to volts, AC-coupling high-pass) -> amplifier
 (voltage gain, optional subsonic high-pass, voltage clip, current trip) -> electrodynamic shaker
@@ -9,23 +9,10 @@ compliance and mechanical resistance) carrying a payload (a rigid mass plus moda
 spring/damper pairs) -> accelerometer (sensitivity, noise, high-pass) -> sound-card input (volts
 to full scale, AC-coupling high-pass, noise), with the round-trip delay of the card.
 
-Equations (SI units; ``x`` table displacement, ``y_j`` modal-mass displacements)::
-
-    V      = (Re + s Le) I + Bl s X                                   (voice coil)
-    Bl I   = (M s² + Rms s + 1/Cms) X + sum_j N_j (X - Y_j),  M = Mms + payload mass
-    D_j Y_j = N_j X,  N_j = c_j s + k_j,  D_j = m_j s² + N_j,  k_j = m_j (2 pi f_j)²,
-                      c_j = m_j 2 pi f_j / Q_j                         (modal masses)
-
-which give, with ``Pi = prod_j D_j`` and ``P = (M s² + Rms s + 1/Cms) Pi
-+ sum_j m_j s² N_j prod_{l != j} D_l``, ``Q = (Re + s Le) P + Bl² s Pi``:
-``I/V = P/Q``, ``X/V = Bl Pi/Q``, ``Y_j/V = Bl N_j prod_{l != j} D_l / Q``; accelerations are
-``s²`` times displacements. This is the standard lumped electro-mechanical analogue of a moving-coil
-driver (R. H. Small, "Direct-radiator loudspeaker system analysis", JAES 20, 1972) with tuned
-mass-spring-damper attachments (Den Hartog, "Mechanical Vibrations").
-
-The ``ideal`` shaker model is an acceleration source: the table acceleration is ``g_per_v`` g per
-amplifier volt at every frequency, whatever the payload; modal masses still respond to it as
-base-excited single-degree-of-freedom systems.
+This module holds the description (frozen dataclasses), its strict YAML mapping and the packaged
+presets. The continuous-time equations and models (transfer functions, state space, FRFs) are in
+:mod:`liveshape.rigs.plantmodel`; their public names are re-exported here, so
+``from liveshape.rigs.plant import analytic_frf`` keeps working.
 """
 
 from __future__ import annotations
@@ -36,10 +23,20 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import numpy as np
-
 from liveshape.errors import ConfigError
-from liveshape.profile import G0_M_S2
+from liveshape.rigs.plantmodel import (
+    Poly,
+    analytic_frf,
+    chain_tf,
+    drive_to_volts_tf,
+    electromechanical_ss,
+    electromechanical_tf,
+    evaluate_tf,
+    highpass_tf,
+    mode_constants,
+    sensor_tf,
+    voltage_frf,
+)
 from liveshape.schema import (
     Where,
     as_choice,
@@ -49,6 +46,18 @@ from liveshape.schema import (
     as_str,
     check_keys,
 )
+
+__all__ = [
+    # the description
+    "COPPER_TEMPCO_PER_K", "PRESETS_DIR", "SoundCard", "Amplifier", "CoilHeating",
+    "ThieleSmallShaker", "IdealShaker", "Resonance", "Payload", "Accelerometer", "Plant",
+    # reading and writing
+    "plant_from_mapping", "preset_names", "load_plant", "plant_to_mapping",
+    # re-exported from liveshape.rigs.plantmodel
+    "Poly", "mode_constants", "highpass_tf", "electromechanical_tf", "drive_to_volts_tf",
+    "sensor_tf", "chain_tf", "evaluate_tf", "voltage_frf", "analytic_frf",
+    "electromechanical_ss",
+]
 
 #: Copper's temperature coefficient of resistance near room temperature, per kelvin
 #: (about 0.39 %/K; from memory, handbook value).
@@ -393,211 +402,3 @@ def plant_to_mapping(plant: Plant) -> dict[str, Any]:
         },
         "accelerometer": dataclasses.asdict(plant.accelerometer),
     }
-
-
-# -- continuous-time models ---------------------------------------------------------------------
-Poly = tuple[np.ndarray, np.ndarray]  # (numerator, denominator) in descending powers of s
-
-
-def mode_constants(r: Resonance, f_factor: float = 1.0) -> tuple[float, float, float]:
-    """``(m, c, k)`` of a modal mass: ``k = m w²``, ``c = m w / Q``, ``w = 2 pi f f_factor``."""
-    w = 2.0 * math.pi * r.f_hz * f_factor
-    return r.mass_kg, r.mass_kg * w / r.q, r.mass_kg * w * w
-
-
-def highpass_tf(f_hz: float | None, order: int = 1) -> Poly:
-    """Analog high-pass: ``s/(s + w)`` (order 1) or Butterworth ``s²/(s² + √2 w s + w²)``."""
-    if f_hz is None:
-        return np.array([1.0]), np.array([1.0])
-    w = 2.0 * math.pi * f_hz
-    if order == 1:
-        return np.array([1.0, 0.0]), np.array([1.0, w])
-    return np.array([1.0, 0.0, 0.0]), np.array([1.0, math.sqrt(2.0) * w, w * w])
-
-
-def _mul(*polys: Poly) -> Poly:
-    b, a = np.array([1.0]), np.array([1.0])
-    for pb, pa in polys:
-        b, a = np.polymul(b, pb), np.polymul(a, pa)
-    return b, a
-
-
-def electromechanical_tf(
-    plant: Plant, *, re_ohm: float | None = None, f_factor: float = 1.0
-) -> dict[str, Poly | None]:
-    """Transfer functions per amplifier volt, as polynomials in ``s`` (see the module doc).
-
-    Returns a dict with ``current_a_per_v`` (None for the ideal shaker), ``displacement_m_per_v``
-    (table), ``table_accel_m_s2_per_v`` and ``accel_m_s2_per_v`` (at the control point).
-    ``re_ohm`` overrides the coil resistance (heating); ``f_factor`` scales every modal frequency.
-    """
-    modes = [mode_constants(r, f_factor) for r in plant.payload.resonances]
-    n_j = [np.array([c, k]) for _, c, k in modes]
-    d_j = [np.array([m, c, k]) for m, c, k in modes]
-    pi = np.array([1.0])
-    for d in d_j:
-        pi = np.polymul(pi, d)
-
-    def others(j: int) -> np.ndarray:
-        out = np.array([1.0])
-        for l, d in enumerate(d_j):
-            if l != j:
-                out = np.polymul(out, d)
-        return out
-
-    s2 = np.array([1.0, 0.0, 0.0])
-    ctrl = plant.payload.control_index()
-    sh = plant.shaker
-    if isinstance(sh, IdealShaker):
-        g = sh.g_per_v * G0_M_S2
-        table = (np.array([g]), np.array([1.0]))
-        accel = table if ctrl is None else (g * n_j[ctrl], d_j[ctrl])
-        return {
-            "current_a_per_v": None,
-            "displacement_m_per_v": (np.array([g]), s2),
-            "table_accel_m_s2_per_v": table,
-            "accel_m_s2_per_v": accel,
-        }
-    re = sh.re_ohm if re_ohm is None else re_ohm
-    mech = np.array([plant.moving_mass_kg, sh.rms_kg_s, 1.0 / sh.cms_m_per_n])
-    p = np.polymul(mech, pi)
-    for j, (m, _, _) in enumerate(modes):
-        p = np.polyadd(p, np.polymul(m * s2, np.polymul(n_j[j], others(j))))
-    q = np.polyadd(np.polymul([sh.le_h, re], p), sh.bl_tm**2 * np.polymul([1.0, 0.0], pi))
-    q = np.trim_zeros(q, "f")
-    x_num = sh.bl_tm * pi
-    if ctrl is None:
-        a_num = np.polymul(s2, x_num)
-    else:
-        a_num = np.polymul(s2, sh.bl_tm * np.polymul(n_j[ctrl], others(ctrl)))
-    return {
-        "current_a_per_v": (p, q),
-        "displacement_m_per_v": (x_num, q),
-        "table_accel_m_s2_per_v": (np.polymul(s2, x_num), q),
-        "accel_m_s2_per_v": (a_num, q),
-    }
-
-
-def drive_to_volts_tf(plant: Plant) -> Poly:
-    """Card output FS -> amplifier output volts: scale, card AC coupling, subsonic filter."""
-    k = plant.card.out_v_per_fs * plant.amplifier.gain_v_per_v
-    amp = plant.amplifier
-    return _mul(
-        (np.array([k]), np.array([1.0])),
-        highpass_tf(plant.card.out_highpass_hz, 1),
-        highpass_tf(amp.highpass_hz, amp.highpass_order),
-    )
-
-
-def sensor_tf(plant: Plant) -> Poly:
-    """Acceleration in m/s² at the control point -> card input FS (sensor and card high-passes)."""
-    k = plant.accelerometer.sens_mv_per_g * 1e-3 / (G0_M_S2 * plant.card.in_v_per_fs)
-    return _mul(
-        (np.array([k]), np.array([1.0])),
-        highpass_tf(plant.accelerometer.highpass_hz, 1),
-        highpass_tf(plant.card.in_highpass_hz, 1),
-    )
-
-
-def chain_tf(plant: Plant) -> Poly:
-    """Drive FS -> response FS, the rational part (the loop delay is not included)."""
-    return _mul(drive_to_volts_tf(plant), electromechanical_tf(plant)["accel_m_s2_per_v"],
-                sensor_tf(plant))
-
-
-def _evaluate(poly: Poly, s: np.ndarray) -> np.ndarray:
-    b, a = poly
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return np.polyval(b, s) / np.polyval(a, s)
-
-
-def voltage_frf(plant: Plant, f_hz: Any, output: str) -> np.ndarray:
-    """Complex FRF per amplifier volt of ``output`` (a key of :func:`electromechanical_tf`)."""
-    poly = electromechanical_tf(plant)[output]
-    if poly is None:
-        raise ValueError(f"{output} is not modelled for the {plant.shaker.model} shaker")
-    return _evaluate(poly, 2j * math.pi * np.asarray(f_hz, dtype=float))
-
-
-def analytic_frf(plant: Plant, f_hz: Any, *, fs_hz: float = 48000.0) -> np.ndarray:
-    """Continuous-time FRF from drive FS to response FS, loop delay included.
-
-    ``H(f) = H_drive->V(s) H_V->accel(s) H_accel->FS(s) exp(-s D/fs)`` at ``s = j 2 pi f``, each
-    factor evaluated from its polynomials; ``D`` is ``card.delay_samples`` and ``fs_hz`` the
-    sample rate that turns it into seconds.
-    """
-    f = np.asarray(f_hz, dtype=float)
-    s = 2j * math.pi * f
-    h = (_evaluate(drive_to_volts_tf(plant), s)
-         * _evaluate(electromechanical_tf(plant)["accel_m_s2_per_v"], s)
-         * _evaluate(sensor_tf(plant), s))
-    return h * np.exp(-s * plant.card.delay_samples / float(fs_hz))
-
-
-def electromechanical_ss(
-    plant: Plant, *, re_ohm: float | None = None, f_factor: float = 1.0
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """State-space ``(A, B, C, D)`` from amplifier volts to ``[current A, table displacement m,
-    control-point acceleration m/s²]``.
-
-    Physical states: ``[i, x, v, y_1, w_1, ...]`` (coil current, table displacement and velocity,
-    modal displacements and velocities); without inductance the current is algebraic and the
-    state has no ``i``. The ideal shaker has states ``[z_j, dz_j/dt]`` (modal displacement
-    relative to the table) and zero current/displacement rows; with no states at all the matrices
-    have zero size and only ``D`` remains.
-    """
-    modes = [mode_constants(r, f_factor) for r in plant.payload.resonances]
-    nm = len(modes)
-    ctrl = plant.payload.control_index()
-    sh = plant.shaker
-    if isinstance(sh, IdealShaker):
-        g = sh.g_per_v * G0_M_S2
-        n = 2 * nm
-        a, b = np.zeros((n, n)), np.zeros((n, 1))
-        for j, (m, c, k) in enumerate(modes):
-            a[2 * j, 2 * j + 1] = 1.0
-            a[2 * j + 1, 2 * j] = -k / m
-            a[2 * j + 1, 2 * j + 1] = -c / m
-            b[2 * j + 1, 0] = -g
-        cc, dd = np.zeros((3, n)), np.zeros((3, 1))
-        if ctrl is None:
-            dd[2, 0] = g
-        else:  # absolute acceleration of the mode = table + relative = -(c z' + k z)/m
-            cc[2] = a[2 * ctrl + 1]
-            dd[2, 0] = 0.0
-        return a, b, cc, dd
-    re = sh.re_ohm if re_ohm is None else re_ohm
-    has_i = sh.le_h > 0.0
-    o = 1 if has_i else 0  # offset of x
-    n = o + 2 + 2 * nm
-    a, b = np.zeros((n, n)), np.zeros((n, 1))
-    ix, iv = o, o + 1
-    mt = plant.moving_mass_kg
-    a[ix, iv] = 1.0
-    a[iv, ix] = -1.0 / (sh.cms_m_per_n * mt)
-    a[iv, iv] = -sh.rms_kg_s / mt
-    cc, dd = np.zeros((3, n)), np.zeros((3, 1))
-    if has_i:
-        a[0, 0] = -re / sh.le_h
-        a[0, iv] = -sh.bl_tm / sh.le_h
-        b[0, 0] = 1.0 / sh.le_h
-        a[iv, 0] = sh.bl_tm / mt
-        cc[0, 0] = 1.0
-    else:  # i = (V - Bl v)/Re
-        a[iv, iv] -= sh.bl_tm**2 / (re * mt)
-        b[iv, 0] = sh.bl_tm / (re * mt)
-        cc[0, iv] = -sh.bl_tm / re
-        dd[0, 0] = 1.0 / re
-    for j, (m, c, k) in enumerate(modes):
-        iy, iw = o + 2 + 2 * j, o + 3 + 2 * j
-        a[iy, iw] = 1.0
-        a[iw, iy], a[iw, iw], a[iw, ix], a[iw, iv] = -k / m, -c / m, k / m, c / m
-        a[iv, ix] -= k / mt
-        a[iv, iv] -= c / mt
-        a[iv, iy] += k / mt
-        a[iv, iw] += c / mt
-    cc[1, ix] = 1.0
-    row = iv if ctrl is None else o + 3 + 2 * ctrl
-    cc[2] = a[row]
-    dd[2, 0] = b[row, 0]
-    return a, b, cc, dd
