@@ -23,7 +23,7 @@ signal.
 Discretization: every linear stage uses the trapezoidal rule (bilinear transform, no prewarp) at
 the rig's sample rate. The shaker with its payload is kept as a physical state-space model,
 diagonalized: each real mode runs as a first-order and each complex pair as a second-order real
-recursion through :func:`scipy.signal.lfilter` with a carried state. When the coil resistance
+recursion with a carried state (:class:`liveshape.rigs.modal.ModalSystem`). When the coil resistance
 (heating) or the modal frequencies (fault) change, the physical state (current, displacements,
 velocities) is carried over unchanged into the new model, so those continue without a jump.
 
@@ -41,7 +41,8 @@ Nonlinear and protective behaviour (simple models, documented):
   whenever it has moved by more than :data:`RE_STEP` (relative) since the last rebuild.
 
 Faults (objects with ``kind, at_s, value, duration_s``, as :class:`liveshape.spec.FaultSpec`) act
-from sample ``round(at_s fs)`` for ``duration_s`` (None: to the end); see :data:`FAULT_RULES`.
+from sample ``round(at_s fs)`` for ``duration_s`` (None: to the end); see :data:`FAULT_RULES`
+(defined, with their validation, in :mod:`liveshape.rigs.faults`).
 """
 
 from __future__ import annotations
@@ -52,30 +53,25 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import signal
 
 from liveshape.chain import ChainCalibration
 from liveshape.errors import ConfigError
 from liveshape.profile import G0_M_S2
-from liveshape.rigs.plant import (
-    IdealShaker,
-    Plant,
-    electromechanical_ss,
+from liveshape.rigs.faults import (
+    FAULT_KINDS,
+    FAULT_RULES,
+    FaultState,
+    ScheduledFault,
+    active_faults,
+    fault_bounds,
+    fault_state,
+    schedule_faults,
 )
+from liveshape.rigs.modal import ModalSystem, highpass_sections, run_sections, sections_response
+from liveshape.rigs.plant import IdealShaker, Plant
+from liveshape.rigs.plantmodel import electromechanical_ss
 
-#: What each fault kind does (value meaning in brackets).
-FAULT_RULES: dict[str, str] = {
-    "sensor_detached": "the response is sensor and card noise only",
-    "sensor_gain": "the sensor chain's output (signal and sensor noise) is multiplied by value "
-                   "(a factor >= 0)",
-    "amp_trip": "the amplifier trips: 0 V output from at_s on (duration ignored)",
-    "resonance_shift": "every payload resonance frequency is multiplied by value (> 0)",
-    "plant_gain": "the amplifier gain changes by value dB",
-    "noise_burst": "white noise of value FS rms is added to the response",
-    "dropout": "the response is zeros",
-}
-FAULT_KINDS = tuple(FAULT_RULES)
-_NEEDS_VALUE = {"sensor_gain": 0.0, "resonance_shift": None, "plant_gain": None, "noise_burst": 0.0}
+__all__ = ["FAULT_KINDS", "FAULT_RULES", "RE_STEP", "THERMAL_STEP_MAX_S", "SimRig", "SimStatus"]
 
 #: Longest period of the coil-temperature update, seconds of rig time (the step is a twentieth of
 #: the thermal time constant, at most this).
@@ -109,205 +105,6 @@ class SimStatus:
     re_ohm_now: float | None
     coil_rise_k: float | None
     active_faults: tuple[str, ...]
-
-
-@dataclass(frozen=True)
-class _Fault:
-    kind: str
-    start: int
-    end: float  # sample index (math.inf: to the end)
-    value: float
-
-
-class _Modal:
-    """Trapezoidal discretization of ``(A, B, C, D)`` run in modal coordinates.
-
-    With ``M1 = I - h A/2`` the discrete system is ``Ad = M1^-1 (I + h A/2)``, ``Bd = h M1^-1 B``,
-    ``Cd = C M1^-1``, ``Dd = D + Cd h B/2`` (bilinear transform); its state relates to the
-    physical one by ``x = M1^-1 (xd + h B u / 2)``. ``Ad`` shares the eigenvectors ``W`` of ``A``,
-    with eigenvalues ``(1 + h mu/2)/(1 - h mu/2)``. A real mode ``zeta`` runs as a first-order real
-    recursion. A complex pair ``(lambda, conj lambda)`` runs as one real all-pole recursion
-    ``p = u/((1 - lambda z^-1)(1 - conj(lambda) z^-1))``, since its modal state is
-    ``zeta[n] = beta (p[n-1] - conj(lambda) p[n-2])`` and contributes ``2 Re(gamma zeta)``.
-    """
-
-    def __init__(self, a: np.ndarray, b: np.ndarray, c: np.ndarray, d: np.ndarray, fs: float):
-        n = a.shape[0]
-        self.n, self.h = n, 1.0 / fs
-        self.b = b[:, 0]
-        self.m1 = np.eye(n) - 0.5 * self.h * a
-        self.n_out = c.shape[0]
-        if not n:
-            self.lam = self.beta = np.zeros(0, complex)
-            self.gamma = np.zeros((self.n_out, 0), complex)
-            self.d = d[:, 0].astype(float)
-            self.real_k, self.pair_k, self.real_ba, self.real_c = [], [], [], []
-            self.pair_a, self.pair_c1, self.pair_c2 = [], [], []
-            return
-        cd = np.linalg.solve(self.m1.T, c.T).T
-        bd = self.h * np.linalg.solve(self.m1, b)
-        mu, w = np.linalg.eig(a)
-        winv = np.linalg.inv(w)
-        # Infinity-norm condition number of the eigenvectors (cheap; exact enough as a guard).
-        if np.abs(w).sum(axis=1).max() * np.abs(winv).sum(axis=1).max() > 1e10:
-            raise ConfigError(
-                "plant: the shaker/payload model has (nearly) repeated modes; make the "
-                "resonances differ in f_hz or q"
-            )
-        self.w, self.winv = w, winv
-        self.lam = (1.0 + 0.5 * self.h * mu) / (1.0 - 0.5 * self.h * mu)
-        self.beta = (self.winv @ bd)[:, 0]
-        self.gamma = cd @ w
-        self.d = (d + 0.5 * self.h * (cd @ b))[:, 0]
-        self.real_k = [k for k in range(n) if mu[k].imag == 0.0]
-        self.pair_k = [k for k in range(n) if mu[k].imag > 0.0]
-        # Real modes: lfilter([0, beta], [1, -lam]); output gamma * zeta.
-        self.real_ba = [([0.0, self.beta[k].real], [1.0, -self.lam[k].real]) for k in self.real_k]
-        self.real_c = [self.gamma[:, k].real for k in self.real_k]
-        # Pairs: lfilter([1], [1, -a1, -a2]); output c1 p[n-1] + c2 p[n-2].
-        self.pair_a, self.pair_c1, self.pair_c2 = [], [], []
-        for k in self.pair_k:
-            lam, gb = self.lam[k], self.gamma[:, k] * self.beta[k]
-            self.pair_a.append([1.0, -2.0 * lam.real, abs(lam) ** 2])
-            self.pair_c1.append(2.0 * gb.real)
-            self.pair_c2.append(-2.0 * (gb * np.conj(lam)).real)
-
-    def zero_state(self) -> tuple[list, list]:
-        """State: per real mode ``[zeta]``; per pair ``(lfilter zi (2,), [p[n-2], p[n-1]])``."""
-        return ([np.zeros(1) for _ in self.real_k],
-                [(np.zeros(2), np.zeros(2)) for _ in self.pair_k])
-
-    def run(self, u: np.ndarray, state: tuple[list, list]) -> tuple[np.ndarray, tuple]:
-        """Outputs ``(n_out, len(u))`` for one segment, and the state after it."""
-        out = self.d[:, None] * u[None, :]
-        real_new, pair_new = [], []
-        for (bb, aa), c, zi in zip(self.real_ba, self.real_c, state[0], strict=True):
-            z, zf = signal.lfilter(bb, aa, u, zi=zi)
-            real_new.append(zf)
-            out += c[:, None] * z[None, :]
-        for aa, c1, c2, (zi, last) in zip(self.pair_a, self.pair_c1, self.pair_c2, state[1],
-                                          strict=True):
-            p, zf = signal.lfilter([1.0], aa, u, zi=zi)
-            ext = np.concatenate((last, p))
-            out += c1[:, None] * ext[None, 1:-1] + c2[:, None] * ext[None, :-2]
-            pair_new.append((zf, ext[-2:].copy()))
-        return out, (real_new, pair_new)
-
-    def _modal(self, state: tuple[list, list]) -> np.ndarray:
-        """Complex modal coordinates ``zeta`` (all n modes) of a state."""
-        zeta = np.zeros(self.n, complex)
-        for k, zi in zip(self.real_k, state[0], strict=True):
-            zeta[k] = zi[0]
-        for k, (_, last) in zip(self.pair_k, state[1], strict=True):
-            lam = self.lam[k]
-            zeta[k] = self.beta[k] * (last[1] - np.conj(lam) * last[0])
-        conj = [k for k in range(self.n) if k not in self.real_k and k not in self.pair_k]
-        for k in conj:  # the partner of each pair (numpy orders a pair as k, k+1)
-            zeta[k] = np.conj(zeta[k - 1])
-        return zeta
-
-    def to_physical(self, state: tuple[list, list], u0: float) -> np.ndarray:
-        """Physical state at the sample whose input is ``u0``."""
-        if not self.n:
-            return np.zeros(0)
-        xd = (self.w @ self._modal(state)).real
-        return np.linalg.solve(self.m1, xd + 0.5 * self.h * self.b * u0)
-
-    def from_physical(self, x: np.ndarray, u0: float) -> tuple[list, list]:
-        """State of this model holding physical state ``x`` at the sample whose input is ``u0``."""
-        if not self.n:
-            return self.zero_state()
-        zeta = self.winv @ (self.m1 @ x - 0.5 * self.h * self.b * u0)
-        real = [np.array([zeta[k].real]) for k in self.real_k]
-        pairs = []
-        for k, aa in zip(self.pair_k, self.pair_a, strict=True):
-            lam = self.lam[k]
-            q = zeta[k] / self.beta[k] if self.beta[k] != 0 else 0j
-            p2 = q.imag / lam.imag
-            p1 = q.real + lam.real * p2
-            zi = np.array([-aa[1] * p1 - aa[2] * p2, -aa[2] * p1])
-            pairs.append((zi, np.array([p2, p1])))
-        return real, pairs
-
-    def response(self, z: np.ndarray) -> np.ndarray:
-        """Discrete transfer functions ``(n_out, len(z))`` at the points ``z``."""
-        h = np.repeat(self.d[:, None].astype(complex), z.size, axis=1)
-        for k in range(self.n):
-            h += self.gamma[:, k:k + 1] * (self.beta[k] / (z - self.lam[k]))[None, :]
-        return h
-
-
-def _highpass_sections(corners: Iterable[tuple[float | None, int]], gain: float, fs: float):
-    """Bilinear second-order sections ``[(b, a), ...]`` of Butterworth high-passes in cascade.
-
-    None corners are skipped; no corners at all gives None (a plain gain). Each section runs
-    through :func:`scipy.signal.lfilter` (the same direct form II transposed as ``sosfilt``, with
-    less call overhead for these short cascades).
-    """
-    z_all: list[complex] = []
-    p_all: list[complex] = []
-    k_all = float(gain)
-    for f_hz, order in corners:
-        if f_hz is None:
-            continue
-        z, p, k = signal.butter(order, 2 * math.pi * f_hz, "highpass", analog=True, output="zpk")
-        zd, pd, kd = signal.bilinear_zpk(z, p, k, fs)
-        z_all.extend(zd)
-        p_all.extend(pd)
-        k_all *= float(np.real(kd))
-    if not p_all:
-        return None
-    sos = signal.zpk2sos(np.asarray(z_all), np.asarray(p_all), k_all)
-    out = []
-    for row in sos:
-        b, a = row[:3].copy(), row[3:].copy()
-        if b[2] == 0.0 and a[2] == 0.0:  # a first-order section: run it as one
-            b, a = b[:2], a[:2]
-        out.append((b, a))
-    return out
-
-
-def _run_sections(sections, x: np.ndarray, zis: list[np.ndarray]) -> tuple[np.ndarray, list]:
-    new = []
-    for (b, a), zi in zip(sections, zis, strict=True):
-        x, zf = signal.lfilter(b, a, x, zi=zi)
-        new.append(zf)
-    return x, new
-
-
-def _sections_response(sections, w: np.ndarray) -> np.ndarray:
-    h = np.ones(w.size, complex)
-    for b, a in sections:
-        h *= signal.freqz(b, a, worN=w)[1]
-    return h
-
-
-def _check_fault(i: int, f: Any, plant: Plant, fs: float) -> _Fault:
-    kind = getattr(f, "kind", None)
-    at_s = getattr(f, "at_s", None)
-    label = f"faults[{i}] {kind}@{at_s}"
-    if kind not in FAULT_RULES:
-        raise ConfigError(f"faults[{i}].kind = {kind!r} is not one of {', '.join(FAULT_KINDS)}")
-    if isinstance(at_s, bool) or not isinstance(at_s, (int, float)) or not at_s >= 0:
-        raise ConfigError(f"faults[{i}].at_s = {at_s!r} must be a number >= 0")
-    value, dur = getattr(f, "value", None), getattr(f, "duration_s", None)
-    if kind in _NEEDS_VALUE:
-        if value is None or not math.isfinite(value):
-            raise ConfigError(f"{label}: value is required ({FAULT_RULES[kind]})")
-        lo = _NEEDS_VALUE[kind]
-        if (lo is not None and value < lo) or (kind == "resonance_shift" and not value > 0):
-            raise ConfigError(f"{label}: value = {value!r} out of range ({FAULT_RULES[kind]})")
-    if kind == "resonance_shift":
-        if not plant.payload.resonances:
-            raise ConfigError(f"{label}: plant {plant.name!r} has no payload resonances")
-        top = max(r.f_hz for r in plant.payload.resonances) * value
-        if top >= 0.45 * fs:
-            raise ConfigError(f"{label}: shifted resonance {top:g} Hz is above 0.45 fs")
-    if dur is not None and not (math.isfinite(dur) and dur > 0):
-        raise ConfigError(f"{label}: duration_s = {dur!r} must be > 0")
-    start = int(round(at_s * fs))
-    end = math.inf if dur is None or kind == "amp_trip" else start + int(round(dur * fs))
-    return _Fault(kind, start, end, 1.0 if value is None else float(value))
 
 
 def _check_rate(plant: Plant, fs: float) -> None:
@@ -355,19 +152,18 @@ class SimRig:
             raise ConfigError(f"sim: fs_hz = {fs_hz!r} must be a finite number > 0")
         _check_rate(plant, fs)
         self._plant, self._fs = plant, fs
-        self._faults = tuple(_check_fault(i, f, plant, fs) for i, f in enumerate(faults))
-        self._bounds = sorted({f.start for f in self._faults}
-                              | {int(f.end) for f in self._faults if f.end != math.inf})
+        self._faults = schedule_faults(faults, plant, fs)
+        self._bounds = fault_bounds(self._faults)
         streams = np.random.SeedSequence(seed).spawn(2)
         self._rng_noise, self._rng_burst = (np.random.default_rng(s) for s in streams)
         card, amp, acc = plant.card, plant.amplifier, plant.accelerometer
         self._up_gain = card.out_v_per_fs * amp.gain_v_per_v
-        self._up = _highpass_sections(
+        self._up = highpass_sections(
             [(card.out_highpass_hz, 1), (amp.highpass_hz, amp.highpass_order)], self._up_gain, fs)
         self._down_gain = acc.sens_mv_per_g * 1e-3 / card.in_v_per_fs
         self._sensor_noise_fs = acc.noise_g_rms * self._down_gain
         self._card_noise_fs = card.in_noise_fs_rms
-        self._down = _highpass_sections(
+        self._down = highpass_sections(
             [(acc.highpass_hz, 1), (card.in_highpass_hz, 1)], self._down_gain, fs)
         self._up_zi = [np.zeros(len(a) - 1) for _, a in self._up or ()]
         self._down_zi = [np.zeros(len(a) - 1) for _, a in self._down or ()]
@@ -382,7 +178,7 @@ class SimRig:
         self._n_th = max(1, int(round(min(THERMAL_STEP_MAX_S, tau / 20.0) * fs)))
         self._th_buf = np.zeros(self._n_th)
         self._f_factor = 1.0
-        self._model = _Modal(*electromechanical_ss(plant), fs)
+        self._model = ModalSystem(*electromechanical_ss(plant), fs)
         self._zeta = self._model.zero_state()
         self._n = 0
         self._tripped_at: int | None = None
@@ -449,9 +245,9 @@ class SimRig:
         z = np.exp(1j * w.ravel())
         h = self._model.response(z)[2] / G0_M_S2
         for ba, gain in ((self._up, self._up_gain), (self._down, self._down_gain)):
-            h = h * (gain if ba is None else _sections_response(ba, w.ravel()))
+            h = h * (gain if ba is None else sections_response(ba, w.ravel()))
         st = self._state(self._n)
-        h = h * st["plant_gain"] * st["sensor_gain"] * z ** (-self._plant.card.delay_samples)
+        h = h * st.plant_gain * st.sensor_gain * z ** (-self._plant.card.delay_samples)
         return h.reshape(f.shape)
 
     # -- processing -----------------------------------------------------------------------------
@@ -499,29 +295,11 @@ class SimRig:
                 break
         return int(min(nxt, a + 10**12))
 
-    def _active(self, a: int) -> list[_Fault]:
-        return [f for f in self._faults if f.start <= a < f.end]
+    def _active(self, a: int) -> list[ScheduledFault]:
+        return active_faults(self._faults, a)
 
-    def _state(self, a: int) -> dict[str, Any]:
-        st: dict[str, Any] = {"sensor_gain": 1.0, "plant_gain": 1.0, "f_factor": 1.0,
-                              "burst_var": 0.0, "detached": False, "dropout": False,
-                              "trip": False}
-        for f in self._active(a):
-            if f.kind == "sensor_gain":
-                st["sensor_gain"] *= f.value
-            elif f.kind == "plant_gain":
-                st["plant_gain"] *= 10.0 ** (f.value / 20.0)
-            elif f.kind == "resonance_shift":
-                st["f_factor"] *= f.value
-            elif f.kind == "noise_burst":
-                st["burst_var"] += f.value**2
-            elif f.kind == "sensor_detached":
-                st["detached"] = True
-            elif f.kind == "dropout":
-                st["dropout"] = True
-            elif f.kind == "amp_trip":
-                st["trip"] = True
-        return st
+    def _state(self, a: int) -> FaultState:
+        return fault_state(self._faults, a)
 
     def _update_heat(self, a: int) -> None:
         """At a thermal step boundary: mean coil power over the last step -> temperature, Re."""
@@ -535,7 +313,7 @@ class SimRig:
         self._rise_k = target + (self._rise_k - target) * decay
         self._re_now = self._re0 * (1.0 + h.tempco_per_k * self._rise_k)
 
-    def _motor_piece(self, v: np.ndarray, a: int, st: dict[str, Any]) -> np.ndarray:
+    def _motor_piece(self, v: np.ndarray, a: int, st: FaultState) -> np.ndarray:
         """Shaker outputs ``(3, n)`` for amplifier volts ``v`` from rig sample ``a``.
 
         Updates the coil temperature on a step boundary, rebuilds the model (carrying the
@@ -547,12 +325,12 @@ class SimRig:
         if self._tripped_at is not None and self._tripped_at <= a:
             v = np.zeros(v.size)
         rel = 0.0 if self._re0 is None else abs(self._re_now - self._re_model) / self._re0
-        if st["f_factor"] != self._f_factor or rel > RE_STEP:
+        if st.f_factor != self._f_factor or rel > RE_STEP:
             x_phys = self._model.to_physical(self._zeta, float(v[0]))
-            self._model = _Modal(*electromechanical_ss(
-                self._plant, re_ohm=self._re_now, f_factor=st["f_factor"]), self._fs)
+            self._model = ModalSystem(*electromechanical_ss(
+                self._plant, re_ohm=self._re_now, f_factor=st.f_factor), self._fs)
             self._zeta = self._model.from_physical(x_phys, float(v[0]))
-            self._f_factor, self._re_model = st["f_factor"], self._re_now
+            self._f_factor, self._re_model = st.f_factor, self._re_now
         zeta0 = self._zeta
         outs, self._zeta = self._model.run(v, zeta0)
         i_max = self._plant.amplifier.i_max_a
@@ -574,13 +352,13 @@ class SimRig:
         if self._up is None:
             v = d * self._up_gain
         else:
-            v, self._up_zi = _run_sections(self._up, d, self._up_zi)
-        if st["plant_gain"] != 1.0:
-            v = v * st["plant_gain"]
+            v, self._up_zi = run_sections(self._up, d, self._up_zi)
+        if st.plant_gain != 1.0:
+            v = v * st.plant_gain
         vmax = self._plant.amplifier.v_out_max_v
         if vmax is not None:
             v = self._clip(v, vmax, "amp")
-        if self._tripped_at is None and st["trip"]:
+        if self._tripped_at is None and st.trip:
             self._tripped_at = a
         if self._tripped_at is not None:
             v = np.zeros(n)
@@ -609,21 +387,21 @@ class SimRig:
                 self._counts["xmax"] += int(np.count_nonzero(beyond))
                 acc = np.where(beyond, acc * (xmax / np.where(beyond, ax, 1.0)), acc)
         # Sensor and card input.
-        g = np.zeros(n) if st["detached"] else acc / G0_M_S2
-        if st["sensor_gain"] != 1.0:
-            g = g * st["sensor_gain"]
+        g = np.zeros(n) if st.detached else acc / G0_M_S2
+        if st.sensor_gain != 1.0:
+            g = g * st.sensor_gain
         if self._down is None:
             r = g * self._down_gain
         else:
-            r, self._down_zi = _run_sections(self._down, g, self._down_zi)
+            r, self._down_zi = run_sections(self._down, g, self._down_zi)
         # Sensor noise (scaled by the sensor chain) and card noise: one white source.
-        noise_var = (self._sensor_noise_fs * st["sensor_gain"]) ** 2 + self._card_noise_fs**2
+        noise_var = (self._sensor_noise_fs * st.sensor_gain) ** 2 + self._card_noise_fs**2
         if noise_var > 0:
             r = r + math.sqrt(noise_var) * self._rng_noise.standard_normal(n, dtype=np.float32)
-        if st["burst_var"] > 0:
-            r = r + math.sqrt(st["burst_var"]) * self._rng_burst.standard_normal(
+        if st.burst_var > 0:
+            r = r + math.sqrt(st.burst_var) * self._rng_burst.standard_normal(
                 n, dtype=np.float32)
         r = self._clip(r, 1.0, "input")
-        if st["dropout"]:
+        if st.dropout:
             r = np.zeros(n)
         return r
