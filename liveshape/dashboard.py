@@ -623,16 +623,6 @@ def synth_summary(result: Mapping[str, Any] | Any) -> RenderableType:
     return Panel(table, title="drive file", title_align="left", border_style=PALETTE.border)
 
 
-def _segments_for_dof(target_dof: float) -> int:
-    """Smallest number of Hann 50 % segments whose Welch (1967) equivalent DOF reaches it."""
-    from liveshape.spectra import welch_dof
-
-    k = max(int(math.ceil(target_dof / 2.0)), 1)  # each segment adds at most 2 DOF
-    while welch_dof(k) < target_dof:
-        k += 1
-    return k
-
-
 _BUDGET_KEY = re.compile(r"^(?P<name>.+)_(?P<what>rms|peak_3sigma|limit)_(?P<unit>[a-z0-9]+)$")
 _SHOWN_UNITS = {"fs": ("FS", 1.0), "v": ("V", 1.0), "a": ("A", 1.0), "m": ("mm", 1e3)}
 
@@ -681,44 +671,6 @@ def _feasibility_parts(rows: dict[str, Any]) -> list[RenderableType]:
     return [other, Text(""), *parts] if parts else [other]
 
 
-def _check_mapping(profile: Any, tolerance: Any, control: Any) -> dict[str, Any]:
-    """The figures of :func:`check_table` from profile, tolerance and control settings."""
-    areas = np.asarray(profile.segment_areas_g2(), dtype=float)
-    total = float(areas.sum())
-    f, a = profile.f_hz, profile.asd_g2_hz
-    segments = [
-        {"f_lo_hz": f[i], "f_hi_hz": f[i + 1], "asd_lo_g2_hz": a[i], "asd_hi_g2_hz": a[i + 1],
-         "slope_db_oct": float(slope), "area_g2": float(area),
-         "share_of_ms": float(area) / total if total > 0 else 0.0}
-        for i, (slope, area) in enumerate(zip(profile.slopes_db_oct, areas, strict=True))
-    ]
-    fs, n = float(control.fs_hz), int(control.frame_length)
-    lines_f = np.arange(n // 2 + 1) * fs / n
-    ctl: dict[str, Any] = {
-        "fs_hz": fs, "frame_length": n, "df_hz": fs / n,
-        "lines_in_band": int(np.count_nonzero((lines_f >= profile.f_min_hz)
-                                              & (lines_f <= profile.f_max_hz))),
-        "target_dof": _get(control, "target_dof"), "averaging": _get(control, "averaging"),
-    }
-    if _num(ctl["target_dof"]) is not None:
-        k = _segments_for_dof(float(ctl["target_dof"]))
-        ctl["segments_for_target_dof"] = k
-        ctl["seconds_for_target_dof"] = ((k - 1) * (n // 2) + n) / fs
-    bands = [{"f_lo_hz": b.f_lo_hz, "f_hi_hz": b.f_hi_hz, "alarm_db": b.alarm_db,
-              "abort_db": b.abort_db} for b in getattr(tolerance, "bands", ())]
-    return {
-        "name": getattr(profile, "name", ""), "f_min_hz": profile.f_min_hz,
-        "f_max_hz": profile.f_max_hz, "grms_g": profile.grms,
-        "velocity_rms_m_s": profile.velocity_rms_m_s,
-        "displacement_rms_m": profile.displacement_rms_m,
-        "displacement_pp_3sigma_m": profile.displacement_pp_3sigma_m, "segments": segments,
-        "tolerance": {"alarm_db": tolerance.alarm_db, "abort_db": tolerance.abort_db,
-                      "rms_alarm_db": tolerance.rms_alarm_db,
-                      "rms_abort_db": tolerance.rms_abort_db, "bands": bands},
-        "control": ctl,
-    }
-
-
 def check_table(profile: Any, tolerance: Any = None, control: Any = None,
                 feasibility: Any = None) -> RenderableType:
     """What ``liveshape check`` shows about a test before it runs.
@@ -736,18 +688,23 @@ def check_table(profile: Any, tolerance: Any = None, control: Any = None,
         ``control``, optional ``rig``), in which case the other arguments may be omitted.
     tolerance : Tolerance, optional
     control : ControlSettings, optional
-        Needs ``fs_hz``, ``frame_length``, ``target_dof`` (and ``averaging`` to show it).
+        Needs ``fs_hz``, ``frame_length``, ``target_dof`` (and ``averaging`` to show it); with
+        the profile and tolerance it makes the report through
+        :func:`liveshape.checks.report_from_parts`.
     feasibility : object with ``to_dict()`` or mapping, optional
         Rig feasibility rows (shown by name, units from the key suffixes).
     """
     if isinstance(profile, Mapping):
         report = dict(profile)
+        if feasibility is not None:
+            to_dict = getattr(feasibility, "to_dict", None)
+            report["rig"] = dict(to_dict() if callable(to_dict) else feasibility)
     else:
         if tolerance is None or control is None:
             raise TypeError("check_table needs tolerance and control with a profile")
-        report = _check_mapping(profile, tolerance, control)
-    if feasibility is not None:
-        report["rig"] = feasibility.to_dict() if hasattr(feasibility, "to_dict") else feasibility
+        from liveshape.checks import report_from_parts
+
+        report = report_from_parts(profile, tolerance, control, feasibility)
     overall = _kv_table("profile")
     overall.add_row("band", f"{_fmt(report.get('f_min_hz'), 'g')} – "
                     f"{_fmt(report.get('f_max_hz'), 'g')} Hz")

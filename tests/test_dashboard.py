@@ -335,7 +335,7 @@ def test_check_table_same_from_report_mapping_and_objects():
     from_report = _render(dash.check_table(check_report(spec)))
     from_objects = _render(dash.check_table(spec.profile, spec.tolerance, spec.control))
     assert "band 20 – 40 Hz" in from_report and "±4.5 / ±7.5 dB" in from_report
-    # The report has no averaging word; everything else is the same figures.
+    # The same figures either way (the averaging word, in both now, is left out of the match).
     def words(text: str) -> list[str]:
         return text.replace(f" ({spec.control.averaging} averaging)", "").split()
 
