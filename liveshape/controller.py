@@ -437,6 +437,7 @@ class Controller:
         ramp = self._out.go_to(g)
         self._est_gain = g
         self._pool.reset()
+        self._decision = None  # decisions restart at the new level
         self.supervisor.reset_persistence()
         self._restart_estimate(after=self._out.n_out + max(ramp, self.frame_length))
         self._emit("level", f"level {level_db:+.1f} dB (ramp {ramp / self.fs_hz:.2f} s)",
@@ -614,18 +615,22 @@ class Controller:
         self._log.append(ev)
         self._recent.append(ev)
 
+    def _judgement(self) -> Judgement | None:
+        """The decision at the current level, else the latest update estimate judged alike."""
+        if self._decision is not None or self._last_update is None:
+            return self._decision
+        u = self._last_update
+        return judge(u.control_psd, u.target_psd, alarm_db=self._alarm_db,
+                     abort_db=self._abort_db, rms_alarm_db=self.spec.tolerance.rms_alarm_db,
+                     dof=u.dof, df_hz=self.df_hz)
+
     def snapshot(self) -> ControlSnapshot:
         """A frozen view of the loop now."""
         band = self._band
         g = self._out.gain
         lvl_gain = self._est_gain if self._stage in ("equalize", "full_level") else g
         target_b = self._target[band] * lvl_gain ** 2
-        d = self._decision
-        if d is None and self._last_update is not None:  # before the first decision
-            u = self._last_update
-            d = judge(u.control_psd, u.target_psd, alarm_db=self._alarm_db,
-                      abort_db=self._abort_db, rms_alarm_db=self.spec.tolerance.rms_alarm_db,
-                      dof=u.dof, df_hz=self.df_hz)
+        d = self._judgement()
         ctrl = None if d is None else d.control_psd
         dof = 0.0 if d is None else d.dof
         if d is not None:
@@ -658,7 +663,7 @@ class Controller:
 
     def result(self) -> RunResult:
         """Outcome so far (final once :attr:`finished`)."""
-        d = self._decision
+        d = self._judgement()
         reason = self._trip.message if self._trip is not None else self._stop_reason
         nan = math.nan
         return RunResult(

@@ -81,8 +81,9 @@ class UpdateRecord:
 class ControlSnapshot:
     """A frozen view of the loop for the dashboard and the record.
 
-    Spectra are on the band lines ``f_hz``: ``control_psd`` (g²/Hz, the decision estimate, or
-    the latest update estimate before the first decision, None before any), ``target_psd``
+    Spectra are on the band lines ``f_hz``: ``control_psd`` (g²/Hz, the decision estimate at the
+    current level, or the latest update estimate before one is made, None before any update;
+    ``dof`` says which), ``target_psd``
     (g²/Hz at the current level), ``drive_psd`` (FS²/Hz as played, level included).
     ``alarm_db``/``abort_db`` are the ± limits per line; ``chi2_lo_db``/``chi2_hi_db`` the 90 %
     χ² interval of the true PSD about an estimate with ``dof`` DOF.
@@ -138,11 +139,12 @@ class RunResult:
     trip : Trip or None
     updates_to_tolerance : int or None
         Equalizer updates after identification until the first decision in tolerance.
-    final_* : numbers of the last decision estimate (nan/-1 when there was none).
+    final_* : numbers of the last decision at the final level, or of the latest update
+        estimate when no decision was made there (nan/-1 when there was no update at all).
     control_grms_g, target_grms_g : float
-        Last decision estimate's grms and the target's at the level it was taken.
+        That estimate's grms and the target's at the level it was taken.
     dof : float
-        DOF of that estimate.
+        DOF of that estimate (the decision's, or one update's).
     time_at_full_level_s : float
     updates : int
         Updates made in the run.

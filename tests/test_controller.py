@@ -106,6 +106,17 @@ def test_converges_and_completes_on_each_preset(preset):
     assert np.max(np.abs(drive)) <= spec.safety.drive_peak_max_fs
 
 
+def test_result_falls_back_to_the_latest_update_without_a_decision_at_full_level():
+    # one step straight to 0 dB and 3 s there: fewer than the two updates a decision needs
+    spec = make_spec(steps=(0.0,), full_s=3.0)
+    ctl, _, _ = run(spec, SimRig(load_plant("bench"), FS, seed=1))
+    res = ctl.result()
+    assert res.status == "completed" and res.updates_to_tolerance is None
+    assert res.dof == pytest.approx(ctl.last_update.dof)  # one update's DOF, not the pool's
+    assert res.final_lines_outside_abort == 0
+    assert res.final_rms_error_db == pytest.approx(ctl.last_update.rms_error_db)
+
+
 def test_blocks_of_varying_length_are_fine():
     # an audio-like loop: the response waits in a FIFO (a fixed 3000-sample latency) and each
     # exchange takes a block of random length from it
