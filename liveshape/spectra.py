@@ -31,16 +31,25 @@ References
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 import scipy.fft as sp_fft
 import scipy.signal as sp_signal
-import scipy.special as sp_special
-import scipy.stats as sp_stats
 
-from liveshape.schema import Where
+from liveshape.delay import DelayEstimate, estimate_delay  # re-exported
+from liveshape.spectral_stats import WHERE as _WHERE
+from liveshape.spectral_stats import check_count as _check_count
+from liveshape.spectral_stats import check_fs as _check_fs
+from liveshape.spectral_stats import check_nperseg as _check_nperseg
+from liveshape.spectral_stats import (  # re-exported
+    chi2_interval_db,
+    db_scatter_std,
+    exp_average_dof,
+    welch_dof,
+)
+from liveshape.spectral_stats import overlap_correlation_sq as _overlap_c2
+from liveshape.spectral_stats import weighted_average_dof as _weights_dof
 
 __all__ = [
     "CrossSpectrum",
@@ -56,15 +65,10 @@ __all__ = [
     "welch_psd",
 ]
 
-_WHERE = Where("spectra")
-_DB = 10.0 / math.log(10.0)  # 4.343 dB per neper of power
-_DOF_WINDOW_LENGTH = 1024  # samples used to evaluate a window's overlap correlation
 _MAX_SEGMENTS_PER_BATCH = 64  # bounds the temporary arrays of one push
 
 
-# --------------------------------------------------------------------------------------------
-# Welch PSD and its degrees of freedom
-# --------------------------------------------------------------------------------------------
+
 
 
 def welch_psd(
@@ -109,180 +113,6 @@ def welch_psd(
         x, fs=fs_hz, window="hann", nperseg=nperseg, noverlap=nperseg // 2,
         detrend="constant", return_onesided=True, scaling="density", axis=axis,
     )
-
-
-def _overlap_c2(window: Any, overlap: float, nperseg: int = _DOF_WINDOW_LENGTH) -> np.ndarray:
-    """Squared overlap correlations ``c(j)**2``, ``j = 1, 2, ...`` while segments overlap.
-
-    ``c(j) = sum_n w(n) w(n + j S) / sum_n w(n)**2`` with the hop ``S = nperseg - noverlap``
-    (Welch 1967 [1]_, eq. for the variance of overlapped estimates). For white noise the
-    covariance of the periodograms of segments ``j`` hops apart is ``G**2 c(j)**2``.
-    """
-    if not 0.0 <= overlap < 1.0:
-        raise _WHERE.key("overlap").fail(overlap, "must be in [0, 1)")
-    w = np.asarray(sp_signal.get_window(window, nperseg), dtype=float)
-    noverlap = int(round(overlap * nperseg))
-    hop = nperseg - noverlap
-    energy = float(np.dot(w, w))
-    c = [float(np.dot(w[: nperseg - j * hop], w[j * hop:])) / energy
-         for j in range(1, -(-nperseg // hop))]
-    return np.square(np.array(c, dtype=float))
-
-
-def _weights_dof(weights: np.ndarray, c2: np.ndarray) -> float:
-    """Equivalent DOF of a weighted average of consecutive segment periodograms.
-
-    ``weights`` are in segment order (one entry per segment). For white noise
-    ``var / mean**2 = sum_ij w_i w_j c(|i-j|)**2 / (sum w)**2`` and ``nu = 2 mean**2 / var``
-    (Welch 1967 [1]_; Bendat & Piersol [2]_ for ``nu = 2 mean**2 / var`` of a chi-square).
-    """
-    total = float(weights.sum())
-    if total <= 0.0:
-        return 0.0
-    quad = float(np.dot(weights, weights))
-    for j, c2j in enumerate(c2, start=1):
-        if j >= weights.size:
-            break
-        quad += 2.0 * c2j * float(np.dot(weights[:-j], weights[j:]))
-    return 2.0 * total * total / quad
-
-
-def welch_dof(n_segments: int, *, overlap: float = 0.5, window: Any = "hann") -> float:
-    """Equivalent degrees of freedom of a Welch average of ``n_segments`` overlapped segments.
-
-    .. math:: \\nu = \\frac{2K}{1 + 2\\sum_{j=1}^{K-1} (1 - j/K)\\, c(j)^2},\\qquad
-              c(j) = \\frac{\\sum_n w(n)\\,w(n + jS)}{\\sum_n w(n)^2}
-
-    with ``K = n_segments`` and the hop ``S`` (Welch 1967 [1]_). ``c(j)`` is computed from the
-    window itself (``scipy.signal.get_window``). Hann at 50 % overlap has ``c(1) = 1/6``, so
-    each segment adds ``2 / (1 + 1/18) = 36/19 = 1.895`` DOF when ``K`` is large; without
-    overlap every segment adds 2 (Bendat & Piersol [2]_). Valid for lines away from DC and
-    Nyquist (those carry half the DOF) and spectra smooth over a few lines.
-
-    Parameters
-    ----------
-    n_segments : int
-        Number of averaged segments ``K`` (0 gives 0 DOF).
-    overlap : float, optional
-        Overlap as a fraction of the segment length, in [0, 1).
-    window : str or tuple, optional
-        Window as accepted by :func:`scipy.signal.get_window`.
-
-    Returns
-    -------
-    float
-        Equivalent DOF ``nu`` (the estimate scatters like ``G chi2_nu / nu``).
-    """
-    k = _check_count(n_segments, "n_segments")
-    if k == 0:
-        return 0.0
-    c2 = _overlap_c2(window, overlap)
-    j = np.arange(1, min(k, c2.size + 1))
-    denom = 1.0 + 2.0 * float(np.sum((1.0 - j / k) * c2[: j.size]))
-    return 2.0 * k / denom
-
-
-def exp_average_dof(n_avg: int, *, overlap: float = 0.5, window: Any = "hann") -> float:
-    """Steady-state equivalent DOF of exponential averaging with weight ``alpha = 1/n_avg``.
-
-    The exponential average ``G_k = (1 - alpha) G_{k-1} + alpha P_k`` of segment periodograms
-    ``P_k`` is, in steady state, ``alpha sum_m beta**m P_{k-m}`` with ``beta = 1 - alpha``.
-    For white noise ``var(P_i) = G**2`` and ``cov(P_i, P_{i+j}) = G**2 c(j)**2`` (Welch 1967
-    [1]_), so
-
-    .. math:: \\frac{\\mathrm{var}}{G^2} = \\alpha^2 \\sum_{m, m'} \\beta^{m+m'} c(|m-m'|)^2
-              = \\frac{\\alpha}{2-\\alpha}\\Bigl[1 + 2\\sum_{j\\ge1}\\beta^j c(j)^2\\Bigr]
-
-    using ``sum_m beta**(2m) = 1 / (1 - beta**2) = 1 / (alpha (2 - alpha))``. With
-    ``nu = 2 G**2 / var`` this is
-
-    .. math:: \\nu = \\frac{2(2n-1)}{1 + 2\\sum_{j\\ge1}(1 - 1/n)^j c(j)^2}
-
-    i.e. without overlap ``2(2n - 1)``: an exponential average of time constant ``n`` segments
-    is as steady as a linear average of ``2n - 1`` segments (the variance ratio
-    ``alpha / (2 - alpha)``, Bendat & Piersol [2]_ for the non-overlapped form). Hann at 50 %
-    gives ``2(2n-1) / (1 + (1 - 1/n)/18)``.
-
-    Parameters
-    ----------
-    n_avg : int
-        Averaging number ``n`` (``alpha = 1/n``), at least 1.
-    overlap, window
-        As for :func:`welch_dof`.
-
-    Returns
-    -------
-    float
-        Equivalent DOF in steady state (after many more than ``n_avg`` segments).
-    """
-    n = _check_count(n_avg, "n_avg", minimum=1)
-    c2 = _overlap_c2(window, overlap)
-    beta = 1.0 - 1.0 / n
-    j = np.arange(1, c2.size + 1)
-    return 2.0 * (2 * n - 1) / (1.0 + 2.0 * float(np.sum(beta**j * c2)))
-
-
-# --------------------------------------------------------------------------------------------
-# Chi-square statistics of a PSD estimate
-# --------------------------------------------------------------------------------------------
-
-
-def chi2_interval_db(
-    dof: float | np.ndarray, confidence: float = 0.90
-) -> tuple[float | np.ndarray, float | np.ndarray]:
-    """Confidence interval of the true PSD about an estimate with ``dof`` DOF, in dB.
-
-    With ``nu G_hat / G ~ chi2_nu`` (Bendat & Piersol [2]_), the true ``G`` lies in
-    ``[nu G_hat / chi2_{nu; (1+c)/2}, nu G_hat / chi2_{nu; (1-c)/2}]`` with probability ``c``.
-    Returned as ``10 log10`` of those factors: ``lo_db < 0 < hi_db``. For ``nu = 120`` and 90 %:
-    ``-0.87 / +0.98`` dB.
-
-    Parameters
-    ----------
-    dof : float or array_like
-        Equivalent DOF ``nu`` (> 0), e.g. from :func:`welch_dof`.
-    confidence : float, optional
-        Two-sided confidence level in (0, 1).
-
-    Returns
-    -------
-    lo_db, hi_db : float or ndarray
-        Lower and upper limits in dB relative to the estimate.
-    """
-    nu = np.asarray(dof, dtype=float)
-    if np.any(~np.isfinite(nu)) or np.any(nu <= 0.0):
-        raise _WHERE.key("dof").fail(dof, "must be finite and > 0")
-    if not 0.0 < confidence < 1.0:
-        raise _WHERE.key("confidence").fail(confidence, "must be in (0, 1)")
-    tail = 0.5 * (1.0 - confidence)
-    lo = _DB * np.log(nu / sp_stats.chi2.isf(tail, nu))
-    hi = _DB * np.log(nu / sp_stats.chi2.ppf(tail, nu))
-    if lo.ndim == 0:
-        return float(lo), float(hi)
-    return lo, hi
-
-
-def db_scatter_std(dof: float | np.ndarray) -> float | np.ndarray:
-    """Standard deviation in dB of ``10 log10(G_hat / G)`` for a chi-square estimate.
-
-    ``ln(chi2_nu / 2)`` has variance ``psi1(nu / 2)`` (trigamma), so the dB scatter is
-    ``4.343 sqrt(psi1(nu / 2))``: 1.10 dB at ``nu = 32``, 0.56 dB at ``nu = 120``.
-
-    Parameters
-    ----------
-    dof : float or array_like
-        Equivalent DOF ``nu`` (> 0).
-
-    Returns
-    -------
-    float or ndarray
-        Standard deviation in dB.
-    """
-    nu = np.asarray(dof, dtype=float)
-    if np.any(~np.isfinite(nu)) or np.any(nu <= 0.0):
-        raise _WHERE.key("dof").fail(dof, "must be finite and > 0")
-    s = _DB * np.sqrt(sp_special.polygamma(1, 0.5 * nu))
-    return float(s) if s.ndim == 0 else s
 
 
 # --------------------------------------------------------------------------------------------
@@ -708,89 +538,6 @@ def _weighted_rows(coef: np.ndarray, rows: np.ndarray) -> np.ndarray:
 
 
 # --------------------------------------------------------------------------------------------
-# Loop delay
-# --------------------------------------------------------------------------------------------
-
-
-@dataclass(frozen=True)
-class DelayEstimate:
-    """Delay of a response behind its reference, from the cross-correlation peak.
-
-    Attributes
-    ----------
-    samples : int
-        Integer lag in samples of the largest ``|r|``, within ``0 .. max_lag``.
-    fraction : float
-        Sub-sample correction in (-0.5, 0.5) from a parabola through the peak and its two
-        neighbours; the delay is ``samples + fraction`` samples.
-    peak : float
-        Normalized correlation at the peak, ``r / sqrt(sum x**2 sum y**2)`` in [-1, 1]
-        (negative when the response is inverted).
-    """
-
-    samples: int
-    fraction: float
-    peak: float
-
-    @property
-    def delay_samples(self) -> float:
-        """Sub-sample delay ``samples + fraction`` in samples."""
-        return self.samples + self.fraction
-
-
-def estimate_delay(x: np.ndarray, y: np.ndarray, *, max_lag: int) -> DelayEstimate:
-    """Estimate the delay of response ``y`` behind reference ``x`` by FFT cross-correlation.
-
-    ``r(k) = sum_t x(t) y(t + k)`` for lags ``k = 0 .. max_lag`` (zero-padded FFT, no circular
-    wrap); the lag of the largest ``|r(k)|`` is the integer delay, and a parabola through
-    ``|r|`` at the peak and its neighbours gives the sub-sample fraction (common practice).
-    For a white reference the cross-correlation is the plant's impulse response (Bendat &
-    Piersol [2]_), so the peak sits at the pure (loop) delay plus the lag of the impulse
-    response's largest sample: exactly the pure delay when that is the first sample, one or a
-    few samples more through a band-pass. Aligning :class:`CrossSpectrum` by this lag leaves at
-    most that small residual delay (a linear phase in H1, a negligible magnitude bias).
-
-    Parameters
-    ----------
-    x : array_like
-        Reference (drive) samples, 1-D.
-    y : array_like
-        Response samples, 1-D, same length as ``x``.
-    max_lag : int
-        Largest lag searched, in samples (``0 <= max_lag < len(x)``).
-
-    Returns
-    -------
-    DelayEstimate
-    """
-    x = np.asarray(x, dtype=float)
-    y = np.asarray(y, dtype=float)
-    if x.ndim != 1 or y.ndim != 1 or x.size != y.size:
-        raise ValueError(
-            f"spectra: estimate_delay needs two 1-D records of equal length, "
-            f"got {x.shape} and {y.shape}"
-        )
-    max_lag = _check_count(max_lag, "max_lag")
-    n = x.size
-    if max_lag >= n:
-        raise _WHERE.key("max_lag").fail(max_lag, f"must be below the record length {n}")
-    nfft = sp_fft.next_fast_len(n + max_lag + 2, real=True)
-    r = sp_fft.irfft(np.conj(sp_fft.rfft(x, nfft)) * sp_fft.rfft(y, nfft), nfft)
-    norm = math.sqrt(float(np.dot(x, x)) * float(np.dot(y, y)))
-    if norm == 0.0:
-        return DelayEstimate(0, 0.0, 0.0)
-    lags = r[: max_lag + 2]  # lags 0 .. max_lag + 1; r[-1] is lag -1
-    k = int(np.argmax(np.abs(lags[: max_lag + 1])))
-    left = abs(r[k - 1]) if k > 0 else abs(r[-1])
-    mid, right = abs(lags[k]), abs(lags[k + 1])
-    curv = left - 2.0 * mid + right
-    fraction = 0.0
-    if curv < 0.0:
-        fraction = float(np.clip(0.5 * (left - right) / curv, -0.5, 0.5))
-    return DelayEstimate(samples=k, fraction=fraction, peak=float(lags[k] / norm))
-
-
-# --------------------------------------------------------------------------------------------
 # Small helpers
 # --------------------------------------------------------------------------------------------
 
@@ -824,29 +571,3 @@ def rms_from_psd(psd: np.ndarray, df_hz: float, *, mask: np.ndarray | None = Non
     if mask is not None:
         p = p[np.asarray(mask, dtype=bool)]
     return math.sqrt(max(0.0, float(np.sum(p)) * float(df_hz)))
-
-
-# --------------------------------------------------------------------------------------------
-# Argument checks
-# --------------------------------------------------------------------------------------------
-
-
-def _check_fs(fs_hz: Any) -> float:
-    if isinstance(fs_hz, bool) or not isinstance(fs_hz, (int, float, np.number)):
-        raise _WHERE.key("fs_hz").fail(fs_hz, "must be a number")
-    value = float(fs_hz)
-    if not math.isfinite(value) or value <= 0.0:
-        raise _WHERE.key("fs_hz").fail(fs_hz, "must be finite and > 0")
-    return value
-
-
-def _check_nperseg(nperseg: Any) -> int:
-    if isinstance(nperseg, bool) or not isinstance(nperseg, (int, np.integer)) or nperseg < 2:
-        raise _WHERE.key("nperseg").fail(nperseg, "must be an integer >= 2")
-    return int(nperseg)
-
-
-def _check_count(value: Any, name: str, *, minimum: int = 0) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
-        raise _WHERE.key(name).fail(value, f"must be an integer >= {minimum}")
-    return int(value)
