@@ -458,34 +458,38 @@ class Controller:
             abort_db=self._abort_db, predicted_psd=predicted, drive_at_limit=at_limit)
         self._updates += 1
         if verdict.trip is not None:
-            self._record_update(t, ctrl, target_b, played, None, verdict.rms_error_db, None)
+            self._record_update(t, ctrl, target_b, played, None, verdict.rms_error_db, None,
+                                applied=False)
             self._abort(verdict.trip)
             return
         self._pool.push(ctrl, self._nu_update)
-        res = None
+        if self._est.cross:  # blend law: refresh the FRF where the coherence is good
+            h1, coh = self._est.h1_coherence()
+            good = band & (coh >= c.coherence_min)
+            self._h1 = np.where(good, h1 * self.calibration.g_per_fs, self._h1)
+            self._coh = np.where(good, coh, self._coh)
+        full = np.zeros(self._target.size)
+        full[band] = ctrl / (g * g)
+        old = self._out.psd
+        res = equalizer.update_drive(
+            old, self._target, full, gain=self._gamma, max_step_db=c.max_step_db,
+            band=band, ceiling_ms_fs2=self._out.ceiling_ms(g), df_hz=self.df_hz,
+            frozen=self._frozen, law=c.law, h1=self._h1, control_dof=self._nu_update)
+        new = res.drive_psd
         if verdict.pending:
-            self._emit("hold", f"update {self._updates} held: {', '.join(verdict.pending)} "
-                       "pending", {"update": self._updates, "pending": list(verdict.pending)})
-            self._restart_estimate(after=self._out.n_out - self._settle)
-        else:
-            if self._est.cross:  # blend law: refresh the FRF where the coherence is good
-                h1, coh = self._est.h1_coherence()
-                good = band & (coh >= c.coherence_min)
-                self._h1 = np.where(good, h1 * self.calibration.g_per_fs, self._h1)
-                self._coh = np.where(good, coh, self._coh)
-            full = np.zeros(self._target.size)
-            full[band] = ctrl / (g * g)
-            res = equalizer.update_drive(
-                self._out.psd, self._target, full, gain=self._gamma, max_step_db=c.max_step_db,
-                band=band, ceiling_ms_fs2=self._out.ceiling_ms(g), df_hz=self.df_hz,
-                frozen=self._frozen, law=c.law, h1=self._h1,
-                control_dof=self._nu_update)
-            self._out.set_psd(res.drive_psd, ceiling_hit=res.ceiling_hit)
-            self._restart_estimate(after=self._out.n_out + self.frame_length)
+            # a rule is pending: the drive may go down, never up, until it clears or trips
+            new = np.minimum(new, old)
+            self._emit("hold", f"update {self._updates}: drive may only go down while "
+                       f"{', '.join(verdict.pending)} is pending",
+                       {"update": self._updates, "pending": list(verdict.pending)})
+        self._out.set_psd(new, ceiling_hit=res.ceiling_hit)
+        self._restart_estimate(after=self._out.n_out + self.frame_length)
         decision = self._decide(t)
-        self._record_update(t, ctrl, target_b, played, res, verdict.rms_error_db, decision)
+        self._record_update(t, ctrl, target_b, played, res, verdict.rms_error_db, decision,
+                            applied=not verdict.pending)
 
-    def _record_update(self, t, ctrl, target_b, played, res, rms_err, in_tol) -> None:
+    def _record_update(self, t, ctrl, target_b, played, res, rms_err, in_tol, *,
+                       applied: bool) -> None:
         with np.errstate(divide="ignore"):
             dev = _DB * np.log(np.maximum(ctrl, 1e-300) / target_b)
         rec = UpdateRecord(
@@ -495,7 +499,7 @@ class Controller:
             new_drive_psd=frozen_array(self._out.psd[self._band]),
             h1=frozen_array(self._h1[self._band], complex),
             coherence=frozen_array(self._coh[self._band]), rms_error_db=float(rms_err),
-            max_dev_db=float(dev.max()), min_dev_db=float(dev.min()), applied=res is not None,
+            max_dev_db=float(dev.max()), min_dev_db=float(dev.min()), applied=applied,
             lines_step_limited=0 if res is None else res.n_step_limited,
             lines_held=0 if res is None else res.n_held,
             ceiling_scale=1.0 if res is None else res.ceiling_scale)

@@ -53,7 +53,9 @@ class UpdateRecord:
     ``control_psd`` (g²/Hz) is the update estimate at the played level, ``drive_psd`` (FS²/Hz)
     the drive that produced it as played (level included), ``new_drive_psd`` the drive PSD sent
     to the synthesizer afterwards (at full level, level not included), ``h1`` (g/FS) and
-    ``coherence`` from the identification.
+    ``coherence`` from the identification (refreshed by the blend law). ``applied`` is False
+    when a safety rule tripped on this update or was pending (then the drive could only go
+    down).
     """
 
     index: int

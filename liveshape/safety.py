@@ -199,8 +199,8 @@ class UpdateVerdict:
     ----------
     trip : Trip or None
     pending : tuple of str
-        Rules whose condition holds but has not yet persisted long enough to trip; the
-        controller holds the drive while any is pending.
+        Rules whose condition holds but has not yet persisted long enough to trip; while any
+        is pending the controller lets the drive go down only.
     rms_error_db : float
         ``10 log10(Σ control / Σ target)`` over the band, dB.
     lines_beyond_abort : int
@@ -438,7 +438,7 @@ class Supervisor:
                 f"control rms {rms_err:+.2f} dB above target (limit +{lim.rms_abort_db:.2f} dB)",
                 t_s, {**detail_base, "rms_abort_db": float(lim.rms_abort_db)},
             )
-            return self._verdict(trip, (), rms_err, 0, math.nan, math.nan, math.nan)
+            return UpdateVerdict(trip, (), rms_err, 0, math.nan, math.nan, math.nan)
 
         # lines_abort, statistics-aware
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -488,7 +488,7 @@ class Supervisor:
         trip = next((t for t in trips if t is not None), None)
         if trip is not None:
             pending = []
-        return self._verdict(trip, tuple(pending), rms_err, n_beyond, lo_s, hi_s, gap)
+        return UpdateVerdict(trip, tuple(pending), rms_err, n_beyond, lo_s, hi_s, gap)
 
     def _persistent(self, rule, condition, t_s, pending, message, detail) -> Trip | None:
         if not condition:
@@ -501,7 +501,3 @@ class Supervisor:
             return Trip(rule, message(n), t_s, {**detail, "updates": n})
         pending.append(rule)
         return None
-
-    @staticmethod
-    def _verdict(trip, pending, rms_err, n_beyond, lo, hi, gap) -> UpdateVerdict:
-        return UpdateVerdict(trip, pending, rms_err, n_beyond, lo, hi, gap)

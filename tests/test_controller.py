@@ -507,3 +507,28 @@ def test_blend_law_converges_too():
     assert res.status == "completed", res.abort_reason
     assert res.final_lines_outside_alarm == 0
     assert abs(res.final_rms_error_db) <= spec.tolerance.rms_alarm_db
+
+
+def test_drive_only_goes_down_while_a_rule_is_pending():
+    # A resonance shift puts lines beyond the abort limits; while lines_abort is pending (3
+    # updates needed here) no line of the drive may rise, and those too high come down.
+    spec = make_spec(full_s=25.0, safety=SafetyLimits(abort_persist_updates=3))
+    rig = SimRig(load_plant("loudspeaker"), FS, seed=2,
+                 faults=(FaultSpec("resonance_shift", 24.0, 1.25),))
+    records = {}
+
+    def hook(ctl, resp):
+        rec = ctl.last_update
+        if rec is not None:
+            records[rec.index] = rec
+        return resp
+
+    ctl, _, events = run(spec, rig, hook=hook)
+    assert ctl.trip is not None and ctl.trip.rule == "lines_abort"
+    held = [records[e.data["update"]] for e in events if e.kind == "hold"]
+    assert len(held) == spec.safety.abort_persist_updates - 1  # pending, then the trip
+    for rec in held:
+        before = rec.drive_psd / 10 ** (rec.level_db / 10)  # as played, back to full level
+        assert not rec.applied
+        assert np.all(rec.new_drive_psd <= before * (1 + 1e-12))
+        assert np.any(rec.new_drive_psd < before * 10 ** -0.1)  # some lines did come down
