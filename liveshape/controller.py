@@ -53,8 +53,9 @@ Safety
     Welch segment is checked on its own (rms above target, control far below the FRF prediction)
     with a 5σ statistical allowance, so a jump trips within a segment; each update estimate goes
     through all rules of :class:`~liveshape.safety.Supervisor`. While a persistent rule is
-    pending the drive is held, not updated. On a trip the drive fades to zero within
-    ``abort_ramp_s`` and the run ends ``aborted`` with the :class:`~liveshape.safety.Trip`.
+    pending the drive may only go down (the update law's increases are dropped). On a trip the
+    drive fades to zero within ``abort_ramp_s`` and the run ends ``aborted`` with the
+    :class:`~liveshape.safety.Trip`.
 
 Drive ceiling
     The drive rms is held at or below ``drive_rms_max_fs`` and, with clipping at

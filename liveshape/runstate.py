@@ -31,9 +31,11 @@ class Event:
 
     ``kind`` is one of: ``stage`` (stage change), ``connect`` (connection check numbers),
     ``identify`` (identification numbers), ``level`` (a level step starts), ``update`` (one
-    equalizer update with its numbers), ``hold`` (update skipped: an abort rule is pending),
-    ``alarm`` / ``alarm_clear`` (tolerance alarm state changes), ``trip`` (a safety rule
-    tripped), ``stop`` (stop requested), ``underflow`` (rig reported drive underflows).
+    equalizer update with its numbers), ``hold`` (an abort rule is pending: the update could
+    only lower the drive), ``ceiling`` (drive scaled to the ceiling at a step), ``dropout``
+    (a silent stretch restarted the estimate), ``alarm`` / ``alarm_clear`` (tolerance alarm
+    state changes), ``trip`` (a safety rule tripped), ``stop`` (stop requested),
+    ``underflow`` (rig reported drive underflows).
     ``data`` holds numbers with units in the key names.
     """
 
