@@ -36,13 +36,12 @@ Amplitude choice (decided: ``"rayleigh"`` is the default)
     peaks are too low for a random test, and the overlap cross terms make the stream's spectrum
     scatter anyway, so the exactness is smaller than it looks.
 
-The DC and Nyquist lines are real: they get a real Gaussian (rayleigh) or a random sign (fixed)
-of mean square ``psd * delta_f``, so the variance is ``sum(psd * delta_f)`` over all lines, the
-same convention as :func:`scipy.signal.welch` with ``return_onesided=True``.
-
-Gain changes are per-sample ramps (:class:`GainRamp`), never steps. Optional clipping at
-``clip_sigma`` times the nominal rms (never below 2.5, the crest-factor floor of IEC 60068-2-64).
-Running statistics of everything produced are in :attr:`RandomPhaseSynth.stats`.
+Gain changes are per-sample ramps (:class:`liveshape.ramp.GainRamp`), never steps. Optional
+clipping at ``clip_sigma`` times the nominal rms (never below 2.5, the crest-factor floor of
+IEC 60068-2-64). Running statistics of everything produced are in
+:attr:`RandomPhaseSynth.stats`. The frame building blocks (window, line scales, coefficients,
+real DC and Nyquist lines) are in :mod:`liveshape.frames`; both modules' public names are
+re-exported here.
 
 References
 ----------
@@ -58,143 +57,33 @@ from dataclasses import dataclass
 import numpy as np
 
 from liveshape.errors import ConfigError
+from liveshape.frames import (  # re-exported: AMPLITUDES .. sine_window
+    AMPLITUDES,
+    check_amplitudes,
+    draw_coefficients,
+    line_scales,
+    random_phase_frame,
+    sine_window,
+)
+from liveshape.moments import RunningMoments  # re-exported
+from liveshape.ramp import GainRamp, check_positive  # re-exported: GainRamp
+
+__all__ = [
+    "AMPLITUDES",
+    "CLIP_SIGMA_MIN",
+    "GainRamp",
+    "RandomPhaseSynth",
+    "RunningMoments",
+    "SynthStats",
+    "draw_coefficients",
+    "line_scales",
+    "random_phase_frame",
+    "sine_window",
+]
 
 #: Lowest clip level allowed, in multiples of the rms: IEC 60068-2-64 asks for a drive crest
 #: factor of at least 2.5 (secondary summary of the standard; see DOMAIN.md section 5).
 CLIP_SIGMA_MIN = 2.5
-
-AMPLITUDES = ("rayleigh", "fixed")
-
-
-def sine_window(frame_length: int) -> np.ndarray:
-    """The power-complementary sine window ``w(n) = sin(pi (n + 1/2) / N)``.
-
-    At 50 % overlap ``w(n)^2 + w(n + N/2)^2 = 1`` for every ``n`` (Princen-Bradley condition).
-    """
-    n = np.arange(frame_length, dtype=np.float64)
-    return np.sin(np.pi * (n + 0.5) / frame_length)
-
-
-def line_scales(
-    psd: np.ndarray,
-    delta_f: float,
-    amplitudes: str = "rayleigh",
-    *,
-    out_re: np.ndarray | None = None,
-    out_im: np.ndarray | None = None,
-) -> tuple[np.ndarray, np.ndarray]:
-    """Scales of the real and imaginary parts of the Fourier coefficients of one frame.
-
-    With ``N = 2 (len(psd) - 1)`` and ``x = irfft(X)``, line ``k`` (``0 < k < N/2``) contributes
-    ``(2/N) Re(X_k e^{i 2 pi k n / N})``, of variance ``2 E|X_k|^2 / N^2``; setting it to
-    ``psd_k * delta_f`` gives ``|X_k| = N sqrt(psd_k delta_f / 2)``. DC and Nyquist are real,
-    ``X/N`` of variance ``psd delta_f``, so ``|X| = N sqrt(psd delta_f)``. For ``"rayleigh"`` the
-    real and imaginary parts are standard normals times ``|X_k| / sqrt(2)``; for ``"fixed"``
-    they are ``|X_k| cos(phi)`` and ``|X_k| sin(phi)``.
-
-    Parameters
-    ----------
-    psd : ndarray
-        One-sided PSD on the lines DC .. Nyquist, units^2/Hz.
-    delta_f : float
-        Line spacing, Hz.
-    amplitudes : {"rayleigh", "fixed"}
-    out_re, out_im : ndarray, optional
-        Arrays of ``len(psd)`` to write into.
-
-    Returns
-    -------
-    scale_re, scale_im : ndarray
-    """
-    p = np.asarray(psd, dtype=np.float64)
-    n = 2 * (p.size - 1)
-    re = np.empty(p.size) if out_re is None else out_re
-    im = np.empty(p.size) if out_im is None else out_im
-    np.multiply(p, delta_f / 2.0, out=re)
-    np.sqrt(re, out=re)
-    re *= n
-    for k in (0, p.size - 1):
-        re[k] = n * math.sqrt(p[k] * delta_f)
-    if amplitudes == "rayleigh":
-        re[1:-1] /= math.sqrt(2.0)
-    im[:] = re
-    im[0] = 0.0
-    im[-1] = 0.0
-    return re, im
-
-
-def draw_coefficients(
-    rng: np.random.Generator,
-    scale_re: np.ndarray,
-    scale_im: np.ndarray,
-    amplitudes: str = "rayleigh",
-    *,
-    real_lines: tuple[int, ...] = (0, -1),
-    draw: np.ndarray | None = None,
-    out: np.ndarray | None = None,
-) -> np.ndarray:
-    """Random Fourier coefficients of one frame (see :func:`line_scales`).
-
-    ``"rayleigh"``: independent standard normals times the scales (complex Gaussian; the real DC
-    and Nyquist lines a real Gaussian). ``"fixed"``: uniform phases, the real lines a random
-    sign. ``2 len(scale_re)`` resp. ``len(scale_re)`` numbers are drawn whatever the levels.
-
-    Parameters
-    ----------
-    rng : numpy.random.Generator
-    scale_re, scale_im : ndarray
-        From :func:`line_scales` (or a slice of them).
-    amplitudes : {"rayleigh", "fixed"}
-    real_lines : tuple of int, optional
-        Indices (into the arrays given) of the real DC and Nyquist lines, if they are included.
-    draw : ndarray, optional
-        Work array of shape ``(2, len(scale_re))``.
-    out : ndarray, optional
-        complex128 array of ``len(scale_re)`` to write into.
-    """
-    m = scale_re.size
-    work = np.empty((2, m)) if draw is None else draw
-    coef = np.empty(m, dtype=np.complex128) if out is None else out
-    re, im = coef.real, coef.imag
-    if amplitudes == "rayleigh":
-        rng.standard_normal(out=work)
-        np.multiply(work[0], scale_re, out=re)
-        np.multiply(work[1], scale_im, out=im)
-    else:
-        u = work[0]
-        rng.random(out=u)
-        u *= 2.0 * np.pi
-        np.cos(u, out=work[1])
-        np.multiply(work[1], scale_re, out=re)
-        np.sin(u, out=work[1])
-        np.multiply(work[1], scale_im, out=im)
-        for k in real_lines:  # real lines: a random sign
-            re[k] = scale_re[k] if u[k] < np.pi else -scale_re[k]
-    return coef
-
-
-def random_phase_frame(
-    psd: np.ndarray,
-    fs_hz: float,
-    *,
-    seed: int | np.random.Generator | None = None,
-    amplitudes: str = "rayleigh",
-) -> np.ndarray:
-    """One unwindowed random-phase frame of ``N = 2 (len(psd) - 1)`` samples.
-
-    The building block of :class:`RandomPhaseSynth` (which windows and overlap-adds such frames).
-    With ``"fixed"`` amplitudes the frame's periodogram equals ``psd`` exactly and its mean square
-    is ``sum(psd) * fs_hz / N`` (Parseval).
-    """
-    if amplitudes not in AMPLITUDES:
-        raise ConfigError(
-            f"synth: amplitudes = {amplitudes!r} is not one of {', '.join(AMPLITUDES)}"
-        )
-    p = np.asarray(psd, dtype=np.float64)
-    n = 2 * (p.size - 1)
-    rng = seed if isinstance(seed, np.random.Generator) else np.random.default_rng(seed)
-    re, im = line_scales(p, fs_hz / n, amplitudes)
-    return np.fft.irfft(draw_coefficients(rng, re, im, amplitudes), n=n)
 
 
 @dataclass(frozen=True)
@@ -223,198 +112,6 @@ class SynthStats:
     crest_factor: float
     kurtosis: float
     clipped_fraction: float
-
-
-class RunningMoments:
-    """Mean, central moments up to the fourth, mean square and peak of a stream of blocks.
-
-    Blocks are merged with the pairwise update of Chan, Golub & LeVeque (1979) extended to third
-    and fourth moments by Pebay (2008, Sandia report SAND2008-6212), which is exact and does not
-    suffer the cancellation of raw power sums.
-    """
-
-    def __init__(self) -> None:
-        self.reset()
-
-    def reset(self) -> None:
-        self.n = 0
-        self.mean = 0.0
-        self.m2 = 0.0
-        self.m3 = 0.0
-        self.m4 = 0.0
-        self.peak = 0.0
-
-    def update(self, x: np.ndarray) -> None:
-        nb = x.size
-        if nb == 0:
-            return
-        mb = float(np.mean(x))
-        self.peak = max(self.peak, float(np.max(x)), -float(np.min(x)))
-        d = x - mb
-        d2 = d * d
-        m2b = float(np.sum(d2))
-        d *= d2  # d^3 (np.dot would be faster in theory but threads badly in OpenBLAS)
-        m3b = float(np.sum(d))
-        d2 *= d2
-        m4b = float(np.sum(d2))
-        na = self.n
-        if na == 0:
-            self.n, self.mean, self.m2, self.m3, self.m4 = nb, mb, m2b, m3b, m4b
-            return
-        n = na + nb
-        delta = mb - self.mean
-        dn = delta / n
-        m2 = self.m2 + m2b + delta * dn * na * nb
-        m3 = (
-            self.m3
-            + m3b
-            + delta * dn * dn * na * nb * (na - nb)
-            + 3.0 * dn * (na * m2b - nb * self.m2)
-        )
-        m4 = (
-            self.m4
-            + m4b
-            + delta * dn**3 * na * nb * (na * na - na * nb + nb * nb)
-            + 6.0 * dn * dn * (na * na * m2b + nb * nb * self.m2)
-            + 4.0 * dn * (na * m3b - nb * self.m3)
-        )
-        self.n, self.mean, self.m2, self.m3, self.m4 = n, self.mean + nb * dn, m2, m3, m4
-
-    @property
-    def rms(self) -> float:
-        if self.n == 0:
-            return 0.0
-        return math.sqrt(max(self.m2 / self.n + self.mean * self.mean, 0.0))
-
-    @property
-    def kurtosis(self) -> float:
-        if self.n == 0 or self.m2 <= 0.0:
-            return math.nan
-        return self.n * self.m4 / (self.m2 * self.m2)
-
-
-class GainRamp:
-    """A per-sample gain that moves to its target smoothly, never in a step.
-
-    Between two non-zero gains the ramp is exponential (straight in dB) at ``rate_db_s``; to or from
-    zero it is a raised-cosine fade ``g0 + (g1 - g0) (1 - cos(pi t)) / 2`` over ``duration_s``
-    (a dB ramp cannot reach zero). A new target starts a new ramp from the gain reached so far.
-
-    The largest change between two samples is bounded: ``g * (10^(rate / (20 fs)) - 1)`` on the
-    dB ramp (the sample-to-sample ratio is at most ``10^(rate / (20 fs))``) and
-    ``|g1 - g0| * pi / (2 M)`` on a fade of ``M`` samples (the slope of the raised cosine).
-
-    Parameters
-    ----------
-    fs_hz : float
-        Sample rate in Hz.
-    gain : float, optional
-        Starting gain (linear, >= 0). Default 1.
-    rate_db_s : float, optional
-        Default dB rate of a ramp between non-zero gains, dB/s. Default 6.
-    fade_s : float, optional
-        Default duration of a fade to or from zero, s. Default 0.25.
-    """
-
-    def __init__(
-        self, fs_hz: float, *, gain: float = 1.0, rate_db_s: float = 6.0, fade_s: float = 0.25
-    ) -> None:
-        self.fs_hz = _positive(fs_hz, "fs_hz")
-        self._rate_db_s = _positive(rate_db_s, "rate_db_s")
-        self._fade_s = _positive(fade_s, "fade_s")
-        g = _gain_value(gain)
-        self._g0 = g  # start of the current ramp
-        self._g1 = g  # target
-        self._i = 0  # samples done on the current ramp
-        self._m = 0  # length of the current ramp in samples (0: no ramp)
-        self._fade = False
-        self._gain = g  # gain of the last sample produced
-
-    @property
-    def gain(self) -> float:
-        """Gain applied to the last sample produced (linear)."""
-        return self._gain
-
-    @property
-    def gain_target(self) -> float:
-        """Gain the ramp is heading to (linear)."""
-        return self._g1
-
-    @property
-    def ramping(self) -> bool:
-        """True while the gain has not reached its target."""
-        return self._i < self._m
-
-    def remaining_samples(self) -> int:
-        """Samples left until the target is reached."""
-        return self._m - self._i
-
-    def set(
-        self, gain: float, *, rate_db_s: float | None = None, duration_s: float | None = None
-    ) -> None:
-        """Head for ``gain`` from the current gain.
-
-        Parameters
-        ----------
-        gain : float
-            New target (linear, >= 0).
-        rate_db_s : float, optional
-            dB rate between non-zero gains (default: the constructor's ``rate_db_s``).
-        duration_s : float, optional
-            Duration of a fade to or from zero (default: the constructor's ``fade_s``).
-        """
-        target = _gain_value(gain)
-        rate = self._rate_db_s if rate_db_s is None else _positive(rate_db_s, "rate_db_s")
-        fade_s = self._fade_s if duration_s is None else _positive(duration_s, "duration_s")
-        g = self._gain
-        self._g0, self._g1, self._i = g, target, 0
-        if target == g:
-            self._m = 0
-        elif g == 0.0 or target == 0.0:
-            self._fade = True
-            self._m = max(1, math.ceil(fade_s * self.fs_hz))
-        else:
-            self._fade = False
-            change_db = abs(20.0 * math.log10(target / g))
-            self._m = max(1, math.ceil(change_db * self.fs_hz / rate))
-
-    def fill(self, out: np.ndarray) -> None:
-        """Write the next ``len(out)`` per-sample gains into ``out`` and advance."""
-        n = out.size
-        k = min(n, self._m - self._i)
-        if k > 0:
-            t = np.arange(self._i + 1, self._i + k + 1, dtype=np.float64)
-            t /= self._m
-            if self._fade:
-                np.cos(np.pi * t, out=out[:k])
-                out[:k] = self._g0 + (self._g1 - self._g0) * 0.5 * (1.0 - out[:k])
-            else:
-                out[:k] = self._g0 * np.power(self._g1 / self._g0, t)
-            self._i += k
-            if self._i == self._m:
-                out[k - 1] = self._g1  # land exactly on the target
-        else:
-            k = 0
-        out[k:] = self._g1
-        if n:
-            self._gain = float(out[n - 1])
-
-    def apply(self, x: np.ndarray) -> None:
-        """Multiply ``x`` in place by the next ``len(x)`` gains and advance."""
-        n = x.size
-        if n == 0:
-            return
-        if self._i >= self._m:
-            if self._g1 != 1.0:
-                x *= self._g1
-            self._gain = self._g1
-            return
-        k = min(n, self._m - self._i)
-        g = np.empty(k)
-        self.fill(g)
-        x[:k] *= g
-        if k < n:
-            self.apply(x[k:])
 
 
 class RandomPhaseSynth:
@@ -473,7 +170,7 @@ class RandomPhaseSynth:
         rate_db_s: float = 6.0,
         fade_s: float = 0.25,
     ) -> None:
-        self._fs_hz = _positive(fs_hz, "fs_hz")
+        self._fs_hz = check_positive(fs_hz, "fs_hz")
         if (
             isinstance(frame_length, bool)
             or not isinstance(frame_length, (int, np.integer))
@@ -484,10 +181,7 @@ class RandomPhaseSynth:
                 f"synth: frame_length = {frame_length!r} must be an even integer >= 4"
             )
         n = int(frame_length)
-        if amplitudes not in AMPLITUDES:
-            raise ConfigError(
-                f"synth: amplitudes = {amplitudes!r} is not one of {', '.join(AMPLITUDES)}"
-            )
+        check_amplitudes(amplitudes)
         if clip_sigma is not None:
             c = float(clip_sigma)
             if not math.isfinite(c) or c < CLIP_SIGMA_MIN:
@@ -730,17 +424,3 @@ class RandomPhaseSynth:
                 lv *= c
                 np.greater(np.abs(self._block), lv, out=self._clipped)
                 np.clip(self._block, -lv, lv, out=self._block)
-
-
-def _positive(value: float, name: str) -> float:
-    x = float(value)
-    if not math.isfinite(x) or x <= 0:
-        raise ConfigError(f"synth: {name} = {value!r} must be a finite number > 0")
-    return x
-
-
-def _gain_value(value: float) -> float:
-    x = float(value)
-    if not math.isfinite(x) or x < 0:
-        raise ConfigError(f"synth: gain = {value!r} must be a finite number >= 0")
-    return x
