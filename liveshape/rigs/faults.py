@@ -64,6 +64,9 @@ class FaultState:
     trip: bool = False
 
 
+_NO_FAULT = FaultState()
+
+
 def _check_fault(i: int, f: Any, plant: Plant, fs: float) -> ScheduledFault:
     kind = getattr(f, "kind", None)
     at_s = getattr(f, "at_s", None)
@@ -118,10 +121,13 @@ def active_faults(faults: Sequence[ScheduledFault], n: int) -> list[ScheduledFau
 def fault_state(faults: Sequence[ScheduledFault], n: int) -> FaultState:
     """The combined effect of the faults in effect at sample ``n`` (gains multiply, noise
     variances add)."""
+    active = active_faults(faults, n)
+    if not active:
+        return _NO_FAULT
     sensor_gain = plant_gain = f_factor = 1.0
     burst_var = 0.0
     kinds = set()
-    for f in active_faults(faults, n):
+    for f in active:
         kinds.add(f.kind)
         if f.kind == "sensor_gain":
             sensor_gain *= f.value

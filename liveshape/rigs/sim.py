@@ -177,6 +177,7 @@ class SimRig:
         tau = self._heat.time_constant_s if self._heat is not None else 1.0
         self._n_th = max(1, int(round(min(THERMAL_STEP_MAX_S, tau / 20.0) * fs)))
         self._th_buf = np.zeros(self._n_th)
+        self._outs, self._noise = np.empty((3, 0)), np.empty(0, np.float32)
         self._f_factor = 1.0
         self._model = ModalSystem(*electromechanical_ss(plant), fs)
         self._zeta = self._model.zero_state()
@@ -263,20 +264,24 @@ class SimRig:
         if d.ndim != 1:
             raise ValueError(f"drive_fs must be one-dimensional, got shape {d.shape}")
         n = d.size
-        out = np.empty(n)
         if n == 0:
-            return out
+            return np.empty(0)
         d = self._clip(d, 1.0, "drive")
         if self._delay.size:
             joined = np.concatenate((self._delay, d))
             d, self._delay = joined[:n], joined[n:]
         self._x_last = 0.0
-        pos = 0
-        while pos < n:
-            start = self._n + pos
-            stop = min(self._n + n, self._next_boundary(start))
-            out[pos:stop - self._n] = self._segment(d[pos:stop - self._n], start)
-            pos = stop - self._n
+        stop = self._next_boundary(self._n)
+        if stop >= self._n + n:  # one fault state for the whole block (the usual case)
+            out = self._segment(d, self._n)
+        else:
+            out = np.empty(n)
+            pos = 0
+            while pos < n:
+                start = self._n + pos
+                stop = min(self._n + n, self._next_boundary(start))
+                out[pos:stop - self._n] = self._segment(d[pos:stop - self._n], start)
+                pos = stop - self._n
         self._n += n
         return out
 
@@ -313,8 +318,10 @@ class SimRig:
         self._rise_k = target + (self._rise_k - target) * decay
         self._re_now = self._re0 * (1.0 + h.tempco_per_k * self._rise_k)
 
-    def _motor_piece(self, v: np.ndarray, a: int, st: FaultState) -> np.ndarray:
-        """Shaker outputs ``(3, n)`` for amplifier volts ``v`` from rig sample ``a``.
+    def _motor_piece(self, v: np.ndarray, a: int, st: FaultState, out: np.ndarray
+                     ) -> np.ndarray:
+        """Shaker outputs ``(3, n)``, written into ``out``, for amplifier volts ``v`` from rig
+        sample ``a``.
 
         Updates the coil temperature on a step boundary, rebuilds the model (carrying the
         physical state) when Re or the modal frequencies moved, and trips the amplifier on the
@@ -332,29 +339,46 @@ class SimRig:
             self._zeta = self._model.from_physical(x_phys, float(v[0]))
             self._f_factor, self._re_model = st.f_factor, self._re_now
         zeta0 = self._zeta
-        outs, self._zeta = self._model.run(v, zeta0)
+        outs, self._zeta = self._model.run(v, zeta0, out)
         i_max = self._plant.amplifier.i_max_a
-        if self._motor and i_max is not None and self._tripped_at is None:
-            over = np.abs(outs[0]) > i_max
-            if over.any():
-                k = int(np.argmax(over))
-                self._tripped_at = a + k + 1
-                v = v.copy()
-                v[k + 1:] = 0.0
-                outs, self._zeta = self._model.run(v, zeta0)
+        if self._motor and i_max is not None and self._tripped_at is None \
+                and _peak(outs[0]) > i_max:
+            k = int(np.argmax(np.abs(outs[0]) > i_max))
+            self._tripped_at = a + k + 1
+            v = v.copy()
+            v[k + 1:] = 0.0
+            outs, self._zeta = self._model.run(v, zeta0, out)
         return outs
 
+    def _work(self, n: int) -> tuple[np.ndarray, np.ndarray]:
+        """Reused work arrays: shaker outputs ``(3, n)`` and noise ``(n,)`` float32."""
+        if self._outs.shape[1] < n:
+            cap = max(n, 2 * self._outs.shape[1])
+            self._outs, self._noise = np.empty((3, cap)), np.empty(cap, np.float32)
+        return self._outs[:, :n], self._noise[:n]
+
+    def _add_noise(self, r: np.ndarray, rng: np.random.Generator, rms: float,
+                   buf: np.ndarray) -> None:
+        """``r += rms x`` white Gaussian noise drawn in float32 (scaled in float32), in place."""
+        rng.standard_normal(r.size, dtype=np.float32, out=buf)
+        np.multiply(buf, np.float32(rms), out=buf)
+        r += buf
+
     def _segment(self, d: np.ndarray, a: int) -> np.ndarray:
-        """One stretch of samples starting at rig sample ``a`` with constant fault state."""
+        """One stretch of samples starting at rig sample ``a`` with constant fault state.
+
+        Returns a new array; the work arrays it uses are reused from call to call.
+        """
         n = d.size
         st = self._state(a)
+        outs, noise = self._work(n)
         # Card output and amplifier.
         if self._up is None:
             v = d * self._up_gain
         else:
             v, self._up_zi = run_sections(self._up, d, self._up_zi)
         if st.plant_gain != 1.0:
-            v = v * st.plant_gain
+            v *= st.plant_gain
         vmax = self._plant.amplifier.v_out_max_v
         if vmax is not None:
             v = self._clip(v, vmax, "amp")
@@ -364,32 +388,35 @@ class SimRig:
             v = np.zeros(n)
         # Shaker and payload, in pieces that end on the coil-temperature steps.
         if self._heat is None:
-            outs = self._motor_piece(v, a, st)
+            self._motor_piece(v, a, st, outs)
         else:
-            outs = np.empty((3, n))
             pos = 0
             while pos < n:
                 stop = min(n, ((a + pos) // self._n_th + 1) * self._n_th - a)
-                outs[:, pos:stop] = self._motor_piece(v[pos:stop], a + pos, st)
+                piece = outs[:, pos:stop]
+                self._motor_piece(v[pos:stop], a + pos, st, piece)
                 j = (a + pos) % self._n_th
-                self._th_buf[j:j + stop - pos] = outs[0, pos:stop]
+                self._th_buf[j:j + stop - pos] = piece[0]
                 pos = stop
         cur, x, acc = outs
         if self._motor:
-            ax = np.abs(x)
-            peak = float(ax.max())
+            peak = _peak(x)
             self._x_peak = max(self._x_peak, peak)
             self._x_last = max(self._x_last, peak)
-            self._i_peak = max(self._i_peak, float(np.abs(cur).max()))
+            self._i_peak = max(self._i_peak, _peak(cur))
             xmax = self._plant.shaker.xmax_m
             if xmax is not None and peak > xmax:
+                ax = np.abs(x)
                 beyond = ax > xmax
                 self._counts["xmax"] += int(np.count_nonzero(beyond))
                 acc = np.where(beyond, acc * (xmax / np.where(beyond, ax, 1.0)), acc)
         # Sensor and card input.
-        g = np.zeros(n) if st.detached else acc / G0_M_S2
+        if st.detached:
+            g = np.zeros(n)
+        else:
+            g = np.divide(acc, G0_M_S2, out=acc)
         if st.sensor_gain != 1.0:
-            g = g * st.sensor_gain
+            g *= st.sensor_gain
         if self._down is None:
             r = g * self._down_gain
         else:
@@ -397,11 +424,15 @@ class SimRig:
         # Sensor noise (scaled by the sensor chain) and card noise: one white source.
         noise_var = (self._sensor_noise_fs * st.sensor_gain) ** 2 + self._card_noise_fs**2
         if noise_var > 0:
-            r = r + math.sqrt(noise_var) * self._rng_noise.standard_normal(n, dtype=np.float32)
+            self._add_noise(r, self._rng_noise, math.sqrt(noise_var), noise)
         if st.burst_var > 0:
-            r = r + math.sqrt(st.burst_var) * self._rng_burst.standard_normal(
-                n, dtype=np.float32)
+            self._add_noise(r, self._rng_burst, math.sqrt(st.burst_var), noise)
         r = self._clip(r, 1.0, "input")
         if st.dropout:
             r = np.zeros(n)
         return r
+
+
+def _peak(x: np.ndarray) -> float:
+    """``max |x|`` without an array of magnitudes."""
+    return max(float(x.max()), -float(x.min()))
