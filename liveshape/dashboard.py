@@ -4,16 +4,16 @@ Every view is a pure function from frozen data (a controller snapshot, a profile
 mapping) to a rich renderable; nothing here reads the clock or the hardware except
 :class:`LiveView`, which only paces redraws. Tests render the views into a ``StringIO`` console.
 
-The spectrum plot is a character grid of our own: log-frequency x axis, ASD in dB re 1 g²/Hz on
-the y axis (labelled in g²/Hz), the target as a line, alarm and abort limits as marks above and
-below it, and one control mark per column coloured by how far it is from the target.
+What the views show is worked out in pure modules, and this one only lays it out and colours it:
+:mod:`liveshape.textplot` (the spectrum plot as a character grid), :mod:`liveshape.runtext`
+(the live view and the run result as text rows), :mod:`liveshape.checktext` (the check report as
+text rows) and :mod:`liveshape.textformat` (numbers with units, a dash for a missing figure).
+Their roles (``alarm``, ``abort``, ``ok`` ...) are the fields of :class:`Palette`.
 """
 
 from __future__ import annotations
 
-import dataclasses
 import math
-import re
 import time
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
@@ -27,6 +27,10 @@ from rich.panel import Panel
 from rich.progress import BarColumn, Progress, TaskProgressColumn, TextColumn, TimeRemainingColumn
 from rich.table import Table
 from rich.text import Text
+
+from liveshape import checktext, runtext
+from liveshape.textformat import as_finite, mapping_rows
+from liveshape.textplot import ROLES, spectrum_grid
 
 __all__ = [
     "LiveView",
@@ -61,69 +65,8 @@ class Palette:
 
 PALETTE = Palette()
 
-_STAGE_WORDS = {
-    "connect": "connect", "identify": "identify", "equalize": "equalize",
-    "full_level": "full level", "ramp_down": "ramp down", "done": "done",
-}
-_DASH = "—"
-_DB10 = 10.0 / math.log(10.0)
-
-
 # --------------------------------------------------------------------------------------------
 # Small helpers
-
-
-def _get(obj: Any, *names: str, default: Any = None) -> Any:
-    """First attribute (or mapping key) of ``names`` that ``obj`` has and is not None."""
-    for name in names:
-        value = obj.get(name) if isinstance(obj, Mapping) else getattr(obj, name, None)
-        if value is not None:
-            return value
-    return default
-
-
-def _num(x: Any) -> float | None:
-    try:
-        v = float(x)
-    except (TypeError, ValueError):
-        return None
-    return v if math.isfinite(v) else None
-
-
-def _fmt(x: Any, spec: str = ".3g", unit: str = "") -> str:
-    v = _num(x)
-    if v is None:
-        return _DASH
-    return f"{v:{spec}}{' ' + unit if unit else ''}"
-
-
-def _fmt_db(x: Any, spec: str = "+.2f") -> str:
-    return _fmt(x, spec, "dB")
-
-
-def _fmt_time(seconds: Any) -> str:
-    v = _num(seconds)
-    if v is None:
-        return _DASH
-    v = max(v, 0.0)
-    m, s = divmod(int(round(v)), 60)
-    h, m = divmod(m, 60)
-    return f"{h}:{m:02d}:{s:02d}" if h else f"{m}:{s:02d}"
-
-
-def _count(value: Any) -> int | None:
-    """A count of lines; negative (the controller's 'none yet') and missing give None."""
-    v = _num(value)
-    return None if v is None or v < 0 else int(v)
-
-
-def _limit_style(value: Any, limit: Any) -> str:
-    v, lim = _num(value), _num(limit)
-    if v is None or lim is None or lim <= 0:
-        return PALETTE.value
-    if v > lim:
-        return PALETTE.abort
-    return PALETTE.alarm if v > 0.8 * lim else PALETTE.ok
 
 
 def _kv_table(title: str | None = None) -> Table:
@@ -134,77 +77,17 @@ def _kv_table(title: str | None = None) -> Table:
     return table
 
 
-_UNITS = (
-    ("_g2_hz", "g²/Hz"), ("_fs2_hz", "FS²/Hz"), ("_db_oct", "dB/oct"), ("_db_s", "dB/s"),
-    ("_m_s", "m/s"), ("_hz", "Hz"), ("_db", "dB"), ("_fs", "FS"), ("_g", "g"), ("_s", "s"),
-    ("_m", "m"), ("_v", "V"), ("_a", "A"), ("_w", "W"), ("_ohm", "Ω"), ("_k", "K"),
-)
-
-
-def _label_and_unit(key: str) -> tuple[str, str]:
-    for suffix, unit in _UNITS:
-        if key.endswith(suffix) and len(key) > len(suffix):
-            return key[: -len(suffix)].replace("_", " "), unit
-    return key.replace("_", " "), ""
-
-
-def _fmt_value(value: Any, unit: str = "") -> str:
-    if value is None:
-        return _DASH
-    if isinstance(value, bool):
-        return "yes" if value else "no"
-    if isinstance(value, (int, np.integer)):
-        return f"{int(value)}{' ' + unit if unit else ''}"
-    if isinstance(value, (float, np.floating)):
-        v = _num(value)
-        spec = ".0f" if v is not None and 1e4 <= abs(v) < 1e9 else ".4g"
-        return _fmt(value, spec, unit)
-    if isinstance(value, (list, tuple)) and all(_num(v) is not None for v in value):
-        return ", ".join(_fmt(v, ".4g") for v in value) + (f" {unit}" if unit else "")
-    return str(value)
+def _add_rows(table: Table, rows: Sequence[tuple[Any, ...]]) -> None:
+    for row in rows:
+        table.add_row(*row)
 
 
 def _add_mapping_rows(table: Table, data: Mapping[str, Any], skip: Sequence[str] = ()) -> None:
-    for key, value in data.items():
-        if key in skip:
-            continue
-        if isinstance(value, Mapping):
-            _add_mapping_rows(table, {f"{key} {k}": v for k, v in value.items()})
-            continue
-        label, unit = _label_and_unit(str(key))
-        table.add_row(label, _fmt_value(value, unit))
+    _add_rows(table, mapping_rows(data, skip))
 
 
 # --------------------------------------------------------------------------------------------
 # The spectrum plot
-
-
-def _nice_ticks(lo: float, hi: float) -> list[float]:
-    ticks = []
-    for decade in range(math.floor(math.log10(lo)) - 1, math.ceil(math.log10(hi)) + 1):
-        for m in (1, 2, 5):
-            f = m * 10.0**decade
-            if lo <= f <= hi:
-                ticks.append(f)
-    return ticks
-
-
-def _f_label(f: float) -> str:
-    return f"{f / 1000:g}k" if f >= 1000 else f"{f:g}"
-
-
-def _as_lines(value: Any, n: int) -> np.ndarray:
-    arr = np.asarray(value if value is not None else np.nan, dtype=float)
-    return np.broadcast_to(arr, (n,)) if arr.ndim == 0 or arr.size == 1 else arr.reshape(n)
-
-
-def _span(values: np.ndarray) -> str:
-    """``3`` for equal values, ``3…4.5`` for a range (limits that vary by band)."""
-    ok = values[np.isfinite(values)]
-    if ok.size == 0:
-        return _DASH
-    lo, hi = float(ok.min()), float(ok.max())
-    return f"{lo:g}" if lo == hi else f"{lo:g}…{hi:g}"
 
 
 def spectrum_plot(
@@ -236,74 +119,20 @@ def spectrum_plot(
         Rows of the plot: ``─`` target, ``·`` alarm limits, ``:`` abort limits, ``●`` control
         (``▲``/``▼`` when off the plot), x axis in Hz (log), y axis in g²/Hz.
     """
-    f = np.asarray(f_hz, dtype=float).ravel()
-    t = np.asarray(target_psd, dtype=float).ravel() if target_psd is not None else np.zeros(0)
-    if f.size == 0 or t.shape != f.shape:
-        return Text("no spectrum yet", style=PALETTE.dim)
-    band = np.isfinite(t) & (t > 0) & (f > 0)
-    if not band.any():
-        return Text("no target lines in band", style=PALETTE.dim)
-    width, height = max(int(width), 16), max(int(height), 5)
-    c = _as_lines(control_psd, f.size)[band]
-    al = _as_lines(alarm_db, f.size)[band]
-    ab = _as_lines(abort_db, f.size)[band]
-    fb, tb = f[band], t[band]
-    lf = np.log10(fb)
-    x0, x1 = float(lf.min()), float(lf.max())
-    if x1 - x0 < 1e-9:
-        x0, x1 = x0 - 0.5, x1 + 0.5
-    centres = x0 + (np.arange(width) + 0.5) / width * (x1 - x0)
-    t_db = _DB10 * np.log(tb)
-    col_t = np.interp(centres, lf, t_db)  # the target is straight on log-log axes
-    col_al = np.interp(centres, lf, al)
-    col_ab = np.interp(centres, lf, ab)
-    cols = np.clip(((lf - x0) / (x1 - x0) * width).astype(int), 0, width - 1)
-    col_c = np.full(width, np.nan)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        for j in np.unique(cols):
-            vals = c[(cols == j) & np.isfinite(c)]
-            if vals.size:  # mean power of the lines in the column
-                m = float(np.mean(vals))
-                col_c[j] = _DB10 * math.log(m) if m > 0 else -np.inf
-    y_hi = float(np.max(col_t + col_ab)) + 2.0
-    y_lo = float(np.min(col_t - col_ab)) - 2.0
-
-    def row(y: float) -> int:
-        return int(round((y_hi - y) / (y_hi - y_lo) * (height - 1)))
-
-    grid = [[(" ", PALETTE.dim) for _ in range(width)] for _ in range(height)]
-
-    def put(r: int, j: int, ch: str, style: str) -> None:
-        if 0 <= r < height:
-            grid[r][j] = (ch, style)
-
-    for j in range(width):
-        for sign in (1, -1):
-            put(row(col_t[j] + sign * col_ab[j]), j, ":", PALETTE.abort)
-            put(row(col_t[j] + sign * col_al[j]), j, "·", PALETTE.alarm)
-        put(row(col_t[j]), j, "─", PALETTE.target)
-        y = col_c[j]
-        if np.isnan(y):
-            continue
-        dev = y - col_t[j]
-        style = (PALETTE.abort if abs(dev) > col_ab[j] else
-                 PALETTE.alarm if abs(dev) > col_al[j] else PALETTE.control)
-        r = row(y) if np.isfinite(y) else height
-        ch = "▲" if r < 0 else "▼" if r >= height else "●"
-        put(min(max(r, 0), height - 1), j, ch, style)
-
+    grid = spectrum_grid(f_hz, control_psd, target_psd, alarm_db, abort_db,
+                         width=width, height=height)
+    if grid.note:
+        return Text(grid.note, style=PALETTE.dim)
+    styles = {code: getattr(PALETTE, "dim" if role == "blank" else role)
+              for code, role in ROLES.items()}
     label_w = 8
-    labels: dict[int, str] = {}
-    for v in sorted(_nice_ticks(10 ** (y_lo / 10), 10 ** (y_hi / 10)), reverse=True):
-        r = row(_DB10 * math.log(v))
-        if all(abs(r - other) > 1 for other in labels):
-            labels[r] = f"{v:g}"
     text = Text()
-    for r in range(height):
-        text.append(f"{labels.get(r, ''):>{label_w - 1}} ", style=PALETTE.label)
+    for label, chars, roles in zip(grid.y_labels, grid.chars, grid.roles, strict=True):
+        text.append(f"{label:>{label_w - 1}} ", style=PALETTE.label)
         text.append("│", style=PALETTE.border)
         run_chars, run_style = "", None
-        for ch, style in grid[r]:  # one span per run of equal style keeps rendering cheap
+        for ch, code in zip(chars, roles, strict=True):  # one span per run of equal style
+            style = styles[code]
             if ch == " ":
                 style = run_style if run_style is not None else style
             if style != run_style and run_chars:
@@ -312,19 +141,12 @@ def spectrum_plot(
             run_chars += ch
             run_style = style
         text.append(run_chars + "\n", style=run_style)
-    text.append(" " * label_w + "└" + "─" * width + "\n", style=PALETTE.border)
-    axis = [" "] * (width + 8)
-    for ftick in _nice_ticks(10**x0, 10**x1):
-        j = int((math.log10(ftick) - x0) / (x1 - x0) * width)
-        lab = _f_label(ftick)
-        start = min(max(j - len(lab) // 2, 0), width + 8 - len(lab))
-        if all(ch == " " for ch in axis[max(start - 1, 0):start + len(lab) + 1]):
-            axis[start:start + len(lab)] = list(lab)
-    text.append(" " * (label_w + 1) + "".join(axis).rstrip() + "  Hz\n", style=PALETTE.label)
+    text.append(" " * label_w + "└" + "─" * len(grid.chars[0]) + "\n", style=PALETTE.border)
+    text.append(" " * (label_w + 1) + grid.x_axis + "  Hz\n", style=PALETTE.label)
     legend = Text(" " * (label_w + 1))
     legend.append("─ target  ", style=PALETTE.target)
-    legend.append(f"· alarm ±{_span(al)} dB  ", style=PALETTE.alarm)
-    legend.append(f": abort ±{_span(ab)} dB  ", style=PALETTE.abort)
+    legend.append(f"· alarm ±{grid.alarm_span} dB  ", style=PALETTE.alarm)
+    legend.append(f": abort ±{grid.abort_span} dB  ", style=PALETTE.abort)
     legend.append("● control  ", style=PALETTE.control)
     legend.append("y: g²/Hz", style=PALETTE.label)
     text.append_text(legend)
@@ -335,89 +157,24 @@ def spectrum_plot(
 # The live dashboard
 
 
-def _chi2_band(snapshot: Any, dof: float | None) -> tuple[float | None, float | None]:
-    band = _get(snapshot, "chi2_band_db", "chi2_db")
-    if band is not None and len(band) == 2:
-        return _num(band[0]), _num(band[1])
-    lo, hi = _num(_get(snapshot, "chi2_lo_db")), _num(_get(snapshot, "chi2_hi_db"))
-    if (lo is not None and hi is not None) or dof is None or dof <= 0:
-        return lo, hi
-    from liveshape.spectra import chi2_interval_db
+def _cell(pieces: Sequence[tuple[str, str]]) -> str | Text:
+    """Text pieces ``(text, role)`` of :mod:`liveshape.runtext` as a rich cell."""
+    def style(role: str) -> str:
+        return f"bold {PALETTE.control}" if role == "stage" else getattr(PALETTE, role)
 
-    lo, hi = chi2_interval_db(dof, 0.90)
-    return float(lo), float(hi)
-
-
-def _header(snapshot: Any) -> Text:
-    stage = str(_get(snapshot, "stage", default="?"))
+    if len(pieces) == 1:
+        part, role = pieces[0]
+        return part if role == "value" else Text(part, style=style(role))
     text = Text()
-    text.append("liveshape  ", style=PALETTE.title)
-    text.append(_STAGE_WORDS.get(stage, stage), style=f"bold {PALETTE.control}")
-    level = _get(snapshot, "level_db")
-    if level is not None:
-        text.append("   level ", style=PALETTE.label)
-        text.append(_fmt(level, "+.1f", "dB"), style=PALETTE.value)
-    step, n_steps = _get(snapshot, "step_index", "step"), _get(snapshot, "n_steps", "steps")
-    if step is not None:
-        text.append("   step ", style=PALETTE.label)
-        shown = int(step) + 1 if _get(snapshot, "step_index") is not None else int(step)
-        text.append(f"{shown}" + (f" of {int(n_steps)}" if n_steps is not None else ""),
-                    style=PALETTE.value)
-    for label, names in (("elapsed", ("elapsed_s", "t_s")), ("remaining", ("remaining_s",)),
-                         ("at full level", ("time_at_full_level_s",))):
-        text.append(f"   {label} ", style=PALETTE.label)
-        text.append(_fmt_time(_get(snapshot, *names)), style=PALETTE.value)
-    status = _get(snapshot, "status")
-    if status:
-        text.append(f"   {status}", style=PALETTE.dim)
+    for part, role in pieces:
+        text.append(part, style=style(role))
     return text
 
 
-def _control_table(snapshot: Any) -> Table:
-    table = _kv_table("control")
-    c, t = _num(_get(snapshot, "control_grms_g")), _num(_get(snapshot, "target_grms_g"))
-    err = _DB10 * math.log(c**2 / t**2) if c and t else None
-    table.add_row("grms control / target",
-                  f"{_fmt(c, '.3f')} / {_fmt(t, '.3f')} g  ({_fmt_db(err)})")
-    table.add_row("rms error", _fmt_db(_get(snapshot, "rms_error_db")))
-    table.add_row("line deviation max / min", f"{_fmt_db(_get(snapshot, 'max_dev_db'))} / "
-                  f"{_fmt_db(_get(snapshot, 'min_dev_db'))}")
-    n_al = _count(_get(snapshot, "lines_outside_alarm"))
-    n_ab = _count(_get(snapshot, "lines_outside_abort"))
-    out = Text()
-    out.append(f"{_fmt_value(n_al)} alarm", style=PALETTE.alarm if n_al else PALETTE.ok)
-    out.append("  ")
-    out.append(f"{_fmt_value(n_ab)} abort", style=PALETTE.abort if n_ab else PALETTE.ok)
-    table.add_row("lines outside", out)
-    dof = _num(_get(snapshot, "dof"))
-    lo, hi = _chi2_band(snapshot, dof)
-    table.add_row("DOF", f"{_fmt(dof, '.0f')}   90 % χ² band {_fmt(lo, '+.2f')} / "
-                  f"{_fmt(hi, '+.2f')} dB")
-    table.add_row("updates", _fmt_value(_get(snapshot, "updates", "n_updates")))
-    return table
-
-
-def _drive_table(snapshot: Any) -> Table:
-    table = _kv_table("drive")
-    rows = (("rms", "drive_rms_fs", ("drive_rms_limit_fs", "drive_rms_max_fs")),
-            ("peak", "drive_peak_fs", ("drive_peak_limit_fs", "drive_peak_max_fs")))
-    for label, key, lim_keys in rows:
-        value, limit = _get(snapshot, key), _get(snapshot, *lim_keys)
-        v, lim = _num(value), _num(limit)
-        frac = f"  ({100 * v / lim:.0f} %)" if v is not None and lim else ""
-        table.add_row(label, Text(f"{_fmt(value, '.3f')} of {_fmt(limit, '.3f')} FS{frac}",
-                                  style=_limit_style(value, limit)))
-    gain = _get(snapshot, "gain_db")
-    if gain is not None:
-        table.add_row("gain", _fmt(gain, "+.1f", "dB"))
-    delay = _get(snapshot, "loop_delay_samples")
-    if delay is not None:
-        table.add_row("loop delay", f"{int(delay)} samples")
-    trip = _get(snapshot, "trip")
-    if trip:
-        rule, message = _get(trip, "rule"), _get(trip, "message", default=trip)
-        table.add_row("trip", Text(f"{rule}: {message}" if rule else str(message),
-                                   style=PALETTE.abort))
+def _row_table(title: str | None, rows: Sequence[tuple[str, Sequence[tuple[str, str]]]]) -> Table:
+    table = _kv_table(title)
+    for label, pieces in rows:
+        table.add_row(label, _cell(pieces))
     return table
 
 
@@ -427,12 +184,8 @@ def _events_table(events: Sequence[Any], n: int = 6) -> Table:
     table.add_column(style=PALETTE.label, justify="right", no_wrap=True)
     table.add_column(style=PALETTE.dim, no_wrap=True)
     table.add_column(style=PALETTE.value)
-    for ev in list(events)[-n:]:
-        kind = str(_get(ev, "kind", default=""))
-        style = (PALETTE.abort if kind in ("abort", "trip", "crash") else
-                 PALETTE.alarm if kind == "alarm" else PALETTE.value)
-        table.add_row(_fmt(_get(ev, "t_s"), ".1f", "s"), kind,
-                      Text(str(_get(ev, "message", default="")), style=style))
+    for t, kind, (message, role) in runtext.event_rows(events, n):
+        table.add_row(t, kind, Text(message, style=getattr(PALETTE, role)))
     if not table.rows:
         table.add_row("", "", Text("none yet", style=PALETTE.dim))
     return table
@@ -449,15 +202,17 @@ def dashboard(snapshot: Any, *, plot_width: int = 72, plot_height: int = 15) -> 
     tables = Table.grid(padding=(0, 4))
     tables.add_column()
     tables.add_column()
-    tables.add_row(_control_table(snapshot), _drive_table(snapshot))
+    tables.add_row(_row_table("control", runtext.control_rows(snapshot)),
+                   _row_table("drive", runtext.drive_rows(snapshot)))
+    get = runtext.field
     plot = spectrum_plot(
-        _get(snapshot, "f_hz", default=()), _get(snapshot, "control_psd"),
-        _get(snapshot, "target_psd"), _get(snapshot, "alarm_db", default=np.nan),
-        _get(snapshot, "abort_db", default=np.nan), width=plot_width, height=plot_height,
+        get(snapshot, "f_hz", default=()), get(snapshot, "control_psd"),
+        get(snapshot, "target_psd"), get(snapshot, "alarm_db", default=np.nan),
+        get(snapshot, "abort_db", default=np.nan), width=plot_width, height=plot_height,
     )
-    events = _get(snapshot, "events", "recent_events", default=())
-    body = Group(_header(snapshot), Text(""), tables, Text(""), plot, Text(""),
-                 _events_table(events))
+    events = get(snapshot, "events", "recent_events", default=())
+    body = Group(_cell(runtext.header_pieces(snapshot)), Text(""), tables, Text(""), plot,
+                 Text(""), _events_table(events))
     return Panel(body, border_style=PALETTE.border, padding=(0, 1))
 
 
@@ -564,24 +319,10 @@ def progress_bar(console: Console | str | None = None, description: str = "worki
         task = bar.add_task(description, total=1.0)
 
         def progress(fraction: float) -> None:
-            v = _num(fraction)
+            v = as_finite(fraction)
             bar.update(task, completed=min(max(v if v is not None else 0.0, 0.0), 1.0))
 
         yield progress
-
-
-_STATUS_STYLE = {"completed": "ok", "aborted": "abort", "stopped": "alarm", "crashed": "abort"}
-
-
-def _as_mapping(obj: Any) -> dict[str, Any]:
-    if isinstance(obj, Mapping):
-        return dict(obj)
-    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
-        return dataclasses.asdict(obj)
-    to_dict = getattr(obj, "to_dict", None)
-    if callable(to_dict):
-        return dict(to_dict())
-    raise TypeError(f"expected a mapping or a dataclass, got {type(obj).__name__}")
 
 
 def run_summary(result: Mapping[str, Any] | Any) -> RenderableType:
@@ -589,84 +330,44 @@ def run_summary(result: Mapping[str, Any] | Any) -> RenderableType:
 
     ``result`` is a mapping (``summary.json``) or the controller's result dataclass.
     """
-    result = _as_mapping(result)
-    status = str(result.get("status", "unknown"))
-    table = _kv_table()
-    style = getattr(PALETTE, _STATUS_STYLE.get(status, "value"))
-    table.add_row("status", Text(status, style=style))
-    trip = result.get("trip")
-    if isinstance(trip, Mapping) and trip.get("rule"):
-        table.add_row("abort rule", Text(str(trip["rule"]), style=PALETTE.abort))
-    if result.get("abort_reason"):
-        table.add_row("abort reason", Text(str(result["abort_reason"]), style=PALETTE.abort))
-    table.add_row("grms control / target", f"{_fmt(result.get('control_grms_g'), '.3f')} / "
-                  f"{_fmt(result.get('target_grms_g'), '.3f')} g")
-    table.add_row("final rms error", _fmt_db(result.get("final_rms_error_db")))
-    table.add_row("final max line deviation", _fmt_db(result.get("final_max_dev_db")))
-    table.add_row("lines outside alarm / abort",
-                  f"{_fmt_value(_count(result.get('final_lines_outside_alarm')))} / "
-                  f"{_fmt_value(_count(result.get('final_lines_outside_abort')))}")
-    table.add_row("updates to tolerance", _fmt_value(result.get("updates_to_tolerance")))
-    table.add_row("DOF", _fmt(result.get("dof"), ".0f"))
-    table.add_row("time at full level", _fmt(result.get("time_at_full_level_s"), ".1f", "s"))
-    shown = {"status", "abort_reason", "control_grms_g", "target_grms_g", "final_rms_error_db",
-             "final_max_dev_db", "final_lines_outside_alarm", "final_lines_outside_abort",
-             "updates_to_tolerance", "dof", "time_at_full_level_s", "record", "trip"}
-    _add_mapping_rows(table, result, skip=tuple(shown))
+    table = _row_table(None, runtext.result_rows(runtext.as_mapping(result)))
     return Panel(table, title="run result", title_align="left", border_style=PALETTE.border)
 
 
 def synth_summary(result: Mapping[str, Any] | Any) -> RenderableType:
     """The result of ``liveshape synth``: every figure by name, units from the key suffixes."""
     table = _kv_table()
-    _add_mapping_rows(table, _as_mapping(result))
+    _add_mapping_rows(table, runtext.as_mapping(result))
     return Panel(table, title="drive file", title_align="left", border_style=PALETTE.border)
 
 
-_BUDGET_KEY = re.compile(r"^(?P<name>.+)_(?P<what>rms|peak_3sigma|limit)_(?P<unit>[a-z0-9]+)$")
-_SHOWN_UNITS = {"fs": ("FS", 1.0), "v": ("V", 1.0), "a": ("A", 1.0), "m": ("mm", 1e3)}
+_VERDICT_STYLE = {"no limit": "dim", "over": "abort", "tight": "alarm", "ok": "ok"}
+
+
+def _column_table(title: str, columns: Sequence[str]) -> Table:
+    table = Table(title=title, title_style=PALETTE.title, title_justify="left", box=None,
+                  header_style=PALETTE.label, pad_edge=False, padding=(0, 2, 0, 0))
+    for name in columns:
+        table.add_column(name, justify="right" if name else "left")
+    return table
 
 
 def _feasibility_parts(rows: dict[str, Any]) -> list[RenderableType]:
-    """Budgets (``<name>_rms_<unit>``, ``_peak_3sigma_``, ``_limit_``, ``<name>_headroom_db``)
-    as one table with a verdict per budget; every other entry as a name/value row."""
-    budgets: dict[str, dict[str, Any]] = {}
-    for key, value in rows.items():
-        m = _BUDGET_KEY.match(key)
-        if m and m["unit"] in _SHOWN_UNITS:
-            budgets.setdefault(m["name"], {"unit": m["unit"]})[m["what"]] = value
+    """Budgets as one table with a verdict per budget (:func:`liveshape.checktext.budget_rows`);
+    every other entry as a name/value row."""
+    budgets, used = checktext.budget_rows(rows)
     parts: list[RenderableType] = []
-    used: set[str] = set()
     if budgets:
-        table = Table(title="rig budgets (3σ peaks)", title_style=PALETTE.title,
-                      title_justify="left", box=None, header_style=PALETTE.label,
-                      pad_edge=False, padding=(0, 2, 0, 0))
-        for name in ("", "rms", "3σ peak", "limit", "headroom", ""):
-            table.add_column(name, justify="left" if not name else "right")
-        for name, b in budgets.items():
-            unit, scale = _SHOWN_UNITS[b["unit"]]
-            headroom = _num(rows.get(f"{name}_headroom_db"))
-            used |= {f"{name}_{w}_{b['unit']}" for w in ("rms", "peak_3sigma", "limit")}
-            used.add(f"{name}_headroom_db")
-
-            def scaled(x: Any, unit: str = unit, scale: float = scale) -> str:
-                v = _num(x)
-                return _DASH if v is None else f"{v * scale:.3g} {unit}"
-
-            verdict = (Text("no limit", style=PALETTE.dim) if headroom is None else
-                       Text("over", style=PALETTE.abort) if headroom < 0 else
-                       Text("tight", style=PALETTE.alarm) if headroom < 3.0 else
-                       Text("ok", style=PALETTE.ok))
-            table.add_row(name.replace("_", " "), scaled(b.get("rms")),
-                          scaled(b.get("peak_3sigma")), scaled(b.get("limit")),
-                          _fmt(headroom, "+.1f", "dB"), verdict)
+        table = _column_table("rig budgets (3σ peaks)", checktext.BUDGET_COLUMNS)
+        for *cells, verdict in budgets:
+            table.add_row(*cells, Text(verdict, style=getattr(PALETTE, _VERDICT_STYLE[verdict])))
         parts.append(table)
     other = _kv_table("rig feasibility")
     feasible = rows.get("feasible")
     if isinstance(feasible, bool):
         other.add_row("feasible", Text("yes" if feasible else "no",
                                        style=PALETTE.ok if feasible else PALETTE.abort))
-        used.add("feasible")
+        used = used | {"feasible"}
     _add_mapping_rows(other, {k: v for k, v in rows.items() if k not in used})
     return [other, Text(""), *parts] if parts else [other]
 
@@ -705,51 +406,12 @@ def check_table(profile: Any, tolerance: Any = None, control: Any = None,
         from liveshape.checks import report_from_parts
 
         report = report_from_parts(profile, tolerance, control, feasibility)
-    overall = _kv_table("profile")
-    overall.add_row("band", f"{_fmt(report.get('f_min_hz'), 'g')} – "
-                    f"{_fmt(report.get('f_max_hz'), 'g')} Hz")
-    overall.add_row("grms", _fmt(report.get("grms_g"), ".3f", "g"))
-    mm = 1e3
-    for label, key, unit in (("velocity rms", "velocity_rms_m_s", "mm/s"),
-                             ("displacement rms", "displacement_rms_m", "mm"),
-                             ("displacement 3σ peak-to-peak", "displacement_pp_3sigma_m", "mm")):
-        v = _num(report.get(key))
-        overall.add_row(label, _fmt(None if v is None else v * mm, ".3g", unit))
-
-    segs = Table(title="segments", title_style=PALETTE.title, title_justify="left",
-                 box=None, header_style=PALETTE.label, pad_edge=False, padding=(0, 2, 0, 0))
-    for name in ("from Hz", "to Hz", "ASD g²/Hz", "slope dB/oct", "area g²", "share"):
-        segs.add_column(name, justify="right")
-    for seg in report.get("segments", ()):
-        share = _num(seg.get("share_of_ms"))
-        segs.add_row(_fmt(seg.get("f_lo_hz"), "g"), _fmt(seg.get("f_hi_hz"), "g"),
-                     f"{_fmt(seg.get('asd_lo_g2_hz'))} → {_fmt(seg.get('asd_hi_g2_hz'))}",
-                     _fmt(seg.get("slope_db_oct"), "+.2f"), _fmt(seg.get("area_g2"), ".4g"),
-                     _fmt(None if share is None else 100 * share, ".1f", "%"))
-
-    tol_data = report.get("tolerance") or {}
-    tol = _kv_table("tolerance")
-    tol.add_row("per line alarm / abort", f"±{_fmt(tol_data.get('alarm_db'), 'g')} / "
-                f"±{_fmt(tol_data.get('abort_db'), 'g')} dB")
-    tol.add_row("rms alarm / abort", f"±{_fmt(tol_data.get('rms_alarm_db'), 'g')} / "
-                f"±{_fmt(tol_data.get('rms_abort_db'), 'g')} dB")
-    for b in tol_data.get("bands", ()):
-        tol.add_row(f"band {_fmt(b.get('f_lo_hz'), 'g')} – {_fmt(b.get('f_hi_hz'), 'g')} Hz",
-                    f"±{_fmt(b.get('alarm_db'), 'g')} / ±{_fmt(b.get('abort_db'), 'g')} dB")
-
-    c = report.get("control") or {}
-    ctl = _kv_table("control")
-    n = c.get("frame_length")
-    ctl.add_row("lines", f"{_fmt_value(int(n) // 2 + 1 if n else None)} of "
-                f"{_fmt(c.get('df_hz'), '.4g')} Hz, {_fmt_value(c.get('lines_in_band'))} in band "
-                f"(frame {_fmt_value(n)} at {_fmt(c.get('fs_hz'), 'g')} Hz)")
-    averaging = f" ({c['averaging']} averaging)" if c.get("averaging") else ""
-    ctl.add_row("target DOF", f"{_fmt(c.get('target_dof'), '.0f')}{averaging}")
-    if c.get("seconds_for_target_dof") is not None:
-        ctl.add_row("data for target DOF",
-                    f"{_fmt(c.get('seconds_for_target_dof'), '.2f', 's')} "
-                    f"({_fmt_value(c.get('segments_for_target_dof'))} segments, Hann 50 %)")
-
+    overall, tol, ctl = _kv_table("profile"), _kv_table("tolerance"), _kv_table("control")
+    _add_rows(overall, checktext.profile_rows(report))
+    _add_rows(tol, checktext.tolerance_rows(report))
+    _add_rows(ctl, checktext.control_rows(report))
+    segs = _column_table("segments", checktext.SEGMENT_COLUMNS)
+    _add_rows(segs, checktext.segment_rows(report))
     parts: list[RenderableType] = [overall, Text(""), segs, Text(""), tol, Text(""), ctl]
     if report.get("rig") is not None:
         parts += [Text(""), *_feasibility_parts(dict(report["rig"]))]
