@@ -1,6 +1,8 @@
-"""Target acceleration profiles (ASD breakpoint tables), tolerance bands and response helpers.
+"""Target acceleration profiles (ASD breakpoint tables): levels, slopes, integrals, CSV files.
 
-Pure: numpy and the standard library only; :func:`read_profile_csv` reads one text file.
+Pure: numpy and the standard library only; :func:`read_profile_csv` reads one text file. The
+tolerance bands are in :mod:`liveshape.tolerance` and the single-degree-of-freedom response
+helpers (Miles' equation) in :mod:`liveshape.response`; their names are re-exported here.
 
 A profile is a straight line on log-log axes between breakpoints ``(f1, a1)-(f2, a2)``. On such a
 segment ``a(f) = a1 (f/f1)^n`` with exponent ``n = ln(a2/a1)/ln(f2/f1)``; the slope in dB/oct is
@@ -15,15 +17,35 @@ from __future__ import annotations
 
 import math
 import re
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
-from scipy.integrate import simpson
 
 from liveshape.errors import ConfigError
+from liveshape.response import (  # re-exported
+    miles_grms,
+    sdof_response_grms,
+    sdof_transmissibility_sq,
+)
 from liveshape.schema import Where, as_float, as_list, check_keys
+from liveshape.tolerance import Tolerance, ToleranceBand, tolerance_from_mapping  # re-exported
+
+__all__ = [
+    "ASD_UNITS",
+    "DB_OCT_PER_EXPONENT",
+    "G0_M_S2",
+    "Profile",
+    "Tolerance",
+    "ToleranceBand",
+    "miles_grms",
+    "profile_from_points",
+    "read_profile_csv",
+    "sdof_response_grms",
+    "sdof_transmissibility_sq",
+    "tolerance_from_mapping",
+]
 
 #: Standard acceleration of gravity in m/s² (CGPM 1901, ISO 80000-3).
 G0_M_S2 = 9.80665
@@ -363,153 +385,3 @@ def read_profile_csv(path: str | Path, *, name: str | None = None) -> Profile:
     if len(f_list) < 2:
         raise ConfigError(f"{src}: needs at least 2 data lines (f_hz, asd), found {len(f_list)}")
     return Profile(tuple(f_list), tuple(asd_list), p.stem if name is None else name)
-
-
-# -- tolerance bands -------------------------------------------------------------------------
-def _check_limits(alarm_db: float, abort_db: float, label: str) -> None:
-    for key, v in (("alarm_db", alarm_db), ("abort_db", abort_db)):
-        if not (isinstance(v, (int, float)) and math.isfinite(v)):
-            raise ConfigError(f"{label}: {key} = {v!r} is not a finite number")
-    if not alarm_db > 0:
-        raise ConfigError(f"{label}: alarm_db = {alarm_db:g} must be > 0")
-    if not abort_db >= alarm_db:
-        raise ConfigError(f"{label}: abort_db = {abort_db:g} must be >= alarm_db = {alarm_db:g}")
-
-
-@dataclass(frozen=True)
-class ToleranceBand:
-    """Alarm and abort limits (± dB about the target) that apply from ``f_lo_hz`` to ``f_hi_hz``."""
-
-    f_lo_hz: float
-    f_hi_hz: float
-    alarm_db: float
-    abort_db: float
-
-    def __post_init__(self) -> None:
-        label = f"tolerance band {self.f_lo_hz:g}-{self.f_hi_hz:g} Hz"
-        if not (math.isfinite(self.f_lo_hz) and self.f_lo_hz > 0):
-            raise ConfigError(f"{label}: f_lo_hz = {self.f_lo_hz!r} must be a finite number > 0")
-        if not (math.isfinite(self.f_hi_hz) and self.f_hi_hz > self.f_lo_hz):
-            raise ConfigError(f"{label}: f_hi_hz = {self.f_hi_hz!r} must be above f_lo_hz")
-        _check_limits(self.alarm_db, self.abort_db, label)
-
-
-@dataclass(frozen=True)
-class Tolerance:
-    """Per-line ASD limits and overall rms limits, in ± dB about the target.
-
-    Defaults are common practice: ±3 dB alarm, ±6 dB abort per line (IEC 60068-2-64 tolerance
-    ±3 dB), rms alarm ±1 dB and abort ±1.5 dB. ``bands`` override the per-line limits where
-    ``f_lo_hz <= f <= f_hi_hz`` (a later band wins where bands overlap).
-    """
-
-    alarm_db: float = 3.0
-    abort_db: float = 6.0
-    rms_alarm_db: float = 1.0
-    rms_abort_db: float = 1.5
-    bands: tuple[ToleranceBand, ...] = field(default_factory=tuple)
-
-    def __post_init__(self) -> None:
-        object.__setattr__(self, "bands", tuple(self.bands))
-        _check_limits(self.alarm_db, self.abort_db, "tolerance")
-        if not (math.isfinite(self.rms_alarm_db) and self.rms_alarm_db > 0):
-            raise ConfigError(f"tolerance: rms_alarm_db = {self.rms_alarm_db!r} must be > 0")
-        if not (math.isfinite(self.rms_abort_db) and self.rms_abort_db >= self.rms_alarm_db):
-            raise ConfigError(
-                f"tolerance: rms_abort_db = {self.rms_abort_db!r} must be >= "
-                f"rms_alarm_db = {self.rms_alarm_db:g}"
-            )
-
-    def _at(self, f_hz: Any, attr: str) -> np.ndarray:
-        f = np.asarray(f_hz, dtype=float)
-        out = np.full(f.shape, float(getattr(self, attr)))
-        for b in self.bands:
-            out[(f >= b.f_lo_hz) & (f <= b.f_hi_hz)] = getattr(b, attr)
-        return out
-
-    def alarm_db_at(self, f_hz: Any) -> np.ndarray:
-        """Alarm limit in ± dB at each frequency of ``f_hz``."""
-        return self._at(f_hz, "alarm_db")
-
-    def abort_db_at(self, f_hz: Any) -> np.ndarray:
-        """Abort limit in ± dB at each frequency of ``f_hz``."""
-        return self._at(f_hz, "abort_db")
-
-
-def tolerance_from_mapping(data: Any, where: Where) -> Tolerance:
-    """Read a :class:`Tolerance` from ``{alarm_db, abort_db, rms_alarm_db, rms_abort_db, bands}``.
-
-    Each band is ``{f_lo_hz, f_hi_hz, alarm_db, abort_db}``; a band's missing limits take the
-    overall ones. Missing keys take the defaults of :class:`Tolerance`.
-    """
-    keys = ("alarm_db", "abort_db", "rms_alarm_db", "rms_abort_db", "bands")
-    d = check_keys(data, keys, where)
-    base = Tolerance()
-    vals = {k: as_float(d[k], where.key(k), gt=0) if k in d else getattr(base, k) for k in keys[:4]}
-    for lo, hi in (("alarm_db", "abort_db"), ("rms_alarm_db", "rms_abort_db")):
-        if not vals[hi] >= vals[lo]:
-            raise where.key(hi).fail(d.get(hi, vals[hi]), f"must be >= {lo} = {vals[lo]:g}")
-    bands = []
-    for i, item in enumerate(as_list(d.get("bands", []), where.key("bands"))):
-        w = where.key("bands").index(i)
-        b = check_keys(
-            item, ("f_lo_hz", "f_hi_hz", "alarm_db", "abort_db"), w, required=("f_lo_hz", "f_hi_hz")
-        )
-        lo = as_float(b["f_lo_hz"], w.key("f_lo_hz"), gt=0)
-        hi = as_float(b["f_hi_hz"], w.key("f_hi_hz"), gt=0)
-        if not hi > lo:
-            raise w.key("f_hi_hz").fail(b["f_hi_hz"], f"must be above f_lo_hz = {lo:g}")
-        alarm = as_float(b.get("alarm_db", vals["alarm_db"]), w.key("alarm_db"), gt=0)
-        abort = as_float(b.get("abort_db", vals["abort_db"]), w.key("abort_db"), gt=0)
-        if not abort >= alarm:
-            raise w.key("abort_db").fail(
-                b.get("abort_db", abort), f"must be >= alarm_db = {alarm:g}"
-            )
-        bands.append(ToleranceBand(lo, hi, alarm, abort))
-    return Tolerance(bands=tuple(bands), **vals)
-
-
-# -- response of a single-degree-of-freedom system -------------------------------------------
-def miles_grms(fn_hz: float, q: float, asd_g2_hz: float) -> float:
-    """Miles' equation: rms response ``sqrt(pi/2 fn Q ASD(fn))`` in g of an SDOF on white input.
-
-    References
-    ----------
-    NASA GSFC FEMCI, "Miles' Equation".
-    """
-    return math.sqrt(math.pi / 2.0 * float(fn_hz) * float(q) * float(asd_g2_hz))
-
-
-def sdof_transmissibility_sq(f_hz: Any, fn_hz: float, q: float) -> np.ndarray:
-    """``|T(f)|²`` of absolute acceleration of a base-excited SDOF with damping ``1/(2Q)``.
-
-    ``|T|² = (1 + (2 zeta r)²) / ((1 - r²)² + (2 zeta r)²)`` with ``r = f/fn`` (standard
-    vibration-isolation transmissibility).
-    """
-    r = np.asarray(f_hz, dtype=float) / float(fn_hz)
-    two_zr_sq = (r / float(q)) ** 2
-    return (1.0 + two_zr_sq) / ((1.0 - r * r) ** 2 + two_zr_sq)
-
-
-def sdof_response_grms(profile: Profile, fn_hz: float, q: float) -> float:
-    """Rms absolute acceleration in g of a base-excited SDOF driven by ``profile``.
-
-    Integrates ``|T(f)|² ASD(f)`` over the profile's band by Simpson's rule in ``ln f`` on each
-    segment, with a step of at most ``1/(40 Q)`` in ``ln f`` (the half-power width of the
-    resonance is about ``1/Q`` there), so the quadrature error is far below 1e-5.
-    """
-    if not (math.isfinite(fn_hz) and fn_hz > 0):
-        raise ConfigError(f"sdof: fn_hz = {fn_hz!r} must be a finite number > 0")
-    if not (math.isfinite(q) and q > 0):
-        raise ConfigError(f"sdof: q = {q!r} must be a finite number > 0")
-    h = min(0.01, 1.0 / (40.0 * q))
-    total = 0.0
-    for f1, f2 in zip(profile.f_hz[:-1], profile.f_hz[1:], strict=True):
-        u1, u2 = math.log(f1), math.log(f2)
-        n = max(8, 2 * math.ceil((u2 - u1) / (2.0 * h)))
-        u = np.linspace(u1, u2, n + 1)
-        f = np.exp(u)
-        f[0], f[-1] = f1, f2
-        y = profile.asd_at(f) * sdof_transmissibility_sq(f, fn_hz, q) * f  # df = f du
-        total += float(simpson(y, x=u))
-    return math.sqrt(total)
