@@ -4,14 +4,14 @@ Pure apart from reading the files it is pointed at (YAML through :mod:`liveshape
 through :func:`liveshape.profile.read_profile_csv`). Every value has a built-in default; a file
 overrides the defaults, and dotted command-line overrides (``{"control.fs_hz": 8000}``) override
 the file. Every mistake is one :class:`~liveshape.errors.ConfigError` line naming the file (or
-``command line``), the dotted key, the value and the rule.
+``command line``), the dotted key, the value and the rule. Faults (kinds, :class:`FaultSpec`,
+:func:`parse_fault`) are in :mod:`liveshape.faults` and the places that name the command line
+in :mod:`liveshape.overrides`; their public names are re-exported here.
 """
 
 from __future__ import annotations
 
-import difflib
 import math
-import re
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
 from pathlib import Path
@@ -19,6 +19,13 @@ from typing import Any
 
 from liveshape import config
 from liveshape.errors import ConfigError
+from liveshape.faults import (  # re-exported: FAULT_KINDS, FaultSpec, parse_fault
+    FAULT_KINDS,
+    FaultSpec,
+    fault_from_mapping,
+    parse_fault,
+)
+from liveshape.overrides import COMMAND_LINE, OverrideWhere, did_you_mean
 from liveshape.profile import (
     Profile,
     Tolerance,
@@ -37,15 +44,12 @@ from liveshape.schema import (
     check_keys,
 )
 
-FAULT_KINDS = (
-    "sensor_detached",
-    "sensor_gain",
-    "amp_trip",
-    "resonance_shift",
-    "plant_gain",
-    "noise_burst",
-    "dropout",
-)
+__all__ = [
+    "CLIP_SIGMA_FLOOR", "COMMAND_LINE", "FAULT_KINDS", "MAX_FRAME_LENGTH", "MIN_BAND_LINES",
+    "MIN_FRAME_LENGTH", "SPEC_SUFFIXES", "ControlSettings", "FaultSpec", "RigSelection",
+    "SafetyLimits", "Schedule", "TestSpec", "check_spec", "load_spec", "parse_fault",
+    "spec_from_mapping", "spec_to_mapping",
+]
 
 #: Lowest clipping level of the drive, in multiples of its rms: IEC 60068-2-64 requires a drive
 #: crest factor of at least 2.5 (secondary summary, see DOMAIN.md §5).
@@ -54,7 +58,6 @@ MIN_FRAME_LENGTH = 256
 MAX_FRAME_LENGTH = 1 << 20
 MIN_BAND_LINES = 8
 SPEC_SUFFIXES = (".yaml", ".yml", ".csv", ".txt")
-COMMAND_LINE = "command line"
 
 
 @dataclass(frozen=True)
@@ -117,16 +120,6 @@ class RigSelection:
 
 
 @dataclass(frozen=True)
-class FaultSpec:
-    """A fault injected into the simulated rig at ``at_s`` seconds of run time."""
-
-    kind: str
-    at_s: float
-    value: float | None = None
-    duration_s: float | None = None
-
-
-@dataclass(frozen=True)
 class TestSpec:
     """A whole test definition, resolved (defaults, file and overrides merged)."""
 
@@ -142,31 +135,6 @@ class TestSpec:
     faults: tuple[FaultSpec, ...] = ()
     seed: int | None = None
     source: str = ""
-
-
-# -- places, with command-line overrides named as such ---------------------------------------
-class _Where(Where):
-    """A :class:`Where` that names ``command line`` for keys that came from overrides."""
-
-    def __init__(self, source: str, path: str = "", overridden: frozenset[str] = frozenset()):
-        super().__init__(source, path)
-        self.overridden = overridden
-
-    def key(self, name: str) -> _Where:
-        return _Where(self.source, super().key(name).path, self.overridden)
-
-    def index(self, i: int) -> _Where:
-        return _Where(self.source, super().index(i).path, self.overridden)
-
-    @property
-    def from_command_line(self) -> bool:
-        """True when the value at this place came from an override."""
-        return any(
-            self.path == o or self.path.startswith((o + ".", o + "[")) for o in self.overridden
-        )
-
-    def __str__(self) -> str:
-        return f"{COMMAND_LINE}: {self.path}" if self.from_command_line else super().__str__()
 
 
 # -- sections --------------------------------------------------------------------------------
@@ -213,7 +181,7 @@ _SECTIONS: dict[str, tuple[str, ...]] = {
 }
 
 
-def _plain_fields(section: str, d: dict[str, Any], w: _Where, base: Any) -> dict[str, Any]:
+def _plain_fields(section: str, d: dict[str, Any], w: OverrideWhere, base: Any) -> dict[str, Any]:
     out = {}
     for key, (kind, arg) in _RULES[section].items():
         value = d.get(key, getattr(base, key))
@@ -226,7 +194,7 @@ def _plain_fields(section: str, d: dict[str, Any], w: _Where, base: Any) -> dict
     return out
 
 
-def _schedule(data: Any, w: _Where) -> Schedule:
+def _schedule(data: Any, w: OverrideWhere) -> Schedule:
     d = check_keys(data, _SECTIONS["schedule"], w)
     steps = Schedule().steps_db
     if "steps_db" in d:
@@ -241,7 +209,7 @@ def _schedule(data: Any, w: _Where) -> Schedule:
     return Schedule(steps_db=steps, **_plain_fields("schedule", d, w, Schedule()))
 
 
-def _control(data: Any, w: _Where) -> ControlSettings:
+def _control(data: Any, w: OverrideWhere) -> ControlSettings:
     d = check_keys(data, _SECTIONS["control"], w)
     base = ControlSettings()
     fs = as_float(d.get("fs_hz", base.fs_hz), w.key("fs_hz"), gt=0)
@@ -270,7 +238,7 @@ def _control(data: Any, w: _Where) -> ControlSettings:
     return ControlSettings(fs_hz=fs, frame_length=n, **_plain_fields("control", d, w, base))
 
 
-def _safety(data: Any, w: _Where) -> SafetyLimits:
+def _safety(data: Any, w: OverrideWhere) -> SafetyLimits:
     d = check_keys(data, _SECTIONS["safety"], w)
     clip = d.get("clip_sigma", SafetyLimits().clip_sigma)
     if clip is not None:
@@ -290,7 +258,7 @@ def _safety(data: Any, w: _Where) -> SafetyLimits:
     return s
 
 
-def _path_value(value: Any, w: _Where, base_dir: Path | None) -> str:
+def _path_value(value: Any, w: OverrideWhere, base_dir: Path | None) -> str:
     """An absolute path: a file's relative path is read against its folder, an override's
     against the current folder."""
     p = Path(as_str(value, w)).expanduser()
@@ -299,7 +267,7 @@ def _path_value(value: Any, w: _Where, base_dir: Path | None) -> str:
     return str(p.resolve())
 
 
-def _rig(data: Any, w: _Where, base_dir: Path | None) -> RigSelection:
+def _rig(data: Any, w: OverrideWhere, base_dir: Path | None) -> RigSelection:
     d = check_keys(data, _SECTIONS["rig"], w)
     b = RigSelection()
     plant = as_str(d.get("plant", b.plant), w.key("plant"))
@@ -325,62 +293,7 @@ def _rig(data: Any, w: _Where, base_dir: Path | None) -> RigSelection:
     )
 
 
-def _opt_float(value: Any, w: Where, **bounds: float) -> float | None:
-    return None if value is None else as_float(value, w, **bounds)
-
-
-def _fault(item: Any, w: _Where) -> FaultSpec:
-    if isinstance(item, FaultSpec):
-        item = {k: getattr(item, k) for k in ("kind", "at_s", "value", "duration_s")}
-    if isinstance(item, str):
-        return parse_fault(item, where=w)
-    d = check_keys(item, ("kind", "at_s", "value", "duration_s"), w, required=("kind", "at_s"))
-    return FaultSpec(
-        kind=as_choice(d["kind"], w.key("kind"), FAULT_KINDS),
-        at_s=as_float(d["at_s"], w.key("at_s"), ge=0),
-        value=_opt_float(d.get("value"), w.key("value")),
-        duration_s=_opt_float(d.get("duration_s"), w.key("duration_s"), gt=0),
-    )
-
-
-_FAULT_RE = re.compile(r"^\s*([A-Za-z_]+)\s*@\s*([^=/]+?)\s*(?:=\s*([^/]+?)\s*)?(?:/\s*(.+?))?\s*$")
-
-
-def parse_fault(text: str, *, where: Where | None = None) -> FaultSpec:
-    """Parse the command-line form ``KIND@SECONDS[=VALUE][/DURATION]``.
-
-    Examples: ``sensor_gain@12=0.5``, ``noise_burst@20=0.1/0.5``, ``sensor_detached@30``.
-    """
-    w = where if where is not None else Where(COMMAND_LINE, "fault")
-    m = _FAULT_RE.match(text) if isinstance(text, str) else None
-    if m is None:
-        raise w.fail(text, "is not KIND@SECONDS[=VALUE][/DURATION] (e.g. sensor_gain@12=0.5)")
-    kind, at, value, duration = m.groups()
-    if kind not in FAULT_KINDS:
-        near = difflib.get_close_matches(kind, FAULT_KINDS, n=1, cutoff=0.6)
-        hint = f"; did you mean '{near[0]}'?" if near else ""
-        raise w.fail(text, f"names no known fault (valid: {', '.join(FAULT_KINDS)}){hint}")
-
-    def num(s: str | None, what: str, low: float | None = None, strict: bool = False):
-        if s is None:
-            return None
-        try:
-            x = float(s)
-        except ValueError:
-            raise w.fail(text, f"has {what} {s!r}, which is not a number") from None
-        if not math.isfinite(x):
-            raise w.fail(text, f"has {what} {s!r}, which is not a finite number")
-        if low is not None and (x <= low if strict else x < low):
-            rel = ">" if strict else ">="
-            raise w.fail(text, f"has {what} {s!r}, which must be {rel} {low:g}")
-        return x
-
-    return FaultSpec(
-        kind, num(at, "seconds", 0.0), num(value, "value"), num(duration, "duration", 0.0, True)
-    )
-
-
-def _profile(data: Any, w: _Where, base_dir: Path | None, name: str) -> Profile:
+def _profile(data: Any, w: OverrideWhere, base_dir: Path | None, name: str) -> Profile:
     if isinstance(data, str):  # a bare path: profile: bench.csv
         data = {"file": data}
     d = check_keys(data, ("name", "units", "breakpoints", "file"), w)
@@ -427,8 +340,7 @@ def _apply_overrides(data: dict[str, Any], overrides: Mapping[str, Any]) -> froz
     done = set()
     for key, raw in overrides.items():
         if key not in valid:
-            near = difflib.get_close_matches(str(key), valid, n=1, cutoff=0.6)
-            hint = f"; did you mean '{near[0]}'?" if near else ""
+            hint = did_you_mean(key, valid)
             raise ConfigError(f"{COMMAND_LINE}: {key}: unknown option{hint}")
         value = raw
         if isinstance(raw, str) and key not in _VERBATIM_OVERRIDES:
@@ -501,7 +413,7 @@ def spec_from_mapping(
     """
     d = dict(check_keys(data, _TOP_KEYS, Where(source)))
     done = _apply_overrides(d, overrides or {})
-    root = _Where(source, "", done)
+    root = OverrideWhere(source, "", done)
     if "profile" not in d:
         raise ConfigError(f"{root.key('profile')}: required key is missing")
     bdir = Path(base_dir) if base_dir is not None else None
@@ -509,7 +421,7 @@ def spec_from_mapping(
     name = as_str(d["name"], root.key("name")) if "name" in d else stem
     faults_raw = d.get("faults") or []
     faults = tuple(
-        _fault(x, root.key("faults").index(i))
+        fault_from_mapping(x, root.key("faults").index(i))
         for i, x in enumerate(as_list(faults_raw, root.key("faults")))
     )
     seed = d.get("seed")
