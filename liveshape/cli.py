@@ -8,10 +8,12 @@ stderr and exit status 2, never a traceback. Rendering goes through :mod:`livesh
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import json
 import math
 import sys
 from collections.abc import Sequence
+from pathlib import Path
 from typing import Any
 
 from liveshape import __version__
@@ -178,6 +180,148 @@ def _cmd_report(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_devices(args: argparse.Namespace) -> int:
+    from liveshape.rigs.audio import list_devices
+
+    devices = list_devices()
+    rows = [dataclasses.asdict(d) for d in devices]
+    if args.json:
+        _print_json({"devices": rows})
+        return 0
+    head = (f"{'index':>5}  {'name':<32} {'host API':<12} {'in':>3} {'out':>3} "
+            f"{'rate Hz':>8}  duplex")
+    lines = [head]
+    for d in rows:
+        lines.append(
+            f"{d['index']:>5}  {d['name'][:32]:<32} {d['host_api'][:12]:<12} "
+            f"{d['max_input_channels']:>3} {d['max_output_channels']:>3} "
+            f"{d['default_fs_hz']:>8.0f}  {'yes' if d['full_duplex'] else '-'}"
+        )
+    if not rows:
+        lines.append("(no audio devices)")
+    sys.stdout.write("\n".join(lines) + "\n")
+    return 0
+
+
+def _cmd_virtual_rig(args: argparse.Namespace) -> int:
+    from liveshape.rigs.jackrig import serve
+
+    def ready(rig: Any) -> None:
+        sys.stderr.write(
+            f"liveshape: virtual rig {args.name!r} running plant {args.plant!r}; "
+            f"run with --rig audio:{args.name}; Ctrl-C ends it\n"
+        )
+        sys.stderr.flush()
+
+    serve(args.plant, server_name=args.server, client_name=args.name, seed=args.seed,
+          ready=ready)
+    return 0
+
+
+CAL_STEPS = ("output", "input", "delay", "corner", "sensor")
+
+
+def _cmd_calibrate(args: argparse.Namespace) -> int:
+    """One calibration step; results are merged into the calibration file."""
+    from liveshape import config
+    from liveshape.rigs import calibration as cal
+    from liveshape.rigs.audio import AudioRig, check_settings
+
+    path = Path(args.file)
+    data: dict[str, Any] = {}
+    if path.exists():
+        loaded = config.read_yaml_file(path)
+        if not isinstance(loaded, dict):
+            raise ConfigError(f"{path}: not a calibration file (expected a mapping)")
+        data = loaded
+    data.setdefault("liveshape_calibration", cal.SCHEMA_VERSION)
+    loopback = _loopback_option(args.loopback)
+    info = check_settings(args.device, args.fs, input_channels=1 + (loopback is not None),
+                          output_channels=1 + (loopback is not None))
+    data["device"] = info.name
+    data["fs_hz"] = float(args.fs)
+    rig = AudioRig(info.index, args.fs, block_size=args.block_size, loopback=loopback,
+                   lead_blocks=8)
+    out: dict[str, Any]
+    if args.step == "output":
+        reading = args.reading
+
+        def read_voltmeter(f_hz: float, level_fs: float) -> float:
+            if reading is not None:
+                return float(reading)
+            answer = input(f"{f_hz:g} Hz sine at {level_fs:g} FS on the drive output. "
+                           "Voltmeter reading, V rms: ")
+            try:
+                return float(answer)
+            except ValueError:
+                raise ConfigError(f"voltmeter reading = {answer!r} is not a number") from None
+
+        res = cal.calibrate_output(rig, read_voltmeter, level_fs=args.level)
+        data["output"] = {"v_per_fs": res.v_per_fs, "method": res.method}
+        out = dataclasses.asdict(res)
+    elif args.step == "input":
+        if args.known_v is not None:
+            res = cal.calibrate_input(rig, known_v_rms=args.known_v, channel="control")
+        else:
+            out_v = _section_value(data, path, "output", "v_per_fs", "calibrate output")
+            if loopback is None:
+                raise ConfigError("calibrate input: give --loopback OUT:IN (a cable from a "
+                                  "second output to a second input) or --known-v V_RMS")
+            res = cal.calibrate_input(rig, out_v_per_fs=out_v, level_fs=args.level)
+        data["input"] = {"v_per_fs": res.v_per_fs, "method": res.method}
+        out = dataclasses.asdict(res)
+    elif args.step == "delay":
+        res = cal.measure_loop_delay(rig, repeats=args.repeats,
+                                     channel="loopback" if loopback else "control")
+        data["loop_delay"] = {"samples": res.samples, "spread_samples": res.spread_samples}
+        out = dataclasses.asdict(res)
+    elif args.step == "corner":
+        if loopback is None:
+            raise ConfigError("calibrate corner: needs --loopback OUT:IN (a cable from a "
+                              "second output to a second input)")
+        delay = data.get("loop_delay", {}) or {}
+        if delay.get("samples") is None:
+            raise ConfigError(f"{path}: loop_delay.samples is missing; run "
+                              "liveshape calibrate delay first")
+        res = cal.measure_lowfreq_corner(rig, delay_samples=int(delay["samples"]))
+        data["lowfreq_corner"] = {"order": res.order, "corner_hz": res.corner_hz,
+                                  "q": res.q, "f_3db_hz": res.f_3db_hz}
+        out = dataclasses.asdict(res)
+    else:  # sensor
+        in_v = _section_value(data, path, "input", "v_per_fs", "calibrate input")
+        res = cal.check_accelerometer(rig, in_v_per_fs=in_v,
+                                      datasheet_mv_per_g=args.datasheet_mv_per_g)
+        acc = {"mv_per_g": res.sensitivity_mv_per_g}
+        if args.datasheet_mv_per_g is not None:
+            acc["datasheet_mv_per_g"] = args.datasheet_mv_per_g
+        data["accelerometer"] = acc
+        out = {k: v for k, v in dataclasses.asdict(res).items() if k != "fit"}
+    config.write_yaml_file(path, _json_safe(data))
+    out["file"] = str(path)
+    if args.json:
+        _print_json(out)
+    else:
+        for key, value in _json_safe(out).items():
+            sys.stdout.write(f"{key}: {value}\n")
+    return 0
+
+
+def _section_value(data: dict[str, Any], path: Path, section: str, key: str, step: str) -> float:
+    value = (data.get(section) or {}).get(key) if isinstance(data.get(section), dict) else None
+    if value is None:
+        raise ConfigError(f"{path}: {section}.{key} is missing; run liveshape {step} first")
+    return float(value)
+
+
+def _loopback_option(text: str | None) -> tuple[int, int] | None:
+    if text is None:
+        return None
+    a, sep, b = text.partition(":")
+    if not sep or not a.strip().isdigit() or not b.strip().isdigit():
+        raise ConfigError(f"--loopback = {text!r} must be OUT:IN channel numbers, e.g. 1:1")
+    return int(a), int(b)
+
+
 def _positive_float(text: str) -> float:
     try:
         x = float(text)
@@ -259,6 +403,48 @@ def build_parser() -> argparse.ArgumentParser:
     rp.add_argument("run_dir", metavar="RUN_DIR", help="a run folder made by liveshape run")
     rp.add_argument("--out", metavar="DIR", help="where to write (default RUN_DIR/report)")
     rp.set_defaults(func=_cmd_report)
+
+    d = sub.add_parser("devices", help="list audio devices (index, host API, channels, rate)")
+    d.add_argument("--json", action="store_true", help="print one JSON object")
+    d.set_defaults(func=_cmd_devices)
+
+    cb = sub.add_parser("calibrate", help="calibrate the chain to volts and g, one step at a time",
+                        description="Calibration steps, merged into one calibration file: "
+                        "output (sine + your voltmeter reading), input (through a loopback "
+                        "cable or a known voltage), delay (noise bursts), corner (AC coupling "
+                        "from a loopback FRF), sensor (159.2 Hz, 10 m/s2 rms reference "
+                        "exciter). See calibration/README.md.")
+    cb.add_argument("step", choices=CAL_STEPS, help="which step")
+    cb.add_argument("--device", required=True, help="audio device index or name")
+    cb.add_argument("-o", "--file", required=True, metavar="FILE.yaml",
+                    help="calibration file to create or update")
+    cb.add_argument("--fs", type=_positive_float, default=48000.0, metavar="HZ",
+                    help="sample rate (default 48000)")
+    cb.add_argument("--block-size", type=_whole, default=1024, metavar="N")
+    cb.add_argument("--loopback", metavar="OUT:IN",
+                    help="channels of a cable from a second output to a second input")
+    cb.add_argument("--level", type=_positive_float, default=0.5, metavar="FS",
+                    help="sine level for output/input steps, full scale (default 0.5)")
+    cb.add_argument("--reading", type=_positive_float, metavar="V_RMS",
+                    help="output step: the voltmeter reading (else asked for)")
+    cb.add_argument("--known-v", type=_positive_float, metavar="V_RMS",
+                    help="input step: a known sine voltage at the control input")
+    cb.add_argument("--repeats", type=_whole, default=5, metavar="N",
+                    help="delay step: noise bursts (default 5)")
+    cb.add_argument("--datasheet-mv-per-g", type=_positive_float, metavar="MV_PER_G",
+                    help="sensor step: the datasheet sensitivity to compare with")
+    cb.add_argument("--json", action="store_true", help="print the step's result as JSON")
+    cb.set_defaults(func=_cmd_calibrate)
+
+    v = sub.add_parser("virtual-rig", help="run the simulated plant as a JACK client",
+                       description="The JACK virtual rig: the simulated plant (same presets "
+                       "and plant files as --rig sim) inside a running JACK server, so "
+                       "'run --rig audio:NAME' goes through a real audio stack.")
+    v.add_argument("--plant", default="loudspeaker", help="preset name or plant YAML file")
+    v.add_argument("--name", default="liveshape-plant", help="JACK client name")
+    v.add_argument("--server", help="JACK server name (default: JACK_DEFAULT_SERVER)")
+    v.add_argument("--seed", type=_whole, metavar="N", help="seed of the simulated noise")
+    v.set_defaults(func=_cmd_virtual_rig)
     return p
 
 

@@ -1,0 +1,177 @@
+"""The README's hardware path, command by command, through a real JACK server.
+
+``liveshape virtual-rig`` (the simulated plant as a JACK client), ``liveshape devices``,
+``liveshape calibrate`` (output, input through the loopback, delay) and ``liveshape run --rig
+audio:...`` with the calibration file, each as its own process, as a user would type them.
+The plant's card has distinct known scales (2 V/FS out, 4 V/FS in) so that a swapped or missing
+factor shows. Realtime-paced by design (the dummy driver runs in real time).
+
+Outside references: the plant's own known values; the sine-amplitude/rms relation
+V_rms = V_peak / sqrt(2) (physics of a sine); the JACK loop-delay rule measured in
+liveshape.rigs.jackrig.jack_loop_delay_samples (one period plus one fixed-size block).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import signal
+import subprocess
+import sys
+import uuid
+from collections.abc import Iterator
+from pathlib import Path
+
+import numpy as np
+import pytest
+import soundfile as sf
+
+from liveshape import config
+
+REPO = Path(__file__).resolve().parents[1]
+OUT_V_PER_FS = 2.0
+IN_V_PER_FS = 4.0
+CARD_DELAY = 1536
+SENS_MV_PER_G = 100.0
+
+pytestmark = pytest.mark.jack
+
+
+def cli(*args: str) -> list[str]:
+    return [sys.executable, "-m", "liveshape", *args]
+
+
+@pytest.fixture(scope="module")
+def plant_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    from liveshape.rigs.plant import load_plant, plant_to_mapping
+
+    data = plant_to_mapping(load_plant("loudspeaker"))
+    data["name"] = "scaled-loudspeaker"
+    data["card"]["out_v_per_fs"] = OUT_V_PER_FS
+    data["card"]["in_v_per_fs"] = IN_V_PER_FS
+    assert data["card"]["delay_samples"] == CARD_DELAY
+    assert data["accelerometer"]["sens_mv_per_g"] == SENS_MV_PER_G
+    path = tmp_path_factory.mktemp("plant") / "scaled.yaml"
+    config.write_yaml_file(path, data)
+    return path
+
+
+@pytest.fixture(scope="module")
+def virtual_rig(jack_server, plant_file: Path) -> Iterator[tuple[str, dict]]:
+    """``liveshape virtual-rig`` in its own process, ended with SIGTERM."""
+    name = f"vr-{uuid.uuid4().hex[:6]}"
+    env = dict(os.environ, JACK_DEFAULT_SERVER=jack_server.name)
+    proc = subprocess.Popen(cli("virtual-rig", "--plant", str(plant_file), "--name", name,
+                                "--seed", "3"),
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True,
+                            env=env, cwd=REPO)
+    try:
+        line = proc.stderr.readline()  # the ready line
+        assert "running" in line, line
+        yield name, env
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        try:
+            proc.wait(timeout=10)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait()
+    assert proc.returncode == 0
+
+
+def call(env: dict, *args: str, timeout: float = 300) -> subprocess.CompletedProcess[str]:
+    proc = subprocess.run(cli(*args), capture_output=True, text=True, env=env, cwd=REPO,
+                          timeout=timeout)
+    assert "Traceback" not in proc.stderr, proc.stderr
+    return proc
+
+
+@pytest.fixture(scope="module")
+def calibration_file(virtual_rig, tmp_path_factory) -> tuple[Path, dict]:
+    """Build the calibration file step by step, as calibration/README.md tells a user to."""
+    name, env = virtual_rig
+    path = tmp_path_factory.mktemp("cal") / "chain.yaml"
+    level = 0.5
+    # The user reads an AC voltmeter on the output: a sine of `level` FS at OUT_V_PER_FS volts
+    # (peak) per FS reads level * OUT_V_PER_FS / sqrt(2) V rms.
+    reading = level * OUT_V_PER_FS / math.sqrt(2.0)
+    steps = {}
+    for args in (
+        ("output", "--reading", f"{reading:.6f}", "--level", str(level)),
+        ("input", "--loopback", "1:1"),
+        ("delay", "--loopback", "1:1"),
+    ):
+        proc = call(env, "calibrate", *args, "--device", name, "-o", str(path), "--json")
+        assert proc.returncode == 0, proc.stderr
+        steps[args[0]] = json.loads(proc.stdout)
+    return path, steps
+
+
+def test_devices_lists_the_virtual_rig(virtual_rig) -> None:
+    name, env = virtual_rig
+    proc = call(env, "devices", "--json")
+    assert proc.returncode == 0, proc.stderr
+    devices = {d["name"]: d for d in json.loads(proc.stdout)["devices"]}
+    assert name in devices
+    dev = devices[name]
+    assert dev["full_duplex"] and dev["max_input_channels"] >= 2
+    assert dev["max_output_channels"] >= 2 and dev["default_fs_hz"] == 48000
+
+
+def test_calibration_matches_the_rigs_known_values(calibration_file, jack_server) -> None:
+    from liveshape.rigs.calibration import load_calibration
+    from liveshape.rigs.jackrig import jack_loop_delay_samples
+
+    path, steps = calibration_file
+    cal_data = config.read_yaml_file(path)
+    # Output: the voltmeter arithmetic returns the card's known scale (sine V_rms = V_pk/sqrt 2).
+    assert cal_data["output"]["v_per_fs"] == pytest.approx(OUT_V_PER_FS, rel=1e-5)
+    # Input through the loopback cable: the card's input scale. The 400 Hz test tone sits far
+    # above the 7 Hz / 5 Hz AC-coupling corners (first-order loss < 0.03 %), and the sine fit's
+    # scatter at -100 dBFS noise is ~1e-5: 0.1 % is a generous bound.
+    assert cal_data["input"]["v_per_fs"] == pytest.approx(IN_V_PER_FS, rel=1e-3)
+    # Loop delay: JACK period + one stream block + the card's own delay, exact in samples.
+    want = jack_loop_delay_samples(jack_server.period_frames, 1024, plant_delay=CARD_DELAY)
+    assert cal_data["loop_delay"]["samples"] == want
+    assert steps["delay"]["spread_samples"] == 0
+    # Without the accelerometer step the file is incomplete and a run refuses it.
+    with pytest.raises(Exception, match="accelerometer"):
+        load_calibration(path)
+
+
+def test_run_through_the_stream_with_the_calibration(virtual_rig, calibration_file,
+                                                     tmp_path: Path) -> None:
+    name, env = virtual_rig
+    path, _ = calibration_file
+    # The sensor's datasheet value, as a user enters it when no reference exciter is at hand.
+    data = config.read_yaml_file(path)
+    data["accelerometer"] = {"mv_per_g": SENS_MV_PER_G}
+    config.write_yaml_file(path, data)
+    spec = tmp_path / "short.yaml"
+    spec.write_text(
+        "name: jack-short\n"
+        "profile: {units: g2/Hz, breakpoints: [{f_hz: 20, asd: 0.001}, {f_hz: 1000, asd: 0.001}]}\n"
+        "schedule: {steps_db: [-3, 0], hold_s: 1.0, full_level_s: 3.0}\n"
+        "control: {fs_hz: 48000, frame_length: 4096}\n"
+        "seed: 2\n"
+    )
+    proc = call(env, "run", str(spec), "--rig", f"audio:{name}", "--calibration", str(path),
+                "--out", str(tmp_path / "runs"), "--json", timeout=600)
+    assert proc.returncode == 0, proc.stderr
+    summary = json.loads(proc.stdout)
+    assert summary["status"] == "completed"
+    assert summary["calibration"]["calibrated"] is True
+    assert summary["rig"]["stream"]["dry_blocks"] == 0
+    # The acceleration the plant really produced: response FS x the chain's true g per FS
+    # (IN_V_PER_FS volts per FS over 0.1 V/g). Its rms over the last full-level second is the
+    # target's (flat 0.001 g^2/Hz over 20-1000 Hz: sqrt(0.98) = 0.990 g, exact integral) within
+    # the rms alarm band of 1 dB (common practice tolerance, IEC 60068-2-64 +-10 % in rms).
+    response, fs = sf.read(Path(summary["run_dir"]) / "response.wav")
+    drive, _ = sf.read(Path(summary["run_dir"]) / "drive.wav")
+    g = response * IN_V_PER_FS / (SENS_MV_PER_G * 1e-3)
+    nz = np.flatnonzero(drive)
+    end = nz[-1] - int(1.2 * fs)  # before the final ramp-down
+    seg = g[end - int(1.0 * fs) : end]
+    grms = float(np.sqrt(np.mean(seg**2)))
+    assert 20 * math.log10(grms / math.sqrt(0.98)) == pytest.approx(0.0, abs=1.0)
