@@ -102,22 +102,14 @@ def spectrum_plot(
 ) -> Text:
     """Character plot of control against target with the alarm and abort limits.
 
-    Parameters
-    ----------
-    f_hz : array
-        Frequency lines, Hz. Only lines where the target is > 0 are drawn (the test band).
-    control_psd, target_psd : array
-        Control estimate and target on those lines, g²/Hz (control may be None).
-    alarm_db, abort_db : float or array
-        Symmetric limits about the target in dB, one value or one per line.
-    width, height : int
-        Plot area in characters (axis labels come on top of this).
+    The arguments are those of :func:`liveshape.textplot.spectrum_grid` (lines in Hz, PSDs in
+    g²/Hz, limits in dB, plot area in characters); the axis labels come on top of the area.
 
     Returns
     -------
     rich.text.Text
         Rows of the plot: ``─`` target, ``·`` alarm limits, ``:`` abort limits, ``●`` control
-        (``▲``/``▼`` when off the plot), x axis in Hz (log), y axis in g²/Hz.
+        (``▲``/``▼`` when off the plot), x axis in Hz (log), y axis in g²/Hz, then a legend.
     """
     grid = spectrum_grid(f_hz, control_psd, target_psd, alarm_db, abort_db,
                          width=width, height=height)
