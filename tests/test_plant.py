@@ -1,4 +1,4 @@
-"""Plant description and its continuous-time model (liveshape.rigs.plant)."""
+"""Plant description (liveshape.rigs.plant) and its continuous-time model (rigs.plantmodel)."""
 
 from __future__ import annotations
 
@@ -119,6 +119,16 @@ def test_ideal_preset_is_exactly_flat():
     undelayed = h * np.exp(2j * math.pi * f * p.card.delay_samples / 48000.0)
     # Only the delay's complex exponential is rounded: a few ulp.
     np.testing.assert_allclose(undelayed, 1.0, rtol=0, atol=8 * np.finfo(float).eps)
+
+
+def test_models_stay_importable_from_the_plant_module():
+    # The continuous-time models live in rigs.plantmodel; rigs.plant re-exports them unchanged.
+    from liveshape.rigs import plant, plantmodel
+
+    names = [n for n in plant.__all__ if hasattr(plantmodel, n)]
+    assert {"analytic_frf", "chain_tf", "electromechanical_ss", "voltage_frf"} <= set(names)
+    assert all(getattr(plant, n) is getattr(plantmodel, n) for n in names)
+    assert all(hasattr(plant, n) for n in plant.__all__)
 
 
 # -- physics ----------------------------------------------------------------------------------

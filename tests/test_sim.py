@@ -1,4 +1,5 @@
-"""The simulated rig (liveshape.rigs.sim): discretization, statistics, faults, protections."""
+"""The simulated rig (liveshape.rigs.sim, with rigs.modal and rigs.faults): discretization,
+statistics, faults, protections."""
 
 from __future__ import annotations
 
@@ -12,6 +13,7 @@ from scipy import integrate, signal, stats
 
 from liveshape import spec
 from liveshape.errors import ConfigError
+from liveshape.rigs import faults
 from liveshape.rigs.modal import iir
 from liveshape.rigs.plant import (
     CoilHeating,
@@ -237,6 +239,7 @@ def test_fault_kinds_are_the_agreed_seven():
     assert FAULT_KINDS == ("sensor_detached", "sensor_gain", "amp_trip", "resonance_shift",
                            "plant_gain", "noise_burst", "dropout")
     assert FAULT_KINDS == spec.FAULT_KINDS
+    assert FAULT_KINDS is faults.FAULT_KINDS  # defined in rigs.faults, re-exported by rigs.sim
 
 
 def test_faults_from_the_test_definition_are_accepted():

@@ -398,12 +398,13 @@ class SimRig:
                 j = (a + pos) % self._n_th
                 self._th_buf[j:j + stop - pos] = piece[0]
                 pos = stop
-        cur, x, acc = outs
+        x, acc = outs[1], outs[2]
         if self._motor:
-            peak = _peak(x)
+            hi, lo = outs[:2].max(axis=1), outs[:2].min(axis=1)  # current and excursion rows
+            peak = max(float(hi[1]), -float(lo[1]))
             self._x_peak = max(self._x_peak, peak)
             self._x_last = max(self._x_last, peak)
-            self._i_peak = max(self._i_peak, _peak(cur))
+            self._i_peak = max(self._i_peak, float(hi[0]), -float(lo[0]))
             xmax = self._plant.shaker.xmax_m
             if xmax is not None and peak > xmax:
                 ax = np.abs(x)
