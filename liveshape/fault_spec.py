@@ -1,9 +1,9 @@
-"""Faults injected into the simulated rig: kinds, the FaultSpec record and its two readers.
+"""Faults as a test definition gives them: the kinds, the FaultSpec record and its two readers.
 
 Pure. A fault is given in a test definition as a mapping ``{kind, at_s, value, duration_s}``
 (:func:`fault_from_mapping`) or on the command line as ``KIND@SECONDS[=VALUE][/DURATION]``
-(:func:`parse_fault`); both give a frozen :class:`FaultSpec` that
-:class:`liveshape.rigs.sim.SimRig` acts on.
+(:func:`parse_fault`); both give a frozen :class:`FaultSpec`. What a fault does to the
+simulated rig is :mod:`liveshape.rigs.faults`.
 """
 
 from __future__ import annotations

@@ -5,7 +5,7 @@ through :func:`liveshape.profile.read_profile_csv`). Every value has a built-in 
 overrides the defaults, and dotted command-line overrides (``{"control.fs_hz": 8000}``) override
 the file. Every mistake is one :class:`~liveshape.errors.ConfigError` line naming the file (or
 ``command line``), the dotted key, the value and the rule. Faults (kinds, :class:`FaultSpec`,
-:func:`parse_fault`) are in :mod:`liveshape.faults` and the places that name the command line
+:func:`parse_fault`) are in :mod:`liveshape.fault_spec` and the places that name the command line
 in :mod:`liveshape.overrides`; their public names are re-exported here.
 """
 
@@ -19,7 +19,7 @@ from typing import Any
 
 from liveshape import config
 from liveshape.errors import ConfigError
-from liveshape.faults import (  # re-exported: FAULT_KINDS, FaultSpec, parse_fault
+from liveshape.fault_spec import (  # re-exported: FAULT_KINDS, FaultSpec, parse_fault
     FAULT_KINDS,
     FaultSpec,
     fault_from_mapping,
