@@ -28,10 +28,29 @@ from typing import IO, Any
 
 import numpy as np
 
-from liveshape import runfolder as layout
 from liveshape.config import write_yaml_file
 from liveshape.errors import ConfigError
-from liveshape.runfolder import RecordedEvent, RunData, UpdateSeries, load_run, read_signals
+from liveshape.runfolder import (  # the layout names and the reader, re-exported here
+    DRIVE_NAME,
+    EVENTS_NAME,
+    META_NAME,
+    RESPONSE_NAME,
+    RIG_NAME,
+    RUN_FORMAT,
+    RUN_FORMAT_VERSION,
+    SPEC_NAME,
+    SUMMARY_NAME,
+    UPDATE_ARRAYS,
+    UPDATES_DIR,
+    RecordedEvent,
+    RunData,
+    UpdateSeries,
+    load_run,
+    new_run_folder,
+    pack_update,
+    read_signals,
+    update_file_name,
+)
 
 __all__ = [
     "RecordedEvent",
@@ -264,14 +283,14 @@ class RunRecorder:
         self._closed = False
         self.n_events = 0
         self.n_updates = 0
-        (root / layout.UPDATES_DIR).mkdir()
+        (root / UPDATES_DIR).mkdir()
         period = int(round(flush_every_s * self.fs_hz))
         rate = int(round(self.fs_hz))
-        self._drive = _WavStream(root / layout.DRIVE_NAME, rate, period)
-        self._response = _WavStream(root / layout.RESPONSE_NAME, rate, period)
+        self._drive = _WavStream(root / DRIVE_NAME, rate, period)
+        self._response = _WavStream(root / RESPONSE_NAME, rate, period)
         # kept open for the whole run, line-buffered; closed in close()
         self._events: IO[str] = open(
-            root / layout.EVENTS_NAME, "a", encoding="utf-8", buffering=1
+            root / EVENTS_NAME, "a", encoding="utf-8", buffering=1
         )
 
     # -- making a folder ------------------------------------------------------------------
@@ -327,19 +346,19 @@ class RunRecorder:
         if not flush_every_s > 0:
             raise ConfigError(f"run record: flush_every_s = {flush_every_s!r} must be > 0")
         stamp = (now or _utc_now()).astimezone(_dt.timezone.utc)
-        root = layout.new_run_folder(out_dir, name, stamp)
+        root = new_run_folder(out_dir, name, stamp)
         meta = {
-            "format": layout.RUN_FORMAT,
-            "format_version": layout.RUN_FORMAT_VERSION,
+            "format": RUN_FORMAT,
+            "format_version": RUN_FORMAT_VERSION,
             "name": str(name),
             "created_utc": stamp.isoformat(timespec="seconds"),
             "fs_hz": fs,
             "calibration": dict(calibration),
             "extra": dict(extra or {}),
         }
-        _atomic_write_json(root / layout.META_NAME, meta, fsync=fsync)
-        write_yaml_file(root / layout.SPEC_NAME, json_safe(spec_mapping))
-        write_yaml_file(root / layout.RIG_NAME, json_safe(rig_mapping))
+        _atomic_write_json(root / META_NAME, meta, fsync=fsync)
+        write_yaml_file(root / SPEC_NAME, json_safe(spec_mapping))
+        write_yaml_file(root / RIG_NAME, json_safe(rig_mapping))
         return cls(
             root, name=str(name), fs_hz=fs, created_utc=stamp,
             flush_every_s=flush_every_s, fsync=fsync,
@@ -406,10 +425,10 @@ class RunRecorder:
         The arguments and how each is stored are described at
         :func:`liveshape.runfolder.pack_update`; ``**numbers`` are the scalar figures.
         """
-        arrays = layout.pack_update(index, t_s, f_hz, control_psd, target_psd, drive_psd, h1,
+        arrays = pack_update(index, t_s, f_hz, control_psd, target_psd, drive_psd, h1,
                              coherence, arrays=arrays, numbers=numbers)
         idx = int(arrays["index"])
-        path = self.root / layout.UPDATES_DIR / layout.update_file_name(idx)
+        path = self.root / UPDATES_DIR / update_file_name(idx)
         with self._lock:
             self._check_open()
             _atomic_write(path, lambda fh: np.savez(fh, **arrays), fsync=self._fsync)
@@ -428,7 +447,7 @@ class RunRecorder:
             {f.name: getattr(record, f.name) for f in dataclasses.fields(record)}
             if dataclasses.is_dataclass(record) else dict(vars(record))
         )
-        base = {k: fields.pop(k, None) for k in ("index", "t_s", *layout.UPDATE_ARRAYS)}
+        base = {k: fields.pop(k, None) for k in ("index", "t_s", *UPDATE_ARRAYS)}
         n = np.asarray(base["f_hz"]).size
         figures: dict[str, Any] = {}
         extra: dict[str, Any] = {}
@@ -511,7 +530,7 @@ class RunRecorder:
                 "drive_samples": self._drive.frames,
                 "response_samples": self._response.frames,
             }
-            path = self.root / layout.SUMMARY_NAME
+            path = self.root / SUMMARY_NAME
             _atomic_write_json(path, data, fsync=self._fsync)
         return path
 
