@@ -18,26 +18,14 @@ from typing import Any
 
 from liveshape import __version__
 from liveshape.errors import ConfigError, LiveshapeError
+from liveshape.record import json_safe
 
 EXIT_USAGE = 2
 EXIT_INTERRUPTED = 130
 
 
-def _json_safe(value: Any) -> Any:
-    """Plain JSON types: numpy scalars and arrays to Python, non-finite floats to null."""
-    if isinstance(value, dict):
-        return {str(k): _json_safe(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_json_safe(v) for v in value]
-    if hasattr(value, "tolist"):
-        return _json_safe(value.tolist())
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    return value
-
-
 def _print_json(data: dict[str, Any]) -> None:
-    sys.stdout.write(json.dumps(_json_safe(data), indent=2) + "\n")
+    sys.stdout.write(json.dumps(json_safe(data), indent=2) + "\n")
     sys.stdout.flush()
 
 
@@ -296,12 +284,12 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
             acc["datasheet_mv_per_g"] = args.datasheet_mv_per_g
         data["accelerometer"] = acc
         out = {k: v for k, v in dataclasses.asdict(res).items() if k != "fit"}
-    config.write_yaml_file(path, _json_safe(data))
+    config.write_yaml_file(path, json_safe(data))
     out["file"] = str(path)
     if args.json:
         _print_json(out)
     else:
-        for key, value in _json_safe(out).items():
+        for key, value in json_safe(out).items():
             sys.stdout.write(f"{key}: {value}\n")
     return 0
 
