@@ -1,5 +1,8 @@
 """Tests of liveshape.synth against outside references.
 
+Single-frame periodograms and the window are tested in test_frames.py, gain ramps alone in
+test_ramp.py.
+
 Statistical tolerances are probability bounds fixed before looking at the data: unless stated
 otherwise a check fails by chance with probability about 1e-4 (a 4-sigma normal bound, or the
 1e-4 two-sided quantiles of the exact chi-square, F or binomial distribution). Seeds are fixed,
@@ -47,81 +50,6 @@ def chi2_var_bounds(k: int) -> tuple[float, float]:
     return stats.chi2.ppf(P_FAIL / 2, k) / k, stats.chi2.ppf(1 - P_FAIL / 2, k) / k
 
 
-# --------------------------------------------------------------------------- GainRamp
-def test_gain_ramp_db_ramp_rate_and_step_bound():
-    fs, rate = 1000.0, 6.0
-    ramp = GainRamp(fs, gain=1.0, rate_db_s=rate)
-    ramp.set(0.25)  # -12.04 dB
-    g = np.empty(4000)
-    ramp.fill(g)
-    n_expected = math.ceil(20 * math.log10(4) * fs / rate)
-    assert ramp.remaining_samples() == 0 and not ramp.ramping
-    assert g[n_expected - 1] == 0.25 and np.all(g[n_expected:] == 0.25)
-    steps_db = np.diff(20 * np.log10(np.concatenate([[1.0], g])))
-    # straight in dB at no more than the rate (definition of a dB/s ramp)
-    assert np.all(steps_db <= 1e-12)
-    assert np.max(-steps_db) <= rate / fs * (1 + 1e-9)
-    # sample-to-sample gain change bounded by g * (10^(rate/(20 fs)) - 1)
-    prev = np.concatenate([[1.0], g[:-1]])
-    assert np.all(
-        np.abs(np.diff(np.concatenate([[1.0], g]))) <= prev * (10 ** (rate / 20 / fs) - 1)
-    )
-    assert np.allclose(np.diff(steps_db[: n_expected - 1]), 0.0, atol=1e-9)
-
-
-@pytest.mark.parametrize(("g0", "g1"), [(1.0, 0.0), (0.0, 0.5)])
-def test_gain_ramp_raised_cosine_fade(g0, g1):
-    fs, dur = 1000.0, 0.2
-    ramp = GainRamp(fs, gain=g0, fade_s=dur)
-    ramp.set(g1)
-    m = round(fs * dur)
-    g = np.empty(m + 10)
-    ramp.fill(g)
-    t = np.arange(1, m + 1) / m
-    # raised cosine g0 + (g1 - g0)(1 - cos(pi t))/2 (its definition)
-    assert np.allclose(g[:m], g0 + (g1 - g0) * 0.5 * (1 - np.cos(np.pi * t)), atol=1e-15)
-    assert g[m - 1] == g1 and np.all(g[m:] == g1)
-    # slope bound |g1 - g0| * pi / (2 M) (maximum derivative of the raised cosine)
-    d = np.abs(np.diff(np.concatenate([[g0], g])))
-    assert d.max() <= abs(g1 - g0) * math.pi / (2 * m)
-    assert d[0] < 1e-4 and d[m - 1] < 1e-4  # starts and ends with zero slope
-
-
-def test_gain_ramp_retarget_mid_ramp_has_no_step_and_blocks_do_not_matter():
-    fs = 1000.0
-    a = GainRamp(fs, gain=0.0, fade_s=0.1)
-    b = GainRamp(fs, gain=0.0, fade_s=0.1)
-    a.set(1.0)
-    b.set(1.0)
-    ga = np.empty(50)
-    a.fill(ga)
-    a.set(0.1, rate_db_s=40.0)  # new target from 0.5 on, as a dB ramp
-    ga2 = np.empty(1000)
-    a.fill(ga2)
-    gb = np.concatenate([_fill_blocks(b, [7, 13, 30]), np.empty(0)])
-    assert np.array_equal(ga, gb)
-    full = np.concatenate([ga, ga2])
-    assert np.max(np.abs(np.diff(full))) <= 1.0 * math.pi / (2 * 100)
-    assert full[-1] == pytest.approx(0.1) and a.gain == pytest.approx(0.1)
-
-
-def _fill_blocks(ramp, sizes):
-    out = []
-    for k in sizes:
-        g = np.empty(k)
-        ramp.fill(g)
-        out.append(g)
-    return np.concatenate(out)
-
-
-def test_gain_ramp_refuses_bad_values():
-    with pytest.raises(ConfigError, match="gain"):
-        GainRamp(1000.0, gain=-1.0)
-    ramp = GainRamp(1000.0)
-    with pytest.raises(ConfigError, match="rate_db_s"):
-        ramp.set(0.5, rate_db_s=0.0)
-    with pytest.raises(ConfigError, match="gain"):
-        ramp.set(float("nan"))
 
 
 # --------------------------------------------------------------------------- construction
@@ -152,28 +80,7 @@ def test_properties_and_psd_shape():
     assert np.all(s.read(100) == 0.0)  # no PSD set yet: silence
 
 
-# --------------------------------------------------------------------------- single frames
-def test_fixed_frame_periodogram_equals_target_exactly():
-    fs, n = 1000.0, 128
-    rng = np.random.default_rng(3)
-    psd = rng.uniform(0.0, 2.0, n // 2 + 1)
-    x = random_phase_frame(psd, fs, seed=rng, amplitudes="fixed")
-    # scipy as reference: one-sided boxcar periodogram at the synthesis resolution
-    f, pxx = signal.periodogram(x, fs, window="boxcar", detrend=False)
-    assert np.allclose(pxx, psd, rtol=1e-10, atol=1e-14)
-    # Parseval: mean square = sum(psd) * delta_f, exactly for one fixed-amplitude frame
-    assert np.mean(x**2) == pytest.approx(psd.sum() * fs / n, rel=1e-12)
-
-
-def test_rayleigh_frame_periodogram_scatters_as_chi2_two_dof():
-    fs, n = 1000.0, 4096
-    psd = white_psd(n // 2 + 1, 3.0)
-    x = random_phase_frame(psd, fs, seed=11, amplitudes="rayleigh")
-    _, pxx = signal.periodogram(x, fs, window="boxcar", detrend=False)
-    ratio = pxx[1:-1] / psd[1:-1]
-    # Bendat & Piersol: a raw periodogram line of a Gaussian process is chi-square with 2 DOF,
-    # ratio ~ Exp(1); Kolmogorov-Smirnov test (scipy) at the P_FAIL level
-    assert stats.kstest(ratio, "expon").pvalue > P_FAIL
+# --------------------------------------------------------------------------- kurtosis
 
 
 def _kurtosis_se(x: np.ndarray, n_batches: int) -> tuple[float, float]:
@@ -502,12 +409,6 @@ def test_gain_ramp_is_applied_per_sample_to_the_stream():
     assert isinstance(s.stats, SynthStats)
 
 
-def test_sine_window_is_power_complementary():
-    # Princen-Bradley condition w(n)^2 + w(n + N/2)^2 = 1 [mem], exact for the sine window
-    w = sine_window(512)
-    assert np.allclose(w[:256] ** 2 + w[256:] ** 2, 1.0, atol=1e-15)
-
-
 @pytest.mark.parametrize("line", ["dc", "nyquist"])
 def test_fixed_real_lines_get_a_random_sign_of_fixed_size(line):
     n, fs = 64, 1000.0
@@ -528,3 +429,14 @@ def test_fixed_real_lines_get_a_random_sign_of_fixed_size(line):
     # independent fair signs: sign changes between frames are binomial(399, 1/2)
     lo, hi = stats.binom.interval(1 - P_FAIL, is_flip[1:].size, 0.5)
     assert lo <= np.count_nonzero(is_flip[1:]) <= hi
+
+
+def test_moved_names_are_reexported():
+    # other modules import these from liveshape.synth; they live in frames, ramp and moments
+    from liveshape import frames, moments, ramp, synth
+
+    for name in ("AMPLITUDES", "sine_window", "line_scales", "draw_coefficients",
+                 "random_phase_frame"):
+        assert getattr(synth, name) is getattr(frames, name)
+    assert synth.GainRamp is ramp.GainRamp
+    assert synth.RunningMoments is moments.RunningMoments
