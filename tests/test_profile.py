@@ -1,4 +1,8 @@
-"""Tests of liveshape.profile: integrals, interpolation, breakpoints, CSV, tolerances, Miles."""
+"""Tests of liveshape.profile: integrals, interpolation, breakpoints, CSV files.
+
+Tolerance bands are tested in test_tolerance.py, Miles' equation and the SDOF response in
+test_response.py.
+"""
 
 from __future__ import annotations
 
@@ -12,13 +16,8 @@ from liveshape.errors import ConfigError
 from liveshape.profile import (
     G0_M_S2,
     Profile,
-    Tolerance,
-    ToleranceBand,
-    miles_grms,
     profile_from_points,
     read_profile_csv,
-    sdof_response_grms,
-    tolerance_from_mapping,
 )
 from liveshape.schema import Where
 
@@ -332,87 +331,11 @@ def test_csv_missing_file(tmp_path):
         read_profile_csv(tmp_path / "nope.csv")
 
 
-# -- tolerance -------------------------------------------------------------------------------
-def test_tolerance_defaults_and_bands():
-    t = Tolerance()
-    # IEC 60068-2-64 ASD tolerance ±3 dB (DOMAIN.md §5, secondary summary); abort ±6 dB and rms
-    # limits 1 / 1.5 dB are common practice.
-    assert (t.alarm_db, t.abort_db, t.rms_alarm_db, t.rms_abort_db) == (3.0, 6.0, 1.0, 1.5)
-    t = Tolerance(bands=(ToleranceBand(500.0, 1000.0, 4.5, 9.0),))
-    f = np.array([100.0, 500.0, 700.0, 1000.0, 1001.0])
-    np.testing.assert_array_equal(t.alarm_db_at(f), [3, 4.5, 4.5, 4.5, 3])
-    np.testing.assert_array_equal(t.abort_db_at(f), [6, 9, 9, 9, 6])
+def test_moved_names_are_reexported():
+    # other modules import these from liveshape.profile; they live in tolerance and response
+    from liveshape import profile, response, tolerance
 
-
-def test_tolerance_from_mapping():
-    t = tolerance_from_mapping(
-        {"alarm_db": 2, "abort_db": 5, "bands": [{"f_lo_hz": 20, "f_hi_hz": 40, "abort_db": 8}]},
-        Where("t.yaml", "tolerance"),
-    )
-    assert t.alarm_db == 2 and t.abort_db == 5 and t.rms_abort_db == 1.5
-    assert t.bands == (ToleranceBand(20.0, 40.0, 2.0, 8.0),)
-    assert tolerance_from_mapping(None, Where("t.yaml", "tolerance")) == Tolerance()
-
-
-@pytest.mark.parametrize(
-    "data, match",
-    [
-        ({"alarm_db": 4, "abort_db": 3}, r"tolerance\.abort_db = 3 must be >= alarm_db = 4"),
-        ({"alarm_db": 0}, r"tolerance\.alarm_db = 0 must be > 0"),
-        ({"rms_alarm_db": 2, "rms_abort_db": 1}, r"rms_abort_db = 1 must be >= rms_alarm_db"),
-        ({"alarm": 3}, r"did you mean 'alarm_db'"),
-        ({"bands": [{"f_lo_hz": 50, "f_hi_hz": 40}]}, r"bands\[0\]\.f_hi_hz = 40 must be above"),
-        ({"bands": [{"f_lo_hz": 50, "f_hi_hz": 60, "alarm_db": 7}]}, r"abort_db = 6.0 must be >="),
-        ({"bands": [{"f_lo_hz": 50}]}, r"f_hi_hz: required key is missing"),
-    ],
-)
-def test_tolerance_bad_input(data, match):
-    with pytest.raises(ConfigError, match=match):
-        tolerance_from_mapping(data, Where("t.yaml", "tolerance"))
-    with pytest.raises(ConfigError):
-        Tolerance(alarm_db=4, abort_db=3)
-
-
-# -- Miles and the exact SDOF response -------------------------------------------------------
-def test_miles_check_value():
-    # NASA GSFC FEMCI "Miles' Equation": fn 100 Hz, Q 10, 0.04 g²/Hz -> 7.93 grms (3 figures).
-    assert abs(miles_grms(100, 10, 0.04) - 7.93) < 0.005
-    assert miles_grms(100, 10, 0.04) == pytest.approx(math.sqrt(math.pi / 2 * 100 * 10 * 0.04))
-
-
-@pytest.mark.parametrize("q", [5.0, 10.0, 50.0])
-def test_sdof_exact_response_to_wide_white_band(q):
-    fn, a, f1, f2 = 100.0, 0.04, 0.01, 1e6
-    p = Profile((f1, f2), (a, a))
-    # Exact absolute-acceleration response to white base input over 0..inf is
-    # Miles * sqrt(1 + 1/Q²) (integral of the transmissibility, DOMAIN.md §6, calc). The band
-    # misses f < f1 (|T|² ~ 1: a f1) and f > f2 (|T|² ~ (fn/(Q f))²: a fn²/(Q² f2)).
-    inf_ms = (miles_grms(fn, q, a) ** 2) * (1 + 1 / q**2)
-    band_ms = inf_ms - a * f1 - a * fn**2 / (q**2 * f2)
-    got = sdof_response_grms(p, fn, q)
-    # Tail approximations are good to O(f1/fn)² and O(fn/f2)² relative to the tails themselves
-    # (~1e-8 of the total); Simpson with 40 steps per half-power width is ~1e-8 (calc).
-    assert got**2 == pytest.approx(band_ms, rel=1e-7)
-
-
-def test_sdof_check_value_fn100_q10():
-    # DOMAIN.md §6: fn 100 Hz, Q 10, 0.04 g²/Hz: Miles 7.93, exact 7.97 grms (3 figures).
-    p = Profile((0.01, 1e6), (0.04, 0.04))
-    assert abs(sdof_response_grms(p, 100, 10) - 7.97) < 0.005
-
-
-def test_sdof_matches_scipy_quad_on_navmat():
-    p = navmat()
-    from liveshape.profile import sdof_transmissibility_sq
-
-    fun = lambda f: p.asd_at(f) * sdof_transmissibility_sq(f, 150.0, 20.0)  # noqa: E731
-    edges = sorted({*p.f_hz, 150.0})
-    ref = quad_segments(fun, edges)  # scipy.integrate.quad as reference
-    assert sdof_response_grms(p, 150.0, 20.0) == pytest.approx(math.sqrt(ref), rel=1e-7)
-
-
-def test_sdof_bad_parameters():
-    with pytest.raises(ConfigError):
-        sdof_response_grms(navmat(), 0.0, 10)
-    with pytest.raises(ConfigError):
-        sdof_response_grms(navmat(), 100.0, float("nan"))
+    for name in ("Tolerance", "ToleranceBand", "tolerance_from_mapping"):
+        assert getattr(profile, name) is getattr(tolerance, name)
+    for name in ("miles_grms", "sdof_transmissibility_sq", "sdof_response_grms"):
+        assert getattr(profile, name) is getattr(response, name)

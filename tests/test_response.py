@@ -1,0 +1,80 @@
+"""Tests of liveshape.response: Miles' equation and the exact SDOF response to a profile."""
+
+from __future__ import annotations
+
+import math
+
+import pytest
+from scipy import integrate
+
+from liveshape.errors import ConfigError
+from liveshape.profile import Profile, profile_from_points
+from liveshape.response import miles_grms, sdof_response_grms, sdof_transmissibility_sq
+from liveshape.schema import Where
+
+W = Where("test.yaml", "profile.breakpoints")
+N_3DB = 3.0 / 3.0103  # exponent of +3 dB/oct, n = m/3.0103 (DOMAIN.md §1, calc)
+
+
+def navmat() -> Profile:
+    """NAVMAT P-9492: 20-80 Hz +3 dB/oct to 0.04 g²/Hz, flat to 350 Hz, -3 dB/oct to 2000 Hz."""
+    return profile_from_points(
+        [
+            {"f_hz": 20, "asd": 0.04 * (20 / 80) ** N_3DB},
+            {"f_hz": 80, "slope_db_oct": 3.0},
+            {"f_hz": 350, "asd": 0.04},
+            {"f_hz": 2000, "slope_db_oct": -3.0},
+        ],
+        W,
+    )
+
+
+def quad_segments(fun, f_hz) -> float:
+    """scipy.integrate.quad of ``fun`` over each segment, summed (scipy as reference)."""
+    total = 0.0
+    for f1, f2 in zip(f_hz[:-1], f_hz[1:], strict=True):
+        val, err = integrate.quad(fun, f1, f2, epsrel=1e-12, epsabs=0, limit=200)
+        total += val
+    return total
+
+
+def test_miles_check_value():
+    # NASA GSFC FEMCI "Miles' Equation": fn 100 Hz, Q 10, 0.04 g²/Hz -> 7.93 grms (3 figures).
+    assert abs(miles_grms(100, 10, 0.04) - 7.93) < 0.005
+    assert miles_grms(100, 10, 0.04) == pytest.approx(math.sqrt(math.pi / 2 * 100 * 10 * 0.04))
+
+
+@pytest.mark.parametrize("q", [5.0, 10.0, 50.0])
+def test_sdof_exact_response_to_wide_white_band(q):
+    fn, a, f1, f2 = 100.0, 0.04, 0.01, 1e6
+    p = Profile((f1, f2), (a, a))
+    # Exact absolute-acceleration response to white base input over 0..inf is
+    # Miles * sqrt(1 + 1/Q²) (integral of the transmissibility, DOMAIN.md §6, calc). The band
+    # misses f < f1 (|T|² ~ 1: a f1) and f > f2 (|T|² ~ (fn/(Q f))²: a fn²/(Q² f2)).
+    inf_ms = (miles_grms(fn, q, a) ** 2) * (1 + 1 / q**2)
+    band_ms = inf_ms - a * f1 - a * fn**2 / (q**2 * f2)
+    got = sdof_response_grms(p, fn, q)
+    # Tail approximations are good to O(f1/fn)² and O(fn/f2)² relative to the tails themselves
+    # (~1e-8 of the total); Simpson with 40 steps per half-power width is ~1e-8 (calc).
+    assert got**2 == pytest.approx(band_ms, rel=1e-7)
+
+
+def test_sdof_check_value_fn100_q10():
+    # DOMAIN.md §6: fn 100 Hz, Q 10, 0.04 g²/Hz: Miles 7.93, exact 7.97 grms (3 figures).
+    p = Profile((0.01, 1e6), (0.04, 0.04))
+    assert abs(sdof_response_grms(p, 100, 10) - 7.97) < 0.005
+
+
+def test_sdof_matches_scipy_quad_on_navmat():
+    p = navmat()
+    fun = lambda f: p.asd_at(f) * sdof_transmissibility_sq(f, 150.0, 20.0)  # noqa: E731
+    edges = sorted({*p.f_hz, 150.0})
+    ref = quad_segments(fun, edges)  # scipy.integrate.quad as reference
+    assert sdof_response_grms(p, 150.0, 20.0) == pytest.approx(math.sqrt(ref), rel=1e-7)
+
+
+def test_sdof_bad_parameters():
+    with pytest.raises(ConfigError):
+        sdof_response_grms(navmat(), 0.0, 10)
+    with pytest.raises(ConfigError):
+        sdof_response_grms(navmat(), 100.0, float("nan"))
