@@ -9,12 +9,12 @@ Only :func:`yaml.safe_load` is ever used.
 from __future__ import annotations
 
 import os
-import tempfile
 from pathlib import Path
 from typing import Any
 
 import yaml
 
+from liveshape.atomic import atomic_write_text
 from liveshape.errors import ConfigError
 
 
@@ -64,20 +64,16 @@ def dump_yaml_text(data: Any) -> str:
 
 
 def write_yaml_file(path: str | os.PathLike[str], data: Any) -> None:
-    """Write plain data as YAML atomically (temporary file in the same folder, then rename)."""
+    """Write plain data as YAML atomically (:func:`liveshape.atomic.atomic_write_text`).
+
+    Raises
+    ------
+    ConfigError
+        One line naming the file when it cannot be written.
+    """
     p = Path(path)
     text = dump_yaml_text(data)
     try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{p.name}.", suffix=".tmp", dir=p.parent or ".")
+        atomic_write_text(p, text)
     except OSError as exc:
-        raise ConfigError(f"{p}: cannot write ({exc.strerror})") from None
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
-        os.replace(tmp, p)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
+        raise ConfigError(f"{p}: cannot write ({exc.strerror or exc})") from None

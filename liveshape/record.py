@@ -7,8 +7,8 @@ are in :mod:`liveshape.runfolder`, which also reads a folder back (:func:`load_r
 reader names are re-exported here.
 
 Writing goes through :class:`RunRecorder`. Every small file is written to a temporary name in
-the same folder and then renamed (:func:`os.replace` is atomic on POSIX), so a reader never sees
-half a file. The two WAV streams have their headers rewritten every so often
+the same folder and then renamed (:func:`liveshape.atomic.atomic_write`), so a reader never
+sees half a file. The two WAV streams have their headers rewritten every so often
 (:func:`_sf_command`), so a killed run leaves WAVs holding the samples up to then.
 """
 
@@ -19,15 +19,15 @@ import datetime as _dt
 import json
 import math
 import os
-import tempfile
 import threading
-from collections.abc import Callable, Iterable, Mapping
+from collections.abc import Iterable, Mapping
 from pathlib import Path
 from types import TracebackType
 from typing import IO, Any
 
 import numpy as np
 
+from liveshape.atomic import atomic_write, atomic_write_text
 from liveshape.config import write_yaml_file
 from liveshape.errors import ConfigError
 from liveshape.runfolder import (  # the layout names and the reader, re-exported here
@@ -113,27 +113,9 @@ def _json_line(obj: Any) -> str:
     return json.dumps(json_safe(obj), allow_nan=False, separators=(",", ":"), ensure_ascii=False)
 
 
-def _atomic_write(path: Path, write: Callable[[IO[bytes]], None], *, fsync: bool) -> None:
-    """Write ``path`` through a temporary file in the same folder, then rename it in place."""
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            write(fh)
-            fh.flush()
-            if fsync:
-                os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
-
-
 def _atomic_write_json(path: Path, data: Any, *, fsync: bool) -> None:
     text = json.dumps(json_safe(data), allow_nan=False, indent=2, ensure_ascii=False) + "\n"
-    _atomic_write(path, lambda fh: fh.write(text.encode("utf-8")), fsync=fsync)
+    atomic_write_text(path, text, fsync=fsync)
 
 
 def _utc_now() -> _dt.datetime:
@@ -431,7 +413,7 @@ class RunRecorder:
         path = self.root / UPDATES_DIR / update_file_name(idx)
         with self._lock:
             self._check_open()
-            _atomic_write(path, lambda fh: np.savez(fh, **arrays), fsync=self._fsync)
+            atomic_write(path, lambda fh: np.savez(fh, **arrays), fsync=self._fsync)
             self.n_updates += 1
         return path
 

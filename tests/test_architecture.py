@@ -26,8 +26,8 @@ OWNERS = {
 
 #: the functional core: numpy, scipy and the standard library only (and each other)
 PURE = [
-    "errors.py", "schema.py", "chain.py", "profile.py", "synth.py", "frames.py", "ramp.py",
-    "spectra.py", "spectral_stats.py", "welch_stream.py", "delay.py", "equalizer.py",
+    "atomic.py", "errors.py", "schema.py", "chain.py", "profile.py", "synth.py", "frames.py",
+    "ramp.py", "spectra.py", "spectral_stats.py", "welch_stream.py", "delay.py", "equalizer.py",
     "safety.py", "schedule.py", "stages.py", "controller.py", "drivestream.py", "runstate.py",
     "checks.py", "textplot.py", "textformat.py", "rigs/plantmodel.py",
     "rigs/modal.py", "rigs/faults.py", "rigs/sim.py", "rigs/feasibility.py",
