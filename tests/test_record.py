@@ -323,10 +323,10 @@ def test_update_from_record_keeps_figures_and_extra_arrays(tmp_path):
 
 
 def test_wav_size_limit_drops_later_blocks_once(tmp_path, monkeypatch):
-    import liveshape.record as record
+    import liveshape.wavstream as wavstream
 
     # The RIFF size field is 32 bits (4 GiB); shrink the limit to 4000 bytes = 1000 float32.
-    monkeypatch.setattr(record, "WAV_MAX_DATA_BYTES", 4000)
+    monkeypatch.setattr(wavstream, "WAV_MAX_DATA_BYTES", 4000)
     x = np.arange(300, dtype=np.float32) / 300
     with _recorder(tmp_path) as rec:
         for _ in range(5):  # 1500 samples offered, 900 fit in whole blocks
@@ -382,20 +382,20 @@ def _record_real_run(out_dir: Path):
 
 @pytest.mark.filterwarnings(_SCIPY_CHUNK_WARNING)
 def test_wav_header_fallback_without_soundfile_internals(tmp_path, monkeypatch):
-    import liveshape.record as record
+    import liveshape.wavstream as wavstream
 
     # A soundfile whose internals changed: an open file without the private SNDFILE handle
     # gets no command; the recorder goes on and the header written at close holds every
     # sample (float32 storage: IEEE 754 single rounding).
-    assert record._sf_command(object(), 0x1060) is False
+    assert wavstream.sf_command(object(), wavstream.SFC_UPDATE_HEADER_NOW) is False
     sent = []
-    monkeypatch.setattr(record, "_sf_command", lambda *args: sent.append(args[1:]) or False)
+    monkeypatch.setattr(wavstream, "sf_command", lambda *args: sent.append(args[1:]) or False)
     x = np.random.default_rng(3).normal(0, 0.2, 2000)
     with _recorder(tmp_path, flush_every_s=0.01) as rec:
         for k in range(0, 2000, 500):
             rec.signals(x[k:k + 500], x[k:k + 500])
         rec.close({"status": "completed"})
-    assert (0x1060,) in sent  # the header updates were asked for and not done
+    assert (wavstream.SFC_UPDATE_HEADER_NOW,) in sent  # asked for and not done
     _, data = scipy.io.wavfile.read(load_run(rec.root).drive_wav)
     np.testing.assert_array_equal(data, x.astype(np.float32))
 
@@ -414,3 +414,12 @@ def test_record_of_a_real_run(tmp_path):
     np.testing.assert_array_equal(d, drive.astype(np.float32))
     np.testing.assert_array_equal(r, response.astype(np.float32))
     assert "new_drive_psd" in run.updates.arrays and run.calibrated is True
+
+
+def test_moved_names_are_reexported():
+    # the WAV size limit lived in record; it is defined in wavstream now
+    import liveshape.record as record
+    import liveshape.wavstream as wavstream
+
+    assert record.WAV_MAX_DATA_BYTES is wavstream.WAV_MAX_DATA_BYTES
+    assert record.WavStream is wavstream.WavStream
