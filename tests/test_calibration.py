@@ -281,3 +281,18 @@ def test_resolve_refuses_missing_or_malformed_unless_declared_uncalibrated(tmp_p
     for path in (None, bad):
         u = cal.resolve_calibration(path, True)
         assert not u.calibrated and u.g_per_fs == 1.0 and u.source == "uncalibrated"
+
+
+def test_moved_names_are_reexported():
+    # the arithmetic lives in rigs.calmath, the file in rigs.calfile; rigs.calibration keeps
+    # every name importable as before the split
+    from liveshape.rigs import calfile, calmath
+
+    for name in ("sine_fit", "tone", "output_v_per_fs", "input_v_per_fs", "burst_train",
+                 "estimate_loop_delay", "fit_highpass", "highpass_response", "accel_sensitivity",
+                 "SineFit", "VoltsPerFs", "LoopDelay", "HighpassFit", "AccelCheck",
+                 "REFERENCE_F_HZ", "REFERENCE_ACCEL_M_S2_RMS", "VOLTMETER_F_HZ"):
+        assert getattr(cal, name) is getattr(calmath, name)
+    for name in ("SCHEMA_VERSION", "UNCALIBRATED", "calibration_mapping", "write_calibration",
+                 "calibration_from_mapping", "load_calibration", "resolve_calibration"):
+        assert getattr(cal, name) is getattr(calfile, name)
