@@ -452,3 +452,12 @@ def test_bad_drive_block_shape_is_refused(fake_sd) -> None:
 
     with pytest.raises(ValueError, match="shape"):
         fake_rig().run(Short(np.zeros(10 * B), B))
+
+
+def test_device_names_are_reexported_from_audio() -> None:
+    # the device functions live in rigs.devices; rigs.audio keeps them importable
+    from liveshape.rigs import devices
+
+    for name in ("DeviceInfo", "list_devices", "match_device", "check_settings", "device_error",
+                 "rescan_devices"):
+        assert getattr(audio, name) is getattr(devices, name)

@@ -1,7 +1,9 @@
 """The audio-interface rig: one full-duplex PortAudio stream driven block by block.
 
 This is the only module that imports :mod:`sounddevice`, and only inside functions, so every
-command that does not need audio works without PortAudio installed.
+command that does not need audio works without PortAudio installed. Listing, matching and
+checking devices is in :mod:`liveshape.rigs.devices` (re-exported here), which gets the module
+through :func:`import_sounddevice`.
 
 Design (see DEVELOPERS.md, "The realtime path"):
 
@@ -23,18 +25,24 @@ changes during a run.
 
 from __future__ import annotations
 
-import difflib
 import sys
 import threading
 import time
 from collections import deque
 from collections.abc import Callable
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
 from liveshape.errors import DeviceError
+from liveshape.rigs.devices import (  # re-exported: the device names stay importable from here
+    DeviceInfo,
+    check_settings,
+    device_error,
+    list_devices,
+    match_device,
+    rescan_devices,
+)
 from liveshape.rigs.ring import (
     BlockIO,
     BufferSource,
@@ -52,6 +60,7 @@ __all__ = [
     "StreamCore",
     "StreamStats",
     "check_settings",
+    "device_error",
     "import_sounddevice",
     "list_devices",
     "match_device",
@@ -77,151 +86,6 @@ def import_sounddevice() -> Any:
             "the Python package sounddevice is not installed (pip install sounddevice)"
         ) from None
     return sounddevice
-
-
-@dataclass(frozen=True)
-class DeviceInfo:
-    """One audio device as PortAudio lists it.
-
-    ``default_fs_hz`` is the device's default sample rate; ``full_duplex`` is True when it has
-    both inputs and outputs (needed: one device, one clock).
-    """
-
-    index: int
-    name: str
-    host_api: str
-    max_input_channels: int
-    max_output_channels: int
-    default_fs_hz: float
-    full_duplex: bool
-
-
-def list_devices() -> list[DeviceInfo]:
-    """All audio devices PortAudio knows (JACK clients appear only if JACK ran at start-up)."""
-    sd = import_sounddevice()
-    apis = sd.query_hostapis()
-    out = []
-    for d in sd.query_devices():
-        n_in, n_out = int(d["max_input_channels"]), int(d["max_output_channels"])
-        out.append(
-            DeviceInfo(
-                index=int(d["index"]),
-                name=str(d["name"]),
-                host_api=str(apis[d["hostapi"]]["name"]),
-                max_input_channels=n_in,
-                max_output_channels=n_out,
-                default_fs_hz=float(d["default_samplerate"]),
-                full_duplex=n_in > 0 and n_out > 0,
-            )
-        )
-    return out
-
-
-def rescan_devices(between: Callable[[], None] | None = None) -> None:
-    """Re-initialize PortAudio so that devices (e.g. a JACK server) started since are listed.
-
-    ``between`` runs while PortAudio is shut down: stop a JACK server there, because PortAudio's
-    JACK host aborts the process (an assertion in its terminate) when the server vanished first.
-    Must not be called while a stream is open (PortAudio closes every stream on terminate).
-    """
-    sd = import_sounddevice()
-    sd._terminate()
-    try:
-        if between is not None:
-            between()
-    finally:
-        sd._initialize()
-
-
-def match_device(devices: list[DeviceInfo], device: int | str | None) -> DeviceInfo:
-    """Pick one device by index, exact name, or a unique case-insensitive part of the name.
-
-    Raises
-    ------
-    DeviceError
-        Unknown index or name (listing close matches), or an ambiguous part of a name.
-    """
-    if not devices:
-        raise DeviceError("no audio devices found (is the interface connected and powered?)")
-    names = [d.name for d in devices]
-    if device is None:
-        duplex = [d for d in devices if d.full_duplex]
-        if not duplex:
-            raise DeviceError(f"no full-duplex audio device among: {', '.join(names)}")
-        return duplex[0]
-    if isinstance(device, int) or (isinstance(device, str) and device.strip().isdigit()):
-        idx = int(device)
-        for d in devices:
-            if d.index == idx:
-                return d
-        raise DeviceError(f"audio device index {idx} does not exist (valid: 0..{len(devices) - 1})")
-    exact = [d for d in devices if d.name == device]
-    if len(exact) == 1:
-        return exact[0]
-    part = [d for d in devices if device.lower() in d.name.lower()]
-    if len(part) == 1:
-        return part[0]
-    if len(part) > 1:
-        raise DeviceError(
-            f"audio device {device!r} is ambiguous: matches {', '.join(d.name for d in part)}"
-        )
-    near = difflib.get_close_matches(device, names, n=3, cutoff=0.4)
-    hint = f"; close matches: {', '.join(near)}" if near else f"; available: {', '.join(names)}"
-    raise DeviceError(f"audio device {device!r} not found{hint}")
-
-
-def device_error(message: str, info: DeviceInfo, fs_hz: float) -> DeviceError:
-    """Turn a PortAudio error text into a one-line :class:`DeviceError` naming the device."""
-    low = message.lower()
-    if "sample rate" in low:
-        return DeviceError(
-            f"audio device {info.name!r} does not support fs_hz = {fs_hz:g} "
-            f"(its default rate is {info.default_fs_hz:g} Hz)"
-        )
-    if "unavailable" in low or "busy" in low:
-        return DeviceError(f"audio device {info.name!r} is busy (another program is using it)")
-    if "channel" in low:
-        return DeviceError(f"audio device {info.name!r} refuses the channel count ({message})")
-    return DeviceError(f"audio device {info.name!r}: {message}")
-
-
-def check_settings(
-    device: int | str | None,
-    fs_hz: float,
-    *,
-    input_channels: int = 1,
-    output_channels: int = 1,
-    devices: list[DeviceInfo] | None = None,
-) -> DeviceInfo:
-    """Check that ``device`` can run full duplex at ``fs_hz`` with the given channel counts.
-
-    Returns the resolved :class:`DeviceInfo`; raises a one-line :class:`DeviceError` naming what
-    is wrong (unknown device with close matches, too few channels, unsupported rate, busy).
-    """
-    infos = list_devices() if devices is None else devices
-    info = match_device(infos, device)
-    if info.max_output_channels < output_channels:
-        raise DeviceError(
-            f"audio device {info.name!r} has {info.max_output_channels} output channel(s), "
-            f"needs {output_channels}"
-        )
-    if info.max_input_channels < input_channels:
-        raise DeviceError(
-            f"audio device {info.name!r} has {info.max_input_channels} input channel(s), "
-            f"needs {input_channels}"
-        )
-    if devices is None:
-        sd = import_sounddevice()
-        try:
-            sd.check_output_settings(
-                device=info.index, channels=output_channels, dtype="float32", samplerate=fs_hz
-            )
-            sd.check_input_settings(
-                device=info.index, channels=input_channels, dtype="float32", samplerate=fs_hz
-            )
-        except sd.PortAudioError as exc:
-            raise device_error(str(exc), info, fs_hz) from None
-    return info
 
 
 class AudioRig:
