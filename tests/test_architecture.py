@@ -30,7 +30,8 @@ PURE = [
     "ramp.py", "spectra.py", "spectral_stats.py", "welch_stream.py", "delay.py", "equalizer.py",
     "safety.py", "schedule.py", "stages.py", "controller.py", "drivestream.py", "runstate.py",
     "checks.py", "textplot.py", "textformat.py", "rigs/plantmodel.py", "rigs/calmath.py",
-    "rigs/modal.py", "rigs/faults.py", "rigs/sim.py", "rigs/feasibility.py",
+    "rigs/modal.py", "rigs/faults.py", "rigs/sim.py", "rigs/feasibility.py", "rigs/ring.py",
+    "rigs/blocks.py",
 ]
 NOT_PURE = {"sounddevice", "rich", "yaml", "argparse", "jack", "matplotlib", "soundfile",
             "liveshape.config", "liveshape.cli", "liveshape.dashboard", "liveshape.session"}

@@ -129,3 +129,11 @@ def test_two_threads_without_locks_deliver_everything_in_order() -> None:
         sys.setswitchinterval(old_interval)
     assert not errors
     np.testing.assert_array_equal(received, source)
+
+
+def test_block_records_are_reexported_from_ring() -> None:
+    # BlockIO, Recording and BufferSource live in rigs.blocks; rigs.ring keeps them importable
+    from liveshape.rigs import blocks, ring
+
+    for name in ("BlockIO", "Recording", "BufferSource"):
+        assert getattr(ring, name) is getattr(blocks, name)

@@ -35,6 +35,7 @@ from typing import Any
 import numpy as np
 
 from liveshape.errors import DeviceError
+from liveshape.rigs.blocks import BlockIO, BufferSource, Recording
 from liveshape.rigs.devices import (  # re-exported: the device names stay importable from here
     DeviceInfo,
     check_settings,
@@ -43,14 +44,7 @@ from liveshape.rigs.devices import (  # re-exported: the device names stay impor
     match_device,
     rescan_devices,
 )
-from liveshape.rigs.ring import (
-    BlockIO,
-    BufferSource,
-    Recording,
-    StreamCore,
-    StreamStats,
-    summarize,
-)
+from liveshape.rigs.ring import StreamCore, StreamStats, summarize
 
 __all__ = [
     "AudioRig",
