@@ -8,16 +8,14 @@ Streams and alignment
     The drive stream is everything :meth:`~Controller.exchange` returned, the response stream
     everything it was given (the first call's zeros included). Both grow by the same count per
     call, so the response sample ``i`` belongs to the drive sample ``i − L`` where the loop
-    delay ``L`` (exchange latency plus the rig's own) is measured by cross-correlation in the
-    ``connect`` stage. A short drive history keeps the samples still needed for alignment.
+    delay ``L`` (exchange latency plus the rig's own) is measured in the ``connect`` stage;
+    :class:`~liveshape.drivestream.ResponseQueue` pairs them.
 
 Stages (``connect → identify → equalize → full_level → ramp_down → done``)
     connect
-        A silent look at the background, then flat band-limited noise at
-        ``safety.connect_level_fs`` rms for 16 Welch segments. The loop delay comes from
-        :func:`liveshape.spectra.estimate_delay`; coherence over the band below
-        ``safety.connect_coherence_min`` stops the run *before any real level*
-        (``connect_check``), a response below ``silent_floor_fs`` too (``response_silent``).
+        A silent look at the background, then flat noise at ``safety.connect_level_fs`` rms:
+        loop delay, coherence and H1 (:mod:`liveshape.connect`). A silent or unresponsive
+        control channel stops the run *before any real level*.
     identify
         The drive fades out, then in again at 6 dB below the first schedule step with the
         spectrum ``target / |H_connect|²``. H1 and coherence (aligned) are estimated with
@@ -29,22 +27,14 @@ Stages (``connect → identify → equalize → full_level → ramp_down → don
         step). Each update estimate is a fresh linear Welch average of
         :func:`~liveshape.stages.update_dof_for` DOF, started only after a drive change has
         fully arrived: one frame for the overlap-add transition, half a frame for the plant to
-        settle, and the loop delay. The update law (``control.law``) acts on it, limited by
-        ``max_step_db`` and the drive ceiling. Decisions (tolerance, level steps, display) use
-        the :class:`~liveshape.stages.DecisionPool` of whole update estimates, with at least
+        settle, and the loop delay (the design: :mod:`liveshape.stages`). The update law
+        (``control.law``) acts on it, limited by ``max_step_db`` and the drive ceiling
+        (:mod:`liveshape.drivestream`). Decisions (tolerance, level steps, display) use the
+        :class:`~liveshape.stages.DecisionPool` of whole update estimates, with at least
         ``target_dof`` DOF. Time at full level counts only at 0 dB with the gain settled.
     ramp_down → done
         At the end a 1 s cosine fade, then zeros. On a safety trip or a stop request the fade
         lasts ``safety.abort_ramp_s``.
-
-Estimation design
-    Update estimates are independent: each starts after the last drive change has arrived and
-    holds one drive only, so consecutive updates are independent χ² estimates (what the
-    persistence of the abort rules relies on). Their DOF ν_u is half the decision DOF: the
-    equalizer's steady-state true error γ/(2−γ)·σ²(ν_u) (DOMAIN.md §4) stays below the display
-    scatter σ²(ν_d), and the first tolerance decision after a drive or level change needs two
-    updates. The direct law removes the mean dB bias of a χ²_ν estimate (≈ −4.343/ν dB), so it
-    settles on the target's mean square. The decision pool restarts at every level change.
 
 Safety
     Every response block is checked for non-finite samples and input overload before anything
@@ -57,42 +47,50 @@ Safety
     drive fades to zero within ``abort_ramp_s`` and the run ends ``aborted`` with the
     :class:`~liveshape.safety.Trip`.
 
-Drive ceiling
-    The drive rms is held at or below ``drive_rms_max_fs`` and, with clipping at
-    ``clip_sigma``·rms, at or below ``drive_peak_max_fs / clip_sigma`` so the clipped peaks stay
-    inside the peak limit; the output is also hard-limited to ``±drive_peak_max_fs``.
+What the loop shows (events, update records, snapshots, the result) is built in
+:mod:`liveshape.loopview`.
 """
 
 from __future__ import annotations
 
 import math
-from collections import deque
 from typing import Any
 
 import numpy as np
 
 from liveshape import equalizer
 from liveshape.chain import ChainCalibration
-from liveshape.drivestream import DriveStream
-from liveshape.errors import ConfigError
-from liveshape.runstate import ControlSnapshot, Event, RunResult, UpdateRecord, frozen_array
+from liveshape.connect import (
+    ConnectStage,
+    connection_data,
+    connection_message,
+    connection_trip,
+    flat_drive_psd,
+    identification_drive,
+)
+from liveshape.drivestream import DriveStream, ResponseQueue
+from liveshape.loopview import (
+    EventLog,
+    control_snapshot,
+    identify_event,
+    judge_update,
+    run_result,
+    update_event,
+    update_record,
+)
+from liveshape.runstate import ControlSnapshot, Event, RunResult, UpdateRecord
 from liveshape.safety import LevelSchedule, Supervisor, Trip, band_sum_dof
-from liveshape.spectra import chi2_interval_db, welch_dof
+from liveshape.spectra import welch_dof
 from liveshape.stages import (
-    CONNECT_SEGMENTS,
-    ConnectRecorder,
     ControlEstimate,
     DecisionPool,
     Judgement,
-    analyse_connection,
-    connection_data,
-    connection_trip,
+    control_lines,
     judge,
     segments_for_dof,
     update_dof_for,
 )
 
-_DB = 10.0 / math.log(10.0)
 #: Fade in of the connection and identification drives, s.
 FADE_IN_S = 0.1
 #: The identification level below the first schedule step, dB.
@@ -130,21 +128,10 @@ class Controller:
         self.frame_length = n = int(c.frame_length)
         self.df_hz = fs / n
         self._hop = n // 2
-        f_all = np.arange(n // 2 + 1) * self.df_hz
-        target = np.asarray(spec.profile.lines(fs, n), dtype=float)
-        band = target > 0
-        band[0] = band[-1] = False
-        if not band.any():
-            raise ConfigError(
-                f"{spec.source or spec.name}: profile {spec.profile.f_min_hz:g}-"
-                f"{spec.profile.f_max_hz:g} Hz has no line at df = {self.df_hz:g} Hz "
-                f"(control.frame_length = {n})"
-            )
-        self._band = band
-        self._target = target  # g²/Hz at full level, all lines
-        self.f_hz = frozen_array(f_all[band])
-        self._alarm_db = frozen_array(spec.tolerance.alarm_db_at(self.f_hz))
-        self._abort_db = frozen_array(spec.tolerance.abort_db_at(self.f_hz))
+        lines = control_lines(spec)
+        self._band = band = lines.band
+        self._target = target = lines.target_psd  # g²/Hz at full level, all lines
+        self.f_hz, self._alarm_db, self._abort_db = lines.f_hz, lines.alarm_db, lines.abort_db
         self._gpf2 = calibration.g_per_fs ** 2
         self._gamma = float(c.update_gain)
         rate = min(float(spec.schedule.rate_db_s), float(s.max_rate_db_s))
@@ -167,20 +154,17 @@ class Controller:
             fade_s=self._abort_ramp_s, history=self._max_lag + 8 * n)
 
         # streams
-        self._n_in = 0  # response samples received
-        self._y_next = 0  # next response sample to process
-        self._ypend: list[np.ndarray] = []
+        self._resp = ResponseQueue()
         self._delay: int | None = None
         # state
         self._stage = "connect"
         self._status = "running"
         self._trip: Trip | None = None
         self._stop_reason: str | None = None
-        self._events: list[Event] = []
-        self._log: list[Event] = []
-        self._recent: deque[Event] = deque(maxlen=12)
-        self._conn: ConnectRecorder | None = ConnectRecorder(
-            self._bg_len, self._fade_in + (CONNECT_SEGMENTS + 1) * self._hop + self._max_lag)
+        self._log = EventLog()
+        self._conn: ConnectStage | None = ConnectStage(
+            fs_hz=fs, nperseg=n, band=band, background_len=self._bg_len, max_lag=self._max_lag,
+            skip=self._fade_in)
         self._connection = None
         self._h1 = np.full(target.size, np.nan + 0j)  # g/FS
         self._coh = np.zeros(target.size)
@@ -206,7 +190,7 @@ class Controller:
     @property
     def t_s(self) -> float:
         """Run time, s: response samples received / fs."""
-        return self._n_in / self.fs_hz
+        return self._resp.n_in / self.fs_hz
 
     @property
     def stage(self) -> str:
@@ -252,13 +236,12 @@ class Controller:
 
     def drain_events(self) -> list[Event]:
         """Events since the last call, oldest first."""
-        out, self._events = self._events, []
-        return out
+        return self._log.drain()
 
     @property
     def events(self) -> tuple[Event, ...]:
         """Every event of the run so far, oldest first."""
-        return tuple(self._log)
+        return self._log.all
 
     # ------------------------------------------------------------------ control from the shell
     def request_stop(self, reason: str = "stop requested") -> None:
@@ -294,32 +277,24 @@ class Controller:
         """
         y = np.array(response_fs, dtype=float).reshape(-1)
         n = y.size
-        t0 = self._n_in / self.fs_hz
+        t0 = self.t_s
         if self._stage != "done" and self._status != "aborted":
             trip = self.supervisor.check_block(t0, y, drive_up=None)
             if trip is not None:
                 self._abort(trip)
         if self._trip is not None and self._trip.rule == "non_finite":
             y[~np.isfinite(y)] = 0.0  # keep the estimators finite while ramping down
-        self._ypend.append(y)
-        self._n_in += n
+        self._resp.push(y)
         self._process()
         return self._make_drive(n)
 
     # ------------------------------------------------------------------ processing
     def _process(self) -> None:
         lag = self._delay if self._delay is not None else 0
-        end = min(self._n_in, self._out.n_out + lag)
-        if end <= self._y_next:
+        got = self._resp.take(self._out, lag, self._max_lag if self._delay is None else lag)
+        if got is None:
             return
-        ys = np.concatenate(self._ypend) if len(self._ypend) > 1 else self._ypend[0]
-        k = end - self._y_next
-        y, rest = ys[:k], ys[k:]
-        self._ypend = [rest] if rest.size else []
-        i0 = self._y_next
-        x = self._out.history.get(i0 - lag, end - lag)
-        self._y_next = end
-        self._out.history.forget_before(end - (self._max_lag if self._delay is None else lag))
+        x, y, i0 = got
         if self._status != "running":
             return  # ramping down: nothing more to learn from the response
         if self._stage == "connect":
@@ -346,34 +321,26 @@ class Controller:
 
     # ------------------------------------------------------------------ connect
     def _connect(self, x: np.ndarray, y: np.ndarray, i0: int) -> None:
-        rec = self._conn
-        rec.feed(x, y, i0)
-        if self._connection is not None or not rec.complete:
+        chk = self._conn.feed(x, y, i0)
+        if chk is None:
             return
-        xr, yr, bg = rec.records()
-        chk = analyse_connection(xr, yr, bg, fs_hz=self.fs_hz, nperseg=self.frame_length,
-                                 band=self._band, max_lag=self._max_lag, skip=self._fade_in)
-        self._connection = chk
-        self._conn = None
-        s = self.spec.safety
-        data = {**connection_data(chk),
-                "calibration_delay_samples": self.calibration.loop_delay_samples}
-        self._emit("connect", f"connect: loop delay {chk.delay_samples} samples, mean coherence "
-                   f"{chk.mean_coherence:.2f}, SNR {chk.snr_db:.1f} dB", data)
+        self._connection, self._conn = chk, None
+        s, c = self.spec.safety, self.spec.control
+        self._emit("connect", connection_message(chk), {
+            **connection_data(chk),
+            "calibration_delay_samples": self.calibration.loop_delay_samples})
         trip = connection_trip(chk, s, self.t_s)
         if trip is not None:
             self._abort(trip)
             return
         self._delay = chk.delay_samples
         # identification drive: the target shape through the connection FRF, 6 dB below step 1
-        c = self.spec.control
-        h = chk.h1 * self.calibration.g_per_fs
-        self._h1 = np.where(np.isfinite(h), h, 0.0)  # until the identification replaces it
         g_id = 10.0 ** ((self.schedule.steps_db[0] - IDENTIFY_BELOW_DB) / 20.0)
-        res = equalizer.initial_drive(self._target, h, chk.coherence, max_boost_db=c.max_boost_db,
-                                      coherence_min=s.connect_coherence_min, band=self._band,
-                                      ceiling_ms_fs2=self._out.ceiling_ms(g_id), df_hz=self.df_hz)
-        self._switch_to = (np.array(res.drive_psd), g_id)
+        self._h1, psd = identification_drive(
+            chk, self._target, g_per_fs=self.calibration.g_per_fs, max_boost_db=c.max_boost_db,
+            coherence_min=s.connect_coherence_min, band=self._band,
+            ceiling_ms_fs2=self._out.ceiling_ms(g_id), df_hz=self.df_hz)
+        self._switch_to = (psd, g_id)
         self._set_stage("identify", f"identify: H1 at {20 * math.log10(g_id):.1f} dB")
         self._out.fade(0.0, FADE_IN_S)
 
@@ -419,14 +386,9 @@ class Controller:
                                       band=self._band, ceiling_ms_fs2=self._out.ceiling_ms(g1),
                                       df_hz=self.df_hz)
         self._out.set_psd(res.drive_psd, ceiling_hit=res.ceiling_hit)
-        coh_b = self._coh[self._band]
-        self._emit("identify", f"identified: mean coherence {float(np.mean(coh_b)):.3f}, "
-                   f"{int(np.count_nonzero(self._frozen))} lines frozen, "
-                   f"{res.n_step_limited} boost-limited",
-                   {"mean_coherence": float(np.mean(coh_b)), "min_coherence": float(coh_b.min()),
-                    "lines_frozen": int(np.count_nonzero(self._frozen)),
-                    "lines_boost_limited": res.n_step_limited, "dof": welch_dof(self._k_identify),
-                    "ceiling_scale": res.ceiling_scale})
+        self._emit("identify", *identify_event(self._coh[self._band],
+                                               int(np.count_nonzero(self._frozen)), res,
+                                               welch_dof(self._k_identify)))
         if c.law == "direct":
             self._est = ControlEstimate(self.fs_hz, self.frame_length, self._band, self._gpf2,
                                         cross=False)
@@ -491,28 +453,15 @@ class Controller:
 
     def _record_update(self, t, ctrl, target_b, played, res, rms_err, in_tol, *,
                        applied: bool) -> None:
-        with np.errstate(divide="ignore"):
-            dev = _DB * np.log(np.maximum(ctrl, 1e-300) / target_b)
-        rec = UpdateRecord(
+        b = self._band
+        rec = update_record(
             index=self._updates, t_s=t, stage=self._stage, level_db=self.schedule.level_db,
-            dof=self._nu_update, f_hz=self.f_hz, control_psd=frozen_array(ctrl),
-            target_psd=frozen_array(target_b), drive_psd=frozen_array(played),
-            new_drive_psd=frozen_array(self._out.psd[self._band]),
-            h1=frozen_array(self._h1[self._band], complex),
-            coherence=frozen_array(self._coh[self._band]), rms_error_db=float(rms_err),
-            max_dev_db=float(dev.max()), min_dev_db=float(dev.min()), applied=applied,
-            lines_step_limited=0 if res is None else res.n_step_limited,
-            lines_held=0 if res is None else res.n_held,
-            ceiling_scale=1.0 if res is None else res.ceiling_scale)
+            dof=self._nu_update, f_hz=self.f_hz, control_psd=ctrl, target_psd=target_b,
+            drive_psd=played, new_drive_psd=self._out.psd[b], h1=self._h1[b],
+            coherence=self._coh[b], rms_error_db=rms_err, drive_update=res, applied=applied)
         self._last_update = rec
-        self._emit("update", f"update {rec.index}: rms {rec.rms_error_db:+.2f} dB, lines "
-                   f"{rec.min_dev_db:+.1f}..{rec.max_dev_db:+.1f} dB",
-                   {"update": rec.index, "rms_error_db": rec.rms_error_db,
-                    "max_dev_db": rec.max_dev_db, "min_dev_db": rec.min_dev_db,
-                    "dof": rec.dof, "applied": rec.applied, "level_db": rec.level_db,
-                    "lines_step_limited": rec.lines_step_limited,
-                    "ceiling_scale": rec.ceiling_scale, "in_tolerance": in_tol,
-                    "drive_rms_fs": math.sqrt(float(played.sum()) * self.df_hz)})
+        self._emit("update", *update_event(
+            rec, in_tolerance=in_tol, drive_rms_fs=math.sqrt(float(played.sum()) * self.df_hz)))
 
     def _decide(self, t: float) -> bool | None:
         """Tolerance decision on the pool; steps the level when due. None: not enough DOF."""
@@ -548,12 +497,9 @@ class Controller:
     def _make_drive(self, n: int) -> np.ndarray:
         out_ = self._out
         conn = self._conn
-        if (conn is not None and conn.start is None and out_.n_out >= self._bg_len
-                and self._status == "running"):
+        if conn is not None and conn.drive_due(out_.n_out) and self._status == "running":
             level = self.spec.safety.connect_level_fs
-            flat = np.where(self._band, level**2 / (np.count_nonzero(self._band) * self.df_hz),
-                            0.0)
-            out_.set_psd(flat)
+            out_.set_psd(flat_drive_psd(self._band, level, self.df_hz))
             out_.fade(1.0, FADE_IN_S)
             conn.start_drive(out_.n_out)
             self._emit("stage", f"connect: flat noise at {level:g} FS rms",
@@ -615,73 +561,30 @@ class Controller:
         self._emit("stage", message, {"stage": stage})
 
     def _emit(self, kind: str, message: str, data: dict[str, Any]) -> None:
-        ev = Event(self.t_s, kind, message, dict(data))
-        self._events.append(ev)
-        self._log.append(ev)
-        self._recent.append(ev)
+        self._log.add(self.t_s, kind, message, data)
 
     def _judgement(self) -> Judgement | None:
         """The decision at the current level, else the latest update estimate judged alike."""
         if self._decision is not None or self._last_update is None:
             return self._decision
-        u = self._last_update
-        return judge(u.control_psd, u.target_psd, alarm_db=self._alarm_db,
-                     abort_db=self._abort_db, rms_alarm_db=self.spec.tolerance.rms_alarm_db,
-                     dof=u.dof, df_hz=self.df_hz)
+        return judge_update(self._last_update, alarm_db=self._alarm_db, abort_db=self._abort_db,
+                            rms_alarm_db=self.spec.tolerance.rms_alarm_db, df_hz=self.df_hz)
 
     def snapshot(self) -> ControlSnapshot:
         """A frozen view of the loop now."""
-        band = self._band
-        g = self._out.gain
-        lvl_gain = self._est_gain if self._stage in ("equalize", "full_level") else g
-        target_b = self._target[band] * lvl_gain ** 2
-        d = self._judgement()
-        ctrl = None if d is None else d.control_psd
-        dof = 0.0 if d is None else d.dof
-        if d is not None:
-            target_b = d.target_psd
-        lo, hi = chi2_interval_db(dof) if dof > 0 else (math.nan, math.nan)
-        drive_b = self._out.played_psd(band)
-        return ControlSnapshot(
-            t_s=self.t_s, stage=self._stage, status=self._status,
-            level_db=self.schedule.level_db,
-            gain_db=20 * math.log10(g) if g > 0 else -math.inf,
-            step_index=self.schedule.index, n_steps=len(self.schedule.steps_db),
-            elapsed_s=self.t_s, remaining_s=self.schedule.remaining_s,
-            time_at_full_level_s=self.schedule.time_at_full_level_s,
-            full_level_s=self.schedule.full_level_s,
-            control_grms_g=math.nan if d is None else d.control_grms_g,
-            target_grms_g=math.sqrt(float(np.sum(target_b)) * self.df_hz),
-            drive_rms_fs=math.sqrt(float(np.sum(drive_b)) * self.df_hz),
-            drive_rms_limit_fs=self._out.rms_limit_fs, drive_peak_fs=self._out.peak_fs,
-            drive_peak_limit_fs=self._out.peak_limit_fs, f_hz=self.f_hz,
-            control_psd=None if ctrl is None else frozen_array(ctrl),
-            target_psd=frozen_array(target_b), drive_psd=frozen_array(drive_b),
-            alarm_db=self._alarm_db, abort_db=self._abort_db,
-            max_dev_db=math.nan if d is None else d.max_dev_db,
-            min_dev_db=math.nan if d is None else d.min_dev_db,
-            lines_outside_alarm=-1 if d is None else d.lines_outside_alarm,
-            lines_outside_abort=-1 if d is None else d.lines_outside_abort,
-            rms_error_db=math.nan if d is None else d.rms_error_db,
-            dof=float(dof), chi2_lo_db=float(lo), chi2_hi_db=float(hi), updates=self._updates,
-            loop_delay_samples=self._delay, trip=self._trip, recent_events=tuple(self._recent))
+        level_gain = self._est_gain if self._stage in ("equalize", "full_level") else self._out.gain
+        return control_snapshot(
+            t_s=self.t_s, stage=self._stage, status=self._status, schedule=self.schedule,
+            judgement=self._judgement(), target_psd=self._target[self._band] * level_gain ** 2,
+            drive=self._out, band=self._band, f_hz=self.f_hz, alarm_db=self._alarm_db,
+            abort_db=self._abort_db, df_hz=self.df_hz, updates=self._updates,
+            loop_delay_samples=self._delay, trip=self._trip, recent_events=tuple(self._log.recent))
 
     def result(self) -> RunResult:
         """Outcome so far (final once :attr:`finished`)."""
-        d = self._judgement()
-        reason = self._trip.message if self._trip is not None else self._stop_reason
-        nan = math.nan
-        return RunResult(
-            status=self._status, abort_reason=reason, trip=self._trip,
-            updates_to_tolerance=self._updates_to_tol,
-            final_rms_error_db=nan if d is None else d.rms_error_db,
-            final_max_dev_db=nan if d is None else float(np.max(np.abs(d.dev_db))),
-            final_lines_outside_alarm=-1 if d is None else d.lines_outside_alarm,
-            final_lines_outside_abort=-1 if d is None else d.lines_outside_abort,
-            control_grms_g=nan if d is None else d.control_grms_g,
-            target_grms_g=nan if d is None else d.target_grms_g,
-            dof=0.0 if d is None else d.dof,
-            time_at_full_level_s=self.schedule.time_at_full_level_s, updates=self._updates)
+        return run_result(status=self._status, trip=self._trip, stop_reason=self._stop_reason,
+                          judgement=self._judgement(), updates_to_tolerance=self._updates_to_tol,
+                          schedule=self.schedule, updates=self._updates)
 
 
 def run_offline(controller: Controller, rig: Any, block_size: int, *,

@@ -12,7 +12,7 @@ loop needs on the drive side:
 * a hard limit at ``±drive_peak_max_fs`` on every sample, counted (the ceiling should keep it
   from acting);
 * the recent samples by stream index (:class:`liveshape.stages.DriveHistory`) for the delay
-  alignment of the response.
+  alignment of the response, which :class:`ResponseQueue` pairs with the drive it answers.
 """
 
 from __future__ import annotations
@@ -143,3 +143,42 @@ class DriveStream:
         """Record samples sent without the synthesizer (zeros after the end)."""
         self.history.append(out)
         self.n_out += out.size
+
+
+class ResponseQueue:
+    """Response samples waiting for the drive samples they answer.
+
+    The response stream is everything the rig returned; sample ``i`` answers drive sample
+    ``i − lag``. :meth:`take` hands out the samples whose drive has been produced, paired with
+    that drive (zeros before the stream), and lets the drive history forget what is no longer
+    needed.
+    """
+
+    def __init__(self) -> None:
+        self.n_in = 0  # response samples received
+        self.next = 0  # next response sample to hand out
+        self._pending: list[np.ndarray] = []
+
+    def push(self, y: np.ndarray) -> None:
+        self._pending.append(y)
+        self.n_in += y.size
+
+    def take(self, drive: DriveStream, lag: int,
+             keep: int) -> tuple[np.ndarray, np.ndarray, int] | None:
+        """``(x, y, i0)``: the drive and the response from response index ``i0``, or None.
+
+        ``keep`` drive samples before the last one handed out stay in the history (the largest
+        lag still searched).
+        """
+        end = min(self.n_in, drive.n_out + lag)
+        if end <= self.next:
+            return None
+        ys = np.concatenate(self._pending) if len(self._pending) > 1 else self._pending[0]
+        k = end - self.next
+        y, rest = ys[:k], ys[k:]
+        self._pending = [rest] if rest.size else []
+        i0 = self.next
+        x = drive.history.get(i0 - lag, end - lag)
+        self.next = end
+        drive.history.forget_before(end - keep)
+        return x, y, i0

@@ -1,19 +1,27 @@
-"""Pure pieces of the control loop's stages: the connection check and the decision estimate.
+"""Pure pieces of the control loop's estimation: update estimates and the decision estimate.
 
-Pure numpy/scipy, no state beyond the small :class:`DecisionPool`. The controller
-(:mod:`liveshape.controller`) strings these together.
+Pure numpy/scipy, no state beyond the small estimators. The controller
+(:mod:`liveshape.controller`) strings these together; the connection stage's pieces are in
+:mod:`liveshape.connect` (re-exported here).
 
-* :func:`analyse_connection` looks at the very-low-level connection record: loop delay by
-  cross-correlation, then coherence and H1 on the delay-aligned record, and whether the control
-  channel responds at all.
+* :func:`control_lines` finds the lines under control, their target and their limits.
 * :func:`segments_for_dof` turns a DOF requirement into a number of Welch segments (Welch 1967
-  equivalent DOF of Hann segments at 50 % overlap, :func:`liveshape.spectra.welch_dof`).
-* :func:`judge` holds a control estimate against the target and the tolerance;
-  :class:`ConnectRecorder` collects the connection records.
+  equivalent DOF of Hann segments at 50 % overlap, :func:`liveshape.spectra.welch_dof`);
+  :func:`update_dof_for` gives the DOF of one update estimate.
 * :class:`ControlEstimate` is one fresh update estimate of the control spectrum.
-* :class:`DriveHistory` keeps the recent drive samples for the delay alignment.
 * :class:`DecisionPool` combines whole, independent update estimates into the estimate used for
-  decisions (tolerance, display) with at least the target DOF.
+  decisions (tolerance, display) with at least the target DOF; :func:`judge` holds an estimate
+  against the target and the tolerance.
+* :class:`DriveHistory` keeps the recent drive samples for the delay alignment.
+
+Estimation design
+    Update estimates are independent: each starts after the last drive change has arrived and
+    holds one drive only, so consecutive updates are independent χ² estimates (what the
+    persistence of the abort rules relies on). Their DOF ν_u is half the decision DOF: the
+    equalizer's steady-state true error γ/(2−γ)·σ²(ν_u) (DOMAIN.md §4) stays below the display
+    scatter σ²(ν_d), and the first tolerance decision after a drive or level change needs two
+    updates. The direct law removes the mean dB bias of a χ²_ν estimate (≈ −4.343/ν dB), so it
+    settles on the target's mean square. The decision pool restarts at every level change.
 """
 
 from __future__ import annotations
@@ -25,11 +33,60 @@ from typing import Any
 
 import numpy as np
 
-from liveshape.safety import Trip
-from liveshape.spectra import CrossSpectrum, PsdAverager, estimate_delay, welch_dof
+from liveshape.connect import (  # noqa: F401 - re-exported: the connection stage's pieces
+    CONNECT_SEGMENTS,
+    ConnectionCheck,
+    ConnectRecorder,
+    analyse_connection,
+    connection_data,
+    connection_trip,
+)
+from liveshape.errors import ConfigError
+from liveshape.runstate import frozen_array
+from liveshape.spectra import CrossSpectrum, PsdAverager, welch_dof
 
-#: Welch segments of the connection check (coherence bias for no response ≈ 1/16).
-CONNECT_SEGMENTS = 16
+
+@dataclass(frozen=True)
+class ControlLines:
+    """The spectral lines of a test: which are under control, the target and the limits.
+
+    ``band`` (bool) and ``target_psd`` (g²/Hz at full level) are on all lines
+    ``k fs / frame_length``; ``f_hz``, ``alarm_db`` and ``abort_db`` on the band lines only
+    (read-only arrays).
+    """
+
+    band: np.ndarray
+    target_psd: np.ndarray
+    f_hz: np.ndarray
+    alarm_db: np.ndarray
+    abort_db: np.ndarray
+
+
+def control_lines(spec: Any) -> ControlLines:
+    """The lines under control of ``spec`` (a :class:`~liveshape.spec.TestSpec`).
+
+    A line is under control where the profile's ASD is above zero, except 0 Hz and Nyquist.
+
+    Raises
+    ------
+    ConfigError
+        The profile's band holds no line at the control settings' resolution.
+    """
+    fs, n = float(spec.control.fs_hz), int(spec.control.frame_length)
+    df = fs / n
+    target = np.asarray(spec.profile.lines(fs, n), dtype=float)
+    band = target > 0
+    band[0] = band[-1] = False
+    if not band.any():
+        raise ConfigError(
+            f"{spec.source or spec.name}: profile {spec.profile.f_min_hz:g}-"
+            f"{spec.profile.f_max_hz:g} Hz has no line at df = {df:g} Hz "
+            f"(control.frame_length = {n})"
+        )
+    f_hz = frozen_array((np.arange(n // 2 + 1) * df)[band])
+    return ControlLines(band=band, target_psd=target, f_hz=f_hz,
+                        alarm_db=frozen_array(spec.tolerance.alarm_db_at(f_hz)),
+                        abort_db=frozen_array(spec.tolerance.abort_db_at(f_hz)))
 
 
 def segments_for_dof(dof: float) -> int:
@@ -49,127 +106,6 @@ def update_dof_for(target_dof: float) -> float:
     scatter σ²(ν_d) of the decision estimate.
     """
     return max(16.0, 0.5 * float(target_dof))
-
-
-@dataclass(frozen=True)
-class ConnectionCheck:
-    """Result of the connection look (all FS units, band lines only where arrays).
-
-    Attributes
-    ----------
-    delay_samples : int
-        Loop delay from the drive stream to the response stream, samples.
-    delay_peak : float
-        Normalized cross-correlation at the delay (−1..1).
-    h1 : ndarray
-        H1 (FS/FS) on all lines, delay-aligned.
-    coherence : ndarray
-        Coherence on all lines.
-    mean_coherence : float
-        Mean coherence over the band lines.
-    response_rms_fs : float
-        Response rms during the connection drive, FS.
-    background_rms_fs : float
-        Response rms while silent, FS.
-    snr_db : float
-        Band power of the response with drive over the band power while silent, dB.
-    """
-
-    delay_samples: int
-    delay_peak: float
-    h1: np.ndarray
-    coherence: np.ndarray
-    mean_coherence: float
-    response_rms_fs: float
-    background_rms_fs: float
-    snr_db: float
-
-
-def connection_data(chk: ConnectionCheck) -> dict[str, float]:
-    """The connection check's numbers for events and trips (units in the keys)."""
-    return {"loop_delay_samples": chk.delay_samples, "delay_peak": chk.delay_peak,
-            "mean_coherence": chk.mean_coherence, "response_rms_fs": chk.response_rms_fs,
-            "background_rms_fs": chk.background_rms_fs, "snr_db": chk.snr_db}
-
-
-def connection_trip(chk: ConnectionCheck, safety: Any, t_s: float) -> Trip | None:
-    """``response_silent`` or ``connect_check`` when the control channel fails the check.
-
-    Silent: response rms below ``safety.silent_floor_fs``. No response: mean coherence over the
-    band below ``safety.connect_coherence_min``.
-    """
-    data = connection_data(chk)
-    floor = float(safety.silent_floor_fs)
-    if chk.response_rms_fs < floor:
-        return Trip("response_silent",
-                    f"control channel silent during the connection check: rms "
-                    f"{chk.response_rms_fs:.2e} FS < {floor:.2e} FS", t_s, data)
-    cmin = float(safety.connect_coherence_min)
-    if chk.mean_coherence < cmin:
-        return Trip("connect_check",
-                    f"control channel does not respond to the drive: mean coherence "
-                    f"{chk.mean_coherence:.2f} < {cmin:g}", t_s, data)
-    return None
-
-
-def analyse_connection(
-    x: np.ndarray,
-    y: np.ndarray,
-    background: np.ndarray,
-    *,
-    fs_hz: float,
-    nperseg: int,
-    band: np.ndarray,
-    max_lag: int,
-    skip: int,
-) -> ConnectionCheck:
-    """Delay, coherence and H1 of the connection record.
-
-    Parameters
-    ----------
-    x, y : ndarray
-        Drive and response streams over the same sample indices (response not yet aligned).
-    background : ndarray
-        Response while the drive was silent.
-    fs_hz, nperseg : float, int
-        Sample rate and segment length.
-    band : ndarray of bool
-        Lines under control.
-    max_lag : int
-        Largest delay searched, samples.
-    skip : int
-        Samples at the start of the aligned record to leave out (the fade-in).
-    """
-    x = np.asarray(x, dtype=float)
-    y = np.asarray(y, dtype=float)
-    est = estimate_delay(x, y, max_lag=max_lag)
-    d = est.samples
-    xa, ya = x[: x.size - d], y[d:]
-    xa, ya = xa[skip:], ya[skip:]
-    cs = CrossSpectrum(fs_hz, nperseg, averaging="linear")
-    cs.push(xa, ya)
-    coh = cs.coherence
-    cb = coh[band]
-    mean_coh = float(np.mean(np.where(np.isfinite(cb), cb, 0.0)))
-    bg = PsdAverager(fs_hz, nperseg, averaging="linear")
-    bg.push(np.asarray(background, dtype=float))
-    p_sig = float(np.sum(cs.gyy[band]))
-    p_bg = float(np.sum(bg.psd[band])) if bg.n_segments else 0.0
-    if p_sig > 0 and p_bg > 0:
-        snr_db = 10.0 * math.log10(p_sig / p_bg)
-    else:
-        snr_db = math.inf if p_sig > 0 else -math.inf
-    return ConnectionCheck(
-        delay_samples=int(d),
-        delay_peak=float(est.peak),
-        h1=cs.h1,
-        coherence=coh,
-        mean_coherence=mean_coh,
-        response_rms_fs=float(np.sqrt(np.mean(ya * ya))) if ya.size else 0.0,
-        background_rms_fs=float(np.sqrt(np.mean(np.square(background)))) if len(background)
-        else 0.0,
-        snr_db=snr_db,
-    )
 
 
 @dataclass(frozen=True)
@@ -216,47 +152,6 @@ def judge(control_psd: np.ndarray, target_psd: np.ndarray, *, alarm_db: np.ndarr
         lines_outside_alarm=n_alarm, lines_outside_abort=n_abort,
         in_tolerance=n_alarm == 0 and abs(rms_err) <= rms_alarm_db,
         control_grms_g=math.sqrt(c * df_hz), target_grms_g=math.sqrt(r * df_hz), dof=float(dof))
-
-
-class ConnectRecorder:
-    """Collects the connection stage's records: the silent background, then the drive record.
-
-    :meth:`feed` takes pairs of (unaligned) drive and response samples by stream index;
-    :meth:`start_drive` marks the stream index where the connection drive starts.
-    :attr:`complete` turns True once ``record_len`` samples from there are in.
-    """
-
-    def __init__(self, background_len: int, record_len: int) -> None:
-        self.background_len = int(background_len)
-        self.record_len = int(record_len)
-        self.start: int | None = None
-        self._bg: list[np.ndarray] = []
-        self._x: list[np.ndarray] = []
-        self._y: list[np.ndarray] = []
-        self._have = 0
-
-    def start_drive(self, index: int) -> None:
-        self.start = int(index)
-
-    @property
-    def complete(self) -> bool:
-        return self.start is not None and self._have >= self.record_len
-
-    def feed(self, x: np.ndarray, y: np.ndarray, i0: int) -> None:
-        self._bg.append(y[: max(0, self.background_len - i0)])
-        if self.start is None or self.complete:
-            return
-        a = max(i0, self.start)
-        if a < i0 + y.size:
-            self._x.append(x[a - i0:])
-            self._y.append(y[a - i0:])
-            self._have += i0 + y.size - a
-
-    def records(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """``(x, y, background)``: the drive record, its response, the silent response."""
-        n = self.record_len
-        bg = np.concatenate(self._bg) if self._bg else np.zeros(0)
-        return np.concatenate(self._x)[:n], np.concatenate(self._y)[:n], bg
 
 
 class ControlEstimate:

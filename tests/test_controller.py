@@ -532,3 +532,12 @@ def test_drive_only_goes_down_while_a_rule_is_pending():
         assert not rec.applied
         assert np.all(rec.new_drive_psd <= before * (1 + 1e-12))
         assert np.any(rec.new_drive_psd < before * 10 ** -0.1)  # some lines did come down
+
+
+def test_moved_names_are_reexported():
+    # the connection stage's pieces live in connect; stages keeps them importable
+    from liveshape import connect, stages
+
+    for name in ("CONNECT_SEGMENTS", "ConnectionCheck", "ConnectRecorder", "analyse_connection",
+                 "connection_data", "connection_trip"):
+        assert getattr(stages, name) is getattr(connect, name)
