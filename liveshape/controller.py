@@ -47,8 +47,9 @@ Safety
     drive fades to zero within ``abort_ramp_s`` and the run ends ``aborted`` with the
     :class:`~liveshape.safety.Trip`.
 
-What the loop shows (events, update records, snapshots, the result) is built in
-:mod:`liveshape.loopview`.
+This module holds the transitions. The loop's settings and variables and everything that only
+reads them (the properties, events, :meth:`~Controller.snapshot`, :meth:`~Controller.result`)
+are in :class:`liveshape.loopstate.LoopState`, the base of :class:`Controller`.
 """
 
 from __future__ import annotations
@@ -59,45 +60,23 @@ from typing import Any
 import numpy as np
 
 from liveshape import equalizer
-from liveshape.chain import ChainCalibration
 from liveshape.connect import (
-    ConnectStage,
     connection_data,
     connection_message,
     connection_trip,
     flat_drive_psd,
     identification_drive,
 )
-from liveshape.drivestream import DriveStream, ResponseQueue
-from liveshape.loopview import (
-    EventLog,
-    control_snapshot,
-    identify_event,
-    judge_update,
-    run_result,
-    update_event,
-    update_record,
-)
-from liveshape.runstate import ControlSnapshot, Event, RunResult, UpdateRecord
-from liveshape.safety import LevelSchedule, Supervisor, Trip, band_sum_dof
+from liveshape.loopstate import FADE_IN_S, IDENTIFY_BELOW_DB, LoopState
+from liveshape.runstate import RunResult
+from liveshape.safety import Trip
 from liveshape.spectra import welch_dof
-from liveshape.stages import (
-    ControlEstimate,
-    DecisionPool,
-    Judgement,
-    control_lines,
-    judge,
-    segments_for_dof,
-    update_dof_for,
-)
+from liveshape.stages import ControlEstimate, judge
 
-#: Fade in of the connection and identification drives, s.
-FADE_IN_S = 0.1
-#: The identification level below the first schedule step, dB.
-IDENTIFY_BELOW_DB = 6.0
+__all__ = ["FADE_IN_S", "IDENTIFY_BELOW_DB", "Controller", "run_offline"]
 
 
-class Controller:
+class Controller(LoopState):
     """Closed-loop random-vibration controller, one block at a time.
 
     Parameters
@@ -117,131 +96,6 @@ class Controller:
     max_delay_s : float
         Largest loop delay searched, s.
     """
-
-    def __init__(self, spec: Any, calibration: ChainCalibration, *, seed: int | None = None,
-                 update_dof: float | None = None, end_ramp_s: float = 1.0,
-                 background_s: float = 0.5, max_delay_s: float = 0.5) -> None:
-        c, s = spec.control, spec.safety
-        self.spec = spec
-        self.calibration = calibration
-        self.fs_hz = fs = float(c.fs_hz)
-        self.frame_length = n = int(c.frame_length)
-        self.df_hz = fs / n
-        self._hop = n // 2
-        lines = control_lines(spec)
-        self._band = band = lines.band
-        self._target = target = lines.target_psd  # g²/Hz at full level, all lines
-        self.f_hz, self._alarm_db, self._abort_db = lines.f_hz, lines.alarm_db, lines.abort_db
-        self._gpf2 = calibration.g_per_fs ** 2
-        self._gamma = float(c.update_gain)
-        rate = min(float(spec.schedule.rate_db_s), float(s.max_rate_db_s))
-        self._abort_ramp_s = float(s.abort_ramp_s)
-        self._end_ramp_s = float(end_ramp_s)
-        self.schedule = LevelSchedule(spec.schedule)
-        self.supervisor = Supervisor(s, spec.tolerance, fs_hz=fs, silent_window=self._hop)
-        self._update_dof_target = float(update_dof or update_dof_for(c.target_dof))
-        self._k_update = segments_for_dof(self._update_dof_target)
-        self._k_identify = segments_for_dof(float(c.target_dof))
-        self._nu_update = welch_dof(self._k_update)
-        self._pool = DecisionPool(float(c.target_dof), self._nu_update, c.averaging)
-        self._settle = self._hop  # plant settling after a drive change, samples
-        self._max_lag = max(1, int(round(max_delay_s * fs)))
-        self._bg_len = max(int(round(background_s * fs)), 2 * n)
-        self._fade_in = max(1, int(math.ceil(FADE_IN_S * fs)))
-        self._out = DriveStream(
-            fs, n, seed=spec.seed if seed is None else seed, clip_sigma=s.clip_sigma,
-            rms_max_fs=s.drive_rms_max_fs, peak_max_fs=s.drive_peak_max_fs, rate_db_s=rate,
-            fade_s=self._abort_ramp_s, history=self._max_lag + 8 * n)
-
-        # streams
-        self._resp = ResponseQueue()
-        self._delay: int | None = None
-        # state
-        self._stage = "connect"
-        self._status = "running"
-        self._trip: Trip | None = None
-        self._stop_reason: str | None = None
-        self._log = EventLog()
-        self._conn: ConnectStage | None = ConnectStage(
-            fs_hz=fs, nperseg=n, band=band, background_len=self._bg_len, max_lag=self._max_lag,
-            skip=self._fade_in)
-        self._connection = None
-        self._h1 = np.full(target.size, np.nan + 0j)  # g/FS
-        self._coh = np.zeros(target.size)
-        self._frozen = np.zeros(target.size, dtype=bool)
-        # identification (and the blend law) need the cross spectrum; the direct law only the
-        # control's autospectrum, at half the FFT work
-        self._est = ControlEstimate(fs, n, band, self._gpf2, cross=True)
-        self._est_gain = 0.0  # gain the estimate's data was played at
-        self._target_sum = float(target[band].sum())
-        self._predicted_sum = 0.0
-        self._live_from = math.inf  # response index from which silence is a fault
-        self._seg_band_dof = band_sum_dof(target[band], 2.0)  # one periodogram: 2 DOF a line
-        self._switch_to: tuple[np.ndarray, float] | None = None
-        self._tail_left: int | None = None
-        self._updates = 0
-        self._updates_to_tol: int | None = None
-        self._last_update: UpdateRecord | None = None
-        self._decision: Judgement | None = None
-        self._alarm_on = False
-        self._emit("stage", "connect: looking at the background noise", {"stage": "connect"})
-
-    # ------------------------------------------------------------------ public properties
-    @property
-    def t_s(self) -> float:
-        """Run time, s: response samples received / fs."""
-        return self._resp.n_in / self.fs_hz
-
-    @property
-    def stage(self) -> str:
-        return self._stage
-
-    @property
-    def status(self) -> str:
-        """``running``, then ``completed``, ``aborted`` or ``stopped``."""
-        return self._status
-
-    @property
-    def finished(self) -> bool:
-        return self._stage == "done"
-
-    @property
-    def trip(self) -> Trip | None:
-        return self._trip
-
-    @property
-    def loop_delay_samples(self) -> int | None:
-        return self._delay
-
-    @property
-    def last_update(self) -> UpdateRecord | None:
-        return self._last_update
-
-    @property
-    def connection(self):
-        """The :class:`~liveshape.stages.ConnectionCheck`, once made."""
-        return self._connection
-
-    @property
-    def update_interval_s(self) -> float:
-        """Run time between two equalizer updates, s: the drive change's transition (one
-        frame), plant settling (half a frame) and loop delay, then the update's segments."""
-        n = self.frame_length + self._settle + (self._delay or 0) + (self._k_update + 1) * self._hop
-        return n / self.fs_hz
-
-    @property
-    def drive_rms_limit_fs(self) -> float:
-        """Effective drive rms ceiling, FS."""
-        return self._out.rms_limit_fs
-
-    def drain_events(self) -> list[Event]:
-        """Events since the last call, oldest first."""
-        return self._log.drain()
-
-    @property
-    def events(self) -> tuple[Event, ...]:
-        """Every event of the run so far, oldest first."""
-        return self._log.all
 
     # ------------------------------------------------------------------ control from the shell
     def request_stop(self, reason: str = "stop requested") -> None:
@@ -386,9 +240,14 @@ class Controller:
                                       band=self._band, ceiling_ms_fs2=self._out.ceiling_ms(g1),
                                       df_hz=self.df_hz)
         self._out.set_psd(res.drive_psd, ceiling_hit=res.ceiling_hit)
-        self._emit("identify", *identify_event(self._coh[self._band],
-                                               int(np.count_nonzero(self._frozen)), res,
-                                               welch_dof(self._k_identify)))
+        coh_b = self._coh[self._band]
+        self._emit("identify", f"identified: mean coherence {float(np.mean(coh_b)):.3f}, "
+                   f"{int(np.count_nonzero(self._frozen))} lines frozen, "
+                   f"{res.n_step_limited} boost-limited",
+                   {"mean_coherence": float(np.mean(coh_b)), "min_coherence": float(coh_b.min()),
+                    "lines_frozen": int(np.count_nonzero(self._frozen)),
+                    "lines_boost_limited": res.n_step_limited, "dof": welch_dof(self._k_identify),
+                    "ceiling_scale": res.ceiling_scale})
         if c.law == "direct":
             self._est = ControlEstimate(self.fs_hz, self.frame_length, self._band, self._gpf2,
                                         cross=False)
@@ -450,18 +309,6 @@ class Controller:
         decision = self._decide(t)
         self._record_update(t, ctrl, target_b, played, res, verdict.rms_error_db, decision,
                             applied=not verdict.pending)
-
-    def _record_update(self, t, ctrl, target_b, played, res, rms_err, in_tol, *,
-                       applied: bool) -> None:
-        b = self._band
-        rec = update_record(
-            index=self._updates, t_s=t, stage=self._stage, level_db=self.schedule.level_db,
-            dof=self._nu_update, f_hz=self.f_hz, control_psd=ctrl, target_psd=target_b,
-            drive_psd=played, new_drive_psd=self._out.psd[b], h1=self._h1[b],
-            coherence=self._coh[b], rms_error_db=rms_err, drive_update=res, applied=applied)
-        self._last_update = rec
-        self._emit("update", *update_event(
-            rec, in_tolerance=in_tol, drive_rms_fs=math.sqrt(float(played.sum()) * self.df_hz)))
 
     def _decide(self, t: float) -> bool | None:
         """Tolerance decision on the pool; steps the level when due. None: not enough DOF."""
@@ -554,38 +401,6 @@ class Controller:
                    {"rule": trip.rule, **trip.detail})
         if self._stage != "done":
             self._begin_ramp_down(self._abort_ramp_s)
-
-    # ------------------------------------------------------------------ events and views
-    def _set_stage(self, stage: str, message: str) -> None:
-        self._stage = stage
-        self._emit("stage", message, {"stage": stage})
-
-    def _emit(self, kind: str, message: str, data: dict[str, Any]) -> None:
-        self._log.add(self.t_s, kind, message, data)
-
-    def _judgement(self) -> Judgement | None:
-        """The decision at the current level, else the latest update estimate judged alike."""
-        if self._decision is not None or self._last_update is None:
-            return self._decision
-        return judge_update(self._last_update, alarm_db=self._alarm_db, abort_db=self._abort_db,
-                            rms_alarm_db=self.spec.tolerance.rms_alarm_db, df_hz=self.df_hz)
-
-    def snapshot(self) -> ControlSnapshot:
-        """A frozen view of the loop now."""
-        level_gain = self._est_gain if self._stage in ("equalize", "full_level") else self._out.gain
-        return control_snapshot(
-            t_s=self.t_s, stage=self._stage, status=self._status, schedule=self.schedule,
-            judgement=self._judgement(), target_psd=self._target[self._band] * level_gain ** 2,
-            drive=self._out, band=self._band, f_hz=self.f_hz, alarm_db=self._alarm_db,
-            abort_db=self._abort_db, df_hz=self.df_hz, updates=self._updates,
-            loop_delay_samples=self._delay, trip=self._trip, recent_events=tuple(self._log.recent))
-
-    def result(self) -> RunResult:
-        """Outcome so far (final once :attr:`finished`)."""
-        return run_result(status=self._status, trip=self._trip, stop_reason=self._stop_reason,
-                          judgement=self._judgement(), updates_to_tolerance=self._updates_to_tol,
-                          schedule=self.schedule, updates=self._updates)
-
 
 def run_offline(controller: Controller, rig: Any, block_size: int, *,
                 max_s: float | None = None) -> RunResult:

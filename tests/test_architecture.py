@@ -28,7 +28,7 @@ OWNERS = {
 PURE = [
     "atomic.py", "errors.py", "schema.py", "chain.py", "profile.py", "synth.py", "frames.py",
     "ramp.py", "spectra.py", "spectral_stats.py", "welch_stream.py", "delay.py", "equalizer.py",
-    "safety.py", "schedule.py", "stages.py", "connect.py", "controller.py", "loopview.py",
+    "safety.py", "schedule.py", "stages.py", "connect.py", "controller.py", "loopstate.py",
     "drivestream.py", "runstate.py",
     "checks.py", "textplot.py", "textformat.py", "rigs/plantmodel.py", "rigs/calmath.py",
     "rigs/modal.py", "rigs/faults.py", "rigs/sim.py", "rigs/feasibility.py", "rigs/ring.py",

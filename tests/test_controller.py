@@ -541,3 +541,9 @@ def test_moved_names_are_reexported():
     for name in ("CONNECT_SEGMENTS", "ConnectionCheck", "ConnectRecorder", "analyse_connection",
                  "connection_data", "connection_trip"):
         assert getattr(stages, name) is getattr(connect, name)
+    # the loop's settings and views are the controller's base class, in loopstate
+    from liveshape import controller, loopstate
+
+    assert issubclass(controller.Controller, loopstate.LoopState)
+    assert (controller.FADE_IN_S, controller.IDENTIFY_BELOW_DB) == (
+        loopstate.FADE_IN_S, loopstate.IDENTIFY_BELOW_DB)
