@@ -14,7 +14,8 @@ from scipy import integrate, signal, stats
 from liveshape import spec
 from liveshape.errors import ConfigError
 from liveshape.rigs import faults
-from liveshape.rigs.modal import iir
+from liveshape.rigs.cascade import OUTPUTS, MotorCascades, output_roots
+from liveshape.rigs.modal import ModalSystem, sosfilt_inplace
 from liveshape.rigs.plant import (
     CoilHeating,
     IdealShaker,
@@ -24,6 +25,8 @@ from liveshape.rigs.plant import (
     analytic_frf,
     chain_tf,
     drive_to_volts_tf,
+    electromechanical_ss,
+    electromechanical_tf,
     load_plant,
     voltage_frf,
 )
@@ -81,16 +84,35 @@ def test_frf_is_the_bilinear_image_of_the_analytic_frf(name):
     np.testing.assert_allclose(rig.frf(f) * np.exp(2j * math.pi * f * d / fs), h, rtol=1e-6)
 
 
-@pytest.mark.parametrize("b, a", [([0.0, 0.3], [1.0, -0.99]), ([1.0], [1.0, -1.9, 0.95]),
-                                  ([0.98, -1.96, 0.98], [1.0, -1.959, 0.9605])])
-def test_iir_is_scipy_lfilter_to_the_bit(b, a):
-    # scipy.signal.lfilter as the reference: the rig's recursions call its compiled core.
+def test_sosfilt_inplace_is_scipy_sosfilt_to_the_bit():
+    # scipy.signal.sosfilt as the reference: the rig's cascades call its compiled core.
+    sos = np.array([[0.2, 0.3, 0.0, 1.0, -0.99, 0.0], [1.0, -1.96, 0.98, 1.0, -1.959, 0.9605],
+                    [1.0, 2.0, 1.0, 1.0, -1.9, 0.95]])
     x = white(3001, 1.0, seed=9)
-    zi = np.random.default_rng(10).standard_normal(len(a) - 1)
-    b, a = np.array(b), np.array(a)
-    y, zf = iir(b, a, x, zi)
-    y_ref, zf_ref = signal.lfilter(b, a, x, zi=zi)
-    assert np.array_equal(y, y_ref) and np.array_equal(zf, zf_ref)
+    zi = np.random.default_rng(10).standard_normal((1, 3, 2))
+    y_ref, zf_ref = signal.sosfilt(sos, x, zi=zi.reshape(3, 2))
+    y, zf = x[None].copy(), zi.copy()
+    sosfilt_inplace(sos, y, zf)
+    assert np.array_equal(y[0], y_ref) and np.array_equal(zf.reshape(3, 2), zf_ref)
+
+
+@pytest.mark.parametrize("name", ["loudspeaker", "bench", "ideal"])
+def test_shaker_cascades_are_the_bilinear_image_of_its_transfer_functions(name):
+    # scipy.signal.bilinear_zpk of the continuous polynomials, evaluated by freqz_zpk, is the
+    # reference for each output's sections. Rounding as in the FRF test above: 1e-6.
+    p, fs = load_plant(name), 48000.0
+    model = ModalSystem(*electromechanical_ss(p), fs)
+    tfs = electromechanical_tf(p)
+    cascades = MotorCascades(model, output_roots(tfs, model.n, fs))
+    f = np.geomspace(1.0, 20000.0, 500)
+    for key, sos in zip(OUTPUTS, cascades.sos, strict=True):
+        if sos is None:
+            assert p.shaker.model == "ideal" and key != "accel_m_s2_per_v"
+            continue
+        zd, pd, kd = signal.bilinear_zpk(*signal.tf2zpk(*tfs[key]), fs)
+        _, h_ref = signal.freqz_zpk(zd, pd, kd, worN=f, fs=fs)
+        _, h = signal.sosfreqz(sos, worN=f, fs=fs)
+        np.testing.assert_allclose(h, h_ref, rtol=1e-6)
 
 
 def test_impulse_response_transforms_to_the_frf():

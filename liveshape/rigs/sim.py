@@ -21,11 +21,14 @@ is neglected); noise is drawn in float32, which is ample for a floor 60 dB or mo
 signal.
 
 Discretization: every linear stage uses the trapezoidal rule (bilinear transform, no prewarp) at
-the rig's sample rate. The shaker with its payload is kept as a physical state-space model,
-diagonalized: each real mode runs as a first-order and each complex pair as a second-order real
-recursion with a carried state (:class:`liveshape.rigs.modal.ModalSystem`). When the coil resistance
-(heating) or the modal frequencies (fault) change, the physical state (current, displacements,
-velocities) is carried over unchanged into the new model, so those continue without a jump.
+the rig's sample rate. The shaker with its payload is a physical state-space model, diagonalized
+(:class:`liveshape.rigs.modal.ModalSystem`); each of its outputs (current, excursion,
+acceleration) runs as a cascade of second-order sections with a carried state
+(:class:`liveshape.rigs.cascade.MotorCascades`), the acceleration's cascade followed by the sensor
+chain's sections in the same pass. When the coil resistance (heating) or the modal frequencies
+(fault) change, the physical state (current, displacements, velocities) is read from the cascades'
+states, carried over unchanged into the new model, and written into its cascades, so those
+continue without a jump.
 
 Nonlinear and protective behaviour (simple models, documented):
 
@@ -57,6 +60,7 @@ import numpy as np
 from liveshape.chain import ChainCalibration
 from liveshape.errors import ConfigError
 from liveshape.profile import G0_M_S2
+from liveshape.rigs.cascade import MotorCascades, output_roots
 from liveshape.rigs.faults import (
     FAULT_KINDS,
     FAULT_RULES,
@@ -67,9 +71,9 @@ from liveshape.rigs.faults import (
     fault_state,
     schedule_faults,
 )
-from liveshape.rigs.modal import ModalSystem, highpass_sections, run_sections, sections_response
+from liveshape.rigs.modal import ModalSystem, highpass_sos, sos_freqz, sosfilt_inplace
 from liveshape.rigs.plant import IdealShaker, Plant
-from liveshape.rigs.plantmodel import electromechanical_ss
+from liveshape.rigs.plantmodel import electromechanical_ss, electromechanical_tf
 
 __all__ = ["FAULT_KINDS", "FAULT_RULES", "RE_STEP", "THERMAL_STEP_MAX_S", "SimRig", "SimStatus"]
 
@@ -158,15 +162,21 @@ class SimRig:
         self._rng_noise, self._rng_burst = (np.random.default_rng(s) for s in streams)
         card, amp, acc = plant.card, plant.amplifier, plant.accelerometer
         self._up_gain = card.out_v_per_fs * amp.gain_v_per_v
-        self._up = highpass_sections(
+        self._up = highpass_sos(
             [(card.out_highpass_hz, 1), (amp.highpass_hz, amp.highpass_order)], self._up_gain, fs)
+        self._up_zi = None if self._up is None else np.zeros((1, self._up.shape[0], 2))
         self._down_gain = acc.sens_mv_per_g * 1e-3 / card.in_v_per_fs
         self._sensor_noise_fs = acc.noise_g_rms * self._down_gain
         self._card_noise_fs = card.in_noise_fs_rms
-        self._down = highpass_sections(
+        self._down = highpass_sos(
             [(acc.highpass_hz, 1), (card.in_highpass_hz, 1)], self._down_gain, fs)
-        self._up_zi = [np.zeros(len(a) - 1) for _, a in self._up or ()]
-        self._down_zi = [np.zeros(len(a) - 1) for _, a in self._down or ()]
+        # The sensor chain as sections that follow the shaker's acceleration cascade: m/s² in,
+        # FS out, the sensor_gain fault in the first section's numerator.
+        self._tail = (np.array([[self._down_gain, 0.0, 0.0, 1.0, 0.0, 0.0]]) if self._down is None
+                      else self._down.copy())
+        self._tail_b0 = self._tail[0, :3] / G0_M_S2
+        self._tail[0, :3] = self._tail_b0
+        self._tail_sensor_gain = 1.0
         self._delay = np.zeros(card.delay_samples)
         sh = plant.shaker
         self._motor = not isinstance(sh, IdealShaker)
@@ -177,10 +187,12 @@ class SimRig:
         tau = self._heat.time_constant_s if self._heat is not None else 1.0
         self._n_th = max(1, int(round(min(THERMAL_STEP_MAX_S, tau / 20.0) * fs)))
         self._th_buf = np.zeros(self._n_th)
-        self._outs, self._noise = np.empty((3, 0)), np.empty(0, np.float32)
+        self._outs, self._noise = np.empty((4, 0)), np.empty(0, np.float32)
         self._f_factor = 1.0
-        self._model = ModalSystem(*electromechanical_ss(plant), fs)
-        self._zeta = self._model.zero_state()
+        self._roots: dict[float, list] = {}
+        self._build_model(None, 1.0)
+        self._states = self._cascades.zero_state()
+        self._states[2] = np.zeros((1, self._acc_sos.shape[0], 2))
         self._n = 0
         self._tripped_at: int | None = None
         self._counts = {"xmax": 0, "drive": 0, "amp": 0, "input": 0}
@@ -245,8 +257,8 @@ class SimRig:
         w = 2.0 * math.pi * f / self._fs
         z = np.exp(1j * w.ravel())
         h = self._model.response(z)[2] / G0_M_S2
-        for ba, gain in ((self._up, self._up_gain), (self._down, self._down_gain)):
-            h = h * (gain if ba is None else sections_response(ba, w.ravel()))
+        for sos, gain in ((self._up, self._up_gain), (self._down, self._down_gain)):
+            h = h * (gain if sos is None else sos_freqz(sos, w.ravel()))
         st = self._state(self._n)
         h = h * st.plant_gain * st.sensor_gain * z ** (-self._plant.card.delay_samples)
         return h.reshape(f.shape)
@@ -318,12 +330,51 @@ class SimRig:
         self._rise_k = target + (self._rise_k - target) * decay
         self._re_now = self._re0 * (1.0 + h.tempco_per_k * self._rise_k)
 
-    def _motor_piece(self, v: np.ndarray, a: int, st: FaultState, out: np.ndarray
-                     ) -> np.ndarray:
-        """Shaker outputs ``(3, n)``, written into ``out``, for amplifier volts ``v`` from rig
-        sample ``a``.
+    def _build_model(self, re_ohm: float | None, f_factor: float) -> None:
+        """The shaker model (modal form and output cascades) for this coil resistance and modal
+        frequency factor; the acceleration cascade is followed by the sensor-chain sections."""
+        self._model = ModalSystem(*electromechanical_ss(
+            self._plant, re_ohm=re_ohm, f_factor=f_factor), self._fs)
+        if f_factor not in self._roots:  # the zeros do not move with the coil resistance
+            self._roots[f_factor] = output_roots(electromechanical_tf(
+                self._plant, re_ohm=re_ohm, f_factor=f_factor), self._model.n, self._fs)
+        self._cascades = MotorCascades(self._model, self._roots[f_factor])
+        self._n_acc = self._cascades.sos[2].shape[0]
+        self._acc_sos = np.ascontiguousarray(np.vstack((self._cascades.sos[2], self._tail)))
 
-        Updates the coil temperature on a step boundary, rebuilds the model (carrying the
+    def _rebuild(self, re_ohm: float | None, f_factor: float, u0: float) -> None:
+        """Swap the shaker model at the sample whose input is ``u0``, keeping the physical state
+        (and the sensor chain's state)."""
+        x_phys = self._model.physical(self._cascades.to_modal(self._states), u0)
+        tail_zi = self._states[2][:, self._n_acc:]
+        self._build_model(re_ohm, f_factor)
+        states = self._cascades.from_modal(self._model.modal(x_phys, u0))
+        states[2] = np.ascontiguousarray(np.concatenate((states[2], tail_zi), axis=1))
+        self._states = states
+
+    def _set_sensor_gain(self, gain: float) -> None:
+        """Put the sensor_gain fault's factor into the sensor chain's first section."""
+        if gain != self._tail_sensor_gain:
+            self._tail[0, :3] = self._tail_b0 * gain
+            self._acc_sos[self._n_acc, :3] = self._tail[0, :3]
+            self._tail_sensor_gain = gain
+
+    def _run(self, r: int, v: np.ndarray, out: np.ndarray, sections: slice = slice(None)
+             ) -> np.ndarray:
+        """Output ``r`` of the cascades (``sections`` of them) for input ``v``, into ``out``
+        (a ``(1, n)`` row of a work array); the state carries over."""
+        out[0] = v
+        sos, zi = (self._cascades.sos[r], self._states[r]) if r < 2 else \
+            (self._acc_sos[sections], self._states[2][:, sections])
+        sosfilt_inplace(sos, out, zi)
+        return out[0]
+
+    def _motor_piece(self, v: np.ndarray, a: int, st: FaultState, outs: np.ndarray) -> None:
+        """Shaker and sensor chain for amplifier volts ``v`` from rig sample ``a``.
+
+        Writes coil current, table excursion and the response before noise (FS) into the rows
+        0, 1 and 3 of ``outs`` (row 2 holds the acceleration where the Xmax compression needs
+        it). Updates the coil temperature on a step boundary, rebuilds the model (carrying the
         physical state) when Re or the modal frequencies moved, and trips the amplifier on the
         first sample whose current exceeds ``i_max_a`` (the piece is then run again with 0 V
         from the next sample on).
@@ -333,28 +384,45 @@ class SimRig:
             v = np.zeros(v.size)
         rel = 0.0 if self._re0 is None else abs(self._re_now - self._re_model) / self._re0
         if st.f_factor != self._f_factor or rel > RE_STEP:
-            x_phys = self._model.to_physical(self._zeta, float(v[0]))
-            self._model = ModalSystem(*electromechanical_ss(
-                self._plant, re_ohm=self._re_now, f_factor=st.f_factor), self._fs)
-            self._zeta = self._model.from_physical(x_phys, float(v[0]))
+            self._rebuild(self._re_now, st.f_factor, float(v[0]))
             self._f_factor, self._re_model = st.f_factor, self._re_now
-        zeta0 = self._zeta
-        outs, self._zeta = self._model.run(v, zeta0, out)
-        i_max = self._plant.amplifier.i_max_a
-        if self._motor and i_max is not None and self._tripped_at is None \
-                and _peak(outs[0]) > i_max:
-            k = int(np.argmax(np.abs(outs[0]) > i_max))
-            self._tripped_at = a + k + 1
-            v = v.copy()
-            v[k + 1:] = 0.0
-            outs, self._zeta = self._model.run(v, zeta0, out)
-        return outs
+        self._set_sensor_gain(st.sensor_gain)
+        x = None
+        if self._motor:
+            i_max = self._plant.amplifier.i_max_a
+            can_trip = i_max is not None and self._tripped_at is None
+            saved = [None if zi is None else zi.copy() for zi in self._states] if can_trip \
+                else self._states
+            cur = self._run(0, v, outs[0:1])
+            if can_trip and _peak(cur) > i_max:
+                k = int(np.argmax(np.abs(cur) > i_max))
+                self._tripped_at = a + k + 1
+                v = v.copy()
+                v[k + 1:] = 0.0
+                self._states = saved
+                self._run(0, v, outs[0:1])
+            x = self._run(1, v, outs[1:2])
+        xmax = self._plant.shaker.xmax_m
+        squeeze = x is not None and xmax is not None and _peak(x) > xmax
+        if not (squeeze or st.detached):  # shaker and sensor chain in one pass
+            self._run(2, v, outs[3:4])
+            return
+        acc = self._run(2, v, outs[2:3], slice(None, self._n_acc))
+        if st.detached:
+            acc[:] = 0.0
+        elif squeeze:
+            ax = np.abs(x)
+            beyond = ax > xmax
+            self._counts["xmax"] += int(np.count_nonzero(beyond))
+            np.multiply(acc, xmax / np.where(beyond, ax, xmax), out=acc)
+        self._run(2, acc, outs[3:4], slice(self._n_acc, None))
 
     def _work(self, n: int) -> tuple[np.ndarray, np.ndarray]:
-        """Reused work arrays: shaker outputs ``(3, n)`` and noise ``(n,)`` float32."""
+        """Reused work arrays: ``(4, n)`` (current, excursion, acceleration, response) and noise
+        ``(n,)`` float32."""
         if self._outs.shape[1] < n:
             cap = max(n, 2 * self._outs.shape[1])
-            self._outs, self._noise = np.empty((3, cap)), np.empty(cap, np.float32)
+            self._outs, self._noise = np.empty((4, cap)), np.empty(cap, np.float32)
         return self._outs[:, :n], self._noise[:n]
 
     def _add_noise(self, r: np.ndarray, rng: np.random.Generator, rms: float,
@@ -376,7 +444,10 @@ class SimRig:
         if self._up is None:
             v = d * self._up_gain
         else:
-            v, self._up_zi = run_sections(self._up, d, self._up_zi)
+            v = np.empty((1, n))
+            v[0] = d
+            sosfilt_inplace(self._up, v, self._up_zi)
+            v = v[0]
         if st.plant_gain != 1.0:
             v *= st.plant_gain
         vmax = self._plant.amplifier.v_out_max_v
@@ -386,42 +457,24 @@ class SimRig:
             self._tripped_at = a
         if self._tripped_at is not None:
             v = np.zeros(n)
-        # Shaker and payload, in pieces that end on the coil-temperature steps.
+        # Shaker, payload and sensor chain, in pieces that end on the coil-temperature steps.
         if self._heat is None:
             self._motor_piece(v, a, st, outs)
         else:
             pos = 0
             while pos < n:
                 stop = min(n, ((a + pos) // self._n_th + 1) * self._n_th - a)
-                piece = outs[:, pos:stop]
-                self._motor_piece(v[pos:stop], a + pos, st, piece)
+                self._motor_piece(v[pos:stop], a + pos, st, outs[:, pos:stop])
                 j = (a + pos) % self._n_th
-                self._th_buf[j:j + stop - pos] = piece[0]
+                self._th_buf[j:j + stop - pos] = outs[0, pos:stop]
                 pos = stop
-        x, acc = outs[1], outs[2]
         if self._motor:
             hi, lo = outs[:2].max(axis=1), outs[:2].min(axis=1)  # current and excursion rows
             peak = max(float(hi[1]), -float(lo[1]))
             self._x_peak = max(self._x_peak, peak)
             self._x_last = max(self._x_last, peak)
             self._i_peak = max(self._i_peak, float(hi[0]), -float(lo[0]))
-            xmax = self._plant.shaker.xmax_m
-            if xmax is not None and peak > xmax:
-                ax = np.abs(x)
-                beyond = ax > xmax
-                self._counts["xmax"] += int(np.count_nonzero(beyond))
-                acc = np.where(beyond, acc * (xmax / np.where(beyond, ax, 1.0)), acc)
-        # Sensor and card input.
-        if st.detached:
-            g = np.zeros(n)
-        else:
-            g = np.divide(acc, G0_M_S2, out=acc)
-        if st.sensor_gain != 1.0:
-            g *= st.sensor_gain
-        if self._down is None:
-            r = g * self._down_gain
-        else:
-            r, self._down_zi = run_sections(self._down, g, self._down_zi)
+        r = outs[3].copy()
         # Sensor noise (scaled by the sensor chain) and card noise: one white source.
         noise_var = (self._sensor_noise_fs * st.sensor_gain) ** 2 + self._card_noise_fs**2
         if noise_var > 0:
@@ -432,7 +485,6 @@ class SimRig:
         if st.dropout:
             r = np.zeros(n)
         return r
-
 
 def _peak(x: np.ndarray) -> float:
     """``max |x|`` without an array of magnitudes."""
