@@ -341,6 +341,8 @@ class SimRig:
         self._cascades = MotorCascades(self._model, self._roots[f_factor])
         self._n_acc = self._cascades.sos[2].shape[0]
         self._acc_sos = np.ascontiguousarray(np.vstack((self._cascades.sos[2], self._tail)))
+        # No section with memory: each is y = b0 x (its state stays zero).
+        self._acc_static = not np.any(self._acc_sos[:, [1, 2, 4, 5]])
 
     def _rebuild(self, re_ohm: float | None, f_factor: float, u0: float) -> None:
         """Swap the shaker model at the sample whose input is ``u0``, keeping the physical state
@@ -363,9 +365,14 @@ class SimRig:
              ) -> np.ndarray:
         """Output ``r`` of the cascades (``sections`` of them) for input ``v``, into ``out``
         (a ``(1, n)`` row of a work array); the state carries over."""
-        out[0] = v
         sos, zi = (self._cascades.sos[r], self._states[r]) if r < 2 else \
             (self._acc_sos[sections], self._states[2][:, sections])
+        if self._acc_static and r == 2:  # gains only (ideal shaker, DC-coupled sensor chain)
+            np.multiply(v, sos[0, 0], out=out[0])
+            for b0 in sos[1:, 0]:
+                out[0] *= b0
+            return out[0]
+        out[0] = v
         sosfilt_inplace(sos, out, zi)
         return out[0]
 
@@ -387,23 +394,28 @@ class SimRig:
             self._rebuild(self._re_now, st.f_factor, float(v[0]))
             self._f_factor, self._re_model = st.f_factor, self._re_now
         self._set_sensor_gain(st.sensor_gain)
-        x = None
+        x, x_peak = None, 0.0
         if self._motor:
             i_max = self._plant.amplifier.i_max_a
             can_trip = i_max is not None and self._tripped_at is None
             saved = [None if zi is None else zi.copy() for zi in self._states] if can_trip \
                 else self._states
             cur = self._run(0, v, outs[0:1])
-            if can_trip and _peak(cur) > i_max:
+            i_peak = _peak(cur)
+            if can_trip and i_peak > i_max:
                 k = int(np.argmax(np.abs(cur) > i_max))
                 self._tripped_at = a + k + 1
                 v = v.copy()
                 v[k + 1:] = 0.0
                 self._states = saved
-                self._run(0, v, outs[0:1])
+                i_peak = _peak(self._run(0, v, outs[0:1]))
             x = self._run(1, v, outs[1:2])
+            x_peak = _peak(x)
+            self._i_peak = max(self._i_peak, i_peak)
+            self._x_peak = max(self._x_peak, x_peak)
+            self._x_last = max(self._x_last, x_peak)
         xmax = self._plant.shaker.xmax_m
-        squeeze = x is not None and xmax is not None and _peak(x) > xmax
+        squeeze = x is not None and xmax is not None and x_peak > xmax
         if not (squeeze or st.detached):  # shaker and sensor chain in one pass
             self._run(2, v, outs[3:4])
             return
@@ -468,12 +480,6 @@ class SimRig:
                 j = (a + pos) % self._n_th
                 self._th_buf[j:j + stop - pos] = outs[0, pos:stop]
                 pos = stop
-        if self._motor:
-            hi, lo = outs[:2].max(axis=1), outs[:2].min(axis=1)  # current and excursion rows
-            peak = max(float(hi[1]), -float(lo[1]))
-            self._x_peak = max(self._x_peak, peak)
-            self._x_last = max(self._x_last, peak)
-            self._i_peak = max(self._i_peak, float(hi[0]), -float(lo[0]))
         r = outs[3].copy()
         # Sensor noise (scaled by the sensor chain) and card noise: one white source.
         noise_var = (self._sensor_noise_fs * st.sensor_gain) ** 2 + self._card_noise_fs**2
