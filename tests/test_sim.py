@@ -1,5 +1,5 @@
-"""The simulated rig (liveshape.rigs.sim, with rigs.modal and rigs.faults): discretization,
-statistics, faults, protections."""
+"""The simulated rig (liveshape.rigs.sim, with rigs.modal, rigs.cascade and rigs.faults):
+discretization, statistics, faults, protections."""
 
 from __future__ import annotations
 

@@ -5,8 +5,8 @@ samples at 48 kHz, as the controller feeds it; the figure is audio seconds simul
 (:func:`time.process_time`), the best of three runs (other load on the machine only slows a run
 down). The presets' noise, coil heating and protections are all on. A second
 figure per preset runs the same rig with a sensor_gain and a resonance_shift fault to show the
-cost of the model swaps. Target: well above 50x real time, so that rig plus controller stay above
-it.
+cost of the model swaps (the coil-heating swaps are in every figure: the presets heat their coils).
+Target: well above 50x real time, so that rig plus controller stay above it.
 
 Run with ``python -m tests.benchmarks sim`` or ``python -m tests.benchmarks.bench_sim``.
 """
