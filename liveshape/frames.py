@@ -122,8 +122,9 @@ def draw_coefficients(
     """Random Fourier coefficients of one frame (see :func:`line_scales`).
 
     ``"rayleigh"``: independent standard normals times the scales (complex Gaussian; the real DC
-    and Nyquist lines a real Gaussian). ``"fixed"``: uniform phases, the real lines a random
-    sign. ``2 len(scale_re)`` resp. ``len(scale_re)`` numbers are drawn whatever the levels.
+    and Nyquist lines a real Gaussian), drawn in the order re, im of each line in turn.
+    ``"fixed"``: uniform phases, the real lines a random sign. ``2 len(scale_re)`` resp.
+    ``len(scale_re)`` numbers are drawn whatever the levels.
 
     Parameters
     ----------
@@ -143,9 +144,10 @@ def draw_coefficients(
     coef = np.empty(m, dtype=np.complex128) if out is None else out
     re, im = coef.real, coef.imag
     if amplitudes == "rayleigh":
-        rng.standard_normal(out=work)
-        np.multiply(work[0], scale_re, out=re)
-        np.multiply(work[1], scale_im, out=im)
+        flat = work.reshape(-1)  # drawn as re, im interleaved (the synthesizer's order)
+        rng.standard_normal(out=flat)
+        np.multiply(flat[0::2], scale_re, out=re)
+        np.multiply(flat[1::2], scale_im, out=im)
     else:
         u = work[0]
         rng.random(out=u)

@@ -55,6 +55,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+import scipy.fft as sp_fft
 
 from liveshape.errors import ConfigError
 from liveshape.frames import (  # re-exported: AMPLITUDES .. sine_window
@@ -208,9 +209,11 @@ class RandomPhaseSynth:
         self._psd_dirty = False
         self._scale_re = np.zeros(self._n_lines)
         self._scale_im = np.zeros(self._n_lines)
+        self._scale_ri = np.zeros(2 * self._n_lines)  # re, im scales interleaved as in _coef
         self._draw = np.empty(2 * self._n_lines)
         self._span = (0, 0)  # lines drawn: first to last non-zero line of the PSD
         self._coef = np.zeros(self._n_lines, dtype=np.complex128)
+        self._coef_ri = self._coef.view(np.float64)  # re, im interleaved
         self._tail = np.zeros(self._hop)
         self._block = np.zeros(self._hop)
         self._clipped = np.zeros(self._hop, dtype=bool)
@@ -370,6 +373,8 @@ class RandomPhaseSynth:
         line_scales(
             self._psd, self.delta_f, self._amplitudes, out_re=self._scale_re, out_im=self._scale_im
         )
+        self._scale_ri[0::2] = self._scale_re
+        self._scale_ri[1::2] = self._scale_im
         self._var_cur = float(np.sum(self._psd)) * self.delta_f
         nz = np.flatnonzero(self._psd)
         span = (int(nz[0]), int(nz[-1]) + 1) if nz.size else (0, 0)
@@ -378,49 +383,55 @@ class RandomPhaseSynth:
             self._span = span
 
     def _frame(self) -> np.ndarray:
-        """Draw one windowed frame (N samples) from the current PSD."""
+        """Draw one unwindowed frame (N samples) from the current PSD."""
         if self._psd_dirty:
             self._update_scales()
         lo, hi = self._span
         if hi > lo:  # only the lines from the first to the last non-zero one are drawn
-            real = tuple(k - lo for k in (0, self._n_lines - 1) if lo <= k < hi)
-            draw_coefficients(
-                self._rng,
-                self._scale_re[lo:hi],
-                self._scale_im[lo:hi],
-                self._amplitudes,
-                real_lines=real,
-                draw=self._draw[: 2 * (hi - lo)].reshape(2, hi - lo),
-                out=self._coef[lo:hi],
-            )
-        frame = np.fft.irfft(self._coef, n=self._n)
-        frame *= self._window
-        return frame
+            if self._amplitudes == "rayleigh":
+                # the same draws as draw_coefficients: standard normals, re and im interleaved
+                ri = self._coef_ri[2 * lo: 2 * hi]
+                self._rng.standard_normal(out=ri)
+                ri *= self._scale_ri[2 * lo: 2 * hi]
+            else:
+                real = tuple(k - lo for k in (0, self._n_lines - 1) if lo <= k < hi)
+                draw_coefficients(
+                    self._rng,
+                    self._scale_re[lo:hi],
+                    self._scale_im[lo:hi],
+                    self._amplitudes,
+                    real_lines=real,
+                    draw=self._draw[: 2 * (hi - lo)].reshape(2, hi - lo),
+                    out=self._coef[lo:hi],
+                )
+        return sp_fft.irfft(self._coef, self._n)
 
     def _prime(self) -> None:
         frame = self._frame()
-        self._tail[:] = frame[self._hop :]
+        np.multiply(frame[self._hop :], self._window[self._hop :], out=self._tail)
         self._var_tail = self._var_cur
         self._primed = True
 
     def _next_block(self) -> None:
         var_prev = self._var_tail
         frame = self._frame()
-        np.add(self._tail, frame[: self._hop], out=self._block)
-        self._tail[:] = frame[self._hop :]
+        hop, w, block = self._hop, self._window, self._block
+        np.multiply(frame[:hop], w[:hop], out=block)
+        block += self._tail
+        np.multiply(frame[hop:], w[hop:], out=self._tail)
         self._var_tail = self._var_cur
         self._pos = 0
         if self._clip_sigma is not None:
             c = self._clip_sigma
             if var_prev == self._var_cur:
                 level = c * math.sqrt(self._var_cur)
-                np.greater(np.abs(self._block), level, out=self._clipped)
-                np.clip(self._block, -level, level, out=self._block)
+                np.greater(np.abs(block, out=self._level), level, out=self._clipped)
+                np.clip(block, -level, level, out=block)
             else:  # the block blends two spectra: nominal variance per sample
                 lv = self._level
                 np.multiply(self._w2_tail, var_prev, out=lv)
                 lv += self._w2_head * self._var_cur
                 np.sqrt(lv, out=lv)
                 lv *= c
-                np.greater(np.abs(self._block), lv, out=self._clipped)
-                np.clip(self._block, -lv, lv, out=self._block)
+                np.greater(np.abs(block), lv, out=self._clipped)
+                np.clip(block, -lv, lv, out=block)

@@ -23,6 +23,7 @@ from liveshape.errors import ConfigError
 from liveshape.synth import (
     GainRamp,
     RandomPhaseSynth,
+    RunningMoments,
     SynthStats,
     random_phase_frame,
     sine_window,
@@ -429,6 +430,52 @@ def test_fixed_real_lines_get_a_random_sign_of_fixed_size(line):
     # independent fair signs: sign changes between frames are binomial(399, 1/2)
     lo, hi = stats.binom.interval(1 - P_FAIL, is_flip[1:].size, 0.5)
     assert lo <= np.count_nonzero(is_flip[1:]) <= hi
+
+
+# --------------------------------------------------------------------------- running moments
+@pytest.mark.parametrize(
+    "sizes", [(1,), (8191, 1, 2), (8192, 8192, 5), (20000,), (3000,) * 10, (100, 1, 1) * 40]
+)
+def test_running_moments_match_scipy_across_chunks_and_offsets(sizes):
+    rng = np.random.default_rng(len(sizes))
+    n = sum(sizes)
+    sigma = 1.0
+    x = 1e6 + sigma * rng.standard_t(5, n)  # a large offset and heavy tails
+    m = RunningMoments()
+    pos = 0
+    for k in sizes:
+        m.update(x[pos : pos + k])
+        pos += k
+    # scipy.stats as reference. Bound: the mean of n values near 1e6 is off by at most
+    # eps log2(n) 1e6 (pairwise summation, Higham 2002 sec. 4.2), < 1e-8 sigma here, and
+    # moments about a mean off by d change by k d m_(k-1): so 1e-7 sigma^k is float64 rounding.
+    # Raw power sums lose 12 digits to the offset and would miss this bound by far.
+    tol = 1e-7
+    assert m.n == n
+    assert m.mean == pytest.approx(np.mean(x), abs=tol * sigma)
+    assert m.peak == np.max(np.abs(x))
+    if n > 1:
+        for k, mk in ((2, m.m2), (3, m.m3), (4, m.m4)):
+            assert abs(mk / n - stats.moment(x, k)) <= tol * sigma**k
+        assert m.kurtosis == pytest.approx(stats.kurtosis(x, fisher=False), rel=tol)
+        assert m.rms == pytest.approx(np.sqrt(np.mean(x**2)), rel=1e-12)
+
+
+def test_running_moments_do_not_depend_on_when_they_are_read():
+    rng = np.random.default_rng(7)
+    x = rng.standard_normal(50_000)
+    lazy, eager = RunningMoments(), RunningMoments()
+    for i in range(0, x.size, 777):
+        lazy.update(x[i : i + 777])
+        eager.update(x[i : i + 777])
+        assert eager.n == i + x[i : i + 777].size
+        eager.kurtosis  # a read merges the samples gathered so far
+    # the same exact merges over other chunk boundaries: float64 rounding (common practice)
+    for name in ("mean", "m2", "m3", "m4", "rms", "kurtosis"):
+        assert getattr(eager, name) == pytest.approx(getattr(lazy, name), rel=1e-12, abs=1e-12)
+    assert eager.peak == lazy.peak == np.max(np.abs(x))
+    lazy.reset()
+    assert lazy.n == 0 and lazy.rms == 0.0 and math.isnan(lazy.kurtosis)
 
 
 def test_moved_names_are_reexported():
