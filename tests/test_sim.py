@@ -201,18 +201,26 @@ FAULTS = (
 )
 
 
-def test_output_does_not_depend_on_block_splits():
+@pytest.mark.parametrize("stroke", [False, True])
+def test_output_does_not_depend_on_block_splits(stroke):
+    # stroke: a 20 Hz burst beyond Xmax and a detached sensor, so that some blocks take the
+    # shaker and the sensor chain in separate passes (compression, zero input) and others not.
     p = load_plant("loudspeaker")
     p = dataclasses.replace(p, shaker=dataclasses.replace(
         p.shaker, coil_heating=CoilHeating(20.0, 0.3)))
     fs = 8000.0
     x = white(int(1.3 * fs), 0.3, seed=1)
-    whole = SimRig(p, fs, seed=5, faults=FAULTS)
+    faults = FAULTS
+    if stroke:
+        x[2000:6000] += 0.8 * np.sin(2 * math.pi * 20.0 * np.arange(4000) / fs)
+        faults = FAULTS + (Fault("sensor_detached", 1.0, duration_s=0.1),)
+    whole = SimRig(p, fs, seed=5, faults=faults)
     y0 = whole.process(x)
+    assert (whole.status.xmax_exceeded_samples > 0) == stroke
     cuts = np.sort(np.random.default_rng(2).integers(0, x.size, 300))
     for pieces in (np.split(x, cuts), np.split(x, np.arange(1, 60)), [x[i:i + 4096] for i in
                                                                        range(0, x.size, 4096)]):
-        rig = SimRig(p, fs, seed=5, faults=FAULTS)
+        rig = SimRig(p, fs, seed=5, faults=faults)
         y = np.concatenate([rig.process(b) for b in pieces])
         assert np.array_equal(y, y0)
         # Everything but the peak of the last block (which depends on the split by definition).
