@@ -55,13 +55,13 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.fft as sp_fft
 
 from liveshape.errors import ConfigError
 from liveshape.frames import (  # re-exported: AMPLITUDES .. sine_window
     AMPLITUDES,
     check_amplitudes,
     draw_coefficients,
+    irfft_into,
     line_scales,
     random_phase_frame,
     sine_window,
@@ -214,6 +214,7 @@ class RandomPhaseSynth:
         self._span = (0, 0)  # lines drawn: first to last non-zero line of the PSD
         self._coef = np.zeros(self._n_lines, dtype=np.complex128)
         self._coef_ri = self._coef.view(np.float64)  # re, im interleaved
+        self._frame_buf = np.empty(n)  # the newest unwindowed frame
         self._tail = np.zeros(self._hop)
         self._block = np.zeros(self._hop)
         self._clipped = np.zeros(self._hop, dtype=bool)
@@ -404,7 +405,7 @@ class RandomPhaseSynth:
                     draw=self._draw[: 2 * (hi - lo)].reshape(2, hi - lo),
                     out=self._coef[lo:hi],
                 )
-        return sp_fft.irfft(self._coef, self._n)
+        return irfft_into(self._coef, self._n, self._frame_buf)
 
     def _prime(self) -> None:
         frame = self._frame()
