@@ -177,9 +177,8 @@ class CrossSpectrum(WelchStream):
                          window=window)
         self._delay = delay
         self._n_in = 0
-        self._sxx = np.zeros(self._n_lines)
-        self._syy = np.zeros(self._n_lines)
-        self._sxy = np.zeros(self._n_lines, dtype=complex)
+        self._sxy = np.zeros(self._n_lines, dtype=complex)  # unscaled sum of conj(X) Y
+        self._sxy_new = np.empty(self._n_lines, dtype=complex)  # one batch's sum
 
     @property
     def delay_samples(self) -> int:
@@ -190,8 +189,6 @@ class CrossSpectrum(WelchStream):
         """Forget every sample and segment (the settings stay)."""
         self._reset_stream()
         self._n_in = 0
-        self._sxx[:] = 0.0
-        self._syy[:] = 0.0
         self._sxy[:] = 0.0
 
     def push(self, x: np.ndarray, y: np.ndarray) -> None:
@@ -220,45 +217,42 @@ class CrossSpectrum(WelchStream):
         if x.size:
             self._feed((x, y))
 
-    def _accumulate(self, spectra: np.ndarray, keep: float, coef: float | np.ndarray) -> None:
-        xs, ys = spectra[0], spectra[1]
-        pxx = self._power(xs, coef)
-        pyy = self._power(ys, coef)
-        cross = np.conjugate(xs)
-        cross *= ys  # conj(X) Y, as scipy's csd(x, y)
-        if isinstance(coef, np.ndarray):
-            s = np.einsum("m,mk->k", coef, cross.view(np.float64)).view(np.complex128)
-        else:
-            s = cross[0] if cross.shape[0] == 1 else np.add.reduce(cross, axis=0)
-        pxy = self._scaled(s, coef)
-        if keep != 1.0:
-            self._sxx *= keep
-            self._syy *= keep
-            self._sxy *= keep
-        self._sxx += pxx
-        self._syy += pyy
-        self._sxy += pxy
+    def _decay(self, keep: float) -> None:
+        super()._decay(keep)
+        self._sxy *= keep
 
-    def _mean(self, s: np.ndarray) -> np.ndarray:
-        self._flush()
-        if self._averaging == "linear" and self._k:
-            return s / self._k
-        return s.copy()
+    def _accumulate(self, spectra: np.ndarray, coef: float | np.ndarray) -> None:
+        xs, ys = spectra[0], spectra[1]
+        new = self._sxy_new
+        if xs.shape[0] == 1:
+            np.conjugate(xs[0], out=new)
+            new *= ys[0]  # conj(X) Y, as scipy's csd(x, y)
+            if coef != 1.0:
+                new *= coef
+        else:
+            cross = np.conjugate(xs)
+            cross *= ys
+            if isinstance(coef, np.ndarray):
+                np.einsum("m,mk->k", coef, cross.view(np.float64), out=new.view(np.float64))
+            else:
+                np.add.reduce(cross, axis=0, out=new)
+        self._sxy += new
 
     @property
     def gxx(self) -> np.ndarray:
         """One-sided auto spectrum of the reference in x-units²/Hz (zeros before a segment)."""
-        return self._mean(self._sxx)
+        return self._auto(0)
 
     @property
     def gyy(self) -> np.ndarray:
         """One-sided auto spectrum of the response in y-units²/Hz (zeros before a segment)."""
-        return self._mean(self._syy)
+        return self._auto(1)
 
     @property
     def gxy(self) -> np.ndarray:
         """One-sided cross spectrum ``2 conj(X) Y / (fs sum w**2)`` averaged, x·y-units/Hz."""
-        return self._mean(self._sxy)
+        self._flush()
+        return self._density(self._sxy.copy())
 
     @property
     def h1(self) -> np.ndarray:
@@ -267,9 +261,9 @@ class CrossSpectrum(WelchStream):
         NaN on lines where ``Gxx`` is zero (before the first segment).
         """
         self._flush()
-        gxx = self._sxx
+        sxx = self._power_sum(0)  # the density scale cancels in the ratio
         out = np.full(self._n_lines, np.nan + 0j)
-        np.divide(self._sxy, gxx, out=out, where=gxx > 0.0)
+        np.divide(self._sxy, sxx, out=out, where=sxx > 0.0)
         return out
 
     @property
@@ -279,9 +273,13 @@ class CrossSpectrum(WelchStream):
         Identical to :func:`scipy.signal.coherence` on the same segments (linear averaging).
         """
         self._flush()
-        den = self._sxx * self._syy
+        den = self._power_sum(0)  # the density scale cancels in the ratio
+        den *= self._power_sum(1)
+        sxy = self._sxy.view(np.float64)
+        num = np.multiply(sxy, sxy)
+        num = np.add(num[0::2], num[1::2])  # |Sxy|**2
         out = np.full(self._n_lines, np.nan)
-        np.divide(np.abs(self._sxy) ** 2, den, out=out, where=den > 0.0)
+        np.divide(num, den, out=out, where=den > 0.0)
         return out
 
 
@@ -311,12 +309,10 @@ class PsdAverager(WelchStream):
         n_avg: int | None = None, window: Any = "hann",
     ) -> None:
         super().__init__(fs_hz, nperseg, (0,), averaging=averaging, n_avg=n_avg, window=window)
-        self._s = np.zeros(self._n_lines)
 
     def reset(self) -> None:
         """Forget every sample and segment (the settings stay)."""
         self._reset_stream()
-        self._s[:] = 0.0
 
     def push(self, x: np.ndarray) -> None:
         """Add a block of samples (1-D, any length)."""
@@ -326,19 +322,10 @@ class PsdAverager(WelchStream):
         if x.size:
             self._feed((x,))
 
-    def _accumulate(self, spectra: np.ndarray, keep: float, coef: float | np.ndarray) -> None:
-        p = self._power(spectra[0], coef)
-        if keep != 1.0:
-            self._s *= keep
-        self._s += p
-
     @property
     def psd(self) -> np.ndarray:
         """One-sided PSD in units²/Hz (zeros before the first segment)."""
-        self._flush()
-        if self._averaging == "linear" and self._k:
-            return self._s / self._k
-        return self._s.copy()
+        return self._auto(0)
 
 
 # --------------------------------------------------------------------------------------------

@@ -6,13 +6,17 @@ preallocated contiguous buffer; the completed segments (Hann by default, 50 % ov
 of each removed as scipy's ``detrend="constant"``) are windowed and transformed together in one
 batched ``rfft`` of a strided view of the buffer (no per-segment copy or Python loop), when the
 buffer is full or a result is read. A batch is at most ``_BATCH_SAMPLES`` samples per channel,
-so its work arrays stay in the CPU cache. The density scale ``1 / (fs sum w**2)`` and the
-one-sided doubling are applied to the batch sums, not to every periodogram. Batching changes
-when the work is done, never the result: the segments and their weights are those of the
-segment-by-segment definition, to rounding.
+so its work arrays stay in the CPU cache. The sums are kept unscaled: the power sums as the
+squares of the real and imaginary parts side by side (``re**2, im**2`` of each line, one
+elementwise product per batch), added in pairs, scaled by the density scale
+``1 / (fs sum w**2)`` with the one-sided doubling and divided by the count only when a spectrum is
+read; H1 and coherence are ratios in which the scale cancels. Batching changes when the work is
+done, never the result: the segments and their weights are those of the segment-by-segment
+definition, to rounding.
 
-Only elementwise numpy, ``numpy.einsum`` (no BLAS) and :mod:`scipy.fft`: a threaded BLAS is
-slow on these short products on a loaded machine.
+Only elementwise numpy, ``numpy.einsum`` (no BLAS) and scipy's pocketfft (through
+:func:`liveshape.frames.rfft_into`, into a preallocated array): a threaded BLAS is slow on these
+short products on a loaded machine.
 
 References
 ----------
@@ -30,6 +34,7 @@ import numpy as np
 import scipy.fft as sp_fft
 import scipy.signal as sp_signal
 
+from liveshape.frames import rfft_into
 from liveshape.spectral_stats import (
     WHERE,
     check_count,
@@ -91,8 +96,13 @@ class WelchStream:
         self._batch = max(1, min(_MAX_BATCH, _BATCH_SAMPLES // nps))  # segments per FFT call
         self._cap = nps + (self._batch - 1) * hop  # a full buffer holds one batch of segments
         self._leads = leads
-        self._buf = np.zeros((len(leads), self._cap + max(leads)))
-        self._work = np.empty((len(leads), self._batch, nps))
+        nch = len(leads)
+        self._buf = np.zeros((nch, self._cap + max(leads)))
+        self._work = np.empty((nch, self._batch, nps))
+        self._spectra = np.empty((nch, self._batch, self._n_lines), dtype=np.complex128)
+        # unscaled power sums of each channel, re**2 and im**2 of every line side by side
+        self._pow = np.zeros((nch, 2 * self._n_lines))
+        self._pow_new = np.empty((nch, 2 * self._n_lines))  # one batch's sums
         self._start = 0  # buffer index of the next segment's first sample
         self._fill = 0  # samples in the buffer (common to all rows, leads excluded)
         self._k = 0  # segments averaged into the sums (the buffer may hold more)
@@ -169,6 +179,7 @@ class WelchStream:
 
     def _reset_stream(self) -> None:
         self._buf[:] = 0.0
+        self._pow[:] = 0.0
         self._start = 0
         self._fill = 0
         self._k = 0
@@ -209,26 +220,38 @@ class WelchStream:
     def _segments(self, start: int, m: int) -> None:
         """Window and transform the ``m`` segments from buffer index ``start``; average them."""
         buf, nps = self._buf, self._nperseg
-        if m == 1:
-            segs = buf[:, start: start + nps]
-            work = self._work[:, 0]
-        else:  # a strided view: segment i starts i hops after start, nothing is copied
-            step = buf.strides[1]
-            segs = np.ndarray((buf.shape[0], m, nps), np.float64, buffer=buf,
-                              offset=start * step, strides=(buf.strides[0], self._hop * step, step))
-            work = self._work[:, :m]
+        # a strided view: segment i starts i hops after start, nothing is copied
+        step = buf.strides[1]
+        segs = np.ndarray((buf.shape[0], m, nps), np.float64, buffer=buf,
+                          offset=start * step, strides=(buf.strides[0], self._hop * step, step))
+        work = self._work[:, :m]
         mean = np.add.reduce(segs, axis=-1, keepdims=True)
         mean /= nps
         np.subtract(segs, mean, out=work)  # scipy's detrend="constant"
         work *= self._win
-        spectra = sp_fft.rfft(work, axis=-1)
+        spectra = rfft_into(work, self._spectra[:, :m])  # channels x m x lines
+        keep, coef = self._weights(m)
+        if keep != 1.0:
+            self._decay(keep)
+        flat = spectra.view(np.float64)  # re, im side by side: |X|**2 = re**2 + im**2
+        new = self._pow_new
         if m == 1:
-            spectra = spectra[:, np.newaxis]
-        self._accumulate(spectra, *self._weights(m))
+            np.multiply(flat[:, 0], flat[:, 0], out=new)
+            if coef != 1.0:
+                new *= coef
+        elif isinstance(coef, np.ndarray):
+            np.einsum("m,cmk,cmk->ck", coef, flat, flat, out=new)
+        else:
+            np.einsum("cmk,cmk->ck", flat, flat, out=new)
+        self._pow += new
+        self._accumulate(spectra, coef)
 
-    def _accumulate(self, spectra: np.ndarray, keep: float, coef: float | np.ndarray) -> None:
-        """Add a batch (channels x m x lines): ``S = keep S + scale sum_i coef_i P_i``."""
-        raise NotImplementedError  # pragma: no cover - abstract
+    def _decay(self, keep: float) -> None:
+        """Multiply every sum by ``keep`` (exponential averaging)."""
+        self._pow *= keep
+
+    def _accumulate(self, spectra: np.ndarray, coef: float | np.ndarray) -> None:
+        """Add the cross terms of a batch (channels x m x lines) with the weights ``coef``."""
 
     def _weights(self, m: int) -> tuple[float, float | np.ndarray]:
         """Advance by ``m`` segments; returns (factor of the old sums, weights of the new ones).
@@ -252,19 +275,21 @@ class WelchStream:
         after[:-1] = np.cumprod(keep[::-1])[::-1][1:]
         return float(np.prod(keep)), a * after
 
-    def _scaled(self, s: np.ndarray, coef: float | np.ndarray) -> np.ndarray:
-        """Density scale, one-sided doubling and a scalar weight applied to a batch sum."""
-        if isinstance(coef, np.ndarray) or coef == 1.0:
-            s *= self._line_scale
-        else:
-            s *= self._line_scale * coef
+    # -- reading -----------------------------------------------------------------------------
+
+    def _power_sum(self, c: int) -> np.ndarray:
+        """Unscaled power sum of channel ``c`` per line (a new array)."""
+        p = self._pow[c]
+        return np.add(p[0::2], p[1::2])
+
+    def _density(self, s: np.ndarray) -> np.ndarray:
+        """Scale an unscaled sum (new array, scaled in place) to the averaged one-sided density."""
+        s *= self._line_scale
+        if self._averaging == "linear" and self._k:
+            s /= self._k
         return s
 
-    def _power(self, spec: np.ndarray, coef: float | np.ndarray) -> np.ndarray:
-        """``scale * sum_i coef_i |X_i|**2`` over the segments (rows) of one channel."""
-        flat = spec.view(np.float64)  # re, im interleaved: |X|**2 = re**2 + im**2
-        if isinstance(coef, np.ndarray):
-            s = np.einsum("m,mk,mk->k", coef, flat, flat)
-        else:
-            s = np.einsum("mk,mk->k", flat, flat)
-        return self._scaled(s[0::2] + s[1::2], coef)
+    def _auto(self, c: int) -> np.ndarray:
+        """Averaged one-sided PSD of channel ``c`` (zeros before the first segment)."""
+        self._flush()
+        return self._density(self._power_sum(c))
