@@ -84,6 +84,18 @@ def _feasibility(spec: Any) -> Any:
     )
 
 
+def _feasibility_warnings(feas: Any) -> list[str]:
+    """One line per exceeded budget or unreachable band of a rig feasibility."""
+    data = feas.to_dict()
+    lines = [f"{u.f_lo_hz:.6g}-{u.f_hi_hz:.6g} Hz cannot be controlled: {u.reason}"
+             for u in feas.unreachable]
+    exceeded = data.get("limits_exceeded")
+    if exceeded and exceeded != "none":
+        lines.append(f"rig limits exceeded by the profile at full level: {exceeded} "
+                     "(liveshape check SPEC --rig ... shows the budgets)")
+    return lines or ["the rig model does not pass its feasibility check (see check --rig)"]
+
+
 def _cmd_synth(args: argparse.Namespace) -> int:
     from liveshape import dashboard
     from liveshape.drivefile import make_drive_file
@@ -133,6 +145,12 @@ def _cmd_run(args: argparse.Namespace) -> int:
     # The cautions come first, before anything is driven (on stderr with --json).
     notice_console = dashboard.make_console(stderr=args.json)
     notice_console.print(dashboard.safety_notice())
+    if spec.rig.kind == "sim":
+        # Name what the rig cannot honestly do before anything is driven (see check --rig).
+        feas = _feasibility(spec)
+        if not feas.feasible:
+            for line in _feasibility_warnings(feas):
+                dashboard.print_error(notice_console, f"warning: {line}")
     if spec.rig.kind == "audio":
         from liveshape.session import run_audio_session
 
