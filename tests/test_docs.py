@@ -1,0 +1,31 @@
+"""The README says what the code does: exit statuses, example paths, commands (no drift)."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+from liveshape.cli import build_parser
+from liveshape.safety import EXIT_STATUS
+
+REPO = Path(__file__).resolve().parents[1]
+README = (REPO / "README.md").read_text(encoding="utf-8")
+
+
+def test_exit_status_table_matches_the_supervisor() -> None:
+    rows = dict((rule, int(code)) for code, rule in re.findall(r"^\| (\d+) \| `(\w+)`", README,
+                                                              flags=re.M))
+    assert rows == EXIT_STATUS
+
+
+def test_readme_paths_exist() -> None:
+    for path in set(re.findall(r"(examples/[\w./-]+\.(?:yaml|csv)|calibration/[\w.-]+)", README)):
+        assert (REPO / path).exists(), path
+
+
+def test_readme_commands_exist() -> None:
+    commands = set(build_parser()._subparsers._group_actions[0].choices)  # noqa: SLF001
+    # commands as the README shows them: in backticks or code blocks, after `liveshape `
+    named = set(re.findall(r"(?:`|\n|/)liveshape ([a-z][a-z-]+)", README))
+    assert named and named <= commands, named - commands
+    assert {"check", "synth", "run", "report", "devices", "calibrate", "virtual-rig"} <= commands
