@@ -26,6 +26,6 @@ def test_readme_paths_exist() -> None:
 def test_readme_commands_exist() -> None:
     commands = set(build_parser()._subparsers._group_actions[0].choices)  # noqa: SLF001
     # commands as the README shows them: in backticks or code blocks, after `liveshape `
-    named = set(re.findall(r"(?:`|\n|/)liveshape ([a-z][a-z-]+)", README))
+    named = set(re.findall(r"(?:`|/)liveshape ([a-z][a-z-]+)", README))
     assert named and named <= commands, named - commands
     assert {"check", "synth", "run", "report", "devices", "calibrate", "virtual-rig"} <= commands
