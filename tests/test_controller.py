@@ -239,7 +239,8 @@ def _check_ramp_down(ctl, drive, t_fault_s, spec):
         (FaultSpec("sensor_detached", 24.0), "loop_open", 1.0),
         (FaultSpec("amp_trip", 24.0), "loop_open", 1.0),
         (FaultSpec("sensor_gain", 24.0, 4.0), "rms_abort", 0.25),
-        (FaultSpec("plant_gain", 24.0, 10.0), "rms_abort", 1.0),
+        # at 0.25 grms the +10 dB jump leaves the input far from overload (0.08 FS rms)
+        (FaultSpec("plant_gain", 24.0, 10.0), "rms_abort", 0.25),
         (FaultSpec("noise_burst", 24.0, 0.5, 0.5), "input_overload", 1.0),
         (FaultSpec("dropout", 24.0, None, 1.0), "response_silent", 1.0),
         (FaultSpec("resonance_shift", 24.0, 1.25), "lines_abort", 1.0),
@@ -505,7 +506,10 @@ def test_blend_law_converges_too():
     ctl, _, _ = run(spec, rig)
     res = ctl.result()
     assert res.status == "completed", res.abort_reason
-    assert res.final_lines_outside_alarm == 0
+    # ~160 band lines at ~61 DOF: chi-square scatter alone puts a line outside +-3 dB with
+    # p = 4.4e-4 (DOMAIN.md §3), so a converged loop shows 1 such line 7 % of the time; 3 or
+    # more have binomial probability 5.4e-5 (scipy.stats.binom.sf(2, 160, 4.4e-4)).
+    assert res.final_lines_outside_alarm <= 2
     assert abs(res.final_rms_error_db) <= spec.tolerance.rms_alarm_db
 
 
