@@ -17,6 +17,7 @@ import tracemalloc
 
 import numpy as np
 import pytest
+import scipy.fft
 from scipy import signal, stats
 
 from liveshape.errors import ConfigError
@@ -25,6 +26,7 @@ from liveshape.synth import (
     RandomPhaseSynth,
     RunningMoments,
     SynthStats,
+    line_scales,
     random_phase_frame,
     sine_window,
 )
@@ -430,6 +432,35 @@ def test_fixed_real_lines_get_a_random_sign_of_fixed_size(line):
     # independent fair signs: sign changes between frames are binomial(399, 1/2)
     lo, hi = stats.binom.interval(1 - P_FAIL, is_flip[1:].size, 0.5)
     assert lo <= np.count_nonzero(is_flip[1:]) <= hi
+
+
+# --------------------------------------------------------------------------- the construction
+@pytest.mark.parametrize(
+    "band", [(3, 40), (0, 9), (100, 128), (100, 200), (1, 257), (1, 513), (200, 513)]
+)
+def test_stream_is_the_documented_overlap_add_of_scipy_inverse_ffts(band):
+    n, fs, seed = 1024, 48000.0, 5
+    lo, hi = band  # lines lo .. hi - 1 non-zero
+    psd = np.zeros(n // 2 + 1)
+    psd[lo:hi] = np.linspace(1.0, 2.0, hi - lo)
+    s = make_synth(fs, n, psd, seed=seed)
+    x = s.read(6 * n)
+    # the construction of the module docstring, with scipy.fft.irfft as reference: per frame
+    # 2 (hi - lo) standard normals, re and im of each line in turn, times line_scales; frames
+    # windowed by the sine window and overlap-added at 50 % (the first one primes the tail)
+    rng = np.random.default_rng(seed)
+    re, im = line_scales(psd, fs / n)
+    w = sine_window(n)
+    frames = []
+    for _ in range(13):
+        z = rng.standard_normal(2 * (hi - lo))
+        coef = np.zeros(n // 2 + 1, dtype=complex)
+        coef[lo:hi] = z[0::2] * re[lo:hi] + 1j * z[1::2] * im[lo:hi]
+        frames.append(w * scipy.fft.irfft(coef, n))
+    hop = n // 2
+    ref = np.concatenate([frames[j][hop:] + frames[j + 1][:hop] for j in range(12)])
+    # float64 rounding of an n-point inverse FFT: eps log2(n) of the rms (Higham 2002, 24.1)
+    np.testing.assert_allclose(x, ref, rtol=0, atol=1e-12 * np.sqrt(np.mean(ref**2)))
 
 
 # --------------------------------------------------------------------------- running moments
