@@ -83,9 +83,9 @@ __all__ = [
 ]
 
 #: Polyphase inverse FFT of band-limited frames: at most this many phases (short transforms),
-#: and only with at least this many (fewer save too little to pay for the phase factors).
+#: and at least this many (1 is the plain inverse FFT of N points).
 _MAX_PHASES = 64
-_MIN_PHASES = 4
+_MIN_PHASES = 2
 
 #: Lowest clip level allowed, in multiples of the rms: IEC 60068-2-64 asks for a drive crest
 #: factor of at least 2.5 (secondary summary of the standard; see DOMAIN.md section 5).
@@ -221,7 +221,8 @@ class RandomPhaseSynth:
         self._coef_ri = self._coef.view(np.float64)  # re, im interleaved
         self._frame_buf = np.empty(n)  # the newest unwindowed frame
         # polyphase inverse FFT of a band below fs / (2 D): coefficients and phase factors
-        self._phases = 1  # D (1: one inverse FFT of N points)
+        self._poly: tuple | None = None  # views for the polyphase transform (None: one of N)
+        self._draw_views = (self._coef_ri[:0], self._scale_ri[:0])  # drawn lines, their scales
         self._poly_coef = np.zeros(n // 2 + _MAX_PHASES, dtype=np.complex128)
         self._poly_mod = np.zeros(n // 2, dtype=np.complex128)
         self._tail = np.zeros(self._hop)
@@ -363,17 +364,27 @@ class RandomPhaseSynth:
             raise ConfigError(f"synth: out must be a float64 array of length {n}")
         if not self._primed:
             self._prime()
+        ramp = self._ramp
+        g = None if ramp.ramping else ramp.gain_target  # a steady gain is applied in the copy
+        block, hop, clip = self._block, self._hop, self._clip_sigma is not None
+        pos = self._pos
         done = 0
         while done < n:
-            if self._pos == self._hop:
+            if pos == hop:
                 self._next_block()
-            k = min(n - done, self._hop - self._pos)
-            out[done : done + k] = self._block[self._pos : self._pos + k]
-            if self._clip_sigma is not None:
-                self._n_clipped += int(np.count_nonzero(self._clipped[self._pos : self._pos + k]))
-            self._pos += k
+                pos = 0
+            k = min(n - done, hop - pos)
+            if g is None or g == 1.0:
+                out[done : done + k] = block[pos : pos + k]
+            else:
+                np.multiply(block[pos : pos + k], g, out=out[done : done + k])
+            if clip:
+                self._n_clipped += int(np.count_nonzero(self._clipped[pos : pos + k]))
+            pos += k
             done += k
-        self._ramp.apply(out)
+        self._pos = pos
+        if g is None:
+            ramp.apply(out)
         self._moments.update(out)
         return out
 
@@ -398,14 +409,19 @@ class RandomPhaseSynth:
         n, d = self._n, 1
         while 2 * d <= _MAX_PHASES and n % (4 * d) == 0 and n // (2 * d) >= 2 * hi:
             d *= 2
-        self._phases = d if d >= _MIN_PHASES and hi > lo else 1
-        if self._phases > 1:
-            d = self._phases
+        # views used by every frame, made once per span
+        self._draw_views = (self._coef_ri[2 * lo: 2 * hi], self._scale_ri[2 * lo: 2 * hi])
+        self._poly = None
+        if d >= _MIN_PHASES and hi > lo:
+            m = n // d
             self._poly_coef[:] = 0.0
-            k = np.arange(lo, hi, dtype=np.float64)[:, np.newaxis]
+            coef = self._poly_coef[: (m // 2 + 1) * d].reshape(m // 2 + 1, d)
             mod = self._poly_mod[: (hi - lo) * d].reshape(hi - lo, d)
+            k = np.arange(lo, hi, dtype=np.float64)[:, np.newaxis]
             np.exp((2j * np.pi / n) * k * np.arange(d), out=mod)
             mod /= d
+            lines = self._coef[lo:hi, np.newaxis]
+            self._poly = (mod, lines, coef[lo:hi], coef, m, self._frame_buf.reshape(m, d))
 
     def _frame(self) -> np.ndarray:
         """Draw one unwindowed frame (N samples) from the current PSD."""
@@ -415,9 +431,9 @@ class RandomPhaseSynth:
         if hi > lo:  # only the lines from the first to the last non-zero one are drawn
             if self._amplitudes == "rayleigh":
                 # the same draws as draw_coefficients: standard normals, re and im interleaved
-                ri = self._coef_ri[2 * lo: 2 * hi]
+                ri, scale = self._draw_views
                 self._rng.standard_normal(out=ri)
-                ri *= self._scale_ri[2 * lo: 2 * hi]
+                np.multiply(ri, scale, out=ri)
             else:
                 real = tuple(k - lo for k in (0, self._n_lines - 1) if lo <= k < hi)
                 draw_coefficients(
@@ -429,17 +445,14 @@ class RandomPhaseSynth:
                     draw=self._draw[: 2 * (hi - lo)].reshape(2, hi - lo),
                     out=self._coef[lo:hi],
                 )
-        d = self._phases
-        if d == 1:
+        if self._poly is None:
             return irfft_into(self._coef, self._n, self._frame_buf)
         # Polyphase: with every line below M / 2, M = N / D, sample D j + r of the frame is
         # sample j of the M-point inverse FFT of the lines times exp(2 pi i k r / N) / D: D short
         # transforms side by side (vectorized over r) instead of one long one; equal to rounding.
-        m = self._n // d
-        coef = self._poly_coef[: (m // 2 + 1) * d].reshape(m // 2 + 1, d)
-        mod = self._poly_mod[: (hi - lo) * d].reshape(hi - lo, d)
-        np.multiply(mod, self._coef[lo:hi, np.newaxis], out=coef[lo:hi])
-        irfft_into(coef, m, self._frame_buf.reshape(m, d), axis=0)
+        mod, lines, rows, coef, m, frame = self._poly
+        np.multiply(mod, lines, out=rows)
+        irfft_into(coef, m, frame, axis=0)
         return self._frame_buf
 
     def _prime(self) -> None:
