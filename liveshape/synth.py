@@ -227,7 +227,8 @@ class RandomPhaseSynth:
         self._poly_mod = np.zeros(n // 2, dtype=np.complex128)
         self._tail = np.zeros(self._hop)
         self._block = np.zeros(self._hop)
-        self._clipped = np.zeros(self._hop, dtype=bool)
+        self._clipped = np.zeros(self._hop, dtype=bool)  # samples of the block clipped
+        self._any_clipped = False  # False: none in the block (_clipped is then stale)
         self._level = np.empty(self._hop)
         self._pos = self._hop  # read position in the block (hop: block used up)
         self._var_tail = 0.0  # nominal variance of the frame in the tail
@@ -378,7 +379,7 @@ class RandomPhaseSynth:
                 out[done : done + k] = block[pos : pos + k]
             else:
                 np.multiply(block[pos : pos + k], g, out=out[done : done + k])
-            if clip:
+            if clip and self._any_clipped:
                 self._n_clipped += int(np.count_nonzero(self._clipped[pos : pos + k]))
             pos += k
             done += k
@@ -474,9 +475,14 @@ class RandomPhaseSynth:
             c = self._clip_sigma
             if var_prev == self._var_cur:
                 level = c * math.sqrt(self._var_cur)
-                np.greater(np.abs(block, out=self._level), level, out=self._clipped)
-                np.clip(block, -level, level, out=block)
+                mag = np.abs(block, out=self._level)
+                # few blocks reach a clip level of several sigma: look before clipping
+                self._any_clipped = bool(np.maximum.reduce(mag) > level)
+                if self._any_clipped:
+                    np.greater(mag, level, out=self._clipped)
+                    np.clip(block, -level, level, out=block)
             else:  # the block blends two spectra: nominal variance per sample
+                self._any_clipped = True
                 lv = self._level
                 np.multiply(self._w2_tail, var_prev, out=lv)
                 lv += self._w2_head * self._var_cur
