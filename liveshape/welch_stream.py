@@ -85,12 +85,9 @@ class WelchStream:
         hop = self._hop = nps - nps // 2
         self._c2 = overlap_correlation_sq(window, (nps // 2) / nps, nps)
         self._n_lines = nps // 2 + 1
-        # density scale and one-sided doubling of each line, applied to the batch sums
-        self._line_scale = np.full(self._n_lines, 2.0 / (self._fs_hz * float(np.dot(
-            self._win, self._win))))
-        self._line_scale[0] *= 0.5
-        if nps % 2 == 0:
-            self._line_scale[-1] *= 0.5
+        # density scale with the one-sided doubling (not on DC, nor on Nyquist for even nps)
+        self._scale = 2.0 / (self._fs_hz * float(np.dot(self._win, self._win)))
+        self._last_single = nps % 2 == 0
         self._f_hz = sp_fft.rfftfreq(nps, 1.0 / self._fs_hz)
         self._f_hz.setflags(write=False)
         self._batch = max(1, min(_MAX_BATCH, _BATCH_SAMPLES // nps))  # segments per FFT call
@@ -220,10 +217,12 @@ class WelchStream:
     def _segments(self, start: int, m: int) -> None:
         """Window and transform the ``m`` segments from buffer index ``start``; average them."""
         buf, nps = self._buf, self._nperseg
-        # a strided view: segment i starts i hops after start, nothing is copied
-        step = buf.strides[1]
-        segs = np.ndarray((buf.shape[0], m, nps), np.float64, buffer=buf,
-                          offset=start * step, strides=(buf.strides[0], self._hop * step, step))
+        if m == 1:
+            segs = buf[:, np.newaxis, start: start + nps]
+        else:  # a strided view: segment i starts i hops after start, nothing is copied
+            step = buf.strides[1]
+            segs = np.ndarray((buf.shape[0], m, nps), np.float64, buffer=buf, offset=start * step,
+                              strides=(buf.strides[0], self._hop * step, step))
         work = self._work[:, :m]
         mean = np.add.reduce(segs, axis=-1, keepdims=True)
         mean /= nps
@@ -284,9 +283,13 @@ class WelchStream:
 
     def _density(self, s: np.ndarray) -> np.ndarray:
         """Scale an unscaled sum (new array, scaled in place) to the averaged one-sided density."""
-        s *= self._line_scale
+        scale = self._scale
         if self._averaging == "linear" and self._k:
-            s /= self._k
+            scale /= self._k
+        s *= scale
+        s[0] *= 0.5
+        if self._last_single:
+            s[-1] *= 0.5
         return s
 
     def _auto(self, c: int) -> np.ndarray:
