@@ -6,7 +6,10 @@ any length (Smallwood & Paez 1993; Harris' Shock and Vibration Handbook, chapter
 control systems for vibration testing, "time-domain randomization"):
 
 1. each frame draws random Fourier coefficients whose mean-square per line is ``psd * delta_f``;
-2. ``numpy.fft.irfft`` turns them into ``frame_length`` samples;
+2. an inverse real FFT turns them into ``frame_length`` samples (when every non-zero line is
+   below ``N / (2 D)`` for a power of two ``D``, as D interleaved transforms of ``N / D`` points,
+   see :meth:`RandomPhaseSynth._frame`: the same frame to rounding, several times fewer
+   operations);
 3. the frame is multiplied by the sine window ``w(n) = sin(pi (n + 1/2) / N)`` and overlap-added
    at 50 % (hop ``N / 2``).
 
@@ -152,7 +155,9 @@ class RandomPhaseSynth:
     constant: the frame, block and coefficient buffers are allocated once. Each frame draws
     random numbers only for the lines from the first to the last non-zero line of the PSD, so a
     new PSD on the same span (a drive update) continues the same random sequence, and a narrow
-    band far below Nyquist costs little more than the inverse FFT.
+    band far below Nyquist costs little more than the inverse FFT, itself made of short
+    interleaved transforms. The statistics gather whole 8192-sample chunks
+    (:class:`liveshape.moments.RunningMoments`) and are merged when :attr:`stats` is read.
 
     Examples
     --------
