@@ -12,9 +12,11 @@ Synthesis of a 48 kHz float32 WAV of 10 and 60 minutes, measured side by side:
     The whole record in one inverse FFT (random coefficients on ``n / 2 + 1`` lines, ``irfft``,
     scale to the peak, write at once), implemented only here, for comparison.
 
-Each run is a fresh subprocess so its peak RSS (``ru_maxrss`` of that child, from
-:func:`os.wait4`) is honest. Targets for ``stream``: peak RSS < 200 MB at any duration and at
-least 100x real time. WAVs go to a temporary folder and are deleted after each run.
+Each run is a fresh subprocess so its peak RSS is its own: the child's VmHWM from
+``/proc/self/status`` (``ru_maxrss`` from :func:`os.wait4` where that is missing; on Linux it
+also counts the parent's image from before ``exec``, which inflated the figure when the runner
+had run memory-hungry benchmarks first). Targets for ``stream``: peak RSS < 200 MB at any
+duration and at least 100x real time. WAVs go to a temporary folder and are deleted after each run.
 
 Before the WAVs, ``synth.read_*``: audio seconds per CPU second of
 :meth:`~liveshape.synth.RandomPhaseSynth.read` alone (best of 3 runs), 1024-sample blocks of
@@ -122,7 +124,24 @@ def _child(method: str, out: str, duration_s: float) -> None:
     t0 = time.perf_counter()
     extra = work(Path(out), duration_s)
     wall = time.perf_counter() - t0
-    print(json.dumps({"wall_s": wall, **extra}), flush=True)
+    print(json.dumps({"wall_s": wall, "vm_hwm_mb": _vm_hwm_mb(), **extra}), flush=True)
+
+
+def _vm_hwm_mb() -> float | None:
+    """This process's own peak resident set (VmHWM, Linux), MB; None where unavailable.
+
+    Unlike ``ru_maxrss`` of a child (which on Linux keeps the peak of the forked parent image
+    from before ``exec``), VmHWM starts afresh with the new program, so a parent that holds a
+    lot of memory does not inflate the child's figure.
+    """
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024.0
+    except OSError:
+        return None
+    return None
 
 
 # ------------------------------------------------------------------------------ parent side
@@ -142,7 +161,8 @@ def _measure(method: str, duration_s: float, folder: Path) -> dict:
     if proc.returncode != 0:
         raise RuntimeError(f"bench_synth child {method} {duration_s} s exited {proc.returncode}")
     result = json.loads(text.strip().splitlines()[-1])
-    result["peak_rss_mb"] = usage.ru_maxrss / 1024.0  # Linux: kB
+    hwm = result.pop("vm_hwm_mb", None)
+    result["peak_rss_mb"] = hwm if hwm is not None else usage.ru_maxrss / 1024.0  # Linux: kB
     return result
 
 
