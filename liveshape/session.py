@@ -120,6 +120,20 @@ def _calibration_mapping(cal: ChainCalibration) -> dict[str, Any]:
     return data
 
 
+def _open_record(spec: TestSpec, out_dir: str | Path, rig_mapping: dict[str, Any],
+                 cal: ChainCalibration, extra: dict[str, Any]) -> RunRecorder:
+    """A new run folder with the resolved spec, the rig and its calibration."""
+    return RunRecorder.create(
+        out_dir,
+        name=spec.name,
+        spec_mapping=spec_to_mapping(spec),
+        rig_mapping=rig_mapping,
+        calibration=_calibration_mapping(cal),
+        fs_hz=spec.control.fs_hz,
+        extra=extra,
+    )
+
+
 class RunLoop:
     """Feeds the controller, the rig, the record and the view for one run.
 
@@ -239,15 +253,8 @@ def run_session(
     rig, cal, rig_mapping = build_sim_rig(spec, seed)
     controller = Controller(spec, cal, seed=seed)
     stop = stop or StopFlag()
-    recorder = RunRecorder.create(
-        out_dir,
-        name=spec.name,
-        spec_mapping=spec_to_mapping(spec),
-        rig_mapping=rig_mapping,
-        calibration=_calibration_mapping(cal),
-        fs_hz=spec.control.fs_hz,
-        extra={"seed": seed, "fast": fast, "block_size": block_size},
-    )
+    recorder = _open_record(spec, out_dir, rig_mapping, cal,
+                            {"seed": seed, "fast": fast, "block_size": block_size})
     with recorder, sigterm_stops(stop):
         loop = RunLoop(controller, recorder, on_snapshot=on_snapshot)
         result = loop.run_sim(rig, block_size=block_size, fast=fast, stop=stop)
@@ -308,15 +315,8 @@ def run_audio_session(
         "block_size": block_size,
         "lead_blocks": lead_blocks,
     }
-    recorder = RunRecorder.create(
-        out_dir,
-        name=spec.name,
-        spec_mapping=spec_to_mapping(spec),
-        rig_mapping=rig_mapping,
-        calibration=_calibration_mapping(cal),
-        fs_hz=fs,
-        extra={"seed": seed, "block_size": block_size, "calibrated": cal.calibrated},
-    )
+    recorder = _open_record(spec, out_dir, rig_mapping, cal,
+                            {"seed": seed, "block_size": block_size, "calibrated": cal.calibrated})
     with recorder, sigterm_stops(stop):
         loop = RunLoop(controller, recorder, on_snapshot=on_snapshot)
         result = rig.run(
