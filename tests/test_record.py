@@ -287,30 +287,19 @@ def test_load_run_errors_are_one_line(tmp_path):
 
 
 def test_update_from_record_keeps_figures_and_extra_arrays(tmp_path):
-    @dataclasses.dataclass(frozen=True)
-    class Update:  # the controller's update record fields (demo values)
-        index: int
-        t_s: float
-        stage: str
-        level_db: float
-        dof: float
-        f_hz: np.ndarray
-        control_psd: np.ndarray
-        target_psd: np.ndarray
-        drive_psd: np.ndarray
-        new_drive_psd: np.ndarray
-        h1: np.ndarray
-        coherence: np.ndarray
-        rms_error_db: float
-        applied: bool
-        lines_held: int
+    from liveshape.runstate import UpdateRecord  # the controller's own record (demo values)
 
     f = np.arange(9.0)
     rec = _recorder(tmp_path)
     for i in (1, 2):
         rec.update_from(
-            Update(i, 1.5 * i, "equalize", -6.0, 60.0, f, f + i, f * 0 + 1, f * 2, f * 3 + i,
-                   (1 + 1j) * f, f / 9, -0.5 / i, i == 2, 3),
+            UpdateRecord(
+                index=i, t_s=1.5 * i, stage="equalize", level_db=-6.0, dof=60.0, f_hz=f,
+                control_psd=f + i, target_psd=f * 0 + 1, drive_psd=f * 2,
+                new_drive_psd=f * 3 + i, h1=(1 + 1j) * f, coherence=f / 9,
+                rms_error_db=-0.5 / i, max_dev_db=1.0, min_dev_db=-1.0, applied=i == 2,
+                lines_step_limited=0, lines_held=3, ceiling_scale=1.0,
+            ),
             lines_outside_alarm=7,
         )
     up = load_run(rec.root).updates
