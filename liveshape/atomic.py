@@ -3,7 +3,8 @@
 Pure standard library. :func:`os.replace` within one file system is atomic (POSIX ``rename``),
 so a reader sees the old file or the whole new one, never half a file; when writing fails the
 temporary file is removed and the old file stays as it was. Used for every small file the
-package writes (YAML through :mod:`liveshape.config`, the run record's JSON and update files).
+package writes (YAML through :mod:`liveshape.testdef.config`, the run record's JSON and update
+files).
 """
 
 from __future__ import annotations

@@ -1,8 +1,8 @@
 """The command line: the one module that imports :mod:`argparse`.
 
 Every command maps a user mistake (a :class:`~liveshape.errors.LiveshapeError`) to one line on
-stderr and exit status 2, never a traceback. Rendering goes through :mod:`liveshape.dashboard`;
-``--json`` prints exactly one JSON object to stdout.
+stderr and exit status 2, never a traceback. Rendering goes through
+:mod:`liveshape.views.dashboard`; ``--json`` prints exactly one JSON object to stdout.
 """
 
 from __future__ import annotations
@@ -18,7 +18,7 @@ from typing import Any
 
 from liveshape import __version__
 from liveshape.errors import ConfigError, LiveshapeError
-from liveshape.record import json_safe
+from liveshape.record.writer import json_safe
 
 EXIT_USAGE = 2
 EXIT_INTERRUPTED = 130
@@ -48,9 +48,9 @@ def _rig_overrides(rig: str | None, option: str = "--rig") -> dict[str, Any]:
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
-    from liveshape import dashboard
-    from liveshape.checks import check_report
-    from liveshape.spec import load_spec
+    from liveshape.control.checks import check_report
+    from liveshape.testdef.spec import load_spec
+    from liveshape.views import dashboard
 
     overrides = _rig_overrides(args.rig)
     if args.fs is not None:
@@ -97,9 +97,9 @@ def _feasibility_warnings(feas: Any) -> list[str]:
 
 
 def _cmd_synth(args: argparse.Namespace) -> int:
-    from liveshape import dashboard
-    from liveshape.drivefile import make_drive_file
-    from liveshape.spec import load_spec
+    from liveshape.record.drivefile import make_drive_file
+    from liveshape.testdef.spec import load_spec
+    from liveshape.views import dashboard
 
     overrides: dict[str, Any] = {}
     if args.fs is not None:
@@ -126,8 +126,8 @@ def _cmd_synth(args: argparse.Namespace) -> int:
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
-    from liveshape import dashboard
-    from liveshape.spec import load_spec, parse_fault
+    from liveshape.testdef.spec import load_spec, parse_fault
+    from liveshape.views import dashboard
 
     overrides = _rig_overrides(args.rig)
     if args.fault:
@@ -176,7 +176,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
 
 def _cmd_report(args: argparse.Namespace) -> int:
-    from liveshape.report import render_report
+    from liveshape.record.report import render_report
 
     result = render_report(args.run_dir, out_dir=args.out)
     sys.stdout.write(result.summary.rstrip("\n") + "\n")
@@ -229,9 +229,9 @@ CAL_STEPS = ("output", "input", "delay", "corner", "sensor")
 
 def _cmd_calibrate(args: argparse.Namespace) -> int:
     """One calibration step; results are merged into the calibration file."""
-    from liveshape import config
     from liveshape.rigs import calibration as cal
     from liveshape.rigs.audio import AudioRig, check_settings
+    from liveshape.testdef import config
 
     path = Path(args.file)
     data: dict[str, Any] = {}

@@ -3,9 +3,9 @@
 This is the only place where wall-clock time enters a run: the controller counts samples, the
 session decides whether to pace the loop in real time (the default on the simulated rig) or run
 it as fast as the CPU allows (``fast=True``, identical results for the same seed). It joins the
-pure core (:class:`~liveshape.controller.Controller`, :class:`~liveshape.rigs.sim.SimRig`) with
-the record (:mod:`liveshape.record`) and the view callback, and turns Ctrl-C and SIGTERM into
-the controller's controlled ramp-down.
+pure core (:class:`~liveshape.control.controller.Controller`, :class:`~liveshape.rigs.sim.SimRig`)
+with the record (:mod:`liveshape.record.writer`) and the view callback, and turns Ctrl-C and
+SIGTERM into the controller's controlled ramp-down.
 """
 
 from __future__ import annotations
@@ -22,12 +22,12 @@ from typing import Any
 
 import numpy as np
 
-from liveshape.chain import ChainCalibration
-from liveshape.controller import Controller
+from liveshape.control.controller import Controller
+from liveshape.control.runstate import ControlSnapshot, RunResult
 from liveshape.errors import ConfigError
-from liveshape.record import RunRecorder
-from liveshape.runstate import ControlSnapshot, RunResult
-from liveshape.spec import TestSpec, spec_to_mapping
+from liveshape.record.writer import RunRecorder
+from liveshape.testdef.chain import ChainCalibration
+from liveshape.testdef.spec import TestSpec, spec_to_mapping
 
 #: Default block size of the simulated rig, samples (about 85 ms at 48 kHz; paced and --fast
 #: runs use the same size, so the same seed gives the same drive).
@@ -287,8 +287,8 @@ def run_audio_session(
 ) -> SessionResult:
     """Run one test through a real audio interface (or the JACK virtual rig).
 
-    The same :class:`~liveshape.controller.Controller` as on the simulated rig; the stream is
-    one full-duplex :class:`liveshape.rigs.audio.AudioRig`. The calibration file is required
+    The same :class:`~liveshape.control.controller.Controller` as on the simulated rig; the stream
+    is one full-duplex :class:`liveshape.rigs.audio.AudioRig`. The calibration file is required
     unless the spec says the levels are uncalibrated (the record says so). The device and its
     settings are checked before the record folder is made, so a wrong device leaves nothing.
     """

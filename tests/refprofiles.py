@@ -4,8 +4,9 @@ from __future__ import annotations
 
 from scipy import integrate
 
-from liveshape.profile import Profile, profile_from_points
+from liveshape.dsp.profile import Profile
 from liveshape.schema import Where
+from liveshape.testdef.profilefile import profile_from_points
 
 W = Where("test.yaml", "profile.breakpoints")
 N_3DB = 3.0 / 3.0103  # exponent of +3 dB/oct, n = m/3.0103 (DOMAIN.md §1, calc)

@@ -46,8 +46,8 @@ def test_a_missing_folder_is_an_oserror(tmp_path) -> None:
 
 
 def test_write_yaml_file_turns_a_failed_write_into_one_line_naming_the_file(tmp_path) -> None:
-    from liveshape.config import write_yaml_file
     from liveshape.errors import ConfigError
+    from liveshape.testdef.config import write_yaml_file
 
     path = tmp_path / "no" / "a.yaml"
     with pytest.raises(ConfigError) as err:

@@ -15,13 +15,13 @@ import numpy as np
 import pytest
 from scipy import signal
 
-from liveshape.chain import ChainCalibration
 from liveshape.errors import ConfigError
 from liveshape.rigs import calibration as cal
 from liveshape.rigs.jackrig import CableModel
 from liveshape.rigs.plant import load_plant
 from liveshape.rigs.ring import Recording
 from liveshape.rigs.sim import SimRig
+from liveshape.testdef.chain import ChainCalibration
 
 FS = 48000.0
 

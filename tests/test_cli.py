@@ -72,8 +72,8 @@ def test_check_table_names_band_and_grms(capsys: pytest.CaptureFixture[str]) -> 
 def test_seconds_for_dof_matches_welch_dof() -> None:
     # Welch (1967): Hann 50 % adds 36/19 DOF per segment for many segments; 120 DOF needs
     # ceil((120 - c) / (36/19)) segments, about 64 (DOMAIN.md §3).
-    from liveshape.checks import segments_for_dof
-    from liveshape.spectra import welch_dof
+    from liveshape.control.checks import segments_for_dof
+    from liveshape.dsp.spectra import welch_dof
 
     k = segments_for_dof(120.0)
     assert welch_dof(k) >= 120.0 > welch_dof(k - 1)

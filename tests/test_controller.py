@@ -16,13 +16,14 @@ import math
 import numpy as np
 import pytest
 
-from liveshape.chain import ChainCalibration
-from liveshape.controller import Controller, run_offline
-from liveshape.profile import Profile, Tolerance
+from liveshape.control.controller import Controller, run_offline
+from liveshape.control.safety import EXIT_STATUS
+from liveshape.dsp.profile import Profile
 from liveshape.rigs.plant import load_plant
 from liveshape.rigs.sim import SimRig
-from liveshape.safety import EXIT_STATUS
-from liveshape.spec import ControlSettings, FaultSpec, SafetyLimits, Schedule, TestSpec
+from liveshape.testdef.chain import ChainCalibration
+from liveshape.testdef.spec import ControlSettings, FaultSpec, SafetyLimits, Schedule, TestSpec
+from liveshape.testdef.tolerance import Tolerance
 
 FS = 12000.0
 N = 2048
@@ -150,7 +151,7 @@ def test_snapshot_and_result_numbers_are_consistent():
         assert not snap.target_psd.flags.writeable
         if snap.control_psd is not None and snap.dof >= spec.control.target_dof:
             # the χ² band is the 90 % interval for the DOF in use (scipy.stats reference)
-            from liveshape.spectra import chi2_interval_db
+            from liveshape.dsp.spectra import chi2_interval_db
             assert (snap.chi2_lo_db, snap.chi2_hi_db) == pytest.approx(chi2_interval_db(snap.dof))
             grms = math.sqrt(float(np.sum(snap.control_psd)) * FS / N)
             assert snap.control_grms_g == pytest.approx(grms)
@@ -404,11 +405,11 @@ def test_request_stop_ramps_down_with_status_stopped():
 
 
 def test_segments_for_dof_is_the_smallest_count_reaching_the_dof():
-    from liveshape.spectra import welch_dof
-    from liveshape.stages import segments_for_dof
+    from liveshape.control.stages import segments_for_dof
+    from liveshape.dsp.spectra import welch_dof
     for dof in (16.0, 60.0, 120.0):
         k = segments_for_dof(dof)
-        # Welch 1967 equivalent DOF (liveshape.spectra.welch_dof, checked against scipy there)
+        # Welch 1967 equivalent DOF (liveshape.dsp.spectra.welch_dof, checked against scipy there)
         assert welch_dof(k) >= dof > welch_dof(k - 1)
 
 
@@ -417,7 +418,7 @@ def test_decision_pool_dof_matches_monte_carlo_of_chi2_estimates(averaging):
     # Pool independent χ²_ν/ν estimates; the pooled estimate's var/mean² must be 2/ν_pool
     # (χ² variance 2ν). 20000 lines: relative standard error of the variance ≈ √(2/20000)·√κ
     # with κ ≈ 1.5 for these weighted χ² sums; 4σ ≈ 7 %.
-    from liveshape.stages import DecisionPool
+    from liveshape.control.stages import DecisionPool
     rng = np.random.default_rng(17)
     nu_u, n = 60.0, 20000
     pool = DecisionPool(120.0, nu_u, averaging)
@@ -436,7 +437,7 @@ def test_decision_pool_dof_matches_monte_carlo_of_chi2_estimates(averaging):
 
 
 def test_drive_history_returns_what_was_appended():
-    from liveshape.stages import DriveHistory
+    from liveshape.control.stages import DriveHistory
     rng = np.random.default_rng(3)
     h = DriveHistory(64)
     ref = []
@@ -457,7 +458,7 @@ def test_analyse_connection_finds_delay_coherence_and_h1():
     # √((1−γ²)/(2 n_d γ²)); with 1e−4 relative noise it is far below the 2 % allowed here.
     from scipy import signal as sig
 
-    from liveshape.stages import analyse_connection
+    from liveshape.control.stages import analyse_connection
     rng = np.random.default_rng(5)
     fs, n, delay = 8000.0, 512, 137
     b, a = sig.butter(2, [100, 1500], btype="band", fs=fs)
@@ -482,7 +483,7 @@ def test_control_estimate_newest_sum_is_the_newest_segment_alone():
     # Reference: scipy.signal.welch of the newest segment by itself.
     from scipy import signal as sig
 
-    from liveshape.stages import ControlEstimate
+    from liveshape.control.stages import ControlEstimate
     rng = np.random.default_rng(9)
     fs, n = 1000.0, 256
     band = np.zeros(n // 2 + 1, dtype=bool)
@@ -540,13 +541,13 @@ def test_drive_only_goes_down_while_a_rule_is_pending():
 
 def test_moved_names_are_reexported():
     # the connection stage's pieces live in connect; stages keeps them importable
-    from liveshape import connect, stages
+    from liveshape.control import connect, stages
 
     for name in ("CONNECT_SEGMENTS", "ConnectionCheck", "ConnectRecorder", "analyse_connection",
                  "connection_data", "connection_trip"):
         assert getattr(stages, name) is getattr(connect, name)
     # the loop's settings and views are the controller's base class, in loopstate
-    from liveshape import controller, loopstate
+    from liveshape.control import controller, loopstate
 
     assert issubclass(controller.Controller, loopstate.LoopState)
     assert (controller.FADE_IN_S, controller.IDENTIFY_BELOW_DB) == (

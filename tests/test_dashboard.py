@@ -18,10 +18,11 @@ import numpy as np
 import pytest
 import scipy.stats
 
-from liveshape import dashboard as dash
-from liveshape.profile import Profile, Tolerance
-from liveshape.runstate import ControlSnapshot, Event, RunResult
-from liveshape.safety import Trip
+from liveshape.control.runstate import ControlSnapshot, Event, RunResult
+from liveshape.control.safety import Trip
+from liveshape.dsp.profile import Profile
+from liveshape.testdef.tolerance import Tolerance
+from liveshape.views import dashboard as dash
 
 WIDTH = 120
 
@@ -321,8 +322,8 @@ def test_drive_table_limits_delay_and_trip():
 
 
 def test_check_table_same_from_report_mapping_and_objects():
-    from liveshape.checks import check_report
-    from liveshape.spec import spec_from_mapping
+    from liveshape.control.checks import check_report
+    from liveshape.testdef.spec import spec_from_mapping
 
     points = [{"f_hz": f, "asd": a} for f, a in zip(_navmat().f_hz, _navmat().asd_g2_hz,
                                                     strict=True)]
@@ -354,10 +355,10 @@ def test_plot_legend_shows_limits_that_vary_by_band():
 def test_dashboard_of_a_real_controller_snapshot():
     from pathlib import Path
 
-    from liveshape.controller import Controller
+    from liveshape.control.controller import Controller
     from liveshape.rigs.plant import load_plant
     from liveshape.rigs.sim import SimRig
-    from liveshape.spec import load_spec
+    from liveshape.testdef.spec import load_spec
 
     example = Path(__file__).resolve().parents[1] / "examples" / "handlebar-nav-unit.yaml"
     spec = load_spec(example, {"control.fs_hz": 8000, "control.lines": 512,

@@ -1,4 +1,4 @@
-"""Tests of liveshape.delay: the loop delay from the cross-correlation peak.
+"""Tests of liveshape.dsp.delay: the loop delay from the cross-correlation peak.
 
 Delays are exact by construction (zero-padded shifts, DFT-shift fractional delays); the outside
 facts are named beside each check.
@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 import scipy.signal as sig
 
-from liveshape.delay import DelayEstimate, estimate_delay
+from liveshape.dsp.delay import DelayEstimate, estimate_delay
 from liveshape.errors import ConfigError
 
 

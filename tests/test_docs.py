@@ -6,7 +6,7 @@ import re
 from pathlib import Path
 
 from liveshape.cli import build_parser
-from liveshape.safety import EXIT_STATUS
+from liveshape.control.safety import EXIT_STATUS
 
 REPO = Path(__file__).resolve().parents[1]
 README = (REPO / "README.md").read_text(encoding="utf-8")

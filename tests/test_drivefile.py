@@ -1,4 +1,4 @@
-"""Tests of liveshape.drivefile: streamed WAV + JSON sidecar, verification, crest selection.
+"""Tests of liveshape.record.drivefile: streamed WAV + JSON sidecar, verification, crest selection.
 
 Statistical checks use bounds with a false-failure probability of about 1e-4 (4-sigma normal or
 exact binomial quantiles), fixed before looking at the data; seeds are fixed.
@@ -18,11 +18,11 @@ import soundfile as sf
 from scipy import signal, stats
 from scipy.special import polygamma, psi
 
-from liveshape.drivefile import EDGE_LINES, DriveFileResult, make_drive_file
+from liveshape.dsp.profile import Profile
+from liveshape.dsp.synth import RandomPhaseSynth
 from liveshape.errors import ConfigError
-from liveshape.profile import Profile
-from liveshape.spec import ControlSettings, SafetyLimits, TestSpec
-from liveshape.synth import RandomPhaseSynth
+from liveshape.record.drivefile import EDGE_LINES, DriveFileResult, make_drive_file
+from liveshape.testdef.spec import ControlSettings, SafetyLimits, TestSpec
 
 P_FAIL = 1e-4
 Z4 = 4.0  # two-sided normal bound, P = 6.3e-5

@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from scipy import special
 
-from liveshape import equalizer as eq
+from liveshape.control import equalizer as eq
 
 N = 64
 

@@ -1,11 +1,11 @@
-"""Tests of liveshape.fault_spec: the fault kinds and the command-line form of a fault."""
+"""Tests of liveshape.testdef.fault_spec: the fault kinds and the command-line form of a fault."""
 
 from __future__ import annotations
 
 import pytest
 
 from liveshape.errors import ConfigError
-from liveshape.fault_spec import FAULT_KINDS, FaultSpec, parse_fault
+from liveshape.testdef.fault_spec import FAULT_KINDS, FaultSpec, parse_fault
 
 
 @pytest.mark.parametrize(

@@ -9,8 +9,8 @@ import math
 import numpy as np
 import pytest
 
+from liveshape.dsp.profile import G0_M_S2, Profile
 from liveshape.errors import ConfigError
-from liveshape.profile import G0_M_S2, Profile
 from liveshape.rigs.feasibility import assess
 from liveshape.rigs.plant import load_plant
 

@@ -1,4 +1,4 @@
-"""Tests of liveshape.frames: one random-phase frame against scipy and the chi-square law.
+"""Tests of liveshape.dsp.frames: one random-phase frame against scipy and the chi-square law.
 
 Statistical checks fail by chance with probability ``P_FAIL`` (seeds are fixed, so results are
 reproducible).
@@ -11,8 +11,8 @@ import pytest
 import scipy.fft
 from scipy import signal, stats
 
-from liveshape import frames
-from liveshape.frames import irfft_into, random_phase_frame, rfft_into, sine_window
+from liveshape.dsp import frames
+from liveshape.dsp.frames import irfft_into, random_phase_frame, rfft_into, sine_window
 
 P_FAIL = 1e-4  # chance of a false failure per statistical check
 

@@ -178,8 +178,9 @@ LEAD = 8
 
 
 def make_spec(*, steps=(-3.0, 0.0), hold_s=1.0, full_s=3.0, faults=(), seed=1):
-    from liveshape.profile import Profile, Tolerance
-    from liveshape.spec import ControlSettings, SafetyLimits, Schedule, TestSpec
+    from liveshape.dsp.profile import Profile
+    from liveshape.testdef.spec import ControlSettings, SafetyLimits, Schedule, TestSpec
+    from liveshape.testdef.tolerance import Tolerance
 
     prof = Profile((20.0, 1000.0), (1.0 / 980.0, 1.0 / 980.0), "flat 1 grms")
     return TestSpec(
@@ -216,7 +217,7 @@ def assert_no_step(x: np.ndarray, block: int) -> None:
 
 @pytest.mark.jack
 def test_closed_loop_converges_through_the_real_stream(jack_server) -> None:
-    from liveshape.controller import Controller
+    from liveshape.control.controller import Controller
     from liveshape.rigs.sim import SimRig
 
     spec = make_spec()
@@ -245,7 +246,7 @@ def test_closed_loop_converges_through_the_real_stream(jack_server) -> None:
 
 @pytest.mark.jack
 def test_ctrl_c_ramps_down_and_stops(jack_server) -> None:
-    from liveshape.controller import Controller
+    from liveshape.control.controller import Controller
 
     with virtual_rig("ideal", seed=5) as vr, JackTap(["PortAudio:out_0"]) as tap:
         rig = audio.AudioRig(PLANT, FS, lead_blocks=LEAD)
@@ -263,8 +264,8 @@ def test_ctrl_c_ramps_down_and_stops(jack_server) -> None:
 
 @pytest.mark.jack
 def test_plant_fault_aborts_with_a_ramp(jack_server) -> None:
-    from liveshape.controller import Controller
-    from liveshape.spec import FaultSpec
+    from liveshape.control.controller import Controller
+    from liveshape.testdef.spec import FaultSpec
 
     faults = [FaultSpec("sensor_detached", at_s=7.0)]  # plant time since the rig started
     with virtual_rig("ideal", seed=6, faults=faults) as vr, JackTap(["PortAudio:out_0"]) as tap:
@@ -278,7 +279,7 @@ def test_plant_fault_aborts_with_a_ramp(jack_server) -> None:
 
 @pytest.mark.jack
 def test_virtual_rig_killed_mid_run_is_a_controlled_abort(jack_server) -> None:
-    from liveshape.controller import Controller
+    from liveshape.control.controller import Controller
     from liveshape.rigs.sim import SimRig
 
     truth = SimRig(load_plant("ideal"), FS).calibration
@@ -319,7 +320,7 @@ class LateController:
 
 @pytest.mark.jack
 def test_underflows_are_counted_reported_and_abort_the_run(jack_server) -> None:
-    from liveshape.controller import Controller
+    from liveshape.control.controller import Controller
 
     with virtual_rig("ideal", seed=8) as vr, JackTap(["PortAudio:out_0"]) as tap:
         rig = audio.AudioRig(PLANT, FS, lead_blocks=LEAD)

@@ -27,7 +27,7 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from liveshape import config
+from liveshape.testdef import config
 
 REPO = Path(__file__).resolve().parents[1]
 OUT_V_PER_FS = 2.0

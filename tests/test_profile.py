@@ -1,4 +1,4 @@
-"""Tests of liveshape.profile: integrals, interpolation, breakpoints, CSV files.
+"""Tests of liveshape.dsp.profile: integrals, interpolation, breakpoints, CSV files.
 
 Tolerance bands are tested in test_tolerance.py, Miles' equation and the SDOF response in
 test_response.py.
@@ -13,13 +13,9 @@ import pytest
 from refprofiles import N_3DB, W, navmat, quad_segments  # noqa: E402, F401
 from scipy import integrate
 
+from liveshape.dsp.profile import G0_M_S2, Profile
 from liveshape.errors import ConfigError
-from liveshape.profile import (
-    G0_M_S2,
-    Profile,
-    profile_from_points,
-    read_profile_csv,
-)
+from liveshape.testdef.profilefile import profile_from_points, read_profile_csv
 
 
 # -- published and closed-form check values --------------------------------------------------
@@ -305,12 +301,3 @@ def test_csv_missing_file(tmp_path):
     with pytest.raises(ConfigError, match="file not found"):
         read_profile_csv(tmp_path / "nope.csv")
 
-
-def test_moved_names_are_reexported():
-    # other modules import these from liveshape.profile; they live in tolerance and response
-    from liveshape import profile, response, tolerance
-
-    for name in ("Tolerance", "ToleranceBand", "tolerance_from_mapping"):
-        assert getattr(profile, name) is getattr(tolerance, name)
-    for name in ("miles_grms", "sdof_transmissibility_sq", "sdof_response_grms"):
-        assert getattr(profile, name) is getattr(response, name)

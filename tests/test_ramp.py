@@ -1,4 +1,4 @@
-"""Tests of liveshape.ramp: per-sample gain ramps (dB ramps and raised-cosine fades).
+"""Tests of liveshape.dsp.ramp: per-sample gain ramps (dB ramps and raised-cosine fades).
 
 The checks are the ramps' definitions and their step bounds, exact in float64.
 """
@@ -10,8 +10,8 @@ import math
 import numpy as np
 import pytest
 
+from liveshape.dsp.ramp import GainRamp
 from liveshape.errors import ConfigError
-from liveshape.ramp import GainRamp
 
 
 def test_gain_ramp_db_ramp_rate_and_step_bound():

@@ -23,10 +23,10 @@ import pytest
 import scipy.io.wavfile
 import soundfile
 
-from liveshape.config import read_yaml_file
 from liveshape.errors import ConfigError
-from liveshape.record import RunRecorder, json_safe
-from liveshape.runfolder import load_run, read_signals
+from liveshape.record.runfolder import load_run, read_signals
+from liveshape.record.writer import RunRecorder, json_safe
+from liveshape.testdef.config import read_yaml_file
 
 REPO = Path(__file__).resolve().parents[1]
 NOW = dt.datetime(2024, 5, 6, 7, 8, 9, tzinfo=dt.timezone.utc)
@@ -229,7 +229,7 @@ _CHILD = textwrap.dedent(
     """
     import datetime as dt, os, signal, sys
     import numpy as np
-    from liveshape.record import RunRecorder
+    from liveshape.record.writer import RunRecorder
     rec = RunRecorder.create(
         sys.argv[1], name="killed", spec_mapping={"name": "killed"}, rig_mapping={},
         calibration={"calibrated": True}, fs_hz=8000, flush_every_s=1.0,
@@ -287,7 +287,7 @@ def test_load_run_errors_are_one_line(tmp_path):
 
 
 def test_update_from_record_keeps_figures_and_extra_arrays(tmp_path):
-    from liveshape.runstate import UpdateRecord  # the controller's own record (demo values)
+    from liveshape.control.runstate import UpdateRecord  # the controller's own record (demo values)
 
     f = np.arange(9.0)
     rec = _recorder(tmp_path)
@@ -312,7 +312,7 @@ def test_update_from_record_keeps_figures_and_extra_arrays(tmp_path):
 
 
 def test_wav_size_limit_drops_later_blocks_once(tmp_path, monkeypatch):
-    import liveshape.wavstream as wavstream
+    import liveshape.record.wavstream as wavstream
 
     # The RIFF size field is 32 bits (4 GiB); shrink the limit to 4000 bytes = 1000 float32.
     monkeypatch.setattr(wavstream, "WAV_MAX_DATA_BYTES", 4000)
@@ -330,10 +330,10 @@ def test_wav_size_limit_drops_later_blocks_once(tmp_path, monkeypatch):
 
 def _record_real_run(out_dir: Path):
     """A short real run (controller + simulated rig) recorded the way the shell records one."""
-    from liveshape.controller import Controller
+    from liveshape.control.controller import Controller
     from liveshape.rigs.plant import load_plant
     from liveshape.rigs.sim import SimRig
-    from liveshape.spec import load_spec, spec_to_mapping
+    from liveshape.testdef.spec import load_spec, spec_to_mapping
 
     spec = load_spec(REPO / "examples" / "handlebar-nav-unit.yaml", {
         "control.fs_hz": 8000, "control.lines": 512, "control.target_dof": 60,
@@ -371,7 +371,7 @@ def _record_real_run(out_dir: Path):
 
 @pytest.mark.filterwarnings(_SCIPY_CHUNK_WARNING)
 def test_wav_header_fallback_without_soundfile_internals(tmp_path, monkeypatch):
-    import liveshape.wavstream as wavstream
+    import liveshape.record.wavstream as wavstream
 
     # A soundfile whose internals changed: an open file without the private SNDFILE handle
     # gets no command; the recorder goes on and the header written at close holds every
@@ -407,8 +407,8 @@ def test_record_of_a_real_run(tmp_path):
 
 def test_moved_names_are_reexported():
     # the WAV size limit lived in record; it is defined in wavstream now
-    import liveshape.record as record
-    import liveshape.wavstream as wavstream
+    import liveshape.record.wavstream as wavstream
+    import liveshape.record.writer as record
 
     assert record.WAV_MAX_DATA_BYTES is wavstream.WAV_MAX_DATA_BYTES
     assert record.WavStream is wavstream.WavStream

@@ -18,10 +18,15 @@ import sys
 import numpy as np
 import pytest
 
+from liveshape.dsp.profile import Profile
 from liveshape.errors import ConfigError
-from liveshape.profile import Profile
-from liveshape.record import RunRecorder
-from liveshape.report import MATPLOTLIB_MISSING, MissingPlotExtra, render_report, summary_text
+from liveshape.record.report import (
+    MATPLOTLIB_MISSING,
+    MissingPlotExtra,
+    render_report,
+    summary_text,
+)
+from liveshape.record.writer import RunRecorder
 
 FS_HZ = 4096
 FRAME = 512
@@ -165,15 +170,15 @@ def test_bad_run_dir_is_one_line(tmp_path):
 
 
 def test_summary_text_needs_no_matplotlib(tmp_path):
-    from liveshape.record import load_run
+    from liveshape.record.writer import load_run
 
     text = summary_text(load_run(_demo_run(tmp_path, n_updates=2)))
     assert text.startswith("liveshape run report: demo\n")
 
 
 def test_level_track_follows_events_to_the_end(tmp_path):
-    from liveshape.record import load_run
-    from liveshape.report import _level_track
+    from liveshape.record.report import _level_track
+    from liveshape.record.writer import load_run
 
     root = _demo_run(tmp_path, close=False, n_updates=2)
     rec_events = root / "events.jsonl"
@@ -190,10 +195,10 @@ def test_report_of_a_real_simulated_run(tmp_path):
     import dataclasses
     from pathlib import Path
 
-    from liveshape.controller import Controller
+    from liveshape.control.controller import Controller
     from liveshape.rigs.plant import load_plant
     from liveshape.rigs.sim import SimRig
-    from liveshape.spec import load_spec, spec_to_mapping
+    from liveshape.testdef.spec import load_spec, spec_to_mapping
 
     example = Path(__file__).resolve().parents[1] / "examples" / "handlebar-nav-unit.yaml"
     spec = load_spec(example, {"control.fs_hz": 8000, "control.lines": 512,

@@ -1,4 +1,4 @@
-"""Tests of liveshape.response: Miles' equation and the exact SDOF response to a profile."""
+"""Tests of liveshape.dsp.response: Miles' equation and the exact SDOF response to a profile."""
 
 from __future__ import annotations
 
@@ -7,9 +7,9 @@ import math
 import pytest
 from refprofiles import N_3DB, W, navmat, quad_segments  # noqa: E402, F401
 
+from liveshape.dsp.profile import Profile
+from liveshape.dsp.response import miles_grms, sdof_response_grms, sdof_transmissibility_sq
 from liveshape.errors import ConfigError
-from liveshape.profile import Profile
-from liveshape.response import miles_grms, sdof_response_grms, sdof_transmissibility_sq
 
 
 def test_miles_check_value():

@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from liveshape.record import load_run
+from liveshape.record.writer import load_run
 
 REPO = Path(__file__).resolve().parents[1]
 SPEC = REPO / "examples" / "handlebar-nav-unit.yaml"
@@ -94,7 +94,7 @@ def test_same_seed_same_drive(completed: tuple[int, dict, str], tmp_path: Path) 
 
 
 def test_fault_aborts_with_distinct_status(tmp_path: Path) -> None:
-    from liveshape.safety import EXIT_STATUS
+    from liveshape.control.safety import EXIT_STATUS
 
     rc, data, _ = run_json(tmp_path, "--fault", "sensor_gain@25=4", "--seed", "3")
     assert data["status"] == "aborted"

@@ -14,10 +14,10 @@ import numpy as np
 import pytest
 from scipy import signal, stats
 
-from liveshape import safety as sf
-from liveshape.profile import Tolerance
-from liveshape.spec import SafetyLimits, Schedule
-from liveshape.spectra import welch_dof
+from liveshape.control import safety as sf
+from liveshape.dsp.spectra import welch_dof
+from liveshape.testdef.spec import SafetyLimits, Schedule
+from liveshape.testdef.tolerance import Tolerance
 
 
 def _sup(**kw) -> sf.Supervisor:

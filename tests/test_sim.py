@@ -11,32 +11,27 @@ import numpy as np
 import pytest
 from scipy import integrate, signal, stats
 
-from liveshape import spec
 from liveshape.errors import ConfigError
 from liveshape.rigs import faults
 from liveshape.rigs.cascade import OUTPUTS, MotorCascades, output_roots
 from liveshape.rigs.modal import ModalSystem, sosfilt_inplace
-from liveshape.rigs.plant import (
-    CoilHeating,
-    IdealShaker,
-    Payload,
-    Plant,
-    Resonance,
+from liveshape.rigs.plant import CoilHeating, IdealShaker, Payload, Plant, Resonance, load_plant
+from liveshape.rigs.plantmodel import (
     analytic_frf,
     chain_tf,
     drive_to_volts_tf,
     electromechanical_ss,
     electromechanical_tf,
-    load_plant,
     voltage_frf,
 )
 from liveshape.rigs.sim import FAULT_KINDS, SimRig
+from liveshape.testdef import spec
 
 EPS = np.finfo(float).eps
 
 
 class Fault(NamedTuple):
-    """The fields of liveshape.spec.FaultSpec, which SimRig accepts by attribute."""
+    """The fields of liveshape.testdef.spec.FaultSpec, which SimRig accepts by attribute."""
 
     kind: str
     at_s: float

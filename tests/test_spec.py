@@ -1,4 +1,4 @@
-"""Tests of liveshape.spec: strict reading, defaults, precedence, validation, round trip."""
+"""Tests of liveshape.testdef.spec: strict reading, defaults, precedence, validation, round trip."""
 
 from __future__ import annotations
 
@@ -7,10 +7,9 @@ from pathlib import Path
 
 import pytest
 
-from liveshape import config
 from liveshape.errors import ConfigError
-from liveshape.profile import Tolerance
-from liveshape.spec import (
+from liveshape.testdef import config
+from liveshape.testdef.spec import (
     ControlSettings,
     FaultSpec,
     RigSelection,
@@ -20,6 +19,7 @@ from liveshape.spec import (
     spec_from_mapping,
     spec_to_mapping,
 )
+from liveshape.testdef.tolerance import Tolerance
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
 
@@ -378,8 +378,8 @@ def test_yaml_example_header_says_demo():
 
 
 def test_moved_names_are_reexported():
-    # other modules import these from liveshape.spec; they live in fault_spec and overrides
-    from liveshape import fault_spec, overrides, spec
+    # other modules import these from liveshape.testdef.spec; they live in fault_spec and overrides
+    from liveshape.testdef import fault_spec, overrides, spec
 
     for name in ("FAULT_KINDS", "FaultSpec", "parse_fault"):
         assert getattr(spec, name) is getattr(fault_spec, name)

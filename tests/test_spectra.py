@@ -1,4 +1,4 @@
-"""Tests of liveshape.spectra against scipy, published formulas and Monte Carlo statistics.
+"""Tests of liveshape.dsp.spectra against scipy, published formulas and Monte Carlo statistics.
 
 Every numeric check names its outside source beside it. Monte Carlo tolerances are derived from
 the simulation's own standard error (batch means over independent trials) or from binomial
@@ -14,8 +14,7 @@ import numpy as np
 import pytest
 import scipy.signal as sig
 
-from liveshape.errors import ConfigError
-from liveshape.spectra import (
+from liveshape.dsp.spectra import (
     CrossSpectrum,
     PsdAverager,
     band_mask,
@@ -24,6 +23,7 @@ from liveshape.spectra import (
     welch_dof,
     welch_psd,
 )
+from liveshape.errors import ConfigError
 
 FS = 1000.0
 # Sums of a few hundred float64 products: agreement to ~1e-12 relative is rounding, not method.
@@ -382,8 +382,8 @@ def test_push_needs_blocks_of_equal_length():
 
 
 def test_moved_names_are_reexported():
-    # other modules import these from liveshape.spectra; they live in spectral_stats and delay
-    from liveshape import delay, spectra, spectral_stats
+    # other modules import these from liveshape.dsp.spectra; they live in spectral_stats and delay
+    from liveshape.dsp import delay, spectra, spectral_stats
 
     for name in ("welch_dof", "exp_average_dof", "chi2_interval_db", "db_scatter_std"):
         assert getattr(spectra, name) is getattr(spectral_stats, name)

@@ -1,7 +1,7 @@
-"""Tests of liveshape.spectral_stats: Welch-1967 DOF, chi-square bands, dB scatter.
+"""Tests of liveshape.dsp.spectral_stats: Welch-1967 DOF, chi-square bands, dB scatter.
 
 Closed forms and published tables first, then Monte Carlo on Welch estimates (made by
-liveshape.spectra). Monte Carlo tolerances are derived from the simulation's own standard error
+liveshape.dsp.spectra). Monte Carlo tolerances are derived from the simulation's own standard error
 (batch means over independent trials) or from binomial bounds.
 """
 
@@ -13,14 +13,14 @@ import numpy as np
 import pytest
 import scipy.stats as st
 
-from liveshape.errors import ConfigError
-from liveshape.spectra import PsdAverager, welch_psd
-from liveshape.spectral_stats import (
+from liveshape.dsp.spectra import PsdAverager, welch_psd
+from liveshape.dsp.spectral_stats import (
     chi2_interval_db,
     db_scatter_std,
     exp_average_dof,
     welch_dof,
 )
+from liveshape.errors import ConfigError
 
 FS = 1000.0
 

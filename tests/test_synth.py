@@ -1,4 +1,4 @@
-"""Tests of liveshape.synth against outside references.
+"""Tests of liveshape.dsp.synth against outside references.
 
 Single-frame periodograms and the window are tested in test_frames.py, gain ramps alone in
 test_ramp.py.
@@ -20,8 +20,7 @@ import pytest
 import scipy.fft
 from scipy import signal, stats
 
-from liveshape.errors import ConfigError
-from liveshape.synth import (
+from liveshape.dsp.synth import (
     GainRamp,
     RandomPhaseSynth,
     RunningMoments,
@@ -30,6 +29,7 @@ from liveshape.synth import (
     random_phase_frame,
     sine_window,
 )
+from liveshape.errors import ConfigError
 
 P_FAIL = 1e-4  # chance of a false failure per statistical check
 Z4 = 4.0  # normal bound used with standard errors: two-sided P = 6.3e-5
@@ -510,8 +510,8 @@ def test_running_moments_do_not_depend_on_when_they_are_read():
 
 
 def test_moved_names_are_reexported():
-    # other modules import these from liveshape.synth; they live in frames, ramp and moments
-    from liveshape import frames, moments, ramp, synth
+    # other modules import these from liveshape.dsp.synth; they live in frames, ramp and moments
+    from liveshape.dsp import frames, moments, ramp, synth
 
     for name in ("AMPLITUDES", "sine_window", "line_scales", "draw_coefficients",
                  "random_phase_frame"):

@@ -12,8 +12,8 @@ import math
 import numpy as np
 import pytest
 
-from liveshape.textformat import DASH, fmt_span, fmt_time, fmt_value, label_and_unit
-from liveshape.textplot import ROLES, nice_ticks, spectrum_grid, tick_label_hz
+from liveshape.views.textformat import DASH, fmt_span, fmt_time, fmt_value, label_and_unit
+from liveshape.views.textplot import ROLES, nice_ticks, spectrum_grid, tick_label_hz
 
 F_HZ = np.linspace(0, 4000, 8193)
 

@@ -1,4 +1,5 @@
-"""Tests of liveshape.tolerance: alarm and abort limits, bands, strict reading of a mapping."""
+"""Tests of liveshape.testdef.tolerance: alarm and abort limits, bands, strict reading of a
+mapping."""
 
 from __future__ import annotations
 
@@ -7,7 +8,7 @@ import pytest
 
 from liveshape.errors import ConfigError
 from liveshape.schema import Where
-from liveshape.tolerance import Tolerance, ToleranceBand, tolerance_from_mapping
+from liveshape.testdef.tolerance import Tolerance, ToleranceBand, tolerance_from_mapping
 
 
 def test_tolerance_defaults_and_bands():

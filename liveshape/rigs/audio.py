@@ -2,8 +2,8 @@
 
 This is the only module that imports :mod:`sounddevice`, and only inside functions, so every
 command that does not need audio works without PortAudio installed. Listing, matching and
-checking devices is in :mod:`liveshape.rigs.devices` (re-exported here), which gets the module
-through :func:`import_sounddevice`.
+checking devices is in :mod:`liveshape.rigs.devices`, which is handed the module by the thin
+wrappers here (:func:`list_devices`, :func:`rescan_devices`, :func:`check_settings`).
 
 Design (see DEVELOPERS.md, "The realtime path"):
 
@@ -15,7 +15,7 @@ Design (see DEVELOPERS.md, "The realtime path"):
   to stop, followed by a few zero blocks before :class:`sounddevice.CallbackStop`.
 * A worker thread keeps the drive ring ``lead_blocks`` ahead by calling ``source.exchange`` with
   the response blocks read from the input ring (``source`` is a
-  :class:`liveshape.controller.Controller` or anything with the same methods).
+  :class:`liveshape.control.controller.Controller` or anything with the same methods).
 
 Timeline: drive block ``j`` returned by the source is always played in the stream slot
 ``[j*B, (j+1)*B)`` (B = block size) or not at all: samples that were missing when their slot
@@ -35,15 +35,9 @@ from typing import Any
 import numpy as np
 
 from liveshape.errors import DeviceError
+from liveshape.rigs import devices
 from liveshape.rigs.blocks import BlockIO, BufferSource, Recording
-from liveshape.rigs.devices import (  # re-exported: the device names stay importable from here
-    DeviceInfo,
-    check_settings,
-    device_error,
-    list_devices,
-    match_device,
-    rescan_devices,
-)
+from liveshape.rigs.devices import DeviceInfo, device_error, match_device  # re-exported
 from liveshape.rigs.ring import StreamCore, StreamStats, summarize
 
 __all__ = [
@@ -80,6 +74,22 @@ def import_sounddevice() -> Any:
             "the Python package sounddevice is not installed (pip install sounddevice)"
         ) from None
     return sounddevice
+
+
+def list_devices() -> list[DeviceInfo]:
+    """All audio devices PortAudio knows (see :func:`liveshape.rigs.devices.list_devices`)."""
+    return devices.list_devices(import_sounddevice())
+
+
+def rescan_devices(between: Callable[[], None] | None = None) -> None:
+    """Re-initialize PortAudio (see :func:`liveshape.rigs.devices.rescan_devices`)."""
+    devices.rescan_devices(import_sounddevice(), between)
+
+
+def check_settings(device: int | str | None, fs_hz: float, **options: Any) -> DeviceInfo:
+    """Check a full-duplex setting (see :func:`liveshape.rigs.devices.check_settings`)."""
+    sd = import_sounddevice() if options.get("devices") is None else None
+    return devices.check_settings(sd, device, fs_hz, **options)
 
 
 class AudioRig:

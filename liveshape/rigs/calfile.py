@@ -1,20 +1,20 @@
 """The calibration file: its schema, writing it, reading it strictly, and the run's rule.
 
 The file (schema in ``calibration/README.md``) is written with :func:`write_calibration` and
-read with :func:`load_calibration` into a :class:`liveshape.chain.ChainCalibration`;
+read with :func:`load_calibration` into a :class:`liveshape.testdef.chain.ChainCalibration`;
 :func:`resolve_calibration` applies the rule that a run refuses a missing or malformed file
 unless the user declared the run uncalibrated (:data:`UNCALIBRATED`). YAML goes through
-:mod:`liveshape.config`, the one yaml importer.
+:mod:`liveshape.testdef.config`, the one yaml importer.
 """
 
 from __future__ import annotations
 
 from typing import Any
 
-from liveshape.chain import ChainCalibration
 from liveshape.errors import ConfigError
 from liveshape.rigs.calmath import HighpassFit, LoopDelay
 from liveshape.schema import Where, as_float, as_int, as_str, check_keys
+from liveshape.testdef.chain import ChainCalibration
 
 #: The calibration file format version (the value of its `liveshape_calibration` key).
 SCHEMA_VERSION = 1
@@ -63,7 +63,7 @@ def calibration_mapping(
 
 def write_calibration(path: Any, cal: ChainCalibration, **info: Any) -> None:
     """Write ``cal`` (plus the optional facts of :func:`calibration_mapping`) as YAML."""
-    from liveshape.config import write_yaml_file
+    from liveshape.testdef.config import write_yaml_file
 
     write_yaml_file(path, calibration_mapping(cal, **info))
 
@@ -112,7 +112,7 @@ def calibration_from_mapping(data: Any, where: Where) -> ChainCalibration:
 
 def load_calibration(path: Any) -> ChainCalibration:
     """Read a calibration file; every problem is a one-line :class:`ConfigError`."""
-    from liveshape.config import read_yaml_file
+    from liveshape.testdef.config import read_yaml_file
 
     return calibration_from_mapping(read_yaml_file(path), Where(str(path)))
 

@@ -184,12 +184,12 @@ def measure_lowfreq_corner(
     seed: int = 0,
 ) -> HighpassFit:
     """The chain's low-frequency corner from H1 of white noise through a loopback, aligned by
-    ``delay_samples`` (Welch, Hann, 50 % overlap via :class:`liveshape.spectra.CrossSpectrum`).
+    ``delay_samples`` (Welch, Hann, 50 % overlap via :class:`liveshape.dsp.spectra.CrossSpectrum`).
 
     Lines with coherence below ``coherence_min`` are left out: where the response falls
     steeply the Hann window's leakage from higher lines biases H1 up and lowers the coherence.
     """
-    from liveshape.spectra import CrossSpectrum
+    from liveshape.dsp.spectra import CrossSpectrum
 
     rng = np.random.default_rng(seed)
     n = int(round(duration_s * rig.fs_hz))

@@ -17,8 +17,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import optimize
 
+from liveshape.dsp.profile import G0_M_S2
 from liveshape.errors import ConfigError
-from liveshape.profile import G0_M_S2
 from liveshape.schema import Where, as_float
 
 #: The handheld reference exciter: omega = 1000 rad/s, 10 m/s² rms (10 mm/s, 10 µm rms).
@@ -192,11 +192,11 @@ def estimate_loop_delay(
     """Delay of ``response`` behind ``drive`` by cross-correlating each burst separately.
 
     For burst ``k`` the window ``[starts[k], starts[k] + burst_length + max_delay)`` of both
-    records goes to :func:`liveshape.spectra.estimate_delay` (FFT cross-correlation, peak of
+    records goes to :func:`liveshape.dsp.spectra.estimate_delay` (FFT cross-correlation, peak of
     ``|r|``). The median over bursts is the delay; ``spread_samples`` (max - min) shows whether
     the delay was stable.
     """
-    from liveshape.spectra import estimate_delay
+    from liveshape.dsp.spectra import estimate_delay
 
     x = np.asarray(drive, float).ravel()
     y = np.asarray(response, float).ravel()

@@ -17,13 +17,6 @@ from typing import Any
 from liveshape.errors import DeviceError
 
 
-def _sounddevice() -> Any:
-    """:mod:`sounddevice`, through :func:`liveshape.rigs.audio.import_sounddevice`."""
-    from liveshape.rigs import audio  # imported on use: audio imports this module
-
-    return audio.import_sounddevice()
-
-
 @dataclass(frozen=True)
 class DeviceInfo:
     """One audio device as PortAudio lists it.
@@ -41,9 +34,12 @@ class DeviceInfo:
     full_duplex: bool
 
 
-def list_devices() -> list[DeviceInfo]:
-    """All audio devices PortAudio knows (JACK clients appear only if JACK ran at start-up)."""
-    sd = _sounddevice()
+def list_devices(sd: Any) -> list[DeviceInfo]:
+    """All audio devices PortAudio knows (JACK clients appear only if JACK ran at start-up).
+
+    ``sd`` is the :mod:`sounddevice` module, as :func:`liveshape.rigs.audio.import_sounddevice`
+    returns it (this module never imports it).
+    """
     apis = sd.query_hostapis()
     out = []
     for d in sd.query_devices():
@@ -62,14 +58,13 @@ def list_devices() -> list[DeviceInfo]:
     return out
 
 
-def rescan_devices(between: Callable[[], None] | None = None) -> None:
+def rescan_devices(sd: Any, between: Callable[[], None] | None = None) -> None:
     """Re-initialize PortAudio so that devices (e.g. a JACK server) started since are listed.
 
     ``between`` runs while PortAudio is shut down: stop a JACK server there, because PortAudio's
     JACK host aborts the process (an assertion in its terminate) when the server vanished first.
     Must not be called while a stream is open (PortAudio closes every stream on terminate).
     """
-    sd = _sounddevice()
     sd._terminate()
     try:
         if between is not None:
@@ -131,6 +126,7 @@ def device_error(message: str, info: DeviceInfo, fs_hz: float) -> DeviceError:
 
 
 def check_settings(
+    sd: Any,
     device: int | str | None,
     fs_hz: float,
     *,
@@ -143,7 +139,7 @@ def check_settings(
     Returns the resolved :class:`DeviceInfo`; raises a one-line :class:`DeviceError` naming what
     is wrong (unknown device with close matches, too few channels, unsupported rate, busy).
     """
-    infos = list_devices() if devices is None else devices
+    infos = list_devices(sd) if devices is None else devices
     info = match_device(infos, device)
     if info.max_output_channels < output_channels:
         raise DeviceError(
@@ -156,7 +152,6 @@ def check_settings(
             f"needs {input_channels}"
         )
     if devices is None:
-        sd = _sounddevice()
         try:
             sd.check_output_settings(
                 device=info.index, channels=output_channels, dtype="float32", samplerate=fs_hz

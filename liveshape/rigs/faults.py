@@ -1,8 +1,8 @@
 """Faults injected into the simulated rig: their kinds, validation and the state they set.
 
 Pure (the standard library). A fault is any object with ``kind, at_s, value, duration_s`` (as
-:class:`liveshape.spec.FaultSpec`). :func:`schedule_faults` checks them against the plant and the
-sample rate and turns each into a :class:`ScheduledFault` that acts from sample
+:class:`liveshape.testdef.spec.FaultSpec`). :func:`schedule_faults` checks them against the plant
+and the sample rate and turns each into a :class:`ScheduledFault` that acts from sample
 ``round(at_s fs)`` for ``round(duration_s fs)`` samples (None: to the end; ``amp_trip`` always to
 the end). :func:`fault_state` says what the faults in effect at one sample do; the rig
 (:class:`liveshape.rigs.sim.SimRig`) keeps that state constant between the :func:`fault_bounds`.

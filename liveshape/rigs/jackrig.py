@@ -42,8 +42,8 @@ from typing import Any
 import numpy as np
 from scipy import signal as sps
 
-from liveshape.chain import ChainCalibration
 from liveshape.errors import ConfigError, DeviceError
+from liveshape.testdef.chain import ChainCalibration
 
 DEFAULT_CLIENT = "liveshape-plant"
 PORTS_IN = ("drive_in", "loop_in")

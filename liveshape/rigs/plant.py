@@ -1,6 +1,6 @@
 """A physical model of the drive/response chain, described by a YAML file a user can write.
 
-Pure (the standard library; files are read through :mod:`liveshape.config`).
+Pure (the standard library; files are read through :mod:`liveshape.testdef.config`).
 
 The chain is: sound-card output (full scale to volts, AC-coupling high-pass) -> amplifier
 (voltage gain, optional subsonic high-pass, voltage clip, current trip) -> electrodynamic shaker
@@ -11,8 +11,8 @@ to full scale, AC-coupling high-pass, noise), with the round-trip delay of the c
 
 This module holds the description (frozen dataclasses), its strict YAML mapping and the packaged
 presets. The continuous-time equations and models (transfer functions, state space, FRFs) are in
-:mod:`liveshape.rigs.plantmodel`; their public names are re-exported here, so
-``from liveshape.rigs.plant import analytic_frf`` keeps working.
+:mod:`liveshape.rigs.plantmodel`, which reads this description (this module imports nothing of
+it).
 """
 
 from __future__ import annotations
@@ -24,19 +24,6 @@ from pathlib import Path
 from typing import Any
 
 from liveshape.errors import ConfigError
-from liveshape.rigs.plantmodel import (
-    Poly,
-    analytic_frf,
-    chain_tf,
-    drive_to_volts_tf,
-    electromechanical_ss,
-    electromechanical_tf,
-    evaluate_tf,
-    highpass_tf,
-    mode_constants,
-    sensor_tf,
-    voltage_frf,
-)
 from liveshape.schema import (
     Where,
     as_choice,
@@ -53,10 +40,6 @@ __all__ = [
     "ThieleSmallShaker", "IdealShaker", "Resonance", "Payload", "Accelerometer", "Plant",
     # reading and writing
     "plant_from_mapping", "preset_names", "load_plant", "plant_to_mapping",
-    # re-exported from liveshape.rigs.plantmodel
-    "Poly", "mode_constants", "highpass_tf", "electromechanical_tf", "drive_to_volts_tf",
-    "sensor_tf", "chain_tf", "evaluate_tf", "voltage_frf", "analytic_frf",
-    "electromechanical_ss",
 ]
 
 #: Copper's temperature coefficient of resistance near room temperature, per kelvin
@@ -354,7 +337,7 @@ def load_plant(name_or_path: str | Path) -> Plant:
     ConfigError
         Unknown preset (with the valid names), missing or malformed file, or a bad key or value.
     """
-    from liveshape.config import read_yaml_file  # the one yaml importer; imported on use
+    from liveshape.testdef.config import read_yaml_file  # the one yaml importer; imported on use
 
     text = str(name_or_path)
     is_path = (isinstance(name_or_path, Path) or "/" in text or "\\" in text

@@ -31,7 +31,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from liveshape.profile import G0_M_S2
+from liveshape.dsp.profile import G0_M_S2
 
 if TYPE_CHECKING:  # the plant module re-exports this one, so it is not imported at run time
     from liveshape.rigs.plant import Plant, Resonance

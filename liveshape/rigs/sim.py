@@ -43,9 +43,10 @@ Nonlinear and protective behaviour (simple models, documented):
   power ``mean(i²) Re`` drives the first-order thermal model; the shaker model follows ``Re``
   whenever it has moved by more than :data:`RE_STEP` (relative) since the last rebuild.
 
-Faults (objects with ``kind, at_s, value, duration_s``, as :class:`liveshape.spec.FaultSpec`) act
-from sample ``round(at_s fs)`` for ``duration_s`` (None: to the end); see :data:`FAULT_RULES`
-(defined, with their validation, in :mod:`liveshape.rigs.faults`).
+Faults (objects with ``kind, at_s, value, duration_s``, as
+:class:`liveshape.testdef.spec.FaultSpec`) act from sample ``round(at_s fs)`` for ``duration_s``
+(None: to the end); see :data:`FAULT_RULES` (defined, with their validation, in
+:mod:`liveshape.rigs.faults`).
 """
 
 from __future__ import annotations
@@ -57,9 +58,8 @@ from typing import Any
 
 import numpy as np
 
-from liveshape.chain import ChainCalibration
+from liveshape.dsp.profile import G0_M_S2
 from liveshape.errors import ConfigError
-from liveshape.profile import G0_M_S2
 from liveshape.rigs.cascade import MotorCascades, output_roots
 from liveshape.rigs.faults import (
     FAULT_KINDS,
@@ -74,6 +74,7 @@ from liveshape.rigs.faults import (
 from liveshape.rigs.modal import ModalSystem, highpass_sos, sos_freqz, sosfilt_inplace
 from liveshape.rigs.plant import IdealShaker, Plant
 from liveshape.rigs.plantmodel import electromechanical_ss, electromechanical_tf
+from liveshape.testdef.chain import ChainCalibration
 
 __all__ = ["FAULT_KINDS", "FAULT_RULES", "RE_STEP", "THERMAL_STEP_MAX_S", "SimRig", "SimStatus"]
 
@@ -141,7 +142,7 @@ class SimRig:
         order, so the output does not depend on block sizes).
     faults : iterable
         Objects with ``kind``, ``at_s``, ``value``, ``duration_s``
-        (:class:`liveshape.spec.FaultSpec`).
+        (:class:`liveshape.testdef.spec.FaultSpec`).
 
     Raises
     ------

@@ -44,8 +44,9 @@ def _busy(stop: threading.Event, cpu_s: list[float]) -> None:
 
 
 def _spec(duration_s: float):
-    from liveshape.profile import Profile, Tolerance
-    from liveshape.spec import ControlSettings, SafetyLimits, Schedule, TestSpec
+    from liveshape.dsp.profile import Profile
+    from liveshape.testdef.spec import ControlSettings, SafetyLimits, Schedule, TestSpec
+    from liveshape.testdef.tolerance import Tolerance
 
     prof = Profile((20.0, 1000.0), (1.0 / 980.0, 1.0 / 980.0), "flat 1 grms")
     return TestSpec(name="bench", profile=prof, tolerance=Tolerance(),
@@ -61,7 +62,7 @@ def run(report) -> None:
     if reason is not None:
         report("audio_bench_skipped", 1, f"flag ({reason})")
         return
-    from liveshape.controller import Controller
+    from liveshape.control.controller import Controller
     from liveshape.rigs import audio
     from liveshape.rigs import calibration as cal
     from liveshape.rigs.jackrig import jack_loop_delay_samples

@@ -28,13 +28,13 @@ from collections.abc import Callable
 
 import numpy as np
 
-from liveshape.chain import ChainCalibration
-from liveshape.controller import Controller
-from liveshape.profile import Profile
+from liveshape.control.controller import Controller
+from liveshape.dsp.profile import Profile
+from liveshape.dsp.spectra import db_scatter_std
 from liveshape.rigs.plant import load_plant
 from liveshape.rigs.sim import SimRig
-from liveshape.spec import ControlSettings, FaultSpec, Schedule, TestSpec
-from liveshape.spectra import db_scatter_std
+from liveshape.testdef.chain import ChainCalibration
+from liveshape.testdef.spec import ControlSettings, FaultSpec, Schedule, TestSpec
 
 FS_HZ = 48_000.0
 FRAME = 8192

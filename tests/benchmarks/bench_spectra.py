@@ -18,7 +18,7 @@ from collections.abc import Callable
 
 import numpy as np
 
-from liveshape.spectra import CrossSpectrum, PsdAverager, estimate_delay
+from liveshape.dsp.spectra import CrossSpectrum, PsdAverager, estimate_delay
 
 FS_HZ = 48_000.0
 NPERSEGS = (8192, 4096)

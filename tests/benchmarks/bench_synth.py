@@ -3,11 +3,11 @@
 Synthesis of a 48 kHz float32 WAV of 10 and 60 minutes, measured side by side:
 
 ``stream``
-    liveshape's :func:`~liveshape.drivefile.make_drive_file`: random-phase overlap-add frames
+    liveshape's :func:`~liveshape.record.drivefile.make_drive_file`: random-phase overlap-add frames
     streamed to disk, two passes (statistics, then writing with the Welch check).
 ``loop``
-    The bare :class:`~liveshape.synth.RandomPhaseSynth` loop written with soundfile (one pass, no
-    check, no scaling pass): the floor under ``stream``.
+    The bare :class:`~liveshape.dsp.synth.RandomPhaseSynth` loop written with soundfile (one pass,
+    no check, no scaling pass): the floor under ``stream``.
 ``naive``
     The whole record in one inverse FFT (random coefficients on ``n / 2 + 1`` lines, ``irfft``,
     scale to the peak, write at once), implemented only here, for comparison.
@@ -19,7 +19,7 @@ had run memory-hungry benchmarks first). Targets for ``stream``: peak RSS < 200 
 duration and at least 100x real time. WAVs go to a temporary folder and are deleted after each run.
 
 Before the WAVs, ``synth.read_*``: audio seconds per CPU second of
-:meth:`~liveshape.synth.RandomPhaseSynth.read` alone (best of 3 runs), 1024-sample blocks of
+:meth:`~liveshape.dsp.synth.RandomPhaseSynth.read` alone (best of 3 runs), 1024-sample blocks of
 20-2000 Hz and 20-20000 Hz, and the controller's drive (20-1000 Hz clipped at 4 sigma, as in the
 ``control_alone_speed_*`` figures) in blocks of 1024 and 4096 samples.
 
@@ -51,8 +51,8 @@ _REPO = Path(__file__).resolve().parents[2]
 
 
 def _spec():
-    from liveshape.profile import Profile
-    from liveshape.spec import ControlSettings, TestSpec
+    from liveshape.dsp.profile import Profile
+    from liveshape.testdef.spec import ControlSettings, TestSpec
 
     asd_350 = 0.04
     prof = Profile(
@@ -67,7 +67,7 @@ def _spec():
 
 # ------------------------------------------------------------------------------ child side
 def _child_stream(out: Path, duration_s: float) -> dict:
-    from liveshape.drivefile import make_drive_file
+    from liveshape.record.drivefile import make_drive_file
 
     res = make_drive_file(_spec(), out, duration_s=duration_s, seed=SEED)
     return {"fraction_inside": res.psd_check.fraction_inside, "crest_factor": res.crest_factor}
@@ -76,7 +76,7 @@ def _child_stream(out: Path, duration_s: float) -> dict:
 def _child_loop(out: Path, duration_s: float) -> dict:
     import soundfile as sf
 
-    from liveshape.synth import RandomPhaseSynth
+    from liveshape.dsp.synth import RandomPhaseSynth
 
     spec = _spec()
     synth = RandomPhaseSynth(FS_HZ, FRAME_LENGTH, seed=SEED, clip_sigma=4.0)
@@ -117,8 +117,8 @@ def _child(method: str, out: str, duration_s: float) -> None:
     # imports before the clock starts: the figure is synthesis and writing, not start-up
     import soundfile  # noqa: F401
 
-    import liveshape.drivefile  # noqa: F401
-    import liveshape.spec  # noqa: F401
+    import liveshape.record.drivefile  # noqa: F401
+    import liveshape.testdef.spec  # noqa: F401
 
     _spec()
     t0 = time.perf_counter()
@@ -173,7 +173,7 @@ def _stream_rate(psd_band_hz: tuple[float, float], seconds: float, *, block: int
     ``time.process_time`` counts every thread of the process; the best run is the least
     disturbed one on a shared machine.
     """
-    from liveshape.synth import RandomPhaseSynth
+    from liveshape.dsp.synth import RandomPhaseSynth
 
     best = 0.0
     for _ in range(3):

@@ -1,0 +1,184 @@
+"""The controller's drive output: synthesis, level, limits and the recent history.
+
+Pure. :class:`DriveStream` wraps :class:`liveshape.dsp.synth.RandomPhaseSynth` with what the control
+loop needs on the drive side:
+
+* the drive PSD is held at *full level* (FS²/Hz); the test level is the synthesizer's gain
+  ``10^(level_db/20)``, moved by per-sample ramps only (dB ramps between levels, raised-cosine
+  fades to and from zero);
+* the rms ceiling: ``drive_rms_max_fs`` and, with clipping at ``clip_sigma``·rms,
+  ``drive_peak_max_fs / clip_sigma``, so the clipped peaks stay inside the peak limit;
+  :meth:`ceiling_ms` is the mean-square ceiling of the full-level PSD at a given gain;
+* a hard limit at ``±drive_peak_max_fs`` on every sample, counted (the ceiling should keep it
+  from acting);
+* the recent samples by stream index (:class:`liveshape.control.stages.DriveHistory`) for the delay
+  alignment of the response, which :class:`ResponseQueue` pairs with the drive it answers.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from liveshape.control.stages import DriveHistory
+from liveshape.dsp.synth import RandomPhaseSynth
+
+
+class DriveStream:
+    """Drive samples for the control loop.
+
+    Parameters
+    ----------
+    fs_hz, frame_length : float, int
+        Sample rate and synthesis frame length (lines ``k fs / frame_length``).
+    seed : int, optional
+        Seed of the synthesis.
+    clip_sigma : float, optional
+        Clip level of the synthesizer in multiples of the rms (None: no clipping).
+    rms_max_fs, peak_max_fs : float
+        Drive rms and peak limits, FS.
+    rate_db_s : float
+        Default dB rate of level ramps, dB/s.
+    fade_s : float
+        Default fade duration to and from zero, s.
+    history : int
+        Initial capacity of the sample history.
+    """
+
+    def __init__(self, fs_hz: float, frame_length: int, *, seed: int | None,
+                 clip_sigma: float | None, rms_max_fs: float, peak_max_fs: float,
+                 rate_db_s: float, fade_s: float, history: int) -> None:
+        self.fs_hz = float(fs_hz)
+        self.df_hz = self.fs_hz / frame_length
+        self.rms_limit_fs = float(rms_max_fs)
+        if clip_sigma is not None:
+            self.rms_limit_fs = min(self.rms_limit_fs, float(peak_max_fs) / clip_sigma)
+        self.peak_limit_fs = float(peak_max_fs)
+        self.rate_db_s = float(rate_db_s)
+        self.synth = RandomPhaseSynth(self.fs_hz, frame_length, seed=seed, clip_sigma=clip_sigma,
+                                      gain=0.0, rate_db_s=rate_db_s, fade_s=fade_s)
+        self.psd = np.zeros(frame_length // 2 + 1)  # full-level drive PSD, FS²/Hz
+        self.history = DriveHistory(history)
+        self.n_out = 0  # samples produced
+        self.ceiling_hit = False  # the last PSD set was cut by the ceiling
+        self.clipped = 0  # samples hard-limited since reset_counters
+        self.peak_fs = 0.0  # largest |sample| since reset_counters
+
+    # -- level ---------------------------------------------------------------------------
+    @property
+    def gain(self) -> float:
+        return self.synth.gain
+
+    @property
+    def gain_target(self) -> float:
+        return self.synth.gain_target
+
+    @property
+    def ramping(self) -> bool:
+        return self.synth.ramping
+
+    @property
+    def silent(self) -> bool:
+        """At zero gain with no ramp under way."""
+        return self.synth.gain == 0.0 and not self.synth.ramping
+
+    def go_to(self, gain: float) -> int:
+        """dB ramp from the current gain to ``gain`` (both > 0); returns its length, samples."""
+        g_now = self.synth.gain_target
+        n = 0 if g_now <= 0 else int(math.ceil(abs(20 * math.log10(gain / g_now))
+                                                * self.fs_hz / self.rate_db_s))
+        self.synth.set_gain(gain, rate_db_s=self.rate_db_s)
+        return n
+
+    def fade(self, gain: float, duration_s: float) -> None:
+        """Raised-cosine fade to ``gain`` (to or from zero) over ``duration_s``."""
+        self.synth.set_gain(gain, duration_s=duration_s)
+
+    # -- spectrum ------------------------------------------------------------------------
+    def ceiling_ms(self, gain: float) -> float:
+        """Mean-square ceiling of the full-level drive PSD when played at ``gain``, FS²."""
+        return (self.rms_limit_fs / gain) ** 2
+
+    def set_psd(self, psd: np.ndarray, *, ceiling_hit: bool = False) -> None:
+        """New full-level drive PSD (from the next synthesis frame on)."""
+        self.psd = np.array(psd, dtype=float)
+        self.ceiling_hit = bool(ceiling_hit)
+        self.synth.set_psd(self.psd)
+
+    def rescale_for(self, gain: float) -> float:
+        """Scale the PSD down so that it fits the ceiling at ``gain``; returns the factor."""
+        ms = float(self.psd.sum()) * self.df_hz
+        cap = self.ceiling_ms(gain)
+        if ms <= cap:
+            return 1.0
+        scale = cap / ms
+        self.set_psd(self.psd * scale, ceiling_hit=True)
+        return scale
+
+    def played_psd(self, band: np.ndarray, gain: float | None = None) -> np.ndarray:
+        """The PSD on ``band`` as played at ``gain`` (default: the current gain), FS²/Hz."""
+        g = self.synth.gain if gain is None else gain
+        return self.psd[band] * g * g
+
+    # -- samples -------------------------------------------------------------------------
+    def reset_counters(self) -> None:
+        self.clipped = 0
+        self.peak_fs = 0.0
+
+    def read(self, n: int) -> np.ndarray:
+        """The next ``n`` drive samples, hard-limited to ``±peak_limit_fs``."""
+        out = self.synth.read(n)
+        peak = float(np.max(np.abs(out))) if n else 0.0
+        lim = self.peak_limit_fs
+        if peak >= lim:
+            np.clip(out, -lim, lim, out=out)
+            self.clipped += int(np.count_nonzero(np.abs(out) >= lim))
+            peak = lim
+        self.peak_fs = max(self.peak_fs, peak)
+        self.push(out)
+        return out
+
+    def push(self, out: np.ndarray) -> None:
+        """Record samples sent without the synthesizer (zeros after the end)."""
+        self.history.append(out)
+        self.n_out += out.size
+
+
+class ResponseQueue:
+    """Response samples waiting for the drive samples they answer.
+
+    The response stream is everything the rig returned; sample ``i`` answers drive sample
+    ``i − lag``. :meth:`take` hands out the samples whose drive has been produced, paired with
+    that drive (zeros before the stream), and lets the drive history forget what is no longer
+    needed.
+    """
+
+    def __init__(self) -> None:
+        self.n_in = 0  # response samples received
+        self.next = 0  # next response sample to hand out
+        self._pending: list[np.ndarray] = []
+
+    def push(self, y: np.ndarray) -> None:
+        self._pending.append(y)
+        self.n_in += y.size
+
+    def take(self, drive: DriveStream, lag: int,
+             keep: int) -> tuple[np.ndarray, np.ndarray, int] | None:
+        """``(x, y, i0)``: the drive and the response from response index ``i0``, or None.
+
+        ``keep`` drive samples before the last one handed out stay in the history (the largest
+        lag still searched).
+        """
+        end = min(self.n_in, drive.n_out + lag)
+        if end <= self.next:
+            return None
+        ys = np.concatenate(self._pending) if len(self._pending) > 1 else self._pending[0]
+        k = end - self.next
+        y, rest = ys[:k], ys[k:]
+        self._pending = [rest] if rest.size else []
+        i0 = self.next
+        x = drive.history.get(i0 - lag, end - lag)
+        self.next = end
+        drive.history.forget_before(end - keep)
+        return x, y, i0

@@ -1,0 +1,413 @@
+"""The terminal views: the one module that imports :mod:`rich`.
+
+Every view is a pure function from frozen data (a controller snapshot, a profile, a result
+mapping) to a rich renderable; nothing here reads the clock or the hardware except
+:class:`LiveView`, which only paces redraws. Tests render the views into a ``StringIO`` console.
+
+What the views show is worked out in pure modules, and this one only lays it out and colours it:
+:mod:`liveshape.views.textplot` (the spectrum plot as a character grid),
+:mod:`liveshape.views.runtext` (the live view and the run result as text rows),
+:mod:`liveshape.views.checktext` (the check report as text rows) and
+:mod:`liveshape.views.textformat` (numbers with units, a dash for a missing figure). Their roles
+(``alarm``, ``abort``, ``ok`` ...) are the fields of :class:`Palette`.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass
+from typing import IO, Any
+
+import numpy as np
+from rich.console import Console, Group, RenderableType
+from rich.live import Live
+from rich.panel import Panel
+from rich.progress import BarColumn, Progress, TaskProgressColumn, TextColumn, TimeRemainingColumn
+from rich.table import Table
+from rich.text import Text
+
+from liveshape.views import checktext, runtext
+from liveshape.views.textformat import as_finite, mapping_rows
+from liveshape.views.textplot import ROLES, spectrum_grid
+
+__all__ = [
+    "LiveView",
+    "PALETTE",
+    "check_table",
+    "dashboard",
+    "make_console",
+    "print_error",
+    "progress_bar",
+    "run_summary",
+    "safety_notice",
+    "spectrum_plot",
+    "synth_summary",
+]
+
+
+@dataclass(frozen=True)
+class Palette:
+    """The few colours the views use (rich style names)."""
+
+    title: str = "bold grey93"
+    label: str = "grey62"
+    value: str = "grey93"
+    dim: str = "grey42"
+    target: str = "grey85"
+    control: str = "steel_blue1"
+    ok: str = "dark_sea_green3"
+    alarm: str = "light_goldenrod3"
+    abort: str = "indian_red1"
+    border: str = "grey35"
+
+
+PALETTE = Palette()
+
+# --------------------------------------------------------------------------------------------
+# Small helpers
+
+
+def _kv_table(title: str | None = None) -> Table:
+    table = Table(title=title, title_style=PALETTE.title, title_justify="left", box=None,
+                  show_header=False, pad_edge=False, padding=(0, 2, 0, 0))
+    table.add_column(style=PALETTE.label, no_wrap=True)
+    table.add_column(style=PALETTE.value)
+    return table
+
+
+def _add_rows(table: Table, rows: Sequence[tuple[Any, ...]]) -> None:
+    for row in rows:
+        table.add_row(*row)
+
+
+def _add_mapping_rows(table: Table, data: Mapping[str, Any], skip: Sequence[str] = ()) -> None:
+    _add_rows(table, mapping_rows(data, skip))
+
+
+# --------------------------------------------------------------------------------------------
+# The spectrum plot
+
+
+def spectrum_plot(
+    f_hz: Any,
+    control_psd: Any,
+    target_psd: Any,
+    alarm_db: Any = 3.0,
+    abort_db: Any = 6.0,
+    *,
+    width: int = 72,
+    height: int = 15,
+) -> Text:
+    """Character plot of control against target with the alarm and abort limits.
+
+    The arguments are those of :func:`liveshape.views.textplot.spectrum_grid` (lines in Hz, PSDs in
+    g²/Hz, limits in dB, plot area in characters); the axis labels come on top of the area.
+
+    Returns
+    -------
+    rich.text.Text
+        Rows of the plot: ``─`` target, ``·`` alarm limits, ``:`` abort limits, ``●`` control
+        (``▲``/``▼`` when off the plot), x axis in Hz (log), y axis in g²/Hz, then a legend.
+    """
+    grid = spectrum_grid(f_hz, control_psd, target_psd, alarm_db, abort_db,
+                         width=width, height=height)
+    if grid.note:
+        return Text(grid.note, style=PALETTE.dim)
+    styles = {code: getattr(PALETTE, "dim" if role == "blank" else role)
+              for code, role in ROLES.items()}
+    label_w = 8
+    text = Text()
+    for label, chars, roles in zip(grid.y_labels, grid.chars, grid.roles, strict=True):
+        text.append(f"{label:>{label_w - 1}} ", style=PALETTE.label)
+        text.append("│", style=PALETTE.border)
+        run_chars, run_style = "", None
+        for ch, code in zip(chars, roles, strict=True):  # one span per run of equal style
+            style = styles[code]
+            if ch == " ":
+                style = run_style if run_style is not None else style
+            if style != run_style and run_chars:
+                text.append(run_chars, style=run_style)
+                run_chars = ""
+            run_chars += ch
+            run_style = style
+        text.append(run_chars + "\n", style=run_style)
+    text.append(" " * label_w + "└" + "─" * len(grid.chars[0]) + "\n", style=PALETTE.border)
+    text.append(" " * (label_w + 1) + grid.x_axis + "  Hz\n", style=PALETTE.label)
+    legend = Text(" " * (label_w + 1))
+    legend.append("─ target  ", style=PALETTE.target)
+    legend.append(f"· alarm ±{grid.alarm_span} dB  ", style=PALETTE.alarm)
+    legend.append(f": abort ±{grid.abort_span} dB  ", style=PALETTE.abort)
+    legend.append("● control  ", style=PALETTE.control)
+    legend.append("y: g²/Hz", style=PALETTE.label)
+    text.append_text(legend)
+    return text
+
+
+# --------------------------------------------------------------------------------------------
+# The live dashboard
+
+
+def _cell(pieces: Sequence[tuple[str, str]]) -> str | Text:
+    """Text pieces ``(text, role)`` of :mod:`liveshape.views.runtext` as a rich cell."""
+    def style(role: str) -> str:
+        return f"bold {PALETTE.control}" if role == "stage" else getattr(PALETTE, role)
+
+    if len(pieces) == 1:
+        part, role = pieces[0]
+        return part if role == "value" else Text(part, style=style(role))
+    text = Text()
+    for part, role in pieces:
+        text.append(part, style=style(role))
+    return text
+
+
+def _row_table(title: str | None, rows: Sequence[tuple[str, Sequence[tuple[str, str]]]]) -> Table:
+    table = _kv_table(title)
+    for label, pieces in rows:
+        table.add_row(label, _cell(pieces))
+    return table
+
+
+def _events_table(events: Sequence[Any], n: int = 6) -> Table:
+    table = Table(title="events", title_style=PALETTE.title, title_justify="left", box=None,
+                  show_header=False, pad_edge=False, padding=(0, 2, 0, 0))
+    table.add_column(style=PALETTE.label, justify="right", no_wrap=True)
+    table.add_column(style=PALETTE.dim, no_wrap=True)
+    table.add_column(style=PALETTE.value)
+    for t, kind, (message, role) in runtext.event_rows(events, n):
+        table.add_row(t, kind, Text(message, style=getattr(PALETTE, role)))
+    if not table.rows:
+        table.add_row("", "", Text("none yet", style=PALETTE.dim))
+    return table
+
+
+def dashboard(snapshot: Any, *, plot_width: int = 72, plot_height: int = 15) -> RenderableType:
+    """The live view of a run, from a frozen controller snapshot.
+
+    Shows the stage, level step, elapsed and remaining time, control against target grms,
+    drive rms and peak against their limits, the line deviations and counts outside the alarm
+    and abort limits, the DOF with the 90 % χ² band it implies (Bendat & Piersol), the spectrum
+    plot (:func:`spectrum_plot`) and the latest events.
+    """
+    tables = Table.grid(padding=(0, 4))
+    tables.add_column()
+    tables.add_column()
+    tables.add_row(_row_table("control", runtext.control_rows(snapshot)),
+                   _row_table("drive", runtext.drive_rows(snapshot)))
+    get = runtext.field
+    plot = spectrum_plot(
+        get(snapshot, "f_hz", default=()), get(snapshot, "control_psd"),
+        get(snapshot, "target_psd"), get(snapshot, "alarm_db", default=np.nan),
+        get(snapshot, "abort_db", default=np.nan), width=plot_width, height=plot_height,
+    )
+    events = get(snapshot, "events", "recent_events", default=())
+    body = Group(_cell(runtext.header_pieces(snapshot)), Text(""), tables, Text(""), plot,
+                 Text(""), _events_table(events))
+    return Panel(body, border_style=PALETTE.border, padding=(0, 1))
+
+
+class LiveView:
+    """A live terminal view that the shell feeds with snapshots.
+
+    ``update(snapshot)`` rebuilds and redraws the dashboard at most ``refresh_hz`` times a
+    second (calls in between are dropped, the last one is kept for :meth:`flush`). Drawing
+    happens in the caller's thread, only when a snapshot is taken (no refresh thread): a full
+    redraw costs a few tens of milliseconds of pure Python, so keep ``refresh_hz`` at 4-10.
+    Use as a context manager.
+    """
+
+    def __init__(
+        self, console: Console | None = None, *, refresh_hz: float = 4.0,
+        clock: Callable[[], float] = time.monotonic, transient: bool = False,
+    ) -> None:
+        self.refresh_hz = float(refresh_hz)
+        self._clock = clock
+        self._last_build = -math.inf
+        self._pending: Any = None
+        self._live = Live(Text(""), console=console, refresh_per_second=self.refresh_hz,
+                          transient=transient, auto_refresh=False)
+        self.builds = 0
+
+    def update(self, snapshot: Any, *, force: bool = False) -> bool:
+        """Offer a snapshot; returns True when the view was rebuilt from it."""
+        now = self._clock()
+        if not force and now - self._last_build < 1.0 / self.refresh_hz:
+            self._pending = snapshot
+            return False
+        self._pending = None
+        self._last_build = now
+        width = min(max(self._live.console.width - 14, 40), 110)
+        self._live.update(dashboard(snapshot, plot_width=width), refresh=True)
+        self.builds += 1
+        return True
+
+    def flush(self) -> None:
+        """Show the last snapshot that was dropped by the rate limit, if any."""
+        if self._pending is not None:
+            self.update(self._pending, force=True)
+
+    def __enter__(self) -> LiveView:
+        self._live.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        try:
+            self.flush()
+        finally:
+            self._live.stop()
+
+
+# --------------------------------------------------------------------------------------------
+# One-shot views for the command line
+
+
+def make_console(file: IO[str] | None = None, width: int | None = None, *,
+                 stderr: bool = False) -> Console:
+    """A console writing to ``file`` (default stdout, or stderr), no automatic highlighting."""
+    return Console(file=file, width=width, stderr=stderr and file is None, highlight=False)
+
+
+def print_error(console: Console, message: str) -> None:
+    """Print one error line: ``liveshape: <message>`` (message shown as is, no markup)."""
+    line = Text("liveshape: ", style=f"bold {PALETTE.abort}")
+    line.append(str(message).splitlines()[0] if message else "error")
+    console.print(line, soft_wrap=True)
+
+
+def safety_notice() -> RenderableType:
+    """Cautions shown before a run drives real hardware."""
+    items = (
+        "Loudspeaker rigs can be loud: wear hearing protection near them.",
+        "Fasten the payload and the fixture; nothing loose on the moving part.",
+        "Turn the amplifier gain to its minimum before the start; raise it only when asked.",
+        "Keep hands, cables and tools clear of the moving parts while the drive is on.",
+        "To stop: press Ctrl-C once; the drive ramps down. Keep the amplifier within reach.",
+        "Follow your lab's safety rules and work under qualified supervision.",
+    )
+    text = Text()
+    for i, item in enumerate(items):
+        text.append("• ", style=PALETTE.alarm)
+        text.append(item + ("\n" if i < len(items) - 1 else ""), style=PALETTE.value)
+    return Panel(text, title="before you start", title_align="left",
+                 border_style=PALETTE.alarm, padding=(0, 1))
+
+
+@contextmanager
+def progress_bar(console: Console | str | None = None, description: str = "working", *,
+                 transient: bool = True) -> Iterator[Callable[[float], None]]:
+    """A progress bar; yields ``progress(fraction)`` taking 0..1 (values are clipped).
+
+    ``progress_bar(console, "writing drive.wav")``; a string as first argument is taken as the
+    description (default console).
+    """
+    if isinstance(console, str):
+        console, description = None, console
+    columns = (TextColumn("{task.description}", style=PALETTE.label),
+               BarColumn(complete_style=PALETTE.control, finished_style=PALETTE.ok),
+               TaskProgressColumn(), TimeRemainingColumn())
+    with Progress(*columns, console=console, transient=transient) as bar:
+        task = bar.add_task(description, total=1.0)
+
+        def progress(fraction: float) -> None:
+            v = as_finite(fraction)
+            bar.update(task, completed=min(max(v if v is not None else 0.0, 0.0), 1.0))
+
+        yield progress
+
+
+def run_summary(result: Mapping[str, Any] | Any) -> RenderableType:
+    """The result of a run: status, abort reason, grms, error figures, DOF, time at level.
+
+    ``result`` is a mapping (``summary.json``) or the controller's result dataclass.
+    """
+    table = _row_table(None, runtext.result_rows(runtext.as_mapping(result)))
+    return Panel(table, title="run result", title_align="left", border_style=PALETTE.border)
+
+
+def synth_summary(result: Mapping[str, Any] | Any) -> RenderableType:
+    """The result of ``liveshape synth``: every figure by name, units from the key suffixes."""
+    table = _kv_table()
+    _add_mapping_rows(table, runtext.as_mapping(result))
+    return Panel(table, title="drive file", title_align="left", border_style=PALETTE.border)
+
+
+_VERDICT_STYLE = {"no limit": "dim", "over": "abort", "tight": "alarm", "ok": "ok"}
+
+
+def _column_table(title: str, columns: Sequence[str]) -> Table:
+    table = Table(title=title, title_style=PALETTE.title, title_justify="left", box=None,
+                  header_style=PALETTE.label, pad_edge=False, padding=(0, 2, 0, 0))
+    for name in columns:
+        table.add_column(name, justify="right" if name else "left")
+    return table
+
+
+def _feasibility_parts(rows: dict[str, Any]) -> list[RenderableType]:
+    """Budgets as one table with a verdict per budget
+    (:func:`liveshape.views.checktext.budget_rows`); every other entry as a name/value row."""
+    budgets, used = checktext.budget_rows(rows)
+    parts: list[RenderableType] = []
+    if budgets:
+        table = _column_table("rig budgets (3σ peaks)", checktext.BUDGET_COLUMNS)
+        for *cells, verdict in budgets:
+            table.add_row(*cells, Text(verdict, style=getattr(PALETTE, _VERDICT_STYLE[verdict])))
+        parts.append(table)
+    other = _kv_table("rig feasibility")
+    feasible = rows.get("feasible")
+    if isinstance(feasible, bool):
+        other.add_row("feasible", Text("yes" if feasible else "no",
+                                       style=PALETTE.ok if feasible else PALETTE.abort))
+        used = used | {"feasible"}
+    _add_mapping_rows(other, {k: v for k, v in rows.items() if k not in used})
+    return [other, Text(""), *parts] if parts else [other]
+
+
+def check_table(profile: Any, tolerance: Any = None, control: Any = None,
+                feasibility: Any = None) -> RenderableType:
+    """What ``liveshape check`` shows about a test before it runs.
+
+    Band, grms, velocity and displacement rms, 3σ peak-to-peak displacement, each segment's
+    slope and mean-square area, the tolerance limits, the lines in band and the seconds of data
+    the target DOF needs (linear Welch average of Hann segments at 50 % overlap, Welch 1967),
+    and the rig's feasibility rows when given.
+
+    Parameters
+    ----------
+    profile : Profile or mapping
+        The target profile, or a whole check report mapping (as made by
+        :func:`liveshape.control.checks.check_report`: ``grms_g``, ``segments``, ``tolerance``,
+        ``control``, optional ``rig``), in which case the other arguments may be omitted.
+    tolerance : Tolerance, optional
+    control : ControlSettings, optional
+        Needs ``fs_hz``, ``frame_length``, ``target_dof`` (and ``averaging`` to show it); with
+        the profile and tolerance it makes the report through
+        :func:`liveshape.control.checks.report_from_parts`.
+    feasibility : object with ``to_dict()`` or mapping, optional
+        Rig feasibility rows (shown by name, units from the key suffixes).
+    """
+    if isinstance(profile, Mapping):
+        report = dict(profile)
+        if feasibility is not None:
+            to_dict = getattr(feasibility, "to_dict", None)
+            report["rig"] = dict(to_dict() if callable(to_dict) else feasibility)
+    else:
+        if tolerance is None or control is None:
+            raise TypeError("check_table needs tolerance and control with a profile")
+        from liveshape.control.checks import report_from_parts
+
+        report = report_from_parts(profile, tolerance, control, feasibility)
+    overall, tol, ctl = _kv_table("profile"), _kv_table("tolerance"), _kv_table("control")
+    _add_rows(overall, checktext.profile_rows(report))
+    _add_rows(tol, checktext.tolerance_rows(report))
+    _add_rows(ctl, checktext.control_rows(report))
+    segs = _column_table("segments", checktext.SEGMENT_COLUMNS)
+    _add_rows(segs, checktext.segment_rows(report))
+    parts: list[RenderableType] = [overall, Text(""), segs, Text(""), tol, Text(""), ctl]
+    if report.get("rig") is not None:
+        parts += [Text(""), *_feasibility_parts(dict(report["rig"]))]
+    title = report.get("name") or "test"
+    return Panel(Group(*parts), title=f"check: {title}", title_align="left",
+                 border_style=PALETTE.border)

@@ -1,0 +1,211 @@
+"""The live view of a run and its result, as rows of text: pure Python, no :mod:`rich`.
+
+A snapshot is the controller's frozen :class:`liveshape.control.runstate.ControlSnapshot` or any
+object or mapping with the same names (:func:`field` reads either). Each function returns text
+pieces ``(text, role)``; a role names the colour a view gives it (the fields of
+:class:`liveshape.views.dashboard.Palette`: ``value``, ``label``, ``dim``, ``ok``, ``alarm``,
+``abort``, ``title``, and ``stage`` for the stage word). :mod:`liveshape.views.dashboard` turns them
+into rich renderables.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+from liveshape.views.textformat import (
+    as_count,
+    as_finite,
+    fmt,
+    fmt_db,
+    fmt_time,
+    fmt_value,
+    mapping_rows,
+)
+
+__all__ = [
+    "STAGE_WORDS",
+    "as_mapping",
+    "chi2_band_db",
+    "control_rows",
+    "drive_rows",
+    "event_rows",
+    "field",
+    "header_pieces",
+    "limit_role",
+    "result_rows",
+]
+
+#: ``(text, role)``
+Piece = tuple[str, str]
+#: ``(label, pieces of the value)``
+Row = tuple[str, tuple[Piece, ...]]
+
+STAGE_WORDS = {
+    "connect": "connect", "identify": "identify", "equalize": "equalize",
+    "full_level": "full level", "ramp_down": "ramp down", "done": "done",
+}
+_STATUS_ROLE = {"completed": "ok", "aborted": "abort", "stopped": "alarm", "crashed": "abort"}
+#: Result keys :func:`result_rows` shows in its own rows (or leaves out: the record counts).
+_RESULT_SHOWN = frozenset({
+    "status", "abort_reason", "control_grms_g", "target_grms_g", "final_rms_error_db",
+    "final_max_dev_db", "final_lines_outside_alarm", "final_lines_outside_abort",
+    "updates_to_tolerance", "dof", "time_at_full_level_s", "record", "trip",
+})
+
+
+def field(obj: Any, *names: str, default: Any = None) -> Any:
+    """First attribute (or mapping key) of ``names`` that ``obj`` has and is not None."""
+    for name in names:
+        value = obj.get(name) if isinstance(obj, Mapping) else getattr(obj, name, None)
+        if value is not None:
+            return value
+    return default
+
+
+def as_mapping(obj: Any) -> dict[str, Any]:
+    """A result as a dict: a mapping, a dataclass, or an object with ``to_dict()``."""
+    if isinstance(obj, Mapping):
+        return dict(obj)
+    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
+        return dataclasses.asdict(obj)
+    to_dict = getattr(obj, "to_dict", None)
+    if callable(to_dict):
+        return dict(to_dict())
+    raise TypeError(f"expected a mapping or a dataclass, got {type(obj).__name__}")
+
+
+def limit_role(value: Any, limit: Any) -> str:
+    """``abort`` above the limit, ``alarm`` above 80 % of it, else ``ok`` (``value`` if none)."""
+    v, lim = as_finite(value), as_finite(limit)
+    if v is None or lim is None or lim <= 0:
+        return "value"
+    if v > lim:
+        return "abort"
+    return "alarm" if v > 0.8 * lim else "ok"
+
+
+def chi2_band_db(snapshot: Any, dof: float | None) -> tuple[float | None, float | None]:
+    """The snapshot's 90 % χ² band (dB), or the one its DOF implies (Bendat & Piersol)."""
+    band = field(snapshot, "chi2_band_db", "chi2_db")
+    if band is not None and len(band) == 2:
+        return as_finite(band[0]), as_finite(band[1])
+    lo, hi = as_finite(field(snapshot, "chi2_lo_db")), as_finite(field(snapshot, "chi2_hi_db"))
+    if (lo is not None and hi is not None) or dof is None or dof <= 0:
+        return lo, hi
+    from liveshape.dsp.spectra import chi2_interval_db
+
+    lo, hi = chi2_interval_db(dof, 0.90)
+    return float(lo), float(hi)
+
+
+def _row(label: str, text: str, role: str = "value") -> Row:
+    return label, ((text, role),)
+
+
+def header_pieces(snapshot: Any) -> list[Piece]:
+    """Stage, level (dB), step of the schedule, elapsed / remaining / full-level time, status."""
+    stage = str(field(snapshot, "stage", default="?"))
+    out: list[Piece] = [("liveshape  ", "title"), (STAGE_WORDS.get(stage, stage), "stage")]
+    level = field(snapshot, "level_db")
+    if level is not None:
+        out += [("   level ", "label"), (fmt(level, "+.1f", "dB"), "value")]
+    step, n_steps = field(snapshot, "step_index", "step"), field(snapshot, "n_steps", "steps")
+    if step is not None:
+        shown = int(step) + 1 if field(snapshot, "step_index") is not None else int(step)
+        of = f" of {int(n_steps)}" if n_steps is not None else ""
+        out += [("   step ", "label"), (f"{shown}{of}", "value")]
+    for label, names in (("elapsed", ("elapsed_s", "t_s")), ("remaining", ("remaining_s",)),
+                         ("at full level", ("time_at_full_level_s",))):
+        out += [(f"   {label} ", "label"), (fmt_time(field(snapshot, *names)), "value")]
+    status = field(snapshot, "status")
+    if status:
+        out.append((f"   {status}", "dim"))
+    return out
+
+
+def control_rows(snapshot: Any) -> list[Row]:
+    """grms against target, rms error, line deviations, lines outside, DOF and χ² band."""
+    c = as_finite(field(snapshot, "control_grms_g"))
+    t = as_finite(field(snapshot, "target_grms_g"))
+    err = 10.0 * math.log10(c**2 / t**2) if c and t else None
+    n_al = as_count(field(snapshot, "lines_outside_alarm"))
+    n_ab = as_count(field(snapshot, "lines_outside_abort"))
+    dof = as_finite(field(snapshot, "dof"))
+    lo, hi = chi2_band_db(snapshot, dof)
+    return [
+        _row("grms control / target", f"{fmt(c, '.3f')} / {fmt(t, '.3f')} g  ({fmt_db(err)})"),
+        _row("rms error", fmt_db(field(snapshot, "rms_error_db"))),
+        _row("line deviation max / min", f"{fmt_db(field(snapshot, 'max_dev_db'))} / "
+             f"{fmt_db(field(snapshot, 'min_dev_db'))}"),
+        ("lines outside", ((f"{fmt_value(n_al)} alarm", "alarm" if n_al else "ok"),
+                           ("  ", "value"),
+                           (f"{fmt_value(n_ab)} abort", "abort" if n_ab else "ok"))),
+        _row("DOF", f"{fmt(dof, '.0f')}   90 % χ² band {fmt(lo, '+.2f')} / "
+             f"{fmt(hi, '+.2f')} dB"),
+        _row("updates", fmt_value(field(snapshot, "updates", "n_updates"))),
+    ]
+
+
+def drive_rows(snapshot: Any) -> list[Row]:
+    """Drive rms and peak against their limits (FS), gain, loop delay and a trip if any."""
+    rows = []
+    for label, key, lim_keys in (
+        ("rms", "drive_rms_fs", ("drive_rms_limit_fs", "drive_rms_max_fs")),
+        ("peak", "drive_peak_fs", ("drive_peak_limit_fs", "drive_peak_max_fs")),
+    ):
+        value, limit = field(snapshot, key), field(snapshot, *lim_keys)
+        v, lim = as_finite(value), as_finite(limit)
+        frac = f"  ({100 * v / lim:.0f} %)" if v is not None and lim else ""
+        rows.append(_row(label, f"{fmt(value, '.3f')} of {fmt(limit, '.3f')} FS{frac}",
+                         limit_role(value, limit)))
+    gain = field(snapshot, "gain_db")
+    if gain is not None:
+        rows.append(_row("gain", fmt(gain, "+.1f", "dB")))
+    delay = field(snapshot, "loop_delay_samples")
+    if delay is not None:
+        rows.append(_row("loop delay", f"{int(delay)} samples"))
+    trip = field(snapshot, "trip")
+    if trip:
+        rule, message = field(trip, "rule"), field(trip, "message", default=trip)
+        rows.append(_row("trip", f"{rule}: {message}" if rule else str(message), "abort"))
+    return rows
+
+
+def event_rows(events: Sequence[Any], n: int = 6) -> list[tuple[str, str, Piece]]:
+    """The last ``n`` events as ``(time, kind, (message, role))``."""
+    rows = []
+    for ev in list(events)[-n:]:
+        kind = str(field(ev, "kind", default=""))
+        role = "abort" if kind in ("abort", "trip", "crash") else (
+            "alarm" if kind == "alarm" else "value")
+        rows.append((fmt(field(ev, "t_s"), ".1f", "s"), kind,
+                     (str(field(ev, "message", default="")), role)))
+    return rows
+
+
+def result_rows(result: Mapping[str, Any]) -> list[Row]:
+    """Status, abort rule and reason, grms, final errors, DOF, time at level, then the rest."""
+    status = str(result.get("status", "unknown"))
+    rows = [_row("status", status, _STATUS_ROLE.get(status, "value"))]
+    trip = result.get("trip")
+    if isinstance(trip, Mapping) and trip.get("rule"):
+        rows.append(_row("abort rule", str(trip["rule"]), "abort"))
+    if result.get("abort_reason"):
+        rows.append(_row("abort reason", str(result["abort_reason"]), "abort"))
+    rows += [
+        _row("grms control / target", f"{fmt(result.get('control_grms_g'), '.3f')} / "
+             f"{fmt(result.get('target_grms_g'), '.3f')} g"),
+        _row("final rms error", fmt_db(result.get("final_rms_error_db"))),
+        _row("final max line deviation", fmt_db(result.get("final_max_dev_db"))),
+        _row("lines outside alarm / abort",
+             f"{fmt_value(as_count(result.get('final_lines_outside_alarm')))} / "
+             f"{fmt_value(as_count(result.get('final_lines_outside_abort')))}"),
+        _row("updates to tolerance", fmt_value(result.get("updates_to_tolerance"))),
+        _row("DOF", fmt(result.get("dof"), ".0f")),
+        _row("time at full level", fmt(result.get("time_at_full_level_s"), ".1f", "s")),
+    ]
+    rows += [_row(label, text) for label, text in mapping_rows(result, skip=_RESULT_SHOWN)]
+    return rows
