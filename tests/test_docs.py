@@ -29,3 +29,23 @@ def test_readme_commands_exist() -> None:
     named = set(re.findall(r"(?:`|/)liveshape ([a-z][a-z-]+)", README))
     assert named and named <= commands, named - commands
     assert {"check", "synth", "run", "report", "devices", "calibrate", "virtual-rig"} <= commands
+
+
+def test_contributor_guide_maps_every_module() -> None:
+    # DEVELOPERS.md draws the module map by subpackage; a module missing from it is drift
+    guide = (REPO / "DEVELOPERS.md").read_text(encoding="utf-8")
+    block = guide.split("```", 2)[1]  # the first code block is the map
+    current, listed = "", set()
+    for line in block.splitlines():
+        m = re.match(r"^  (\w+)/", line)
+        if m:
+            current = m.group(1) + "/"
+            continue
+        for name in re.findall(r"(?<![\w/])(\w+\.py)", line):
+            listed.add((current if line.startswith("    ") else "") + name)
+    package = REPO / "liveshape"
+    actual = {p.relative_to(package).as_posix() for p in package.rglob("*.py")
+              if p.name != "__init__.py" or p.parent == package}
+    actual.discard("__main__.py")
+    assert actual - listed == set(), "modules missing from the DEVELOPERS.md map"
+    assert listed - actual == set(), "the DEVELOPERS.md map names modules that do not exist"
