@@ -125,6 +125,15 @@ def _cmd_synth(args: argparse.Namespace) -> int:
     return 0
 
 
+def _text_field(text: str) -> str:
+    """A short one-line text for the record (operator, test item)."""
+    t = text.strip()
+    if not t or len(t) > 200 or any(ch in t for ch in "\n\r\t"):
+        raise argparse.ArgumentTypeError(
+            f"{text!r} must be 1-200 characters on one line")
+    return t
+
+
 def _cmd_run(args: argparse.Namespace) -> int:
     from liveshape.testdef.spec import load_spec, parse_fault
     from liveshape.views import dashboard
@@ -163,6 +172,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
         kwargs = {"fast": args.fast}
     if args.block_size is not None:
         kwargs["block_size"] = args.block_size
+    kwargs["identity"] = {"operator": args.operator, "test_item": args.test_item}
+    kwargs["record_signals"] = args.record == "full"
     if args.json:
         session = runner(spec, out_dir=args.out, **kwargs)
         _print_json(session.summary())
@@ -403,6 +414,13 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--out", default="runs", metavar="DIR",
                    help="folder for run records (default: runs)")
     r.add_argument("--json", action="store_true", help="print the run summary as JSON")
+    r.add_argument("--operator", type=_text_field, metavar="NAME",
+                   help="who runs the test (written to run.json and the report)")
+    r.add_argument("--test-item", type=_text_field, metavar="TEXT",
+                   help="what is under test, e.g. a serial number (run.json and the report)")
+    r.add_argument("--record", choices=("full", "spectra"), default="full",
+                   help="full (default): spectra, events and the drive and response WAVs "
+                   "(about 1.3 GB per hour at 48 kHz); spectra: everything but the WAVs")
     r.set_defaults(func=_cmd_run)
 
     rp = sub.add_parser("report", help="plots and a text summary from a run record")

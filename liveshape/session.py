@@ -11,6 +11,7 @@ SIGTERM into the controller's controlled ramp-down.
 from __future__ import annotations
 
 import dataclasses
+import hashlib
 import signal
 import threading
 import time
@@ -22,9 +23,11 @@ from typing import Any
 
 import numpy as np
 
+from liveshape import __version__
 from liveshape.control.controller import Controller
 from liveshape.control.runstate import ControlSnapshot, RunResult
 from liveshape.errors import ConfigError
+from liveshape.record.exports import SPECTRA_CSV, spectra_csv_text
 from liveshape.record.writer import RunRecorder
 from liveshape.testdef.chain import ChainCalibration
 from liveshape.testdef.spec import TestSpec, spec_to_mapping
@@ -63,11 +66,44 @@ class SessionResult:
             "time_at_full_level_s": r.time_at_full_level_s,
             "updates": r.updates,
             "trip": None if trip is None else dataclasses.asdict(trip),
+            **verdict_summary(r.verdict),
             "run_dir": str(self.run_dir),
             "rig": self.rig,
             "calibration": self.calibration,
         }
         return out
+
+
+def verdict_summary(v: Any) -> dict[str, Any]:
+    """The verdict's entries of ``summary.json`` (see :mod:`liveshape.control.verdict`)."""
+    if v is None:
+        return {"verdict": None}
+    j = v.judgement
+    return {
+        "verdict": v.verdict,
+        "verdict_reasons": list(v.reasons),
+        "verdict_rule": v.rule,
+        "full_level_dof": v.dof,
+        "full_level_rms_error_db": None if j is None else j.rms_error_db,
+        "full_level_max_dev_db": None if j is None else j.max_dev_db,
+        "full_level_min_dev_db": None if j is None else j.min_dev_db,
+        "full_level_lines_outside_alarm": None if j is None else j.lines_outside_alarm,
+        "full_level_lines_outside_abort": None if j is None else j.lines_outside_abort,
+        "full_level_control_grms_g": None if j is None else j.control_grms_g,
+        "alarm_fraction": v.alarm_fraction,
+        "max_alarm_fraction": v.max_alarm_fraction,
+    }
+
+
+def file_sha256(path: str | Path | None) -> str | None:
+    """SHA-256 (hex) of a file's bytes, or None when there is no such file."""
+    if not path:
+        return None
+    try:
+        with open(path, "rb") as fh:
+            return hashlib.sha256(fh.read()).hexdigest()
+    except OSError:
+        return None
 
 
 class StopFlag:
@@ -121,8 +157,17 @@ def _calibration_mapping(cal: ChainCalibration) -> dict[str, Any]:
 
 
 def _open_record(spec: TestSpec, out_dir: str | Path, rig_mapping: dict[str, Any],
-                 cal: ChainCalibration, extra: dict[str, Any]) -> RunRecorder:
-    """A new run folder with the resolved spec, the rig and its calibration."""
+                 cal: ChainCalibration, extra: dict[str, Any],
+                 identity: dict[str, Any] | None = None,
+                 record_signals: bool = True) -> RunRecorder:
+    """A new run folder with the resolved spec, the rig and its calibration.
+
+    ``run.json`` names the software version, the SHA-256 of the test file as read (None for a
+    spec made in code) and ``identity`` (``operator``, ``test_item``).
+    """
+    ident = {"software_version": __version__, "spec_file": spec.source or None,
+             "spec_sha256": file_sha256(spec.source), "operator": None, "test_item": None,
+             **(identity or {})}
     return RunRecorder.create(
         out_dir,
         name=spec.name,
@@ -131,6 +176,8 @@ def _open_record(spec: TestSpec, out_dir: str | Path, rig_mapping: dict[str, Any
         calibration=_calibration_mapping(cal),
         fs_hz=spec.control.fs_hz,
         extra=extra,
+        identity=ident,
+        signals=record_signals,
     )
 
 
@@ -162,6 +209,7 @@ class RunLoop:
         self.clock = clock
         self._last_view = -np.inf
         self._last_update: Any = None
+        self._closed_out = False
 
     def after_block(self, drive: np.ndarray, response: np.ndarray) -> None:
         """Record one block pair and whatever the controller has to say since the last one."""
@@ -173,11 +221,35 @@ class RunLoop:
         if upd is not None and upd is not self._last_update:
             self._last_update = upd
             self.recorder.update_from(upd)
+        if ctrl.finished and not self._closed_out:
+            self._closed_out = True
+            self._write_final_spectra()
         if self.on_snapshot is not None:
             now = self.clock()
             if now - self._last_view >= self.view_period_s or ctrl.finished:
                 self._last_view = now
                 self.on_snapshot(ctrl.snapshot())
+
+    def _write_final_spectra(self) -> None:
+        """The full-level average (``decisions/full_level.npz``) and ``spectra.csv``."""
+        ctrl = self.controller
+        full = ctrl.full_level_arrays()
+        if full is not None:
+            self.recorder.full_level(full)
+        u = ctrl.last_update
+        if u is None:
+            return
+        if full is not None:
+            c, dof, src, tgt = full["control_psd_g2_hz"], full["dof"], "full_level", \
+                full["target_psd_g2_hz"]
+        elif u.decision_dof > 0:
+            c, dof, src, tgt = u.decision_psd, u.decision_dof, "decision", u.target_psd
+        else:
+            c, dof, src, tgt = u.control_psd, u.dof, "update", u.target_psd
+        self.recorder.text_file(SPECTRA_CSV, spectra_csv_text(
+            f_hz=u.f_hz, target_g2_hz=tgt, alarm_db=ctrl.alarm_db, abort_db=ctrl.abort_db,
+            control_g2_hz=c, control_dof=dof, control_source=src, drive_fs2_hz=u.drive_psd,
+            h1_g_per_fs=u.h1, coherence=u.coherence))
 
     def run_sim(
         self, rig: Any, *, block_size: int, fast: bool, stop: StopFlag,
@@ -221,6 +293,8 @@ def run_session(
     block_size: int = SIM_BLOCK,
     on_snapshot: Callable[[ControlSnapshot], None] | None = None,
     stop: StopFlag | None = None,
+    identity: dict[str, Any] | None = None,
+    record_signals: bool = True,
 ) -> SessionResult:
     """Run one test on the rig the spec selects and leave a record folder.
 
@@ -241,6 +315,10 @@ def run_session(
         Live view callback.
     stop : StopFlag, optional
         Set it (or send SIGTERM, or press Ctrl-C) to ramp down and stop.
+    identity : dict, optional
+        ``operator`` and ``test_item`` for ``run.json``.
+    record_signals : bool
+        Record drive and response as WAV files (False: spectra and events only).
     """
     if spec.rig.kind != "sim":
         raise ConfigError(
@@ -254,7 +332,8 @@ def run_session(
     controller = Controller(spec, cal, seed=seed)
     stop = stop or StopFlag()
     recorder = _open_record(spec, out_dir, rig_mapping, cal,
-                            {"seed": seed, "fast": fast, "block_size": block_size})
+                            {"seed": seed, "fast": fast, "block_size": block_size},
+                            identity, record_signals)
     with recorder, sigterm_stops(stop):
         loop = RunLoop(controller, recorder, on_snapshot=on_snapshot)
         result = loop.run_sim(rig, block_size=block_size, fast=fast, stop=stop)
@@ -284,6 +363,8 @@ def run_audio_session(
     lead_blocks: int = AUDIO_LEAD_BLOCKS,
     on_snapshot: Callable[[ControlSnapshot], None] | None = None,
     stop: StopFlag | None = None,
+    identity: dict[str, Any] | None = None,
+    record_signals: bool = True,
 ) -> SessionResult:
     """Run one test through a real audio interface (or the JACK virtual rig).
 
@@ -316,7 +397,8 @@ def run_audio_session(
         "lead_blocks": lead_blocks,
     }
     recorder = _open_record(spec, out_dir, rig_mapping, cal,
-                            {"seed": seed, "block_size": block_size, "calibrated": cal.calibrated})
+                            {"seed": seed, "block_size": block_size, "calibrated": cal.calibrated},
+                            identity, record_signals)
     with recorder, sigterm_stops(stop):
         loop = RunLoop(controller, recorder, on_snapshot=on_snapshot)
         result = rig.run(
