@@ -416,3 +416,77 @@ def run_audio_session(
         )
         recorder.close(session.summary())
     return session
+
+
+#: Default survey drive, FS rms: a little above the connection level, far below a test.
+SURVEY_LEVEL_FS = 0.02
+#: Default survey duration, s (about 110 DOF at 32768-point frames and 48 kHz).
+SURVEY_DURATION_S = 20.0
+
+
+def run_survey(
+    spec: TestSpec,
+    *,
+    out_dir: str | Path,
+    level_fs: float = SURVEY_LEVEL_FS,
+    duration_s: float = SURVEY_DURATION_S,
+    frame_length: int = 32768,
+    band_hz: tuple[float, float] | None = None,
+    seed: int | None = None,
+    block_size: int | None = None,
+    stop: StopFlag | None = None,
+    identity: dict[str, Any] | None = None,
+) -> tuple[Any, Any, Path]:
+    """Run a low-level resonance survey on the spec's rig and write its record folder.
+
+    The drive is flat random noise over ``band_hz`` (default: the profile's band) at
+    ``level_fs`` rms, never above ``safety.drive_rms_max_fs``; the same
+    :class:`~liveshape.control.survey.SurveySource` runs on the simulated rig and through an
+    audio device. Returns ``(SurveyResult, SurveySettings, folder)``.
+    """
+    from liveshape.control.survey import SurveySettings, SurveySource
+    from liveshape.record.surveyfile import write_survey
+
+    if level_fs > spec.safety.drive_rms_max_fs:
+        raise ConfigError(f"--level = {level_fs:g} FS is above safety.drive_rms_max_fs = "
+                          f"{spec.safety.drive_rms_max_fs:g} FS")
+    band = band_hz or (spec.profile.f_min_hz, spec.profile.f_max_hz)
+    seed = spec.seed if seed is None else seed
+    fs = spec.control.fs_hz
+    settings = SurveySettings(fs_hz=fs, level_fs=level_fs, duration_s=duration_s,
+                              band_hz=(float(band[0]), float(band[1])),
+                              frame_length=frame_length, seed=seed)
+    stop = stop or StopFlag()
+    ident = {"software_version": __version__, "spec_file": spec.source or None,
+             "spec_sha256": file_sha256(spec.source), "operator": None, "test_item": None,
+             **(identity or {})}
+    if spec.rig.kind == "sim":
+        rig, cal, rig_mapping = build_sim_rig(spec, seed)
+        b = block_size or SIM_BLOCK
+        src = SurveySource(settings, g_per_fs=cal.g_per_fs, block_size=b)
+        response = np.zeros(b)
+        with sigterm_stops(stop):
+            while not src.finished:
+                try:
+                    if stop.is_set():
+                        src.request_stop(stop.reason)
+                    response = rig.process(src.exchange(response))
+                except KeyboardInterrupt:
+                    stop.set("Ctrl-C")
+        result = src.result()
+    else:
+        from liveshape.rigs.audio import AudioRig, check_settings
+        from liveshape.rigs.calibration import resolve_calibration
+
+        cal = resolve_calibration(spec.rig.calibration, spec.rig.uncalibrated)
+        info = check_settings(spec.rig.device, fs)
+        b = block_size or AUDIO_BLOCK
+        audio = AudioRig(info.index, fs, block_size=b)
+        src = SurveySource(settings, g_per_fs=cal.g_per_fs, block_size=b)
+        rig_mapping = {"kind": "audio", "device": info.name, "device_index": info.index,
+                       "host_api": info.host_api, "fs_hz": fs, "block_size": b}
+        with sigterm_stops(stop):
+            result = audio.run(src, should_stop=stop.is_set)
+    folder = write_survey(out_dir, name=spec.name, result=result, settings=settings,
+                          rig=rig_mapping, calibration=_calibration_mapping(cal), identity=ident)
+    return result, settings, folder
