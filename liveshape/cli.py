@@ -206,7 +206,7 @@ def _cmd_survey(args: argparse.Namespace) -> int:
         return SURVEY_FLAGGED_EXIT if flagged else 0
     if args.spec is None:
         raise ConfigError("survey: give a test definition SPEC, or --compare BEFORE AFTER")
-    from liveshape.session import run_survey
+    from liveshape.session import run_survey, survey_settings
     from liveshape.testdef.spec import load_spec, parse_fault
     from liveshape.views import dashboard
     from liveshape.views.surveytext import survey_lines
@@ -219,12 +219,13 @@ def _cmd_survey(args: argparse.Namespace) -> int:
     if args.uncalibrated:
         overrides["rig.uncalibrated"] = True
     spec = load_spec(args.spec, overrides)
+    settings = survey_settings(spec, level_fs=args.level, duration_s=args.duration,
+                               seed=args.seed)
     notice = dashboard.make_console(stderr=True)
     notice.print(dashboard.safety_notice())
-    result, settings, folder = run_survey(spec, out_dir=args.out, level_fs=args.level,
-                                          duration_s=args.duration, seed=args.seed,
-                                          identity={"operator": args.operator,
-                                                    "test_item": args.test_item})
+    result, folder = run_survey(spec, settings, out_dir=args.out,
+                                identity={"operator": args.operator,
+                                          "test_item": args.test_item})
     if args.json:
         _print_json({"status": result.status, "record": str(folder), "dof": result.dof,
                      "delay_samples": result.delay_samples,

@@ -424,38 +424,51 @@ SURVEY_LEVEL_FS = 0.02
 SURVEY_DURATION_S = 20.0
 
 
-def run_survey(
+def survey_settings(
     spec: TestSpec,
     *,
-    out_dir: str | Path,
     level_fs: float = SURVEY_LEVEL_FS,
     duration_s: float = SURVEY_DURATION_S,
     frame_length: int = 32768,
     band_hz: tuple[float, float] | None = None,
     seed: int | None = None,
-    block_size: int | None = None,
-    stop: StopFlag | None = None,
-    identity: dict[str, Any] | None = None,
-) -> tuple[Any, Any, Path]:
-    """Run a low-level resonance survey on the spec's rig and write its record folder.
+) -> Any:
+    """Checked settings of a survey on ``spec``'s rig (one-line ConfigError when wrong).
 
     The drive is flat random noise over ``band_hz`` (default: the profile's band) at
-    ``level_fs`` rms, never above ``safety.drive_rms_max_fs``; the same
-    :class:`~liveshape.control.survey.SurveySource` runs on the simulated rig and through an
-    audio device. Returns ``(SurveyResult, SurveySettings, folder)``.
+    ``level_fs`` rms, never above ``safety.drive_rms_max_fs``.
     """
-    from liveshape.control.survey import SurveySettings, SurveySource
-    from liveshape.record.surveyfile import write_survey
+    from liveshape.control.survey import SurveySettings
 
     if level_fs > spec.safety.drive_rms_max_fs:
         raise ConfigError(f"--level = {level_fs:g} FS is above safety.drive_rms_max_fs = "
                           f"{spec.safety.drive_rms_max_fs:g} FS")
     band = band_hz or (spec.profile.f_min_hz, spec.profile.f_max_hz)
-    seed = spec.seed if seed is None else seed
+    return SurveySettings(fs_hz=spec.control.fs_hz, level_fs=level_fs, duration_s=duration_s,
+                          band_hz=(float(band[0]), float(band[1])), frame_length=frame_length,
+                          seed=spec.seed if seed is None else seed)
+
+
+def run_survey(
+    spec: TestSpec,
+    settings: Any,
+    *,
+    out_dir: str | Path,
+    block_size: int | None = None,
+    stop: StopFlag | None = None,
+    identity: dict[str, Any] | None = None,
+) -> tuple[Any, Path]:
+    """Run a low-level resonance survey on the spec's rig and write its record folder.
+
+    ``settings`` come from :func:`survey_settings`. The same
+    :class:`~liveshape.control.survey.SurveySource` runs on the simulated rig and through an
+    audio device. Returns ``(SurveyResult, folder)``.
+    """
+    from liveshape.control.survey import SurveySource
+    from liveshape.record.surveyfile import write_survey
+
+    seed = settings.seed
     fs = spec.control.fs_hz
-    settings = SurveySettings(fs_hz=fs, level_fs=level_fs, duration_s=duration_s,
-                              band_hz=(float(band[0]), float(band[1])),
-                              frame_length=frame_length, seed=seed)
     stop = stop or StopFlag()
     ident = {"software_version": __version__, "spec_file": spec.source or None,
              "spec_sha256": file_sha256(spec.source), "operator": None, "test_item": None,
@@ -489,4 +502,4 @@ def run_survey(
             result = audio.run(src, should_stop=stop.is_set)
     folder = write_survey(out_dir, name=spec.name, result=result, settings=settings,
                           rig=rig_mapping, calibration=_calibration_mapping(cal), identity=ident)
-    return result, settings, folder
+    return result, folder

@@ -13,6 +13,7 @@ import datetime as _dt
 import json
 import math
 import os
+import shutil
 from pathlib import Path
 from typing import Any
 
@@ -78,6 +79,7 @@ def write_survey(out_dir: str | os.PathLike[str], *, name: str, result: Any,
         text = json.dumps(json_safe(meta), indent=2, allow_nan=False) + "\n"
         atomic_write_text(root / META_NAME, text)  # last: a folder with it is complete
     except OSError as exc:
+        shutil.rmtree(root, ignore_errors=True)  # no partial record
         why = exc.strerror or exc
         raise ConfigError(f"{root}: cannot write the survey record ({why})") from None
     return root
