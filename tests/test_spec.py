@@ -6,6 +6,7 @@ import math
 from pathlib import Path
 
 import pytest
+from refprofiles import quad_grms
 
 from liveshape.errors import ConfigError
 from liveshape.testdef import config
@@ -369,7 +370,10 @@ def test_all_example_tests_load():
     files = sorted(EXAMPLES.glob("*.yaml")) + sorted(EXAMPLES.glob("*.csv"))
     assert len(files) >= 3
     for f in files:
-        assert load_spec(f).profile.grms > 0
+        p = load_spec(f).profile
+        # grms against scipy.integrate.quad of the breakpoints' log-log interpolation (scipy as
+        # reference; quad's epsrel 1e-12 per segment, so 1e-9 leaves room only for rounding)
+        assert p.grms == pytest.approx(quad_grms(p.f_hz, p.asd_g2_hz), rel=1e-9), f.name
 
 
 def test_yaml_example_header_says_demo():
