@@ -238,7 +238,7 @@ def update_drive(
         Estimated control PSD Ĉ_k, g²/Hz, measured while ``drive_psd`` played.
     gain : float
         Update gain γ, 0 < γ ≤ 1 (the loop diverges for γ ≥ 2, and for γ ≥ 1 with one update
-        of delay; DOMAIN.md §4).
+        of delay; docs/methods.md, "Equalizer update laws and their scatter").
     max_step_db : float
         Per-line limit of the change, ±dB per update.
     band : ndarray of bool

@@ -8,7 +8,7 @@ itself (the controller ramps it down when :class:`Supervisor` returns a :class:`
     only after the control has been inside tolerance (every line within its alarm limit and the
     rms within the rms alarm limit) continuously for ``hold_s``; time at full level is counted
     only at 0 dB with the gain settled there (reduced-level time is not counted toward the test
-    duration, DOMAIN.md §5 practice).
+    duration; common practice).
 
 :class:`Supervisor`
     The abort rules. Every threshold comes from ``spec.safety`` and ``spec.tolerance``:
@@ -187,7 +187,13 @@ def band_sum_dof(psd: np.ndarray, dof: float) -> float:
 
 
 def db_std(dof: float) -> float:
-    """dB standard deviation of a χ²_ν estimate: ``4.343 √ψ1(ν/2)`` (DOMAIN.md §3)."""
+    """dB standard deviation of a χ²_ν estimate: ``4.343 √ψ1(ν/2)``.
+
+    ``ln(χ²_ν/ν)`` is the log of a gamma variate of shape ν/2, whose variance is the trigamma
+    ``ψ1(ν/2)`` (Johnson, Kotz & Balakrishnan, *Continuous Univariate Distributions*, Vol. 1,
+    2nd ed., ch. 17 [from memory]); 4.343 = 10/ln 10 turns it into dB (docs/methods.md,
+    "χ² confidence bands and dB scatter").
+    """
     return _DB * math.sqrt(float(special.polygamma(1, 0.5 * dof)))
 
 

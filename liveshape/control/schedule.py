@@ -3,7 +3,7 @@
 Pure. :class:`LevelSchedule` steps the test level through ``schedule.steps_db`` (e.g. −12, −9,
 −6, −3, 0 dB). It steps up only after the control has been inside tolerance continuously for
 ``hold_s``; time at full level is counted only at 0 dB with the gain settled there (time at
-reduced level does not count toward the test duration, DOMAIN.md §5 practice). Re-exported by
+reduced level does not count toward the test duration; common practice). Re-exported by
 :mod:`liveshape.control.safety`.
 """
 

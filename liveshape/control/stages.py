@@ -18,10 +18,11 @@ Estimation design
     Update estimates are independent: each starts after the last drive change has arrived and
     holds one drive only, so consecutive updates are independent χ² estimates (what the
     persistence of the abort rules relies on). Their DOF ν_u is half the decision DOF: the
-    equalizer's steady-state true error γ/(2−γ)·σ²(ν_u) (DOMAIN.md §4) stays below the display
-    scatter σ²(ν_d), and the first tolerance decision after a drive or level change needs two
-    updates. The direct law removes the mean dB bias of a χ²_ν estimate (≈ −4.343/ν dB), so it
-    settles on the target's mean square. The decision pool restarts at every level change.
+    equalizer's steady-state true error γ/(2−γ)·σ²(ν_u) (docs/methods.md, "Equalizer update
+    laws and their scatter") stays below the display scatter σ²(ν_d), and the first tolerance
+    decision after a drive or level change needs two updates. The direct law removes the mean
+    dB bias of a χ²_ν estimate (≈ −4.343/ν dB), so it settles on the target's mean square.
+    The decision pool restarts at every level change.
 """
 
 from __future__ import annotations
@@ -102,8 +103,8 @@ def update_dof_for(target_dof: float) -> float:
 
     Two independent update estimates pool to the decision DOF, so the first tolerance decision
     after a drive change needs two updates. The equalizer's own steady-state true error,
-    ``γ/(2−γ)·σ²(ν_u)`` (DOMAIN.md §4), is then ``σ²(ν_u)/3`` at γ = 0.5, below the display
-    scatter σ²(ν_d) of the decision estimate.
+    ``γ/(2−γ)·σ²(ν_u)`` (docs/methods.md, "Equalizer update laws and their scatter"), is then
+    ``σ²(ν_u)/3`` at γ = 0.5, below the display scatter σ²(ν_d) of the decision estimate.
     """
     return max(16.0, 0.5 * float(target_dof))
 

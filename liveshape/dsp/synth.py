@@ -90,8 +90,9 @@ __all__ = [
 _MAX_PHASES = 64
 _MIN_PHASES = 2
 
-#: Lowest clip level allowed, in multiples of the rms: IEC 60068-2-64 asks for a drive crest
-#: factor of at least 2.5 (secondary summary of the standard; see DOMAIN.md section 5).
+#: Lowest clip level allowed, in multiples of the rms: IEC 60068-2-64 (Test Fh) asks for a drive
+#: crest factor of at least 2.5 (from a secondary summary of the standard; docs/methods.md,
+#: "Gaussian drive: crest factor, kurtosis and clipping").
 CLIP_SIGMA_MIN = 2.5
 
 

@@ -70,10 +70,11 @@ def jack_loop_delay_samples(
 ) -> int:
     """Round-trip delay, stream output to stream input, through JACK and the virtual rig.
 
-    One JACK period (the feedback cycle PortAudio -> plant -> PortAudio is broken by one period,
-    DOMAIN.md §9), plus ``block_size`` when the PortAudio stream has a fixed block size (its
-    buffer processor adds one block; measured here with blocks of 256, 1024 and 2048 on a
-    1024-frame server), plus the plant card's own delay.
+    One JACK period (a path through JACK clients includes the JACK period length, jack_iodelay(1)
+    manual page; the cycle PortAudio -> plant -> PortAudio is broken by one period, see
+    docs/methods.md, "Loop delay through JACK"), plus ``block_size`` when the PortAudio stream
+    has a fixed block size (its buffer processor adds one block; measured here with blocks of
+    256, 1024 and 2048 on a 1024-frame server), plus the plant card's own delay.
     """
     return int(period_frames) + (0 if host_period else int(block_size)) + int(plant_delay)
 

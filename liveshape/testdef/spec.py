@@ -47,8 +47,9 @@ __all__ = [
     "spec_from_mapping", "spec_to_mapping",
 ]
 
-#: Lowest clipping level of the drive, in multiples of its rms: IEC 60068-2-64 requires a drive
-#: crest factor of at least 2.5 (secondary summary, see DOMAIN.md §5).
+#: Lowest clipping level of the drive, in multiples of its rms: IEC 60068-2-64 (Test Fh, random
+#: vibration) requires a drive crest factor of at least 2.5 (from a secondary summary of the
+#: standard; docs/methods.md, "Gaussian drive: crest factor, kurtosis and clipping").
 CLIP_SIGMA_FLOOR = 2.5
 MIN_FRAME_LENGTH = 256
 MAX_FRAME_LENGTH = 1 << 20
