@@ -1,6 +1,6 @@
 """Helpers that run a private JACK server (dummy driver) for the JACK tests and benchmarks.
 
-Recipe (DOMAIN.md §9, verified on this machine)::
+Recipe (options from the jackd(1) and jack_wait(1) manual pages; verified on this machine)::
 
     jackd --no-realtime -n NAME -d dummy -r 48000 -p 1024 &
     JACK_DEFAULT_SERVER=NAME jack_wait -w -t 10

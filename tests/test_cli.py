@@ -57,7 +57,9 @@ def test_check_json_navmat(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -
     for key in ("grms_g", "velocity_rms_m_s", "displacement_rms_m", "displacement_pp_3sigma_m",
                 "f_min_hz", "f_max_hz"):
         assert key in data
-    # NAVMAT P-9492: published 6.0 grms; exact integral of the breakpoints 6.06 (DOMAIN.md §1).
+    # NAVMAT P-9492 (Navy Manufacturing Screening Program, 1979) publishes 6.0 grms; the exact
+    # integral of its breakpoints is 6.06 [calc: closed-form segment integrals, docs/methods.md,
+    # "Profile integrals"].
     assert data["grms_g"] == pytest.approx(6.06, abs=0.01)
     # 3-sigma peak-to-peak is 6 x rms (common practice; MIL-STD-810H 3-sigma basis).
     assert data["displacement_pp_3sigma_m"] == pytest.approx(6 * data["displacement_rms_m"])
@@ -71,8 +73,9 @@ def test_check_table_names_band_and_grms(capsys: pytest.CaptureFixture[str]) -> 
 
 
 def test_seconds_for_dof_matches_welch_dof() -> None:
-    # Welch (1967): Hann 50 % adds 36/19 DOF per segment for many segments; 120 DOF needs
-    # ceil((120 - c) / (36/19)) segments, about 64 (DOMAIN.md §3).
+    # Welch (1967), IEEE Trans. Audio Electroacoust. AU-15(2): Hann 50 % adds 36/19 DOF per
+    # segment for many segments; 120 DOF needs ceil((120 - c) / (36/19)) segments, about 64
+    # [calc; docs/methods.md, "Welch estimates: degrees of freedom"].
     from liveshape.control.checks import segments_for_dof
     from liveshape.dsp.spectra import welch_dof
 

@@ -3,7 +3,7 @@ rule with its ramp-down, determinism and stop.
 
 Outside references: the simulated plant's own physics (``SimRig.frf``, the analytic transfer
 function of the rig, independent of the controller's estimates); the χ² statistics of Welch
-estimates (Bendat & Piersol; DOMAIN.md §3); the raised-cosine fade slope bound
+estimates (Bendat & Piersol, Random Data, 4th ed., ch. 8); the raised-cosine fade slope bound
 ``|Δg| ≤ π/(2M)`` per sample of an M-sample fade (calculus).
 Runs use fs = 12 kHz with 2048-sample frames (df = 5.86 Hz, the same update timing as 48 kHz with
 8192) and short schedules so the file stays fast.
@@ -353,9 +353,11 @@ def test_connect_with_a_dead_input_trips_response_silent():
 
 
 def test_low_dof_updates_do_not_trip_lines_abort_on_scatter():
-    # 16-DOF updates with a tight ±4 dB abort band: per-line scatter (σ = 2.2 dB at ν = 16,
-    # DOMAIN.md §3) puts lines beyond ±4 dB in most updates; the statistics-aware rule must not
-    # trip on it (safety.scatter_limits_db bounds the false count at 1e−6 per update).
+    # 16-DOF updates with a tight ±4 dB abort band: the χ²_16 scatter alone (σ = 4.343
+    # sqrt(psi1(8)) = 1.6 dB; docs/methods.md, "χ² confidence bands and dB scatter") puts a line
+    # beyond ±4 dB with P = 0.017, some line of ~160 in 94 % of updates [calc], more with the
+    # equalizer's own error; the statistics-aware rule must not trip on it
+    # (safety.scatter_limits_db bounds the false count at 1e−6 per update).
     spec = make_spec(full_s=30.0, tolerance=Tolerance(alarm_db=3.0, abort_db=4.0),
                      safety=SafetyLimits(abort_persist_updates=1))
     rig = SimRig(load_plant("ideal"), FS, seed=8)
@@ -508,7 +510,8 @@ def test_blend_law_converges_too():
     res = ctl.result()
     assert res.status == "completed", res.abort_reason
     # ~160 band lines at ~61 DOF: chi-square scatter alone puts a line outside +-3 dB with
-    # p = 4.4e-4 (DOMAIN.md §3), so a converged loop shows 1 such line 7 % of the time; 3 or
+    # p = 4.4e-4 [calc: P(χ²_60 < 60·10^-0.3) + P(χ²_60 > 60·10^0.3)], so a converged loop
+    # shows 1 such line 7 % of the time; 3 or
     # more have binomial probability 5.4e-5 (scipy.stats.binom.sf(2, 160, 4.4e-4)).
     assert res.final_lines_outside_alarm <= 2
     assert abs(res.final_rms_error_db) <= spec.tolerance.rms_alarm_db

@@ -3,7 +3,7 @@
 Outside references: the chi-square confidence interval of a PSD estimate (Bendat & Piersol,
 Random Data; computed here with scipy.stats.chi2), Welch's (1967) equivalent DOF of overlapped
 Hann segments (c(1) = 1/6 at 50 % overlap), the NAVMAT P-9492 screening profile and the exact
-integral of a power-law segment (see /work/shared/DOMAIN.md §1), and the decibel definition
+integral of a power-law segment (docs/methods.md, "Profile integrals"), and the decibel definition
 10·log10 of a power ratio.
 """
 
@@ -35,7 +35,8 @@ def _render(renderable, width: int = WIDTH) -> str:
 
 def _navmat() -> Profile:
     # NAVMAT P-9492 screening spectrum: 20-80 Hz +3 dB/oct, 80-350 Hz 0.04 g²/Hz, 350-2000 Hz
-    # -3 dB/oct (NAVMAT P-9492; end values 0.01 and 0.007 g²/Hz as tabulated in DOMAIN.md §1).
+    # -3 dB/oct (NAVMAT P-9492, 1979); end values 0.01 and 0.007 g²/Hz [calc: 0.04 (20/80)^0.9966
+    # = 0.0100 and 0.04 (2000/350)^-0.9966 = 0.0070, rounded].
     return Profile((20.0, 80.0, 350.0, 2000.0), (0.01, 0.04, 0.04, 0.007), name="navmat")
 
 
@@ -184,7 +185,7 @@ def test_check_table_profile_figures():
                               averaging="exponential")
     out = _render(dash.check_table(_navmat(), Tolerance(), control))
     # Exact integral of the NAVMAT profile: 6.06 grms (published rounded as 6.0), x_rms 0.194 mm
-    # (DOMAIN.md §1, [calc] from the closed-form segment integrals).
+    # ([calc] from the closed-form segment integrals, docs/methods.md, "Profile integrals").
     grms = float(re.search(r"grms\s+([\d.]+) g", out).group(1))
     assert grms == pytest.approx(6.06, abs=0.005)  # published to two decimals
     assert "0.194 mm" in out

@@ -1,8 +1,11 @@
 """Tests of the drive equalizer against the loop theory of iterative PSD equalization.
 
-References: DOMAIN.md §4 (direct law D_{k+1} = D_k (R/Ĉ)^γ, blended FRF law, error recursion
-e_{k+1} = (1−γ) e_k − γ n_k, steady-state variance γ/(2−γ)·σ²) and §3 (dB scatter of a χ²
-estimate: std = 4.343·√ψ1(ν/2), Bendat & Piersol).
+References: the direct law D_{k+1} = D_k (R/Ĉ)^γ and the FRF-based law D = R/|H|² (Harris'
+Shock and Vibration Handbook, chapter on digital control systems for vibration testing); the loop
+theory derived from them in docs/methods.md, "Equalizer update laws and their scatter" (error
+recursion e_{k+1} = (1−γ) e_k − γ n_k, steady-state variance γ/(2−γ)·σ²); the dB scatter of a χ²
+estimate, std = 4.343·√ψ1(ν/2) (Bendat & Piersol, Random Data, 4th ed., ch. 8, for the χ²_ν
+scatter; trigamma for the variance of a log-gamma variate).
 """
 
 from __future__ import annotations
@@ -37,7 +40,8 @@ def test_initial_drive_is_target_over_frf_squared_exactly():
     res = eq.initial_drive(
         target, h, np.ones(N), max_boost_db=40.0, coherence_min=0.5, band=band
     )
-    # indirect (FRF-based) equalization D = R/|H|² (Harris' handbook; DOMAIN.md §4)
+    # indirect (FRF-based) equalization D = R/|H|² (Harris' Shock and Vibration Handbook,
+    # chapter on digital control systems for vibration testing)
     np.testing.assert_allclose(res.drive_psd[band], target[band] / np.abs(h[band]) ** 2,
                                rtol=1e-12)
     assert np.all(res.drive_psd[~band] == 0.0)
@@ -98,7 +102,8 @@ def test_initial_drive_ceiling_scales_whole_drive():
 @pytest.mark.parametrize("law", ["direct", "blend"])
 @pytest.mark.parametrize("gamma", [0.25, 0.5, 1.0])
 def test_noiseless_error_decays_as_one_minus_gamma_to_the_k(law, gamma):
-    # DOMAIN.md §4 [calc]: for a linear plant the log error obeys e_{k+1} = (1−γ) e_k
+    # [calc] (docs/methods.md, "Equalizer update laws and their scatter"): for a linear plant
+    # the log error obeys e_{k+1} = (1−γ) e_k
     band = _band()
     h = _plant()
     target = np.full(N, 0.02)
@@ -122,8 +127,9 @@ def test_noiseless_error_decays_as_one_minus_gamma_to_the_k(law, gamma):
 @pytest.mark.parametrize("gamma", [0.3, 0.5, 1.0])
 def test_steady_state_error_variance_matches_loop_theory(gamma):
     # Monte Carlo of the direct law with χ²_ν estimates Ĉ = C·χ²_ν/ν on independent lines.
-    # Loop theory (DOMAIN.md §4 [calc]): var(true error) = γ/(2−γ)·σ² with σ² the variance of
-    # 10·log10(χ²_ν/ν) = (10/ln10)²·ψ1(ν/2) (Bendat & Piersol; DOMAIN.md §3).
+    # Loop theory [calc, docs/methods.md]: var(true error) = γ/(2−γ)·σ² with σ² the variance of
+    # 10·log10(χ²_ν/ν) = (10/ln10)²·ψ1(ν/2) (χ²_ν scatter: Bendat & Piersol, Random Data, 4th
+    # ed., ch. 8; variance of the log of a gamma variate: the trigamma function).
     nu = 32
     n = 20000
     band = np.ones(n, dtype=bool)

@@ -5,7 +5,8 @@ Realtime-paced by design (a few seconds per run). One private server for the ses
 rig start, so the import order of sounddevice does not matter.
 
 Outside references: the known values of the simulated plant (its card scales and delay), the
-JACK period (one period of latency breaks the feedback cycle of the graph, DOMAIN.md §9), the
+JACK period (a path through JACK clients includes one JACK period, jack_iodelay(1) manual page;
+docs/methods.md, "Loop delay through JACK"), the
 raised-cosine fade bound g(d) = (1 - cos(pi d / R)) / 2 at distance d from silence (calculus),
 scipy.signal.sosfreqz for the loopback cable.
 """

@@ -21,15 +21,17 @@ from liveshape.testdef.profilefile import profile_from_points, read_profile_csv
 # -- published and closed-form check values --------------------------------------------------
 def test_navmat_p9492_overall_grms_and_displacement():
     p = navmat()
-    # NAVMAT P-9492 publishes "6.0 grms" (rounded to 0.1); the exact integral is 6.06 (DOMAIN.md
-    # §1, calc) — compare to the published rounding and to the calculated 3-figure value.
+    # NAVMAT P-9492 (1979) publishes "6.0 grms" (rounded to 0.1); the exact integral is 6.06
+    # [calc: closed-form segment integrals, docs/methods.md, "Profile integrals"] — compare to
+    # the published rounding and to the calculated 3-figure value.
     assert abs(p.grms - 6.0) < 0.1  # NAVMAT P-9492 "6.0 grms", two significant figures
-    assert abs(p.grms - 6.06) < 0.005  # calc (DOMAIN.md §1), 3 significant figures
+    assert abs(p.grms - 6.06) < 0.005  # [calc], 3 significant figures
     # End points ~0.01 and ~0.007 g²/Hz (NAVMAT P-9492 as tabulated, 1-2 significant figures).
     assert abs(p.asd_g2_hz[0] - 0.01) < 0.0005
     assert abs(p.asd_g2_hz[-1] - 0.007) < 0.0005
-    # x_rms 0.194 mm (DOMAIN.md §1, calc); the figure there is cut, not rounded, at the third
-    # decimal (exact 0.19462), so the check allows the one truncated digit.
+    # x_rms 0.194 mm [calc: displacement PSD = ASD g0²/(2 pi f)^4 integrated per segment]; the
+    # hand value was cut, not rounded, at the third decimal (exact 0.19462), so the check allows
+    # the one truncated digit.
     assert 0.194 <= p.displacement_rms_m * 1e3 < 0.195
     assert p.displacement_pp_3sigma_m == pytest.approx(6 * p.displacement_rms_m, rel=1e-15)
 
@@ -42,7 +44,7 @@ def test_navmat_slopes_are_plus_minus_3_db_oct():
 
 
 def test_flat_band_20_2000_is_8p899_grms():
-    # Flat 0.04 g²/Hz 20-2000 Hz: sqrt(0.04 * 1980) = sqrt(79.2) = 8.899 grms (calc, DOMAIN.md §1).
+    # Flat 0.04 g²/Hz 20-2000 Hz: sqrt(0.04 * 1980) = sqrt(79.2) = 8.899 grms [calc].
     p = Profile((20.0, 2000.0), (0.04, 0.04))
     assert p.grms == pytest.approx(math.sqrt(79.2), rel=1e-12)
     assert abs(p.grms - 8.899) < 0.0005
@@ -69,7 +71,8 @@ def test_segment_areas_match_scipy_quad(f_hz, asd):
 
 
 def test_minus_one_exponent_uses_log_form_and_near_minus_one_agrees():
-    # n = -1: A = a1 f1 ln(f2/f1) (calc, DOMAIN.md §1).
+    # n = -1: A = a1 f1 ln(f2/f1) [calc: integral of a1 f1 / f; docs/methods.md, "Profile
+    # integrals"].
     p = Profile((20.0, 2000.0), (0.04, 0.0004))
     assert p.exponents[0] == pytest.approx(-1.0, abs=1e-14)
     assert p.segment_areas_g2()[0] == pytest.approx(0.04 * 20 * math.log(100), rel=1e-12)
@@ -85,7 +88,8 @@ def test_velocity_and_displacement_match_scipy_quad():
     w = lambda f: 2 * math.pi * f  # noqa: E731
     v_ms = quad_segments(lambda f: p.asd_at(f) * G0_M_S2**2 / w(f) ** 2, p.f_hz)
     x_ms = quad_segments(lambda f: p.asd_at(f) * G0_M_S2**2 / w(f) ** 4, p.f_hz)
-    # scipy.integrate.quad as reference (velocity PSD = ASD g0²/(2 pi f)², DOMAIN.md §1).
+    # scipy.integrate.quad as reference (velocity PSD = ASD g0²/(2 pi f)², since a = j 2 pi f v
+    # for a sinusoid; g0 = 9.80665 m/s², the standard acceleration of gravity, CGPM 1901).
     assert p.velocity_rms_m_s == pytest.approx(math.sqrt(v_ms), rel=1e-9)
     assert p.displacement_rms_m == pytest.approx(math.sqrt(x_ms), rel=1e-9)
 
@@ -129,7 +133,8 @@ def test_asd_at_loglog_midpoint_and_outside():
 
 @pytest.mark.parametrize("gap_hz", [1.0, 1e-3])
 def test_near_vertical_step_is_bounded_and_exact(gap_hz):
-    # Published transport profiles have steps 1 Hz apart and slopes > 500 dB/oct (DOMAIN.md §1).
+    # Published transport profiles have steps 1 Hz apart and slopes > 500 dB/oct [from memory];
+    # the interpolation must stay bounded by the segment's end levels however steep it is.
     p = Profile((10.0, 100.0, 100.0 + gap_hz, 1000.0), (1e-4, 1e-4, 0.1, 0.1))
     assert p.slopes_db_oct[1] > 500
     f = np.linspace(100.0, 100.0 + gap_hz, 1001)
@@ -161,7 +166,8 @@ def test_scaled_is_ten_log():
 # -- breakpoints, slopes, units --------------------------------------------------------------
 @pytest.mark.parametrize("m", [6.0, -12.0, 3.0103, -0.5])
 def test_slope_resolution(m):
-    # a2 = a1 (f2/f1)^(m/3.0103) (DOMAIN.md §1, calc); 3.0103 vs 10 log10 2 differs by 1.4e-6
+    # a2 = a1 (f2/f1)^(m/3.0103) [calc: m dB/oct = 10 log10(a2/a1) / log2(f2/f1)]; 3.0103 vs
+    # 10 log10 2 differs by 1.4e-6
     # relative, which moves a2 by |n| ln(f2/f1) 1.4e-6 < 2e-5 over 3 octaves.
     p = profile_from_points([{"f_hz": 100, "asd": 0.02}, {"f_hz": 800, "slope_db_oct": m}], W)
     assert p.asd_g2_hz[1] == pytest.approx(0.02 * 8 ** (m / 3.0103), rel=2e-5)

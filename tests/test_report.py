@@ -4,7 +4,8 @@ The run folders here are DEMO DATA: made-up spectra written through RunRecorder 
 target, a control that scatters less each update, a single-degree-of-freedom FRF). Outside
 references: the PNG file signature (ISO/IEC 15948 / RFC 2083: the eight bytes 89 50 4E 47 0D 0A
 1A 0A, then an IHDR chunk with width and height), the exact grms of the NAVMAT P-9492 profile
-(DOMAIN.md §1) and the decibel definition.
+(NAVMAT P-9492, 1979; exact integral docs/methods.md, "Profile integrals") and the decibel
+definition.
 """
 
 from __future__ import annotations
@@ -117,8 +118,9 @@ def test_report_from_killed_run_uses_last_update(tmp_path):
     assert "incomplete" in text and "UNCALIBRATED" in text
     assert "1 unreadable line(s) skipped" in text
     # Target grms from the lines: sqrt(sum ASD df) against the exact integral 6.06 g of the
-    # NAVMAT profile (DOMAIN.md §1). The rectangle rule on lines differs from the integral by at
-    # most about half a line of ASD at each band edge plus the curvature between lines; bound
+    # NAVMAT profile [calc, docs/methods.md]. The rectangle rule on lines differs from the
+    # integral by at most about half a line of ASD at each band edge plus the curvature between
+    # lines; bound
     # it by the edge terms df/2 (a_first + a_last) relative to the mean square.
     df = FS_HZ / FRAME
     exact = NAVMAT.grms

@@ -23,7 +23,8 @@ def test_sdof_exact_response_to_wide_white_band(q):
     fn, a, f1, f2 = 100.0, 0.04, 0.01, 1e6
     p = Profile((f1, f2), (a, a))
     # Exact absolute-acceleration response to white base input over 0..inf is
-    # Miles * sqrt(1 + 1/Q²) (integral of the transmissibility, DOMAIN.md §6, calc). The band
+    # Miles * sqrt(1 + 1/Q²) [calc: integral of the transmissibility, docs/methods.md, "Response
+    # of a single-degree-of-freedom item"]. The band
     # misses f < f1 (|T|² ~ 1: a f1) and f > f2 (|T|² ~ (fn/(Q f))²: a fn²/(Q² f2)).
     inf_ms = (miles_grms(fn, q, a) ** 2) * (1 + 1 / q**2)
     band_ms = inf_ms - a * f1 - a * fn**2 / (q**2 * f2)
@@ -34,7 +35,8 @@ def test_sdof_exact_response_to_wide_white_band(q):
 
 
 def test_sdof_check_value_fn100_q10():
-    # DOMAIN.md §6: fn 100 Hz, Q 10, 0.04 g²/Hz: Miles 7.93, exact 7.97 grms (3 figures).
+    # fn 100 Hz, Q 10, 0.04 g²/Hz: Miles (J. W. Miles, J. Aeronaut. Sci. 21(11), 1954) gives
+    # sqrt(pi/2 * 100 * 10 * 0.04) = 7.93 grms, the exact integral 7.93 sqrt(1.01) = 7.97 [calc].
     p = Profile((0.01, 1e6), (0.04, 0.04))
     assert abs(sdof_response_grms(p, 100, 10) - 7.97) < 0.005
 

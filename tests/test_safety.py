@@ -1,7 +1,8 @@
 """Tests of the level schedule and the abort rules of the safety supervisor.
 
-Outside references: χ² statistics of Welch estimates (Bendat & Piersol; DOMAIN.md §3: P(one line
-outside ±3 dB by scatter) = 1.0e−6 at ν = 120), scipy.stats / scipy.signal.welch as reference
+Outside references: χ² statistics of Welch estimates (Bendat & Piersol, Random Data, 4th ed.,
+ch. 8: P(one line outside ±3 dB by scatter) = 1.0e−6 at ν = 120 [calc]), scipy.stats /
+scipy.signal.welch as reference
 implementations, the shell's 128 + signal exit convention.
 """
 
@@ -56,12 +57,13 @@ def test_scatter_limits_match_binomial_and_chi2_reference(dof):
 
 
 def test_scatter_limits_leave_the_usual_abort_band_alone_at_120_dof():
-    # DOMAIN.md §3 [calc]: at ν = 120 a single line leaves ±3 dB with P = 1e−6, so the
+    # [calc] from ν Ĝ/G ~ χ²_ν (Bendat & Piersol, ch. 8): at ν = 120 a single line leaves ±3 dB
+    # with P = 1e−6, so the
     # scatter limits for 3 of 338 lines are well inside ±3 dB and the ±6 dB band is not widened.
     lo, hi = sf.scatter_limits_db(120.0, 338, 3)
     assert lo < 3.0 and hi < 3.0
     p3 = stats.chi2.cdf(120 * 10 ** -0.3, 120) + stats.chi2.sf(120 * 10 ** 0.3, 120)
-    assert p3 == pytest.approx(1.0e-6, rel=0.05)  # the DOMAIN.md value, 2 significant digits
+    assert p3 == pytest.approx(1.0e-6, rel=0.05)  # the hand value, 2 significant digits
 
 
 def test_band_sum_dof_matches_welch_monte_carlo():

@@ -191,7 +191,7 @@ def test_misspelled_key_suggests_nearest(data, match):
             r"at 2000 Hz, not above the profile's f_max_hz = 2000",
         ),
         (minimal(control={"fs_hz": 3000}), r"Nyquist"),
-        # IEC 60068-2-64 drive crest factor >= 2.5 (DOMAIN.md §5, secondary summary).
+        # IEC 60068-2-64 (Test Fh) drive crest factor >= 2.5 [from a secondary summary].
         (
             minimal(safety={"clip_sigma": 2.4}),
             r"clip_sigma = 2.4 is below the drive crest-factor "
@@ -360,7 +360,7 @@ def test_examples_load_and_suit_a_loudspeaker_shaker(name):
     p = s.profile
     assert p.f_min_hz >= 20 and p.f_max_hz <= 1000
     assert 0.5 <= p.grms <= 1.5
-    # Loudspeaker drivers have about 1-3 mm one-way Xmax (DOMAIN.md §7, from memory): the 3-sigma
+    # Small loudspeaker drivers have about 1-3 mm one-way Xmax [from memory]: the 3-sigma
     # peak-to-peak stroke must stay well under the smallest of those, 2 mm peak-to-peak.
     assert p.displacement_pp_3sigma_m < 2e-3
     assert s.control.fs_hz == 48000 and s.rig.kind == "sim"

@@ -29,11 +29,12 @@ def test_welch_dof_closed_forms():
     # Welch 1967 with Hann at 50 %: c(1) = 1/6, so nu = 2K / (1 + (1 - 1/K)/18)   [calc]
     for k in (1, 2, 5, 40, 1000):
         assert welch_dof(k) == pytest.approx(2 * k / (1 + (1 - 1 / k) / 18), rel=1e-12)
-    # many segments: 36/19 per segment (Welch 1967; DOMAIN.md §3)
+    # many segments: 36/19 per segment (Welch 1967, IEEE Trans. Audio Electroacoust. AU-15(2);
+    # c(1) = 1/6 for Hann at 50 %)
     assert welch_dof(100_000) / 100_000 == pytest.approx(36 / 19, rel=1e-5)
     # no overlap: 2 per segment (Bendat & Piersol)
     assert welch_dof(10, overlap=0.0) == pytest.approx(20.0, rel=1e-12)
-    # Hann at 75 %: 1.04 per segment for many segments (DOMAIN.md §3, Welch 1967)
+    # Hann at 75 %: 1.04 per segment for many segments (Welch 1967; [calc] from c(1), c(2), c(3))
     assert welch_dof(10_000, overlap=0.75) / 10_000 == pytest.approx(1.04, abs=0.005)
     assert welch_dof(0) == 0.0
     # exponential averaging: alpha/(2 - alpha) variance ratio -> 2(2n-1) DOF without overlap,
@@ -45,7 +46,9 @@ def test_welch_dof_closed_forms():
 
 @pytest.mark.parametrize(
     "nu, lo, hi",
-    # DOMAIN.md §3 table of the 90 % chi-square interval, rounded to 0.01 dB
+    # 90 % chi-square interval of the true PSD about the estimate, nu/chi2_(nu; 0.95) ..
+    # nu/chi2_(nu; 0.05) in dB (Bendat & Piersol, Random Data, 4th ed., ch. 8), hand values
+    # [calc] rounded to 0.01 dB
     [(16, -2.16, 3.03), (32, -1.59, 2.03), (60, -1.20, 1.43), (120, -0.87, 0.98),
      (240, -0.62, 0.68)],
 )
@@ -62,7 +65,8 @@ def test_chi2_interval_matches_table(nu, lo, hi):
 def test_chi2_interval_arrays_and_db_scatter():
     lo, hi = chi2_interval_db(np.array([16.0, 120.0]))
     assert lo.shape == (2,) and np.all(lo < 0) and np.all(hi > 0)
-    # DOMAIN.md §3: 4.343 sqrt(psi1(nu/2)) = 1.10 dB at nu = 32, 0.56 dB at 120 (0.01 rounding)
+    # 4.343 sqrt(psi1(nu/2)) = 1.10 dB at nu = 32, 0.56 dB at 120 [calc, 0.01 rounding;
+    # docs/methods.md, "χ² confidence bands and dB scatter"]
     assert db_scatter_std(32) == pytest.approx(1.10, abs=0.0051)
     assert db_scatter_std(120) == pytest.approx(0.56, abs=0.0051)
     # the same quantity by direct integration over the chi-square law (scipy.stats reference)

@@ -2,7 +2,8 @@
 
 Outside references: the decibel definition 10·log10 of a power ratio, the base-10 logarithm that
 places a frequency on a log axis, and the power law of a constant-slope ASD segment
-(n = log(a2/a1)/log(f2/f1), m dB/oct = 10·log10(a2/a1)/log2(f2/f1); /work/shared/DOMAIN.md §1).
+(n = log(a2/a1)/log(f2/f1), m dB/oct = 10·log10(a2/a1)/log2(f2/f1); docs/methods.md, "Profile
+integrals").
 """
 
 from __future__ import annotations

@@ -13,8 +13,8 @@ from liveshape.testdef.tolerance import Tolerance, ToleranceBand, tolerance_from
 
 def test_tolerance_defaults_and_bands():
     t = Tolerance()
-    # IEC 60068-2-64 ASD tolerance ±3 dB (DOMAIN.md §5, secondary summary); abort ±6 dB and rms
-    # limits 1 / 1.5 dB are common practice.
+    # IEC 60068-2-64 (Test Fh) ASD tolerance ±3 dB [from a secondary summary of the standard];
+    # abort ±6 dB and rms limits 1 / 1.5 dB are [common practice].
     assert (t.alarm_db, t.abort_db, t.rms_alarm_db, t.rms_abort_db) == (3.0, 6.0, 1.0, 1.5)
     t = Tolerance(bands=(ToleranceBand(500.0, 1000.0, 4.5, 9.0),))
     f = np.array([100.0, 500.0, 700.0, 1000.0, 1001.0])

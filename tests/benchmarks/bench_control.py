@@ -6,7 +6,8 @@
   the *true* control (the expected estimate from the rig's analytic FRF and the drive PSD, see
   ``_expected_control``) is reported beside it.
 * ``control_line_error_ratio_displayed`` / ``_true``: steady-state rms line error at full level
-  divided by the loop-theory prediction for the update DOF in use (DOMAIN.md §4: displayed error
+  divided by the loop-theory prediction for the update DOF in use (docs/methods.md, "Equalizer
+  update laws and their scatter": displayed error
   variance 2σ²/(2−γ), true error γ/(2−γ)·σ², σ = 4.343·√ψ1(ν/2)); target ≤ 1.15.
 * ``control_alone_speed_*``: audio seconds per CPU second of the controller alone (synthesis,
   estimation, update, supervision) at 48 kHz, fed by a wire rig whose cost is not timed
