@@ -175,7 +175,7 @@ def test_synth_json_and_sidecar(tmp_path: Path) -> None:
     assert grms == pytest.approx(data["rms_g"], rel=1e-5)
     # Kurtosis of a normal clipped at 4 sigma: 2.9964 (closed form above), +-0.047 at 5 sigma.
     # Clipping at 3 sigma (the 3-sigma drive limiting of MIL-STD-810H Method 514.8, from a
-    # secondary summary) gives 2.9206, 2.9 sigma below the lower bound: a wrong clip level fails
+    # secondary summary) gives 2.9206, 3.0 sigma below the lower bound: a wrong clip level fails
     # (checked with --clip-sigma 3 over 8 seeds: 6.5 to 8.9 sigma below 2.9964). The old bound 2.8
     # passed clipping at 2.6 sigma.
     assert abs(data["kurtosis"] - kurt_clip) < 5 * kurt_sigma
