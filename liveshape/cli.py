@@ -178,8 +178,9 @@ def _cmd_run(args: argparse.Namespace) -> int:
 def _cmd_report(args: argparse.Namespace) -> int:
     from liveshape.record.report import render_report
 
-    result = render_report(args.run_dir, out_dir=args.out)
+    result = render_report(args.run_dir, out_dir=args.out, png=args.png)
     sys.stdout.write(result.summary.rstrip("\n") + "\n")
+    sys.stdout.write(f"report: {result.pdf_path}\n")
     for name, path in result.pngs.items():
         sys.stdout.write(f"{name}: {path}\n")
     sys.stdout.write(f"summary: {result.summary_path}\n")
@@ -405,9 +406,10 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--json", action="store_true", help="print the run summary as JSON")
     r.set_defaults(func=_cmd_run)
 
-    rp = sub.add_parser("report", help="plots and a text summary from a run record")
+    rp = sub.add_parser("report", help="the test report (report.pdf) of a run record")
     rp.add_argument("run_dir", metavar="RUN_DIR", help="a run folder made by liveshape run")
     rp.add_argument("--out", metavar="DIR", help="where to write (default RUN_DIR/report)")
+    rp.add_argument("--png", action="store_true", help="also write the plots as PNG files")
     rp.set_defaults(func=_cmd_report)
 
     d = sub.add_parser("devices", help="list audio devices (index, host API, channels, rate)")
