@@ -110,14 +110,25 @@ class ReportResult:
 # What the record says
 
 
+_TOLERANCE_KEYS = ("alarm_db", "abort_db", "rms_alarm_db", "rms_abort_db", "bands")
+
+
 def _tolerance(run: RunData) -> tuple[Tolerance, str]:
     data = run.spec.get("tolerance")
     if data is None:
         return Tolerance(), "built-in"
+    where = Where(str(run.root / "spec.yaml")).key("tolerance")
     try:
-        return tolerance_from_mapping(data, Where(str(run.root / "spec.yaml")).key("tolerance")), ""
+        return tolerance_from_mapping(data, where), ""
     except ConfigError as exc:
-        return Tolerance(), f"built-in ({exc})"
+        first = str(exc)
+    if isinstance(data, Mapping):  # a record from a newer version may hold more keys
+        known = {k: v for k, v in data.items() if k in _TOLERANCE_KEYS}
+        try:
+            return tolerance_from_mapping(known, where), ""
+        except ConfigError:
+            pass
+    return Tolerance(), f"built-in ({first})"
 
 
 def _band(f_hz: np.ndarray, target: np.ndarray) -> np.ndarray:
@@ -263,6 +274,28 @@ def _full_level_window(run: RunData) -> tuple[float, float] | None:
     return (start, end) if end > start else None
 
 
+def _signal_window(run: RunData) -> tuple[float, float | None, str]:
+    """The stretch of the WAVs the drive and response figures are taken over, and its words.
+
+    The time at full level when it was reached; otherwise the last level step held (from the
+    end of its ramp to the end of the run); the whole record when no level step is recorded.
+    """
+    window = _full_level_window(run)
+    if window is not None:
+        return window[0], window[1], (f"{window[1] - window[0]:.1f} s at full level "
+                                      f"({window[0]:.1f}–{window[1]:.1f} s)")
+    last = None
+    for ev in run.events:
+        if ev.kind == "level" and math.isfinite(ev.t_s) and _finite(ev.data.get("level_db")):
+            last = ev
+    if last is not None:
+        ramp = last.data.get("ramp_s")
+        start = last.t_s + (float(ramp) if _finite(ramp) else 0.0)
+        return start, None, (f"from {start:.1f} s to the end at the last level reached, "
+                             f"{float(last.data['level_db']):+g} dB (full level not reached)")
+    return 0.0, None, "the whole record (no level step recorded)"
+
+
 @dataclass(frozen=True)
 class DecisionSpectrum:
     """The control spectrum the report judges: the full-level average or the last update."""
@@ -273,7 +306,7 @@ class DecisionSpectrum:
     alarm_db: np.ndarray
     abort_db: np.ndarray
     dof: float
-    source: str  # "full_level" or "update"
+    source: str  # "full_level", "decision" or "update"
     label: str
 
 
@@ -314,11 +347,20 @@ def decision_spectrum(run: RunData, tol: Tolerance | None = None) -> DecisionSpe
     if up.n == 0:
         return None
     f = up.f_hz
-    dof = _last_number(run, "dof")
     alarm = up.arrays.get("alarm_db")
     abort = up.arrays.get("abort_db")
     alarm = alarm[-1] if alarm is not None else tol.alarm_db_at(f)
     abort = abort[-1] if abort is not None else tol.abort_db_at(f)
+    dec, ddof = up.arrays.get("decision_psd"), up.numbers.get("decision_dof")
+    rows = [] if dec is None or ddof is None else [
+        k for k in range(up.n) if np.isfinite(dec[k]).all() and _finite(ddof[k]) and ddof[k] > 0]
+    if rows:  # the last tolerance decision: the pooled estimate behind the summary's figures
+        k = rows[-1]
+        label = (f"last decision, update {int(up.index[k])} at {up.t_s[k]:.1f} s, "
+                 f"{float(ddof[k]):.0f} DOF (no full-level average in this record)")
+        return DecisionSpectrum(f, dec[k], up.target_psd[k], np.asarray(alarm, float),
+                                np.asarray(abort, float), float(ddof[k]), "decision", label)
+    dof = _last_number(run, "dof")
     label = (f"last update {int(up.index[-1])} at {up.t_s[-1]:.1f} s, {_fmt(dof, '.0f')} DOF "
              "(no full-level average in this record)")
     return DecisionSpectrum(f, up.control_psd[-1], up.target_psd[-1], np.asarray(alarm, float),
@@ -751,6 +793,15 @@ def draw_rms_error(ax: Any, run: RunData, tol: Tolerance) -> None:
     ax.legend(loc="upper right", fontsize=7)
 
 
+def _time_limits(ax: Any, run: RunData) -> None:
+    """Run-time axis from 0 to the last event (so the time plots line up)."""
+    times = [ev.t_s for ev in run.events if math.isfinite(ev.t_s)]
+    if run.updates.n:
+        times.append(float(run.updates.t_s[-1]))
+    if times and max(times) > 0:
+        ax.set_xlim(0.0, max(times) * 1.01)
+
+
 def draw_level(ax: Any, run: RunData, ending: _Ending) -> None:
     t, lv = _level_track(run)
     if t.size == 0:
@@ -762,6 +813,9 @@ def draw_level(ax: Any, run: RunData, ending: _Ending) -> None:
         ax.axvspan(*window, color="#e8f1e8", zorder=0, label="at full level")
     _mark_end(ax, ending)
     ax.axhline(0.0, color="#888888", lw=0.6)
+    low = float(lv.min()) if lv.size else -12.0
+    ax.set_ylim(low - 1.0, 1.5)
+    _time_limits(ax, run)
     ax.set_xlabel("run time (s)", fontsize=8)
     ax.set_ylabel("level (dB re full level)", fontsize=8)
     ax.set_title("test level", fontsize=9)
@@ -806,6 +860,7 @@ def draw_control_rms(ax: Any, run: RunData, tol: Tolerance, ending: _Ending,
     if window is not None:
         ax.axvspan(*window, color="#e8f1e8", zorder=0, label="at full level")
     _mark_end(ax, ending)
+    _time_limits(ax, run)
     ax.set_xlabel("run time (s)", fontsize=8)
     ax.set_ylabel(f"rms ({units})", fontsize=8)
     ax.set_title("control rms against run time", fontsize=9)
@@ -863,7 +918,7 @@ def _text_block(fig: Any, x: float, y: float, rows: Sequence[tuple[str, str]], *
 
 
 def _figure_rows(run: RunData, d: DecisionSpectrum | None, tol: Tolerance,
-                 stats: dict[str, SignalStats | None], window_note: str
+                 stats: dict[str, SignalStats | None], window_note: str, tol_note: str = ""
                  ) -> tuple[list[tuple[str, str]], dict[int, str]]:
     s = run.summary or {}
     rows: list[tuple[str, str]] = []
@@ -901,9 +956,10 @@ def _figure_rows(run: RunData, d: DecisionSpectrum | None, tol: Tolerance,
     peak_lim = _spec_number(run, "safety", "drive_peak_max_fs")
     drive = stats.get("drive")
     if drive is not None:
+        rows.append(("signals judged", window_note))
         rows.append(("drive rms / peak",
                      f"{drive.rms:.3f} FS (limit {_fmt(rms_lim, '.3f', 'FS')}) / "
-                     f"{drive.peak:.3f} FS (limit {_fmt(peak_lim, '.3f', 'FS')})   {window_note}"))
+                     f"{drive.peak:.3f} FS (limit {_fmt(peak_lim, '.3f', 'FS')})"))
         if (rms_lim and drive.rms > rms_lim) or (peak_lim and drive.peak > peak_lim):
             colours[len(rows) - 1] = red
     else:
@@ -921,28 +977,34 @@ def _figure_rows(run: RunData, d: DecisionSpectrum | None, tol: Tolerance,
                          f"   over {st.seconds:.1f} s (Gaussian: kurtosis 3)"))
         else:
             rows.append((f"{word} kurtosis / crest", f"not available (no {word}.wav)"))
+    if tol_note:
+        rows.append(("tolerance", f"the spec's could not be read: {tol_note}"))
+        colours[len(rows) - 1] = red
     rows.append(("updates", f"{run.updates.n}   to tolerance: "
                  f"{_fmt(s.get('updates_to_tolerance'), '.0f')}"))
     return rows, colours
 
 
 def _first_page(page: _Page, run: RunData, tol: Tolerance, d: DecisionSpectrum | None,
-                units: str, stats: dict[str, SignalStats | None], window_note: str) -> None:
+                units: str, stats: dict[str, SignalStats | None], window_note: str,
+                tol_note: str) -> None:
     fig = page.fig
     y = _text_block(fig, 0.06, page.top - 0.005, _identity_rows(run), wrap=95)
     key, words, reasons, rule = _verdict(run)
     y -= 0.008
     fig.text(0.06, y, "verdict", fontsize=8, va="top", color="#555555")
-    fig.text(0.22, y + 0.003, words, fontsize=13, weight="bold", va="top",
+    head, _, rest = words.partition(": ")
+    fig.text(0.22, y + 0.003, head, fontsize=13, weight="bold", va="top",
              color=_COLOURS.get(key, "#555555"))
     y -= 0.024
-    lines = [textwrap.fill(f"• {r}", 100, subsequent_indent="  ") for r in reasons]
+    lines = [textwrap.fill(rest, 100)] if rest else []
+    lines += [textwrap.fill(f"• {r}", 100, subsequent_indent="  ") for r in reasons]
     if rule:
         lines.append(textwrap.fill(f"rule: {rule}", 100, subsequent_indent="  "))
     for text in lines:
         fig.text(0.22, y, text, fontsize=7.5, va="top", color="#222222")
         y -= 0.0115 * (text.count("\n") + 1)
-    rows, colours = _figure_rows(run, d, tol, stats, window_note)
+    rows, colours = _figure_rows(run, d, tol, stats, window_note, tol_note)
     n_rows = sum(1 + len(v) // 92 for _, v in rows)
     table_h = 0.0125 * n_rows + 0.01
     plot_top = y - 0.02
@@ -975,10 +1037,7 @@ def _build_pages(run: RunData, figure_cls: Any) -> list[_Page]:
     if g_per_fs is None and cal and all(_finite(cal.get(k)) for k in
                                         ("in_v_per_fs", "accel_mv_per_g")):
         g_per_fs = float(cal["in_v_per_fs"]) * 1000.0 / float(cal["accel_mv_per_g"])
-    window = _full_level_window(run)
-    start, end = window if window is not None else (0.0, None)
-    window_note = (f"over the {end - start:.1f} s at full level" if window is not None
-                   else "over the whole run (full level not reached)")
+    start, end, window_note = _signal_window(run)
     stats = {
         "drive": signal_stats(run.drive_wav, start, end) if run.drive_wav else None,
         "response": signal_stats(run.response_wav, start, end) if run.response_wav else None,
@@ -986,12 +1045,11 @@ def _build_pages(run: RunData, figure_cls: Any) -> list[_Page]:
     d = decision_spectrum(run, tol)
 
     def page(title: str) -> _Page:
-        return _Page(figure_cls, title + (f" (tolerance {tol_note})" if tol_note else ""),
-                     run, ending, key, words)
+        return _Page(figure_cls, title, run, ending, key, words)
 
     pages = []
     p = page("1  identity, verdict, control against target, figures")
-    _first_page(p, run, tol, d, units, stats, window_note)
+    _first_page(p, run, tol, d, units, stats, window_note, tol_note[:90])
     pages.append(p)
 
     p = page("2  control rms and test level against run time")
