@@ -1,19 +1,26 @@
-"""Tests of the report: PNG plots and summary.txt from a run folder.
+"""Tests of the report: report.pdf, summary.txt and (when asked) PNG plots from a run folder.
 
-The run folders here are DEMO DATA: made-up spectra written through RunRecorder (a NAVMAT-shaped
-target, a control that scatters less each update, a single-degree-of-freedom FRF). Outside
+Most run folders here are DEMO DATA: made-up spectra written through RunRecorder (a NAVMAT-shaped
+target, a control that scatters less each update, a single-degree-of-freedom FRF); the last
+tests use real simulated runs (completed, aborted by a detached sensor, stopped). Outside
 references: the PNG file signature (ISO/IEC 15948 / RFC 2083: the eight bytes 89 50 4E 47 0D 0A
-1A 0A, then an IHDR chunk with width and height), the exact grms of the NAVMAT P-9492 profile
-(DOMAIN.md §1) and the decibel definition.
+1A 0A, then an IHDR chunk with width and height); the PDF file structure (ISO 32000-1: page
+objects ``/Type /Page`` with ``/Contents``, Flate-compressed content streams, text shown by
+``Tj``/``TJ`` string operators); the grms of the NAVMAT P-9492 profile as the exact integral of
+its power-law segments; the decibel definition; the kurtosis m4/m2² as computed by
+scipy.stats.kurtosis(fisher=False) and the crest factor peak/rms [common practice].
 """
 
 from __future__ import annotations
 
 import builtins
 import datetime as dt
+import json
 import math
+import re
 import struct
 import sys
+import zlib
 
 import numpy as np
 import pytest
@@ -86,24 +93,73 @@ def _png_size(path) -> tuple[int, int]:
     return struct.unpack(">II", data[16:24])
 
 
-def test_report_writes_every_plot_and_summary(tmp_path):
+_OBJ = re.compile(rb"(?:^|\n)(\d+) 0 obj\b")
+_STREAM = re.compile(rb"stream\r?\n(.*)\r?\nendstream", re.S)
+_SHOW = re.compile(rb"\[(.*?)\]\s*TJ|\((.*?)(?<!\\)\)\s*Tj", re.S)
+_STRING = re.compile(rb"\((.*?)(?<!\\)\)", re.S)
+
+
+def _pdf_string(raw: bytes) -> str:
+    """A PDF literal string's bytes with its escapes undone (ISO 32000-1 §7.3.4.2)."""
+    out = re.sub(rb"\\([0-7]{1,3})", lambda m: bytes([int(m.group(1), 8) & 0xFF]), raw)
+    out = re.sub(rb"\\(.)", rb"\1", out)
+    return out.decode("latin-1")
+
+
+def _pdf_pages(path) -> list[str]:
+    """Text of each page of a PDF, page order (a small reader for what matplotlib writes).
+
+    Page objects are found by ``/Type /Page`` (not ``/Pages``) and read in the order of the
+    page tree's ``/Kids``; each text-showing operator gives one line of the page's text.
+    """
+    data = path.read_bytes()
+    assert data.startswith(b"%PDF-")
+    heads = list(_OBJ.finditer(data))
+    ends = [m.start() for m in heads[1:]] + [len(data)]
+    objs = {int(m.group(1)): data[m.end():end] for m, end in zip(heads, ends, strict=True)}
+    kids = next(re.search(rb"/Kids \[(.*?)\]", body, re.S).group(1)
+                for body in objs.values() if b"/Type /Pages" in body)
+    pages = []
+    for ref in re.findall(rb"(\d+) 0 R", kids):
+        body = objs[int(ref)]
+        assert re.search(rb"/Type /Page\b(?!s)", body)
+        contents = int(re.search(rb"/Contents (\d+) 0 R", body).group(1))
+        raw = _STREAM.search(objs[contents]).group(1)
+        flate = b"/FlateDecode" in objs[contents].split(b"stream", 1)[0]
+        stream = zlib.decompressobj().decompress(raw) if flate else raw
+        lines = []
+        for m in _SHOW.finditer(stream):
+            if m.group(1) is not None:
+                lines.append("".join(_pdf_string(x) for x in _STRING.findall(m.group(1))))
+            else:
+                lines.append(_pdf_string(m.group(2)))
+        pages.append("\n".join(lines))
+    return pages
+
+
+def test_report_writes_pdf_and_summary_and_pngs_only_when_asked(tmp_path):
     root = _demo_run(tmp_path)
     res = render_report(root)
     assert res.out_dir == root / "report"
-    assert set(res.pngs) == {"control", "drive", "frf", "convergence", "level"}
-    for name, path in res.pngs.items():
-        w, h = _png_size(path)
-        # figsize (inches) x 110 dpi, as saved; constrained layout keeps the canvas size.
-        assert w == 880, name
-        assert h in (550, 440, 715, 385), name
+    assert res.pdf_path == root / "report" / "report.pdf"
+    assert res.pngs == {} and not list(res.out_dir.glob("*.png"))
+    pages = _pdf_pages(res.pdf_path)
+    assert len(pages) == len(res.pages) == 5  # 4 pages of figures, 1 page of events
     text = res.summary_path.read_text()
     assert text == res.summary
     for words in ("status:          completed", "6.010 g", "target: 6.060 g",
                   f"({20 * math.log10(6.01 / 6.06):+.2f} dB)", "rms error:       -0.12 dB",
-                  "max line dev.:   +2.40 dB", "alarm 0   abort 0", "to tolerance: 3",
+                  "worst line |dev|: 2.40 dB", "alarm 0   abort 0", "to tolerance: 3",
                   "DOF:             120", "time at 0 dB:    60.0 s",
-                  "calibrated (sim:loudspeaker)", "updates:         6"):
+                  "calibrated (sim:loudspeaker)", "updates:         6", "report.pdf (5 pages)"):
         assert words in text, words
+    res = render_report(root, png=True)
+    assert set(res.pngs) == {"control", "drive", "frf", "convergence", "level"}
+    for name, path in res.pngs.items():
+        w, h = _png_size(path)
+        # figsize (inches) x 110 dpi, as saved.
+        assert w == 880, name
+        assert h in (550, 440, 715, 770, 385), name
 
 
 def test_report_from_killed_run_uses_last_update(tmp_path):
@@ -112,12 +168,12 @@ def test_report_from_killed_run_uses_last_update(tmp_path):
         fh.write('{"t_s": 9.0, "kind": "lev')  # cut by the kill
     out = tmp_path / "elsewhere"
     res = render_report(root, out_dir=out)
-    assert res.out_dir == out and all(p.parent == out for p in res.pngs.values())
+    assert res.out_dir == out and res.pdf_path.parent == out
     text = res.summary
     assert "incomplete" in text and "UNCALIBRATED" in text
     assert "1 unreadable line(s) skipped" in text
     # Target grms from the lines: sqrt(sum ASD df) against the exact integral 6.06 g of the
-    # NAVMAT profile (DOMAIN.md §1). The rectangle rule on lines differs from the integral by at
+    # NAVMAT profile (NAVMAT P-9492, integral of its power-law segments). The rectangle rule on lines differs from the integral by at
     # most about half a line of ASD at each band edge plus the curvature between lines; bound
     # it by the edge terms df/2 (a_first + a_last) relative to the mean square.
     df = FS_HZ / FRAME
@@ -137,7 +193,10 @@ def test_report_with_no_updates(tmp_path):
     res = render_report(rec.root)
     assert "loop open: no response" in res.summary
     assert "calibration:     not recorded" in res.summary
-    assert all(_png_size(p)[0] == 880 for p in res.pngs.values())
+    pages = _pdf_pages(res.pdf_path)
+    assert len(pages) == 5
+    assert "no control spectrum was recorded" in pages[0]
+    assert all("ABORTED at 0.0 s: loop open: no response" in p for p in pages)
 
 
 def test_missing_matplotlib_is_one_line(tmp_path, monkeypatch):
@@ -225,4 +284,4 @@ def test_report_of_a_real_simulated_run(tmp_path):
     assert f"target: {result.target_grms_g:.3f} g" in text
     assert f"DOF:             {result.dof:.0f}" in text
     assert f"updates:         {result.updates}" in text
-    assert all(_png_size(p)[0] == 880 for p in res.pngs.values())
+    assert len(_pdf_pages(res.pdf_path)) >= 5
