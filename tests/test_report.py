@@ -173,9 +173,10 @@ def test_report_from_killed_run_uses_last_update(tmp_path):
     assert "incomplete" in text and "UNCALIBRATED" in text
     assert "1 unreadable line(s) skipped" in text
     # Target grms from the lines: sqrt(sum ASD df) against the exact integral 6.06 g of the
-    # NAVMAT profile (NAVMAT P-9492, integral of its power-law segments). The rectangle rule on lines differs from the integral by at
-    # most about half a line of ASD at each band edge plus the curvature between lines; bound
-    # it by the edge terms df/2 (a_first + a_last) relative to the mean square.
+    # NAVMAT P-9492 profile (integral of its power-law segments). The rectangle rule on lines
+    # differs from the integral by at most about half a line of ASD at each band edge plus the
+    # curvature between lines; bound it by the edge terms df/2 (a_first + a_last) relative to
+    # the mean square.
     df = FS_HZ / FRAME
     exact = NAVMAT.grms
     edge_ms = df / 2 * (0.01 + 0.007) * 2
@@ -285,3 +286,290 @@ def test_report_of_a_real_simulated_run(tmp_path):
     assert f"DOF:             {result.dof:.0f}" in text
     assert f"updates:         {result.updates}" in text
     assert len(_pdf_pages(res.pdf_path)) >= 5
+
+
+# --------------------------------------------------------------------------------------------
+# The PDF's content
+
+
+def _with_identity(root, **fields):
+    """Add the identity fields a newer recorder writes at the top of run.json."""
+    path = root / "run.json"
+    meta = json.loads(path.read_text())
+    meta.update(fields)
+    path.write_text(json.dumps(meta))
+
+
+def _with_summary(root, **fields):
+    path = root / "summary.json"
+    data = json.loads(path.read_text())
+    data.update(fields)
+    path.write_text(json.dumps(data))
+
+
+def _full_level_file(root, *, worst_db: float, dof: float = 364.0):
+    """Write decisions/full_level.npz: the target with every line +0.4 dB and one line at
+    ``worst_db`` (demo numbers)."""
+    f = np.arange(FRAME // 2 + 1) * FS_HZ / FRAME
+    band = (f >= 20) & (f <= 2000)
+    fb = f[band]
+    target = NAVMAT.asd_at(fb)
+    dev = np.full(fb.size, 0.4)
+    dev[fb.size // 2] = worst_db
+    control = target * 10 ** (dev / 10)
+    (root / "decisions").mkdir(exist_ok=True)
+    np.savez(root / "decisions" / "full_level.npz", f_hz=fb, control_psd_g2_hz=control,
+             target_psd_g2_hz=target, alarm_db=np.full(fb.size, 3.0),
+             abort_db=np.full(fb.size, 6.0), dof=np.asarray(dof))
+    return fb, control, target
+
+
+def test_first_page_identity_verdict_and_full_level_figures(tmp_path):
+    root = _demo_run(tmp_path)
+    _with_identity(root, software_version="9.8.7", spec_file="tests/demo.yaml",
+                   spec_sha256="ab" * 32, operator="R. Tester", test_item="SN 0042")
+    _with_summary(root, verdict="pass", verdict_reasons=[], verdict_rule="pass: demo rule",
+                  full_level_dof=364.0, alarm_fraction=0.05, max_alarm_fraction=0.1)
+    fb, control, target = _full_level_file(root, worst_db=-2.2)
+    res = render_report(root)
+    pages = _pdf_pages(res.pdf_path)
+    first = pages[0]
+    for words in ("demo", "tests/demo.yaml", "ab" * 32, "liveshape 9.8.7",
+                  "2024-03-04T05:06:07+00:00", "R. Tester", "SN 0042", "PASS",
+                  "rule: pass: demo rule", "full-level average, 364 DOF",
+                  "5 % of the full-level time   (at most 10 %)"):
+        assert words in first, words
+    # The figures are those of the stored average: rms error 10 log10(sum C / sum T) (a power
+    # ratio in decibels), signed line deviations (the worst line is negative: no "+").
+    rms_db = 10 * math.log10(control.sum() / target.sum())
+    assert f"{rms_db:+.2f} dB   (alarm ±1 dB, abort ±1.5 dB)" in first
+    assert "+0.40 dB / -2.20 dB" in first and "+-" not in first
+    assert "alarm 0   abort 0" in first
+    # 90 % chi-square band of a 364-DOF estimate (Bendat & Piersol, Random Data, 4th ed.,
+    # §8.5.4), computed here with scipy.stats.chi2.
+    import scipy.stats
+
+    lo = 10 * math.log10(364 / scipy.stats.chi2.ppf(0.95, 364))
+    hi = 10 * math.log10(364 / scipy.stats.chi2.ppf(0.05, 364))
+    assert f"band {lo:+.2f} / {hi:+.2f} dB (364 DOF)" in first
+    assert all("PASS" in p for p in pages)
+    assert not any("ABORTED" in p or "STOPPED" in p for p in pages)
+
+
+def test_first_page_falls_back_to_the_last_update_with_a_label(tmp_path):
+    root = _demo_run(tmp_path)
+    first = _pdf_pages(render_report(root).pdf_path)[0]
+    assert "last update 6 at 12.0 s, 120 DOF (no full-level average in this record)" in first
+    assert "NO VERDICT" in first
+
+
+def test_failed_verdict_lists_its_reasons(tmp_path):
+    root = _demo_run(tmp_path)
+    _with_summary(root, verdict="fail", verdict_rule="pass: demo rule",
+                  verdict_reasons=["4 lines outside the alarm limit in the full-level average",
+                                   "rms error +1.20 dB outside the rms alarm limit of 1 dB"])
+    _full_level_file(root, worst_db=4.0)
+    res = render_report(root)
+    first = _pdf_pages(res.pdf_path)[0]
+    assert "FAIL" in first
+    assert "4 lines outside the alarm limit in the full-level average" in first
+    assert "rms error +1.20 dB outside the rms alarm limit of 1 dB" in first
+    assert "alarm 1   abort 0" in first  # the one line at +4 dB, counted from the average
+    assert "verdict:         FAIL" in res.summary
+
+
+def _trip_run(tmp_path, status: str):
+    root = _demo_run(tmp_path, close=False)
+    with open(root / "events.jsonl", "a", encoding="utf-8") as fh:
+        kind = "trip" if status == "aborted" else "stop"
+        fh.write(json.dumps({"t_s": 13.25, "kind": kind, "message": "demo", "data": {}}) + "\n")
+        fh.write(json.dumps({"t_s": 13.5, "kind": "stage", "message": "done",
+                             "data": {"stage": "done"}}) + "\n")
+    summary = {"status": status, "abort_reason": "sensor signal lost",
+               "trip": {"rule": "loop_open"} if status == "aborted" else None,
+               "abort_rule": "loop_open" if status == "aborted" else None,
+               "verdict": "incomplete", "verdict_reasons": [f"run {status}"]}
+    (root / "summary.json").write_text(json.dumps(summary))
+    return root
+
+
+@pytest.mark.parametrize("status, banner, marker", [
+    ("aborted", "ABORTED at 13.2 s, rule loop_open: sensor signal lost",
+     "aborted (loop_open) at 13.2 s"),
+    ("stopped", "STOPPED at 13.2 s: sensor signal lost", "stopped at 13.2 s"),
+])
+def test_every_page_of_an_ended_run_carries_the_marker(tmp_path, status, banner, marker):
+    res = render_report(_trip_run(tmp_path, status))
+    pages = _pdf_pages(res.pdf_path)
+    assert len(pages) == 5
+    for p in pages:
+        assert banner in p and "INCOMPLETE" in p
+    assert pages[1].count(marker) == 2  # the marker line in both time plots
+    assert f"INCOMPLETE: {status}, no pass" in res.summary
+
+
+def test_event_log_is_paginated(tmp_path):
+    from liveshape.record.report import EVENT_LINES_PER_PAGE
+
+    root = _demo_run(tmp_path, close=False)
+    n_extra = 2 * EVENT_LINES_PER_PAGE
+    with open(root / "events.jsonl", "a", encoding="utf-8") as fh:
+        for i in range(n_extra):
+            fh.write(json.dumps({"t_s": 20.0 + i, "kind": "note", "message": f"note {i}",
+                                 "data": {}}) + "\n")
+    res = render_report(root)
+    pages = _pdf_pages(res.pdf_path)
+    n_events = 3 + n_extra
+    n_log = math.ceil(n_events / EVENT_LINES_PER_PAGE)
+    assert len(pages) == 4 + n_log
+    assert f"event log ({n_log} of {n_log})" in pages[-1]
+    assert f"note {n_extra - 1}" in pages[-1] and "note 0" in pages[4]
+    assert f"page {len(pages)} of {len(pages)}" in pages[-1]
+
+
+def test_error_plots_use_their_own_limits_and_whole_updates(tmp_path):
+    from matplotlib.figure import Figure
+
+    from liveshape.record.report import _tolerance, draw_line_error, draw_rms_error
+    from liveshape.record.writer import load_run
+
+    root = _demo_run(tmp_path)
+    (root / "spec.yaml").write_text(
+        "name: demo\ntolerance:\n  alarm_db: 3.0\n  abort_db: 6.0\n  rms_alarm_db: 1.0\n"
+        "  rms_abort_db: 1.5\n  bands:\n"
+        "  - {f_lo_hz: 20, f_hi_hz: 40, alarm_db: 4.5, abort_db: 7.5}\n")
+    run = load_run(root)
+    tol, note = _tolerance(run)
+    assert note == ""
+    fig = Figure()
+    ax_rms, ax_line = fig.add_subplot(2, 1, 1), fig.add_subplot(2, 1, 2)
+    draw_rms_error(ax_rms, run, tol)
+    draw_line_error(ax_line, run, tol)
+
+    def levels(ax):
+        return sorted({round(float(line.get_ydata()[0]), 6) for line in ax.get_lines()
+                       if len(set(np.asarray(line.get_ydata(), float))) == 1
+                       and len(line.get_ydata()) == 2})
+
+    assert levels(ax_rms) == [-1.5, -1.0, 0.0, 1.0, 1.5]
+    assert levels(ax_line) == [-7.5, -6.0, -4.5, -3.0, 0.0, 3.0, 4.5, 6.0, 7.5]
+    for ax in (ax_rms, ax_line):
+        ticks = ax.xaxis.get_major_locator().tick_values(0.7, 6.3)
+        assert np.all(ticks == np.round(ticks))
+
+
+def test_signal_stats_match_scipy(tmp_path):
+    import scipy.stats
+    import soundfile
+
+    from liveshape.record.report import signal_stats
+
+    rng = np.random.default_rng(5)
+    x = np.concatenate([rng.normal(0, 0.1, 30000), rng.laplace(0, 0.2, 50000)])
+    path = tmp_path / "x.wav"
+    soundfile.write(path, x.astype(np.float32), 10000, subtype="FLOAT")
+    y = soundfile.read(path, dtype="float64")[0][30000:70000]
+    st = signal_stats(path, 3.0, 7.0, block=4096)
+    assert st.seconds == pytest.approx(4.0)
+    # Kurtosis m4/m2² as scipy.stats.kurtosis(fisher=False) (Pearson's definition); crest
+    # factor peak / rms [common practice].
+    assert st.kurtosis == pytest.approx(scipy.stats.kurtosis(y, fisher=False), rel=1e-9)
+    rms = math.sqrt(np.mean(y**2))
+    assert st.rms == pytest.approx(rms, rel=1e-9)
+    assert st.crest_factor == pytest.approx(np.max(np.abs(y)) / rms, rel=1e-9)
+    assert signal_stats(path, 9.0, 9.0) is None
+
+
+def test_report_failure_leaves_no_partial_pdf(tmp_path, monkeypatch):
+    import liveshape.record.report as report
+
+    root = _demo_run(tmp_path)
+
+    def boom(*args, **kwargs):
+        raise RuntimeError("drawing failed")
+
+    monkeypatch.setattr(report, "draw_rms_error", boom)
+    with pytest.raises(RuntimeError):
+        render_report(root)
+    assert not (root / "report" / "report.pdf").exists()
+    assert not [p for p in (root / "report").iterdir() if p.suffix in (".pdf", ".tmp")]
+
+
+def test_report_command_writes_pdf_and_pngs_when_asked(tmp_path, capsys):
+    from liveshape.cli import main
+
+    root = _demo_run(tmp_path)
+    assert main(["report", str(root)]) == 0
+    out = capsys.readouterr().out
+    assert f"report: {root / 'report' / 'report.pdf'}" in out and ".png" not in out
+    assert main(["report", str(root), "--png", "--out", str(tmp_path / "o")]) == 0
+    out = capsys.readouterr().out
+    assert f"control: {tmp_path / 'o' / 'control.png'}" in out
+    assert main(["report", str(tmp_path / "nothing")]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "run folder not found" in err
+
+
+# --------------------------------------------------------------------------------------------
+# Real simulated runs: completed, aborted, stopped
+
+
+def _sim_run(tmp_path, fault: str | None = None, stop_after_s: float | None = None):
+    from pathlib import Path
+
+    from liveshape.session import StopFlag, run_session
+    from liveshape.testdef.spec import load_spec, parse_fault
+
+    example = Path(__file__).resolve().parents[1] / "examples" / "handlebar-nav-unit.yaml"
+    overrides = {"control.fs_hz": 8000, "control.lines": 512, "control.target_dof": 60,
+                 "schedule.full_level_s": 2, "schedule.hold_s": 0.5}
+    if fault:
+        overrides["faults"] = [parse_fault(fault)]
+    spec = load_spec(example, overrides)
+    flag = StopFlag()
+
+    def snap(s):
+        if stop_after_s is not None and s.t_s > stop_after_s:
+            flag.set("operator asked to stop")
+
+    session = run_session(spec, out_dir=tmp_path, fast=True, block_size=512, stop=flag,
+                          on_snapshot=snap)
+    return session
+
+
+def _events_of(root):
+    return [json.loads(line) for line in (root / "events.jsonl").read_text().splitlines()]
+
+
+def test_report_of_real_completed_aborted_and_stopped_runs(tmp_path):
+    import scipy.stats
+    import soundfile
+
+    done = _sim_run(tmp_path / "done")
+    aborted = _sim_run(tmp_path / "aborted", fault="sensor_detached@5")
+    stopped = _sim_run(tmp_path / "stopped", stop_after_s=12.0)
+    assert (done.result.status, aborted.result.status, stopped.result.status) == (
+        "completed", "aborted", "stopped")
+
+    pages = _pdf_pages(render_report(done.run_dir).pdf_path)
+    assert len(pages) >= 5
+    assert not any("ABORTED" in p or "STOPPED" in p for p in pages)
+    # Kurtosis of the response over the time at full level, as scipy computes it.
+    events = _events_of(done.run_dir)
+    full = next(e for e in events if e["kind"] == "level" and e["data"]["level_db"] == 0.0)
+    start = full["t_s"] + full["data"]["ramp_s"]
+    end = next(e["t_s"] for e in events
+               if e["kind"] == "stage" and e["data"].get("stage") == "ramp_down")
+    y, fs = soundfile.read(done.run_dir / "response.wav", dtype="float64")
+    seg = y[int(round(start * fs)): int(round(end * fs))]
+    kurt = scipy.stats.kurtosis(seg, fisher=False)  # Pearson's kurtosis m4/m2²
+    assert f"response kurtosis / crest\n{kurt:.2f} / " in pages[0]
+
+    trip = next(e for e in _events_of(aborted.run_dir) if e["kind"] == "trip")
+    pages = _pdf_pages(render_report(aborted.run_dir).pdf_path)
+    banner = f"ABORTED at {trip['t_s']:.1f} s, rule {aborted.result.abort_rule}"
+    assert all(banner in p for p in pages)
+
+    stop = next(e for e in _events_of(stopped.run_dir) if e["kind"] == "stop")
+    pages = _pdf_pages(render_report(stopped.run_dir).pdf_path)
+    assert all(f"STOPPED at {stop['t_s']:.1f} s: operator asked to stop" in p for p in pages)
