@@ -36,6 +36,7 @@ __all__ = [
     "header_pieces",
     "limit_role",
     "result_rows",
+    "verdict_rows",
 ]
 
 #: ``(text, role)``
@@ -53,7 +54,12 @@ _RESULT_SHOWN = frozenset({
     "status", "abort_reason", "control_grms_g", "target_grms_g", "final_rms_error_db",
     "final_max_dev_db", "final_lines_outside_alarm", "final_lines_outside_abort",
     "updates_to_tolerance", "dof", "time_at_full_level_s", "record", "trip",
+    "verdict", "verdict_reasons", "verdict_rule", "full_level_dof", "full_level_rms_error_db",
+    "full_level_max_dev_db", "full_level_min_dev_db", "full_level_lines_outside_alarm",
+    "full_level_lines_outside_abort", "full_level_control_grms_g", "alarm_fraction",
+    "max_alarm_fraction",
 })
+_VERDICT_ROLE = {"pass": "ok", "fail": "abort", "incomplete": "alarm"}
 
 
 def field(obj: Any, *names: str, default: Any = None) -> Any:
@@ -186,6 +192,40 @@ def event_rows(events: Sequence[Any], n: int = 6) -> list[tuple[str, str, Piece]
     return rows
 
 
+def verdict_rows(result: Mapping[str, Any]) -> list[Row]:
+    """The verdict in words, its reasons and rule, and the full-level average's figures.
+
+    Nothing for a result without a verdict (a record made before verdicts were recorded).
+    """
+    verdict = result.get("verdict")
+    if not verdict:
+        return []
+    rows = [_row("verdict", str(verdict).upper(), _VERDICT_ROLE.get(str(verdict), "value"))]
+    rows += [_row("  reason", str(r), _VERDICT_ROLE.get(str(verdict), "value"))
+             for r in result.get("verdict_reasons") or ()]
+    if result.get("verdict_rule"):
+        rows.append(_row("  rule", str(result["verdict_rule"]), "dim"))
+    dof = result.get("full_level_dof")
+    if as_finite(dof) is not None:
+        rows += [
+            _row("full-level average", f"{fmt(dof, '.0f')} DOF, "
+                 f"{fmt(result.get('full_level_control_grms_g'), '.3f', 'g')}"),
+            _row("  rms error", fmt_db(result.get("full_level_rms_error_db"))),
+            _row("  line deviation max / min",
+                 f"{fmt_db(result.get('full_level_max_dev_db'))} / "
+                 f"{fmt_db(result.get('full_level_min_dev_db'))}"),
+            _row("  lines outside alarm / abort",
+                 f"{fmt_value(as_count(result.get('full_level_lines_outside_alarm')))} / "
+                 f"{fmt_value(as_count(result.get('full_level_lines_outside_abort')))}"),
+        ]
+    frac = as_finite(result.get("alarm_fraction"))
+    if frac is not None:
+        lim = as_finite(result.get("max_alarm_fraction"))
+        rows.append(_row("time in alarm", f"{100 * frac:.0f} % of the full-level time"
+                         + (f" (at most {100 * lim:.0f} %)" if lim is not None else "")))
+    return rows
+
+
 def result_rows(result: Mapping[str, Any]) -> list[Row]:
     """Status, abort rule and reason, grms, final errors, DOF, time at level, then the rest."""
     status = str(result.get("status", "unknown"))
@@ -195,11 +235,13 @@ def result_rows(result: Mapping[str, Any]) -> list[Row]:
         rows.append(_row("abort rule", str(trip["rule"]), "abort"))
     if result.get("abort_reason"):
         rows.append(_row("abort reason", str(result["abort_reason"]), "abort"))
+    rows += verdict_rows(result)
     rows += [
         _row("grms control / target", f"{fmt(result.get('control_grms_g'), '.3f')} / "
              f"{fmt(result.get('target_grms_g'), '.3f')} g"),
         _row("final rms error", fmt_db(result.get("final_rms_error_db"))),
-        _row("final max line deviation", fmt_db(result.get("final_max_dev_db"))),
+        # the largest |deviation| of a line: a magnitude, shown without a sign
+        _row("final worst line |deviation|", fmt(result.get("final_max_dev_db"), ".2f", "dB")),
         _row("lines outside alarm / abort",
              f"{fmt_value(as_count(result.get('final_lines_outside_alarm')))} / "
              f"{fmt_value(as_count(result.get('final_lines_outside_abort')))}"),
