@@ -128,6 +128,7 @@ class ControlSnapshot:
     loop_delay_samples: int | None
     trip: Trip | None
     recent_events: tuple[Event, ...]
+    tolerance_state: str = ""
 
 
 @dataclass(frozen=True)
