@@ -144,7 +144,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     spec = load_spec(args.spec, overrides)
     # The cautions come first, before anything is driven (on stderr with --json).
     notice_console = dashboard.make_console(stderr=args.json)
-    notice_console.print(dashboard.safety_notice())
+    notice_console.print(dashboard.safety_notice(spec.rig.kind, spec.rig.plant))
     if spec.rig.kind == "sim":
         # Name what the rig cannot honestly do before anything is driven (see check --rig).
         feas = _feasibility(spec)

@@ -339,22 +339,39 @@ def print_error(console: Console, message: str) -> None:
     console.print(line, soft_wrap=True)
 
 
-def safety_notice() -> RenderableType:
-    """Cautions shown before a run drives real hardware."""
+def safety_notice(rig_kind: str = "audio", plant: str | None = None) -> RenderableType:
+    """Cautions shown before a run, in words that fit the rig in use (each fits 80 columns).
+
+    ``rig_kind`` is ``sim`` for the simulated rig (nothing is driven: a first line says so and
+    names the plant model; the cautions are for the real rig it rehearses) or anything else (a
+    real card driving an amplifier and a shaker). The hearing caution names a loudspeaker only
+    when the plant is one.
+    """
+    name = str(plant).replace("\\", "/").rsplit("/", 1)[-1].removesuffix(".yaml") if plant \
+        else ""
+    if "loudspeaker" in name.lower():
+        hearing = "Loudspeaker shakers are loud at test levels: wear hearing protection."
+    else:
+        hearing = "Shakers can be loud, most of all at resonances: wear hearing protection."
     items = (
-        "Loudspeaker rigs can be loud: wear hearing protection near them.",
+        hearing,
         "Fasten the payload and the fixture; nothing loose on the moving part.",
-        "Turn the amplifier gain to its minimum before the start; raise it only when asked.",
-        "Keep hands, cables and tools clear of the moving parts while the drive is on.",
-        "To stop: press Ctrl-C once; the drive ramps down. Keep the amplifier within reach.",
+        "Turn the amplifier gain to minimum before the start; raise it when asked.",
+        "Keep hands, cables and tools clear of the moving parts while driving.",
+        "To stop: press Ctrl-C once and the drive ramps down. Keep the amp in reach.",
         "Follow your lab's safety rules and work under qualified supervision.",
     )
     text = Text()
+    if rig_kind == "sim":
+        text.append(f"Simulated rig{f' (plant model {name})' if name else ''}: nothing is "
+                    "driven now. On the real rig:\n", style=PALETTE.ok)
     for i, item in enumerate(items):
         text.append("• ", style=PALETTE.alarm)
         text.append(item + ("\n" if i < len(items) - 1 else ""), style=PALETTE.value)
-    return Panel(text, title="before you start", title_align="left",
-                 border_style=PALETTE.alarm, padding=(0, 1))
+    title = "before you start" if rig_kind != "sim" else "before you start (simulated run)"
+    return Panel(text, title=title, title_align="left",
+                 border_style=PALETTE.alarm if rig_kind != "sim" else PALETTE.border,
+                 padding=(0, 1))
 
 
 @contextmanager
