@@ -358,13 +358,13 @@ def safety_notice(rig_kind: str = "audio", plant: str | None = None) -> Renderab
         "Fasten the payload and the fixture; nothing loose on the moving part.",
         "Turn the amplifier gain to minimum before the start; raise it when asked.",
         "Keep hands, cables and tools clear of the moving parts while driving.",
-        "To stop: press Ctrl-C once and the drive ramps down. Keep the amp in reach.",
+        "To stop: press Ctrl-C once; the drive ramps down. Keep the amp in reach.",
         "Follow your lab's safety rules and work under qualified supervision.",
     )
     text = Text()
     if rig_kind == "sim":
-        text.append(f"Simulated rig{f' (plant model {name})' if name else ''}: nothing is "
-                    "driven now. On the real rig:\n", style=PALETTE.ok)
+        text.append(f"Simulated rig{f' ({name})' if name else ''}: nothing is driven. "
+                    "On the real rig:\n", style=PALETTE.ok)
     for i, item in enumerate(items):
         text.append("• ", style=PALETTE.alarm)
         text.append(item + ("\n" if i < len(items) - 1 else ""), style=PALETTE.value)
