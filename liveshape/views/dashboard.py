@@ -258,7 +258,7 @@ def _compact(snapshot: Any, inner: int | None, rows: int) -> RenderableType:
     inner = 76 if inner is None else inner
     # border 2, header 1, numbers 6, blank 1, plot axis + ticks + legend 3, events 2, spare 1
     plot_height = max(min(8, rows - 16), 3)
-    numbers = Table.grid(padding=(0, 3))
+    numbers = Table.grid(padding=(0, 2))
     numbers.add_column(no_wrap=True)
     numbers.add_column(no_wrap=True)
     numbers.add_row(_row_table(None, runtext.compact_control_rows(snapshot)),

@@ -245,15 +245,16 @@ def control_rows(snapshot: Any) -> list[Row]:
 
 
 def compact_control_rows(snapshot: Any) -> list[Row]:
-    """The control numbers of the compact view, one per row, each under 36 characters."""
+    """The control numbers of the compact view, one per row (label and value within 35
+    characters for counts up to 4 digits)."""
     grms, _ = _grms_text(snapshot)
     dof = as_finite(field(snapshot, "dof"))
     lo, hi = chi2_band_db(snapshot, dof)
     return [
         _row("grms", grms),
         _row("rms error", fmt_db(field(snapshot, "rms_error_db"))),
-        _row("lines", f"{fmt(field(snapshot, 'max_dev_db'), '+.1f')} / "
-             f"{fmt_db(field(snapshot, 'min_dev_db'), '+.1f')} max/min"),
+        _row("max/min dev", f"{fmt(field(snapshot, 'max_dev_db'), '+.1f')}/"
+             f"{fmt_db(field(snapshot, 'min_dev_db'), '+.1f')}"),
         ("outside", _outside_pieces(snapshot)),
         _row("DOF", f"{fmt(dof, '.0f')}  χ² {fmt(lo, '+.1f')}/{fmt(hi, '+.1f')} dB"),
         _row("updates", fmt_value(field(snapshot, "updates", "n_updates"))),
@@ -261,16 +262,15 @@ def compact_control_rows(snapshot: Any) -> list[Row]:
 
 
 def compact_drive_rows(snapshot: Any) -> list[Row]:
-    """Drive and time numbers of the compact view, one per row."""
+    """Drive (against its limit, coloured by :func:`limit_role`) and time numbers of the
+    compact view, one per row (within 39 characters for runs under 100 h)."""
     rows = []
     for label, key, lim_keys in (
         ("drive rms", "drive_rms_fs", ("drive_rms_limit_fs", "drive_rms_max_fs")),
         ("drive peak", "drive_peak_fs", ("drive_peak_limit_fs", "drive_peak_max_fs")),
     ):
         value, limit = field(snapshot, key), field(snapshot, *lim_keys)
-        v, lim = as_finite(value), as_finite(limit)
-        frac = f" {100 * v / lim:.0f} %" if v is not None and lim else ""
-        rows.append(_row(label, f"{fmt(value, '.3f')}/{fmt(limit, '.3f')} FS{frac}",
+        rows.append(_row(label, f"{fmt(value, '.3f')}/{fmt(limit, '.3f')} FS",
                          limit_role(value, limit)))
     total = field(snapshot, "full_level_s")
     at = fmt_time(field(snapshot, "time_at_full_level_s"))
