@@ -406,7 +406,8 @@ def _long_snapshot(**kw):
     """Demo values as wide as they get: hours of run, many updates, limits that vary by band."""
     alarm = np.where(_F_HZ < 40, 4.5, 3.0)
     return _snapshot(elapsed_s=99 * 3600.0, t_s=99 * 3600.0, remaining_s=36000.0,
-                     full_level_s=36000.0, time_at_full_level_s=35999.0, updates=12345, drive_rms_fs=0.4567,
+                     full_level_s=36000.0, time_at_full_level_s=35999.0, updates=12345,
+                     drive_rms_fs=0.4567,
                      drive_rms_limit_fs=0.5, drive_peak_fs=0.999, max_dev_db=-13.25,
                      min_dev_db=-18.5, rms_error_db=-10.75, lines_outside_alarm=4096,
                      lines_outside_abort=4096, dof=1234.0, alarm_db=alarm, abort_db=alarm + 3,
@@ -422,9 +423,10 @@ def test_dashboard_fits_80_by_24(make):
     assert re.search(r"ABORT PENDING\s+full level\s+level \+0\.0 dB\s+step 5/5", lines[1])
     # Each key number whole on one row (a wrapped value would be cut across two).
     snap = make()
-    for pattern in (r"grms\s+" + re.escape(f"{snap.control_grms_g:.3f} / {snap.target_grms_g:.3f} g"),
-                    r"rms error\s+" + re.escape(f"{snap.rms_error_db:+.2f} dB"),
-                    r"max/min dev\s+" + re.escape(f"{snap.max_dev_db:+.1f}/{snap.min_dev_db:+.1f} dB"),
+    esc = re.escape
+    for pattern in (r"grms\s+" + esc(f"{snap.control_grms_g:.3f} / {snap.target_grms_g:.3f} g"),
+                    r"rms error\s+" + esc(f"{snap.rms_error_db:+.2f} dB"),
+                    r"max/min dev\s+" + esc(f"{snap.max_dev_db:+.1f}/{snap.min_dev_db:+.1f} dB"),
                     rf"outside\s+{snap.lines_outside_alarm} alarm  {snap.lines_outside_abort} "
                     "abort",
                     rf"DOF\s+{snap.dof:.0f}  χ² ",
