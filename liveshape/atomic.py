@@ -5,6 +5,10 @@ so a reader sees the old file or the whole new one, never half a file; when writ
 temporary file is removed and the old file stays as it was. Used for every small file the
 package writes (YAML through :mod:`liveshape.testdef.config`, the run record's JSON and update
 files).
+
+:func:`tempfile.mkstemp` makes its file with mode 0600; before the rename the file gets the
+mode a plain ``open`` would have given it (0666 less the process umask), so a record is as
+readable to other users as the WAV files written next to it.
 """
 
 from __future__ import annotations
@@ -14,6 +18,20 @@ import tempfile
 from collections.abc import Callable
 from pathlib import Path
 from typing import IO
+
+
+def _umask() -> int:
+    """The process umask, read without changing it where Linux shows it (else set and reset)."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError, IndexError):
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
 
 
 def atomic_write(path: str | os.PathLike[str], write: Callable[[IO[bytes]], object], *,
@@ -44,6 +62,7 @@ def atomic_write(path: str | os.PathLike[str], write: Callable[[IO[bytes]], obje
             fh.flush()
             if fsync:
                 os.fsync(fh.fileno())
+        os.chmod(tmp, 0o666 & ~_umask())
         os.replace(tmp, p)
     except BaseException:
         try:

@@ -125,6 +125,15 @@ def _cmd_synth(args: argparse.Namespace) -> int:
     return 0
 
 
+def _text_field(text: str) -> str:
+    """A short one-line text for the record (operator, test item)."""
+    t = text.strip()
+    if not t or len(t) > 200 or any(ch in t for ch in "\n\r\t"):
+        raise argparse.ArgumentTypeError(
+            f"{text!r} must be 1-200 characters on one line")
+    return t
+
+
 def _cmd_run(args: argparse.Namespace) -> int:
     from liveshape.testdef.spec import load_spec, parse_fault
     from liveshape.views import dashboard
@@ -163,6 +172,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
         kwargs = {"fast": args.fast}
     if args.block_size is not None:
         kwargs["block_size"] = args.block_size
+    kwargs["identity"] = {"operator": args.operator, "test_item": args.test_item}
+    kwargs["record_signals"] = args.record == "full"
     if args.json:
         session = runner(spec, out_dir=args.out, **kwargs)
         _print_json(session.summary())
@@ -173,6 +184,59 @@ def _cmd_run(args: argparse.Namespace) -> int:
     console.print(dashboard.run_summary(session.summary()))
     console.print(f"record: {session.run_dir}  (liveshape report {session.run_dir})")
     return session.result.exit_status
+
+
+def _cmd_survey(args: argparse.Namespace) -> int:
+    import dataclasses as _dc
+
+    if args.compare:
+        from liveshape.dsp.resonance import compare_resonances
+        from liveshape.record.surveyfile import read_survey
+        from liveshape.views.surveytext import compare_lines
+
+        before, after = (read_survey(p) for p in args.compare)
+        changes = compare_resonances(before.resonances, after.resonances,
+                                     shift_pct=args.shift_pct, peak_drop_db=args.drop_db)
+        flagged = sum(bool(c.flagged) for c in changes)
+        if args.json:
+            _print_json({"before": str(before.root), "after": str(after.root),
+                         "changes": [_dc.asdict(c) for c in changes], "flagged": flagged})
+        else:
+            sys.stdout.write("\n".join(compare_lines(changes, before.root, after.root)) + "\n")
+        return SURVEY_FLAGGED_EXIT if flagged else 0
+    if args.spec is None:
+        raise ConfigError("survey: give a test definition SPEC, or --compare BEFORE AFTER")
+    from liveshape.session import run_survey, survey_settings
+    from liveshape.testdef.spec import load_spec, parse_fault
+    from liveshape.views import dashboard
+    from liveshape.views.surveytext import survey_lines
+
+    overrides = _rig_overrides(args.rig)
+    if args.fault:
+        overrides["faults"] = [parse_fault(text) for text in args.fault]
+    if args.calibration is not None:
+        overrides["rig.calibration"] = args.calibration
+    if args.uncalibrated:
+        overrides["rig.uncalibrated"] = True
+    spec = load_spec(args.spec, overrides)
+    settings = survey_settings(spec, level_fs=args.level, duration_s=args.duration,
+                               seed=args.seed)
+    notice = dashboard.make_console(stderr=True)
+    notice.print(dashboard.safety_notice(spec.rig.kind, spec.rig.plant))
+    result, folder = run_survey(spec, settings, out_dir=args.out,
+                                identity={"operator": args.operator,
+                                          "test_item": args.test_item})
+    if args.json:
+        _print_json({"status": result.status, "record": str(folder), "dof": result.dof,
+                     "delay_samples": result.delay_samples,
+                     "resonances": [_dc.asdict(r) for r in result.resonances]})
+    else:
+        sys.stdout.write("\n".join(survey_lines(result, folder, settings)) + "\n")
+    return result.exit_status
+
+
+#: Exit status of ``survey --compare`` when a change was flagged.
+SURVEY_FLAGGED_EXIT = 5
 
 
 def _cmd_report(args: argparse.Namespace) -> int:
@@ -404,7 +468,47 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--out", default="runs", metavar="DIR",
                    help="folder for run records (default: runs)")
     r.add_argument("--json", action="store_true", help="print the run summary as JSON")
+    r.add_argument("--operator", type=_text_field, metavar="NAME",
+                   help="who runs the test (written to run.json and the report)")
+    r.add_argument("--test-item", type=_text_field, metavar="TEXT",
+                   help="what is under test, e.g. a serial number (run.json and the report)")
+    r.add_argument("--record", choices=("full", "spectra"), default="full",
+                   help="full (default): spectra, events and the drive and response WAVs "
+                   "(about 1.3 GB per hour at 48 kHz); spectra: everything but the WAVs")
     r.set_defaults(func=_cmd_run)
+
+    sv = sub.add_parser("survey", help="low-level resonance survey: FRF, coherence, resonances; "
+                        "--compare two surveys for shifts",
+                        description="Play low-level flat random noise over the profile's band, "
+                        "estimate the FRF and coherence, find the resonances and write a survey "
+                        "folder. With --compare BEFORE AFTER, pair the resonances of two surveys "
+                        "and flag frequency shifts and peak drops beyond the limits (exit 5). "
+                        "The simulated rig is the default; a real card only with "
+                        "--rig audio:DEVICE.")
+    sv.add_argument("spec", nargs="?", metavar="SPEC", help="test definition (.yaml) or profile")
+    sv.add_argument("--compare", nargs=2, metavar=("BEFORE", "AFTER"),
+                    help="compare two survey folders instead of running one")
+    sv.add_argument("--rig", help="sim (default), sim:PRESET, sim:PLANT.yaml or audio:DEVICE")
+    sv.add_argument("--calibration", metavar="FILE", help="chain calibration file (audio rigs)")
+    sv.add_argument("--uncalibrated", action="store_true",
+                    help="audio rig without calibration (FRF in FS per FS)")
+    sv.add_argument("--level", type=_positive_float, default=0.02, metavar="FS",
+                    help="drive rms in full scale (default 0.02)")
+    sv.add_argument("--duration", type=_positive_float, default=20.0, metavar="S",
+                    help="seconds of drive (default 20, about 110 DOF)")
+    sv.add_argument("--seed", type=_whole, metavar="N", help="random seed")
+    sv.add_argument("--fault", action="append", metavar="KIND@SECONDS",
+                    help="inject a fault into the simulated rig (e.g. resonance_shift@0=1.03)")
+    sv.add_argument("--shift-pct", type=_positive_float, default=2.0, metavar="PCT",
+                    help="--compare: flag frequency shifts beyond this (default 2 %%)")
+    sv.add_argument("--drop-db", type=_positive_float, default=0.92, metavar="DB",
+                    help="--compare: flag peak drops beyond this (default 0.92 dB = 10 %%)")
+    sv.add_argument("--operator", type=_text_field, metavar="NAME", help="who runs the survey")
+    sv.add_argument("--test-item", type=_text_field, metavar="TEXT", help="what is surveyed")
+    sv.add_argument("--out", default="runs", metavar="DIR",
+                    help="folder for survey records (default: runs)")
+    sv.add_argument("--json", action="store_true", help="print one JSON object")
+    sv.set_defaults(func=_cmd_survey)
 
     rp = sub.add_parser("report", help="the test report (report.pdf) of a run record")
     rp.add_argument("run_dir", metavar="RUN_DIR", help="a run folder made by liveshape run")

@@ -11,6 +11,7 @@ SIGTERM into the controller's controlled ramp-down.
 from __future__ import annotations
 
 import dataclasses
+import hashlib
 import signal
 import threading
 import time
@@ -22,9 +23,11 @@ from typing import Any
 
 import numpy as np
 
+from liveshape import __version__
 from liveshape.control.controller import Controller
 from liveshape.control.runstate import ControlSnapshot, RunResult
 from liveshape.errors import ConfigError
+from liveshape.record.exports import SPECTRA_CSV, spectra_csv_text
 from liveshape.record.writer import RunRecorder
 from liveshape.testdef.chain import ChainCalibration
 from liveshape.testdef.spec import TestSpec, spec_to_mapping
@@ -63,11 +66,44 @@ class SessionResult:
             "time_at_full_level_s": r.time_at_full_level_s,
             "updates": r.updates,
             "trip": None if trip is None else dataclasses.asdict(trip),
+            **verdict_summary(r.verdict),
             "run_dir": str(self.run_dir),
             "rig": self.rig,
             "calibration": self.calibration,
         }
         return out
+
+
+def verdict_summary(v: Any) -> dict[str, Any]:
+    """The verdict's entries of ``summary.json`` (see :mod:`liveshape.control.verdict`)."""
+    if v is None:
+        return {"verdict": None}
+    j = v.judgement
+    return {
+        "verdict": v.verdict,
+        "verdict_reasons": list(v.reasons),
+        "verdict_rule": v.rule,
+        "full_level_dof": v.dof,
+        "full_level_rms_error_db": None if j is None else j.rms_error_db,
+        "full_level_max_dev_db": None if j is None else j.max_dev_db,
+        "full_level_min_dev_db": None if j is None else j.min_dev_db,
+        "full_level_lines_outside_alarm": None if j is None else j.lines_outside_alarm,
+        "full_level_lines_outside_abort": None if j is None else j.lines_outside_abort,
+        "full_level_control_grms_g": None if j is None else j.control_grms_g,
+        "alarm_fraction": v.alarm_fraction,
+        "max_alarm_fraction": v.max_alarm_fraction,
+    }
+
+
+def file_sha256(path: str | Path | None) -> str | None:
+    """SHA-256 (hex) of a file's bytes, or None when there is no such file."""
+    if not path:
+        return None
+    try:
+        with open(path, "rb") as fh:
+            return hashlib.sha256(fh.read()).hexdigest()
+    except OSError:
+        return None
 
 
 class StopFlag:
@@ -121,8 +157,17 @@ def _calibration_mapping(cal: ChainCalibration) -> dict[str, Any]:
 
 
 def _open_record(spec: TestSpec, out_dir: str | Path, rig_mapping: dict[str, Any],
-                 cal: ChainCalibration, extra: dict[str, Any]) -> RunRecorder:
-    """A new run folder with the resolved spec, the rig and its calibration."""
+                 cal: ChainCalibration, extra: dict[str, Any],
+                 identity: dict[str, Any] | None = None,
+                 record_signals: bool = True) -> RunRecorder:
+    """A new run folder with the resolved spec, the rig and its calibration.
+
+    ``run.json`` names the software version, the SHA-256 of the test file as read (None for a
+    spec made in code) and ``identity`` (``operator``, ``test_item``).
+    """
+    ident = {"software_version": __version__, "spec_file": spec.source or None,
+             "spec_sha256": file_sha256(spec.source), "operator": None, "test_item": None,
+             **(identity or {})}
     return RunRecorder.create(
         out_dir,
         name=spec.name,
@@ -131,6 +176,8 @@ def _open_record(spec: TestSpec, out_dir: str | Path, rig_mapping: dict[str, Any
         calibration=_calibration_mapping(cal),
         fs_hz=spec.control.fs_hz,
         extra=extra,
+        identity=ident,
+        signals=record_signals,
     )
 
 
@@ -162,6 +209,7 @@ class RunLoop:
         self.clock = clock
         self._last_view = -np.inf
         self._last_update: Any = None
+        self._closed_out = False
 
     def after_block(self, drive: np.ndarray, response: np.ndarray) -> None:
         """Record one block pair and whatever the controller has to say since the last one."""
@@ -173,11 +221,35 @@ class RunLoop:
         if upd is not None and upd is not self._last_update:
             self._last_update = upd
             self.recorder.update_from(upd)
+        if ctrl.finished and not self._closed_out:
+            self._closed_out = True
+            self._write_final_spectra()
         if self.on_snapshot is not None:
             now = self.clock()
             if now - self._last_view >= self.view_period_s or ctrl.finished:
                 self._last_view = now
                 self.on_snapshot(ctrl.snapshot())
+
+    def _write_final_spectra(self) -> None:
+        """The full-level average (``decisions/full_level.npz``) and ``spectra.csv``."""
+        ctrl = self.controller
+        full = ctrl.full_level_arrays()
+        if full is not None:
+            self.recorder.full_level(full)
+        u = ctrl.last_update
+        if u is None:
+            return
+        if full is not None:
+            c, dof, src, tgt = full["control_psd_g2_hz"], full["dof"], "full_level", \
+                full["target_psd_g2_hz"]
+        elif u.decision_dof > 0:
+            c, dof, src, tgt = u.decision_psd, u.decision_dof, "decision", u.target_psd
+        else:
+            c, dof, src, tgt = u.control_psd, u.dof, "update", u.target_psd
+        self.recorder.text_file(SPECTRA_CSV, spectra_csv_text(
+            f_hz=u.f_hz, target_g2_hz=tgt, alarm_db=ctrl.alarm_db, abort_db=ctrl.abort_db,
+            control_g2_hz=c, control_dof=dof, control_source=src, drive_fs2_hz=u.drive_psd,
+            h1_g_per_fs=u.h1, coherence=u.coherence))
 
     def run_sim(
         self, rig: Any, *, block_size: int, fast: bool, stop: StopFlag,
@@ -221,6 +293,8 @@ def run_session(
     block_size: int = SIM_BLOCK,
     on_snapshot: Callable[[ControlSnapshot], None] | None = None,
     stop: StopFlag | None = None,
+    identity: dict[str, Any] | None = None,
+    record_signals: bool = True,
 ) -> SessionResult:
     """Run one test on the rig the spec selects and leave a record folder.
 
@@ -241,6 +315,10 @@ def run_session(
         Live view callback.
     stop : StopFlag, optional
         Set it (or send SIGTERM, or press Ctrl-C) to ramp down and stop.
+    identity : dict, optional
+        ``operator`` and ``test_item`` for ``run.json``.
+    record_signals : bool
+        Record drive and response as WAV files (False: spectra and events only).
     """
     if spec.rig.kind != "sim":
         raise ConfigError(
@@ -254,7 +332,8 @@ def run_session(
     controller = Controller(spec, cal, seed=seed)
     stop = stop or StopFlag()
     recorder = _open_record(spec, out_dir, rig_mapping, cal,
-                            {"seed": seed, "fast": fast, "block_size": block_size})
+                            {"seed": seed, "fast": fast, "block_size": block_size},
+                            identity, record_signals)
     with recorder, sigterm_stops(stop):
         loop = RunLoop(controller, recorder, on_snapshot=on_snapshot)
         result = loop.run_sim(rig, block_size=block_size, fast=fast, stop=stop)
@@ -284,6 +363,8 @@ def run_audio_session(
     lead_blocks: int = AUDIO_LEAD_BLOCKS,
     on_snapshot: Callable[[ControlSnapshot], None] | None = None,
     stop: StopFlag | None = None,
+    identity: dict[str, Any] | None = None,
+    record_signals: bool = True,
 ) -> SessionResult:
     """Run one test through a real audio interface (or the JACK virtual rig).
 
@@ -316,7 +397,8 @@ def run_audio_session(
         "lead_blocks": lead_blocks,
     }
     recorder = _open_record(spec, out_dir, rig_mapping, cal,
-                            {"seed": seed, "block_size": block_size, "calibrated": cal.calibrated})
+                            {"seed": seed, "block_size": block_size, "calibrated": cal.calibrated},
+                            identity, record_signals)
     with recorder, sigterm_stops(stop):
         loop = RunLoop(controller, recorder, on_snapshot=on_snapshot)
         result = rig.run(
@@ -334,3 +416,90 @@ def run_audio_session(
         )
         recorder.close(session.summary())
     return session
+
+
+#: Default survey drive, FS rms: a little above the connection level, far below a test.
+SURVEY_LEVEL_FS = 0.02
+#: Default survey duration, s (about 110 DOF at 32768-point frames and 48 kHz).
+SURVEY_DURATION_S = 20.0
+
+
+def survey_settings(
+    spec: TestSpec,
+    *,
+    level_fs: float = SURVEY_LEVEL_FS,
+    duration_s: float = SURVEY_DURATION_S,
+    frame_length: int = 32768,
+    band_hz: tuple[float, float] | None = None,
+    seed: int | None = None,
+) -> Any:
+    """Checked settings of a survey on ``spec``'s rig (one-line ConfigError when wrong).
+
+    The drive is flat random noise over ``band_hz`` (default: the profile's band) at
+    ``level_fs`` rms, never above ``safety.drive_rms_max_fs``.
+    """
+    from liveshape.control.survey import SurveySettings
+
+    if level_fs > spec.safety.drive_rms_max_fs:
+        raise ConfigError(f"--level = {level_fs:g} FS is above safety.drive_rms_max_fs = "
+                          f"{spec.safety.drive_rms_max_fs:g} FS")
+    band = band_hz or (spec.profile.f_min_hz, spec.profile.f_max_hz)
+    return SurveySettings(fs_hz=spec.control.fs_hz, level_fs=level_fs, duration_s=duration_s,
+                          band_hz=(float(band[0]), float(band[1])), frame_length=frame_length,
+                          seed=spec.seed if seed is None else seed)
+
+
+def run_survey(
+    spec: TestSpec,
+    settings: Any,
+    *,
+    out_dir: str | Path,
+    block_size: int | None = None,
+    stop: StopFlag | None = None,
+    identity: dict[str, Any] | None = None,
+) -> tuple[Any, Path]:
+    """Run a low-level resonance survey on the spec's rig and write its record folder.
+
+    ``settings`` come from :func:`survey_settings`. The same
+    :class:`~liveshape.control.survey.SurveySource` runs on the simulated rig and through an
+    audio device. Returns ``(SurveyResult, folder)``.
+    """
+    from liveshape.control.survey import SurveySource
+    from liveshape.record.surveyfile import write_survey
+
+    seed = settings.seed
+    fs = spec.control.fs_hz
+    stop = stop or StopFlag()
+    ident = {"software_version": __version__, "spec_file": spec.source or None,
+             "spec_sha256": file_sha256(spec.source), "operator": None, "test_item": None,
+             **(identity or {})}
+    if spec.rig.kind == "sim":
+        rig, cal, rig_mapping = build_sim_rig(spec, seed)
+        b = block_size or SIM_BLOCK
+        src = SurveySource(settings, g_per_fs=cal.g_per_fs, block_size=b)
+        response = np.zeros(b)
+        with sigterm_stops(stop):
+            while not src.finished:
+                try:
+                    if stop.is_set():
+                        src.request_stop(stop.reason)
+                    response = rig.process(src.exchange(response))
+                except KeyboardInterrupt:
+                    stop.set("Ctrl-C")
+        result = src.result()
+    else:
+        from liveshape.rigs.audio import AudioRig, check_settings
+        from liveshape.rigs.calibration import resolve_calibration
+
+        cal = resolve_calibration(spec.rig.calibration, spec.rig.uncalibrated)
+        info = check_settings(spec.rig.device, fs)
+        b = block_size or AUDIO_BLOCK
+        audio = AudioRig(info.index, fs, block_size=b)
+        src = SurveySource(settings, g_per_fs=cal.g_per_fs, block_size=b)
+        rig_mapping = {"kind": "audio", "device": info.name, "device_index": info.index,
+                       "host_api": info.host_api, "fs_hz": fs, "block_size": b}
+        with sigterm_stops(stop):
+            result = audio.run(src, should_stop=stop.is_set)
+    folder = write_survey(out_dir, name=spec.name, result=result, settings=settings,
+                          rig=rig_mapping, calibration=_calibration_mapping(cal), identity=ident)
+    return result, folder

@@ -50,6 +50,7 @@ PURE_MODULES = [
     "errors.py", "schema.py", "atomic.py", "testdef/chain.py", "testdef/tolerance.py",
     "testdef/overrides.py", "testdef/fault_spec.py", "testdef/profilefile.py",
     "views/textplot.py", "views/textformat.py", "views/runtext.py", "views/checktext.py",
+    "views/surveytext.py",
     "rigs/plantmodel.py", "rigs/calmath.py", "rigs/modal.py", "rigs/cascade.py",
     "rigs/faults.py", "rigs/sim.py", "rigs/feasibility.py", "rigs/ring.py", "rigs/blocks.py",
 ]

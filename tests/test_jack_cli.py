@@ -175,3 +175,36 @@ def test_run_through_the_stream_with_the_calibration(virtual_rig, calibration_fi
     seg = g[end - int(1.0 * fs) : end]
     grms = float(np.sqrt(np.mean(seg**2)))
     assert 20 * math.log10(grms / math.sqrt(0.98)) == pytest.approx(0.0, abs=1.0)
+
+
+def test_survey_through_the_stream_finds_the_plants_resonance(virtual_rig, calibration_file,
+                                                              tmp_path: Path) -> None:
+    from liveshape.dsp.resonance import find_resonances
+    from liveshape.rigs.plant import load_plant
+    from liveshape.rigs.sim import SimRig
+
+    name, env = virtual_rig
+    data = config.read_yaml_file(calibration_file[0])
+    data["accelerometer"] = {"mv_per_g": SENS_MV_PER_G}  # the datasheet value
+    path = tmp_path / "chain.yaml"
+    config.write_yaml_file(path, data)
+    spec = tmp_path / "survey.yaml"
+    spec.write_text(
+        "name: jack-survey\n"
+        "profile: {units: g2/Hz,\n"
+        "  breakpoints: [{f_hz: 100, asd: 0.001}, {f_hz: 1000, asd: 0.001}]}\n"
+        "control: {fs_hz: 48000, frame_length: 4096}\n"
+    )
+    proc = call(env, "survey", str(spec), "--rig", f"audio:{name}", "--calibration", str(path),
+                "--duration", "8", "--out", str(tmp_path / "runs"), "--json", timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    out = json.loads(proc.stdout)
+    assert out["status"] == "completed"
+    # truth: the simulated chain's analytic FRF on a fine grid (the plant the rig serves)
+    rig = SimRig(load_plant("loudspeaker"), 48000.0)
+    f = np.arange(100.0, 1000.0, 0.01)
+    truth = {r.kind: r for r in find_resonances(f, rig.frf(f), np.ones(f.size), 1e9)}
+    got = {r["kind"]: r for r in out["resonances"]}
+    df = 48000.0 / 32768
+    for kind in ("peak", "dip"):
+        assert abs(got[kind]["f_hz"] - truth[kind].f_hz) <= df + 3 * got[kind]["f_sigma_hz"]

@@ -190,10 +190,44 @@ def test_si_units_convert_by_g0_squared():
     assert p.asd_g2_hz[0] == pytest.approx(1 / 9.80665**2, rel=1e-15)
 
 
-def test_unknown_units_lists_valid_ones():
+@pytest.mark.parametrize("units", ["mm2/s4/Hz", "m/s2", "g", "grms", "kg2/Hz", "V2/Hz"])
+def test_unknown_units_lists_valid_ones(units):
     with pytest.raises(ConfigError, match=r"g2/Hz.*\(m/s2\)2/Hz") as e:
-        profile_from_points([{"f_hz": 20, "asd": 1}, {"f_hz": 30, "asd": 1}], W, units="g^2/Hz")
-    assert "g^2/Hz" in str(e.value) and "\n" not in str(e.value)
+        profile_from_points([{"f_hz": 20, "asd": 1}, {"f_hz": 30, "asd": 1}], W, units=units)
+    assert units in str(e.value) and "\n" not in str(e.value)
+
+
+# 1 (m/s²)²/Hz = 1/g0² g²/Hz with the standard acceleration of gravity g0 = 9.80665 m/s²
+# (CGPM 1901; ISO 80000-3). Every usual spelling of either unit must give its factor.
+@pytest.mark.parametrize("units, factor", [
+    ("g2/Hz", 1.0), ("g^2/Hz", 1.0), ("g²/Hz", 1.0), ("G^2/HZ", 1.0),
+    ("(m/s2)2/Hz", 1 / 9.80665**2), ("(m/s²)²/Hz", 1 / 9.80665**2),
+    ("m²/s⁴/Hz", 1 / 9.80665**2), ("m^2/s^4/Hz", 1 / 9.80665**2), ("m2/s4/Hz", 1 / 9.80665**2),
+])
+def test_asd_unit_spellings(units, factor):
+    p = profile_from_points([{"f_hz": 20, "asd": 1}, {"f_hz": 30, "asd": 1}], W, units=units)
+    assert p.asd_g2_hz[0] == pytest.approx(factor, rel=1e-15)
+
+
+@pytest.mark.parametrize("header, factor", [
+    ("f_hz,asd_m2s4_hz", 1 / 9.80665**2), ("f_hz,asd m²/s⁴/Hz", 1 / 9.80665**2),
+    ("frequency Hz, ASD (m/s²)²/Hz", 1 / 9.80665**2), ("f_hz,asd_g2_hz", 1.0),
+    ("f [Hz], ASD [g^2/Hz]", 1.0), ("f_hz,asd", 1.0),
+])
+def test_csv_header_units(tmp_path, header, factor):
+    path = tmp_path / "p.csv"
+    path.write_text(f"{header}\n20,1\n30,1\n", encoding="utf-8")
+    # A superscript header once read silently as g²/Hz: a 9.8² = 96x (19.8 dB) level error.
+    assert read_profile_csv(path).asd_g2_hz[0] == pytest.approx(factor, rel=1e-15)
+
+
+@pytest.mark.parametrize("header", ["f_hz,asd (mm/s2)2/Hz", "f_hz,asd V^2/Hz", "f,asd [m/s2]"])
+def test_csv_header_unknown_unit_refused(tmp_path, header):
+    path = tmp_path / "p.csv"
+    path.write_text(f"{header}\n20,1\n30,1\n", encoding="utf-8")
+    with pytest.raises(ConfigError, match=r"p\.csv: line 1: .*not a known ASD unit") as e:
+        read_profile_csv(path)
+    assert "\n" not in str(e.value)
 
 
 @pytest.mark.parametrize(

@@ -299,6 +299,7 @@ def test_update_from_record_keeps_figures_and_extra_arrays(tmp_path):
                 new_drive_psd=f * 3 + i, h1=(1 + 1j) * f, coherence=f / 9,
                 rms_error_db=-0.5 / i, max_dev_db=1.0, min_dev_db=-1.0, applied=i == 2,
                 lines_step_limited=0, lines_held=3, ceiling_scale=1.0,
+                decision_psd=f * 4 + i, decision_dof=120.0 * i,
             ),
             lines_outside_alarm=7,
         )
@@ -309,6 +310,14 @@ def test_update_from_record_keeps_figures_and_extra_arrays(tmp_path):
     np.testing.assert_array_equal(up.numbers["rms_error_db"], [-0.5, -0.25])
     np.testing.assert_array_equal(up.numbers["lines_outside_alarm"], [7.0, 7.0])
     assert "stage" not in up.numbers and set(up.numbers) >= {"level_db", "dof", "lines_held"}
+    # the estimate behind each tolerance decision is kept with its DOF
+    np.testing.assert_array_equal(up.arrays["decision_psd"], [f * 4 + 1, f * 4 + 2])
+    np.testing.assert_array_equal(up.numbers["decision_dof"], [120.0, 240.0])
+    # each update file names the units of what it holds
+    with np.load(rec.root / "updates" / "0001.npz") as z:
+        units = dict(u.split(": ") for u in z["units"].tolist())
+    assert units["control_psd"] == units["decision_psd"] == "g^2/Hz"
+    assert units["drive_psd"] == "FS^2/Hz" and units["f_hz"] == "Hz"
 
 
 def test_wav_size_limit_drops_later_blocks_once(tmp_path, monkeypatch):

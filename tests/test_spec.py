@@ -224,8 +224,8 @@ def test_misspelled_key_suggests_nearest(data, match):
         ({"name": "x"}, r"bench\.yaml: profile: required key is missing"),
         ({"profile": {"units": "g2/Hz"}}, r"give breakpoints"),
         (
-            {"profile": {"units": "g^2/Hz", "breakpoints": POINTS}},
-            r"profile\.units = 'g\^2/Hz' is not a known ASD unit \(valid: g2/Hz, \(m/s2\)2/Hz\)",
+            {"profile": {"units": "g/Hz", "breakpoints": POINTS}},
+            r"profile\.units = 'g/Hz' is not a known ASD unit \(valid: g2/Hz, \(m/s2\)2/Hz",
         ),
         ([1, 2], r"bench\.yaml must be a mapping"),
     ],

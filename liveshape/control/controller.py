@@ -285,6 +285,9 @@ class Controller(LoopState):
             self._abort(verdict.trip)
             return
         self._pool.push(ctrl, self._nu_update)
+        self._pending = tuple(verdict.pending)
+        if self._stage == "full_level" and g == 1.0:
+            self._full.push(ctrl, self._nu_update, t)
         if self._est.cross:  # blend law: refresh the FRF where the coherence is good
             h1, coh = self._est.h1_coherence()
             good = band & (coh >= c.coherence_min)
@@ -320,6 +323,8 @@ class Controller(LoopState):
                   dof=self._pool.dof, df_hz=self.df_hz)
         self._decision = d
         in_tol, n_alarm, rms_err = d.in_tolerance, d.lines_outside_alarm, d.rms_error_db
+        if self._stage == "full_level" and g == 1.0:
+            self._full.count_decision(in_tol)
         if in_tol and self._updates_to_tol is None:
             self._updates_to_tol = self._updates
         if not in_tol and not self._alarm_on:

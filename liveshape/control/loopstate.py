@@ -28,6 +28,7 @@ from liveshape.control.stages import (
     segments_for_dof,
     update_dof_for,
 )
+from liveshape.control.verdict import FullLevelAverage, Verdict, decide_verdict
 from liveshape.dsp.spectra import chi2_interval_db, welch_dof
 from liveshape.testdef.chain import ChainCalibration
 
@@ -134,6 +135,8 @@ class LoopState:
         self._last_update: UpdateRecord | None = None
         self._decision: Judgement | None = None
         self._alarm_on = False
+        self._pending: tuple[str, ...] = ()  # abort rules counting towards a trip
+        self._full = FullLevelAverage(int(np.count_nonzero(band)))
         self._emit("stage", "connect: looking at the background noise", {"stage": "connect"})
 
     # ------------------------------------------------------------------ public properties
@@ -158,6 +161,16 @@ class LoopState:
     @property
     def trip(self) -> Trip | None:
         return self._trip
+
+    @property
+    def alarm_db(self) -> np.ndarray:
+        """Alarm limit per band line, ± dB."""
+        return self._alarm_db
+
+    @property
+    def abort_db(self) -> np.ndarray:
+        """Abort limit per band line, ± dB."""
+        return self._abort_db
 
     @property
     def loop_delay_samples(self) -> int | None:
@@ -198,6 +211,8 @@ class LoopState:
                        applied: bool) -> None:
         with np.errstate(divide="ignore"):
             dev = _DB * np.log(np.maximum(ctrl, 1e-300) / target_b)
+        d = self._decision if in_tol is not None else None
+        decision_psd = np.full(ctrl.size, np.nan) if d is None else d.control_psd
         rec = UpdateRecord(
             index=self._updates, t_s=t, stage=self._stage, level_db=self.schedule.level_db,
             dof=self._nu_update, f_hz=self.f_hz, control_psd=frozen_array(ctrl),
@@ -208,7 +223,9 @@ class LoopState:
             max_dev_db=float(dev.max()), min_dev_db=float(dev.min()), applied=applied,
             lines_step_limited=0 if res is None else res.n_step_limited,
             lines_held=0 if res is None else res.n_held,
-            ceiling_scale=1.0 if res is None else res.ceiling_scale)
+            ceiling_scale=1.0 if res is None else res.ceiling_scale,
+            decision_psd=frozen_array(decision_psd),
+            decision_dof=0.0 if d is None else float(d.dof))
         self._last_update = rec
         self._emit("update", f"update {rec.index}: rms {rec.rms_error_db:+.2f} dB, lines "
                    f"{rec.min_dev_db:+.1f}..{rec.max_dev_db:+.1f} dB",
@@ -270,7 +287,43 @@ class LoopState:
             lines_outside_abort=-1 if d is None else d.lines_outside_abort,
             rms_error_db=math.nan if d is None else d.rms_error_db,
             dof=float(dof), chi2_lo_db=float(lo), chi2_hi_db=float(hi), updates=self._updates,
-            loop_delay_samples=self._delay, trip=self._trip, recent_events=tuple(self._log.recent))
+            loop_delay_samples=self._delay, trip=self._trip, recent_events=tuple(self._log.recent),
+            tolerance_state=self._tolerance_state(d))
+
+    def _tolerance_state(self, d: Judgement | None) -> str:
+        if self._pending:
+            return "abort pending"
+        if d is None:
+            return ""
+        return "in tolerance" if d.in_tolerance else "alarm"
+
+    def verdict(self) -> Verdict:
+        """The test's verdict so far (final once :attr:`finished`)."""
+        tol = self.spec.tolerance
+        return decide_verdict(
+            self._status, self._full, self._target[self._band], alarm_db=self._alarm_db,
+            abort_db=self._abort_db, rms_alarm_db=tol.rms_alarm_db,
+            max_alarm_fraction=tol.max_alarm_fraction, df_hz=self.df_hz,
+            status_reason=self._trip.message if self._trip is not None else self._stop_reason)
+
+    def full_level_arrays(self) -> dict[str, Any] | None:
+        """The full-level average as arrays with units in their names, or None without one.
+
+        Keys: ``f_hz``, ``control_psd_g2_hz`` (time-averaged control), ``target_psd_g2_hz``,
+        ``alarm_db``, ``abort_db`` (± limits), ``dof``, ``estimates`` (update estimates
+        pooled), ``decisions``, ``decisions_in_alarm``, ``first_t_s``/``last_t_s`` (run time of
+        the first and last estimate pooled).
+        """
+        psd = self._full.psd
+        if psd is None:
+            return None
+        f = self._full
+        return {"f_hz": np.asarray(self.f_hz), "control_psd_g2_hz": np.asarray(psd),
+                "target_psd_g2_hz": self._target[self._band].copy(),
+                "alarm_db": np.asarray(self._alarm_db), "abort_db": np.asarray(self._abort_db),
+                "dof": f.dof, "estimates": f.n_estimates, "decisions": f.n_decisions,
+                "decisions_in_alarm": f.n_alarm, "first_t_s": f.first_t_s,
+                "last_t_s": f.last_t_s}
 
     def result(self) -> RunResult:
         """Outcome so far (final once :attr:`finished`)."""
@@ -287,4 +340,5 @@ class LoopState:
             control_grms_g=nan if d is None else d.control_grms_g,
             target_grms_g=nan if d is None else d.target_grms_g,
             dof=0.0 if d is None else d.dof,
-            time_at_full_level_s=self.schedule.time_at_full_level_s, updates=self._updates)
+            time_at_full_level_s=self.schedule.time_at_full_level_s, updates=self._updates,
+            verdict=self.verdict())

@@ -12,7 +12,7 @@ from typing import Any
 
 import numpy as np
 
-from liveshape.control.safety import Trip, exit_status
+from liveshape.control.safety import VERDICT_FAIL_EXIT, Trip, exit_status
 
 STAGES = ("connect", "identify", "equalize", "full_level", "ramp_down", "done")
 STATUSES = ("running", "completed", "aborted", "stopped")
@@ -57,7 +57,8 @@ class UpdateRecord:
     to the synthesizer afterwards (at full level, level not included), ``h1`` (g/FS) and
     ``coherence`` from the identification (refreshed by the blend law). ``applied`` is False
     when a safety rule tripped on this update or was pending (then the drive could only go
-    down).
+    down). ``decision_psd`` (g²/Hz) is the pooled estimate behind the tolerance decision made
+    with this update, of ``decision_dof`` DOF (NaN and 0 when no decision was made).
     """
 
     index: int
@@ -79,6 +80,8 @@ class UpdateRecord:
     lines_step_limited: int
     lines_held: int
     ceiling_scale: float
+    decision_psd: np.ndarray
+    decision_dof: float
 
 
 @dataclass(frozen=True)
@@ -90,7 +93,9 @@ class ControlSnapshot:
     ``dof`` says which), ``target_psd``
     (g²/Hz at the current level), ``drive_psd`` (FS²/Hz as played, level included).
     ``alarm_db``/``abort_db`` are the ± limits per line; ``chi2_lo_db``/``chi2_hi_db`` the 90 %
-    χ² interval of the true PSD about an estimate with ``dof`` DOF.
+    χ² interval of the true PSD about an estimate with ``dof`` DOF. ``tolerance_state`` is
+    ``in tolerance``, ``alarm``, ``abort pending`` (an abort rule counts towards its trip) or
+    ``""`` before any estimate.
     """
 
     t_s: float
@@ -153,6 +158,8 @@ class RunResult:
     time_at_full_level_s : float
     updates : int
         Updates made in the run.
+    verdict : Verdict or None
+        The test's verdict against its tolerance (:mod:`liveshape.control.verdict`).
     """
 
     status: str
@@ -168,6 +175,7 @@ class RunResult:
     dof: float
     time_at_full_level_s: float
     updates: int
+    verdict: Any = None
 
     @property
     def abort_rule(self) -> str | None:
@@ -175,5 +183,8 @@ class RunResult:
 
     @property
     def exit_status(self) -> int:
-        """Process exit status (0 completed, 130 stopped, the rule's status when aborted)."""
+        """Process exit status (0 completed, 4 completed with a ``fail`` verdict, 130 stopped,
+        the rule's status when aborted)."""
+        if self.status == "completed" and getattr(self.verdict, "verdict", None) == "fail":
+            return VERDICT_FAIL_EXIT
         return exit_status(self.status, self.trip)

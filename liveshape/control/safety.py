@@ -72,6 +72,9 @@ EXIT_STATUS: dict[str, int] = {
     "connect_check": 18,
 }
 RULES: tuple[str, ...] = tuple(EXIT_STATUS)
+#: Exit status of a run that completed but whose verdict is ``fail`` (its control was outside
+#: the spec's tolerance; see :mod:`liveshape.control.verdict`).
+VERDICT_FAIL_EXIT = 4
 
 #: False-count probability per update estimate that sets the statistical widening of the
 #: abort band (lines_abort): a control exactly on target shows ``abort_min_lines`` lines beyond

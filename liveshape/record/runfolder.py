@@ -68,12 +68,24 @@ SUMMARY_NAME = "summary.json"
 DRIVE_NAME = "drive.wav"
 RESPONSE_NAME = "response.wav"
 UPDATES_DIR = "updates"
+DECISIONS_DIR = "decisions"
+#: The full-level average (time-averaged control over the whole time at full level).
+FULL_LEVEL_NAME = "full_level.npz"
+
+#: Units of the arrays and figures of the update files (stored in each as ``units``,
+#: ``"name: unit"`` strings); FS is digital full scale.
+UPDATE_UNITS = {
+    "f_hz": "Hz", "t_s": "s", "control_psd": "g^2/Hz", "target_psd": "g^2/Hz",
+    "drive_psd": "FS^2/Hz", "new_drive_psd": "FS^2/Hz", "h1": "g/FS", "coherence": "1",
+    "decision_psd": "g^2/Hz", "decision_dof": "DOF", "dof": "DOF", "level_db": "dB",
+    "rms_error_db": "dB", "max_dev_db": "dB", "min_dev_db": "dB", "ceiling_scale": "1",
+}
 
 #: Arrays stored in every update file; the scalar figures go next to them by name.
 UPDATE_ARRAYS = ("f_hz", "control_psd", "target_psd", "drive_psd", "h1", "coherence")
 #: Names no figure or extra array may take: the arrays every update file has, and its two
 #: index arrays ``numbers`` and ``arrays`` (the names of the figures and of the extra arrays).
-_UPDATE_RESERVED = frozenset(UPDATE_ARRAYS) | {"index", "t_s", "numbers", "arrays"}
+_UPDATE_RESERVED = frozenset(UPDATE_ARRAYS) | {"index", "t_s", "numbers", "arrays", "units"}
 
 _NAME_BAD = re.compile(r"[^A-Za-z0-9_.-]+")
 
@@ -201,6 +213,8 @@ def pack_update(
     out["arrays"] = np.asarray(sorted(extra), dtype=str)
     for key, value in figures.items():
         out[key] = np.asarray(np.nan if value is None else float(value))
+    out["units"] = np.asarray([f"{k}: {UPDATE_UNITS[k]}" for k in sorted(out)
+                               if k in UPDATE_UNITS], dtype=str)
     return out
 
 
@@ -261,6 +275,8 @@ class UpdateSeries:
 class RunData:
     """Everything :func:`load_run` read from a run folder.
 
+    ``full_level`` holds ``decisions/full_level.npz`` (the full-level average, see
+    :meth:`liveshape.control.loopstate.LoopState.full_level_arrays`) or ``None``.
     ``summary`` is ``None`` when the run was killed before it closed; ``skipped_event_lines``
     counts lines of ``events.jsonl`` that could not be read (a killed run cuts the last one).
     """
@@ -275,6 +291,7 @@ class RunData:
     skipped_event_lines: int
     drive_wav: Path | None
     response_wav: Path | None
+    full_level: dict[str, Any] | None = None
 
     @property
     def complete(self) -> bool:
@@ -440,6 +457,14 @@ def load_run(run_dir: str | os.PathLike[str]) -> RunData:
     events, skipped = _read_events(root / EVENTS_NAME)
     drive = root / DRIVE_NAME
     response = root / RESPONSE_NAME
+    full_path = root / DECISIONS_DIR / FULL_LEVEL_NAME
+    full = None
+    if full_path.is_file():
+        try:
+            with np.load(full_path, allow_pickle=False) as z:
+                full = {k: _frozen(z[k]) if z[k].ndim else z[k].item() for k in z.files}
+        except (OSError, ValueError) as exc:
+            raise ConfigError(f"{full_path}: cannot read ({exc})") from None
     return RunData(
         root=root,
         meta=meta,
@@ -451,6 +476,7 @@ def load_run(run_dir: str | os.PathLike[str]) -> RunData:
         skipped_event_lines=skipped,
         drive_wav=drive if drive.is_file() else None,
         response_wav=response if response.is_file() else None,
+        full_level=full,
     )
 
 

@@ -30,8 +30,10 @@ import numpy as np
 from liveshape.atomic import atomic_write, atomic_write_text
 from liveshape.errors import ConfigError
 from liveshape.record.runfolder import (  # the layout names and the reader, re-exported here
+    DECISIONS_DIR,
     DRIVE_NAME,
     EVENTS_NAME,
+    FULL_LEVEL_NAME,
     META_NAME,
     RESPONSE_NAME,
     RIG_NAME,
@@ -132,7 +134,7 @@ class RunRecorder:
 
     def __init__(
         self, root: Path, *, name: str, fs_hz: float, created_utc: _dt.datetime,
-        flush_every_s: float, fsync: bool,
+        flush_every_s: float, fsync: bool, signals: bool = True,
     ) -> None:
         self.root = root
         self.name = name
@@ -146,8 +148,12 @@ class RunRecorder:
         (root / UPDATES_DIR).mkdir()
         period = int(round(flush_every_s * self.fs_hz))
         rate = int(round(self.fs_hz))
-        self._drive = WavStream(root / DRIVE_NAME, rate, period)
-        self._response = WavStream(root / RESPONSE_NAME, rate, period)
+        self.signals_recorded = bool(signals)
+        self._drive: WavStream | None = None
+        self._response: WavStream | None = None
+        if self.signals_recorded:
+            self._drive = WavStream(root / DRIVE_NAME, rate, period)
+            self._response = WavStream(root / RESPONSE_NAME, rate, period)
         # kept open for the whole run, line-buffered; closed in close()
         self._events: IO[str] = open(
             root / EVENTS_NAME, "a", encoding="utf-8", buffering=1
@@ -169,6 +175,8 @@ class RunRecorder:
         now: _dt.datetime | None = None,
         flush_every_s: float = 1.0,
         fsync: bool = False,
+        signals: bool = True,
+        identity: Mapping[str, Any] | None = None,
     ) -> RunRecorder:
         """Make a new run folder and open its streams.
 
@@ -193,6 +201,12 @@ class RunRecorder:
         fsync : bool
             Also :func:`os.fsync` each event line and each atomic file (survives power loss,
             costs a disk round trip per event).
+        signals : bool
+            Record the drive and response signals as WAV files (False: spectra, events and
+            summary only, about 1.3 GB/h less at 48 kHz).
+        identity : mapping, optional
+            Who and what the run is (``software_version``, ``spec_sha256``, ``operator``,
+            ``test_item`` ...), written at the top level of ``run.json``.
 
         Returns
         -------
@@ -212,16 +226,18 @@ class RunRecorder:
             "format_version": RUN_FORMAT_VERSION,
             "name": str(name),
             "created_utc": stamp.isoformat(timespec="seconds"),
+            **{str(k): v for k, v in (identity or {}).items()},
             "fs_hz": fs,
             "calibration": dict(calibration),
             "extra": dict(extra or {}),
+            "signals_recorded": bool(signals),
         }
         _atomic_write_json(root / META_NAME, meta, fsync=fsync)
         write_yaml_file(root / SPEC_NAME, json_safe(spec_mapping))
         write_yaml_file(root / RIG_NAME, json_safe(rig_mapping))
         return cls(
             root, name=str(name), fs_hz=fs, created_utc=stamp,
-            flush_every_s=flush_every_s, fsync=fsync,
+            flush_every_s=flush_every_s, fsync=fsync, signals=signals,
         )
 
     # -- writing as the run goes ----------------------------------------------------------
@@ -322,6 +338,29 @@ class RunRecorder:
             base["drive_psd"], base["h1"], base["coherence"], arrays=extra, **figures,
         )
 
+    def full_level(self, arrays: Mapping[str, Any]) -> Path:
+        """Write the full-level average as ``decisions/full_level.npz`` (atomically).
+
+        ``arrays`` are the keys of
+        :meth:`liveshape.control.loopstate.LoopState.full_level_arrays` (units in the names).
+        """
+        folder = self.root / DECISIONS_DIR
+        path = folder / FULL_LEVEL_NAME
+        data = {k: np.asarray(v) for k, v in arrays.items()}
+        with self._lock:
+            self._check_open()
+            folder.mkdir(exist_ok=True)
+            atomic_write(path, lambda fh: np.savez(fh, **data), fsync=self._fsync)
+        return path
+
+    def text_file(self, name: str, text: str) -> Path:
+        """Write a small text file (a CSV export) into the run folder, atomically."""
+        path = self.root / name
+        with self._lock:
+            self._check_open()
+            atomic_write_text(path, text, fsync=self._fsync)
+        return path
+
     def signals(self, drive_block: Any, response_block: Any) -> None:
         """Append one block of drive and response (full scale) to the two WAV files.
 
@@ -330,6 +369,8 @@ class RunRecorder:
         a file reaches the WAV size limit (4 GiB) later blocks are dropped and one
         ``record_full`` event says so; the rest of the record goes on.
         """
+        if self._drive is None or self._response is None:
+            return
         with self._lock:
             self._check_open()
             was_full = self._drive.full or self._response.full
@@ -348,8 +389,9 @@ class RunRecorder:
         """Bring both WAV headers and the event log up to date now."""
         with self._lock:
             self._check_open()
-            self._drive.sync()
-            self._response.sync()
+            for w in (self._drive, self._response):
+                if w is not None:
+                    w.sync()
             self._events.flush()
 
     # -- closing ----------------------------------------------------------------------------
@@ -376,8 +418,9 @@ class RunRecorder:
             self._check_open()
             self._closed = True
             try:
-                self._drive.close()
-                self._response.close()
+                for w in (self._drive, self._response):
+                    if w is not None:
+                        w.close()
             finally:
                 self._events.close()
             data["record"] = {
@@ -387,8 +430,9 @@ class RunRecorder:
                 "fs_hz": self.fs_hz,
                 "events": self.n_events,
                 "updates": self.n_updates,
-                "drive_samples": self._drive.frames,
-                "response_samples": self._response.frames,
+                "signals_recorded": self.signals_recorded,
+                "drive_samples": 0 if self._drive is None else self._drive.frames,
+                "response_samples": 0 if self._response is None else self._response.frames,
             }
             path = self.root / SUMMARY_NAME
             _atomic_write_json(path, data, fsync=self._fsync)

@@ -16,17 +16,65 @@ from liveshape.dsp.profile import DB_OCT_PER_EXPONENT, G0_M_S2, Profile
 from liveshape.errors import ConfigError
 from liveshape.schema import Where, as_float, as_list, check_keys
 
-__all__ = ["ASD_UNITS", "profile_from_points", "read_profile_csv"]
+__all__ = ["ASD_UNITS", "asd_unit_factor", "profile_from_points", "read_profile_csv"]
 
 #: Accepted ASD units and the factor that turns a value in that unit into g²/Hz.
 ASD_UNITS: dict[str, float] = {"g2/Hz": 1.0, "(m/s2)2/Hz": 1.0 / G0_M_S2**2}
 
 
+#: Spellings of the two ASD units once normalized by :func:`_normalize_unit` (lower case, no
+#: spaces, ² and ⁴ as digits, no ``^`` or ``**``).
+_SI_SPELLINGS = re.compile(
+    r"[(\[]m/s2[)\]]2/hz|(?<![a-z])(m2/s4/hz|m2/\(s4hz\)|m2s-4/hz|m2s-4hz-1|m2_?s4_?hz)")
+_G_SPELLINGS = re.compile(r"(?<![a-z])(\(?g\)?2/hz|g2_?hz|g2hz-1|gn2/hz)")
+_UNITISH = re.compile(r"[/()]|hz|\bg\b|m2|s2|s4")
+
+
+def _normalize_unit(text: str) -> str:
+    t = text.lower()
+    for a, b in (("²", "2"), ("⁴", "4"), ("⁻¹", "-1"), ("**", ""), ("^", ""), (" ", ""),
+                 ("·", ""), ("⋅", "")):
+        t = t.replace(a, b)
+    return t
+
+
+def asd_unit_factor(text: str) -> float | None:
+    """Factor from the ASD unit written in ``text`` to g²/Hz; None when ``text`` names no unit.
+
+    Accepted: g²/Hz (``g2/Hz``, ``g^2/Hz``, ``g²/Hz``, ``asd_g2_hz``) and (m/s²)²/Hz
+    (``(m/s2)2/Hz``, ``(m/s²)²/Hz``, ``m²/s⁴/Hz``, ``m2/s4/Hz``, ``m^2/s^4/Hz``,
+    ``asd_m2s4_hz``), converted with the standard acceleration of gravity g0 = 9.80665 m/s².
+
+    Raises
+    ------
+    ValueError
+        ``text`` looks like a unit (it has ``/``, brackets, ``Hz`` ...) that is neither.
+    """
+    t = _normalize_unit(text)
+    si, g = bool(_SI_SPELLINGS.search(t)), bool(_G_SPELLINGS.search(t))
+    if si and not g:
+        return ASD_UNITS["(m/s2)2/Hz"]
+    if g and not si:
+        return 1.0
+    if si and g:
+        raise ValueError("names both g²/Hz and (m/s²)²/Hz")
+    if _UNITISH.search(t):
+        raise ValueError("is not a known ASD unit (g2/Hz or (m/s2)2/Hz, e.g. m²/s⁴/Hz)")
+    return None
+
+
 # -- building from breakpoints ---------------------------------------------------------------
 def _unit_factor(units: Any, where: Where) -> float:
-    if not isinstance(units, str) or units not in ASD_UNITS:
-        raise where.fail(units, f"is not a known ASD unit (valid: {', '.join(ASD_UNITS)})")
-    return ASD_UNITS[units]
+    factor = None
+    if isinstance(units, str):
+        try:
+            factor = asd_unit_factor(units)
+        except ValueError:
+            factor = None
+    if factor is None:
+        raise where.fail(units, f"is not a known ASD unit (valid: {', '.join(ASD_UNITS)}, "
+                         "or spellings such as g^2/Hz, m²/s⁴/Hz)")
+    return factor
 
 
 def profile_from_points(
@@ -97,7 +145,6 @@ def profile_from_points(
 
 
 # -- two-column text profiles ----------------------------------------------------------------
-_SI_HEADER = re.compile(r"m\s*/\s*s\s*(\^?\s*2|²)|m2\s*/?\s*s4|m2s4|m\^2\s*/\s*s\^4", re.IGNORECASE)
 
 
 def _split_cells(text: str) -> list[str]:
@@ -119,8 +166,10 @@ def read_profile_csv(path: str | Path, *, name: str | None = None) -> Profile:
 
     Cells are separated by commas, whitespace or semicolons (a semicolon file may use decimal
     commas). ``#`` starts a comment. The first non-comment line may be a header (a line whose
-    cells are not all numbers); a header naming m/s² units (``asd_m2s4_hz``, ``(m/s2)2/Hz``)
-    makes the levels be read in (m/s²)²/Hz and converted by dividing by g0².
+    cells are not all numbers); a header naming m/s² units (``asd_m2s4_hz``, ``(m/s2)2/Hz``,
+    ``m²/s⁴/Hz``) makes the levels be read in (m/s²)²/Hz and converted by dividing by g0²; a
+    header naming g²/Hz or no unit at all leaves them in g²/Hz; a header naming any other unit
+    is refused (:func:`asd_unit_factor`).
 
     Raises
     ------
@@ -150,8 +199,12 @@ def read_profile_csv(path: str | Path, *, name: str | None = None) -> Profile:
             continue
         if not seen_data and not all(_is_number(c) for c in cells):
             seen_data = True
-            if _SI_HEADER.search(body):
-                factor = ASD_UNITS["(m/s2)2/Hz"]
+            try:
+                found = asd_unit_factor(" | ".join(cells[1:]))
+            except ValueError as exc:
+                raise ConfigError(f"{src}: line {lineno}: header {body.strip()!r} {exc}") from None
+            if found is not None:
+                factor = found
             continue
         seen_data = True
         at = f"{src}: line {lineno}"

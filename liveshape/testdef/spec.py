@@ -169,7 +169,8 @@ _RULES: dict[str, dict[str, tuple[str, Any]]] = {
     },
 }
 _SECTIONS: dict[str, tuple[str, ...]] = {
-    "tolerance": ("alarm_db", "abort_db", "rms_alarm_db", "rms_abort_db", "bands"),
+    "tolerance": ("alarm_db", "abort_db", "rms_alarm_db", "rms_abort_db", "bands",
+                  "max_alarm_fraction"),
     "schedule": tuple(f.name for f in fields(Schedule)),
     "control": ("fs_hz", *_RESOLUTION_KEYS, *_RULES["control"]),
     "safety": tuple(f.name for f in fields(SafetyLimits)),

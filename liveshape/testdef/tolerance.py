@@ -54,6 +54,8 @@ class Tolerance:
     Defaults are common practice: ±3 dB alarm, ±6 dB abort per line (IEC 60068-2-64 tolerance
     ±3 dB), rms alarm ±1 dB and abort ±1.5 dB. ``bands`` override the per-line limits where
     ``f_lo_hz <= f <= f_hi_hz`` (a later band wins where bands overlap).
+    ``max_alarm_fraction`` is the largest fraction of the full-level decisions that may be in
+    alarm for the test to pass (common practice; 0.1 is this project's default).
     """
 
     alarm_db: float = 3.0
@@ -61,9 +63,13 @@ class Tolerance:
     rms_alarm_db: float = 1.0
     rms_abort_db: float = 1.5
     bands: tuple[ToleranceBand, ...] = field(default_factory=tuple)
+    max_alarm_fraction: float = 0.1
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "bands", tuple(self.bands))
+        if not (math.isfinite(self.max_alarm_fraction) and 0.0 <= self.max_alarm_fraction <= 1.0):
+            raise ConfigError(f"tolerance: max_alarm_fraction = {self.max_alarm_fraction!r} "
+                              "must be between 0 and 1")
         _check_limits(self.alarm_db, self.abort_db, "tolerance")
         if not (math.isfinite(self.rms_alarm_db) and self.rms_alarm_db > 0):
             raise ConfigError(f"tolerance: rms_alarm_db = {self.rms_alarm_db!r} must be > 0")
@@ -90,12 +96,14 @@ class Tolerance:
 
 
 def tolerance_from_mapping(data: Any, where: Where) -> Tolerance:
-    """Read a :class:`Tolerance` from ``{alarm_db, abort_db, rms_alarm_db, rms_abort_db, bands}``.
+    """Read a :class:`Tolerance` from its mapping (keys: ``alarm_db``, ``abort_db``,
+    ``rms_alarm_db``, ``rms_abort_db``, ``bands``, ``max_alarm_fraction``).
 
     Each band is ``{f_lo_hz, f_hi_hz, alarm_db, abort_db}``; a band's missing limits take the
     overall ones. Missing keys take the defaults of :class:`Tolerance`.
     """
-    keys = ("alarm_db", "abort_db", "rms_alarm_db", "rms_abort_db", "bands")
+    keys = ("alarm_db", "abort_db", "rms_alarm_db", "rms_abort_db", "bands",
+            "max_alarm_fraction")
     d = check_keys(data, keys, where)
     base = Tolerance()
     vals = {k: as_float(d[k], where.key(k), gt=0) if k in d else getattr(base, k) for k in keys[:4]}
@@ -119,4 +127,7 @@ def tolerance_from_mapping(data: Any, where: Where) -> Tolerance:
                 b.get("abort_db", abort), f"must be >= alarm_db = {alarm:g}"
             )
         bands.append(ToleranceBand(lo, hi, alarm, abort))
-    return Tolerance(bands=tuple(bands), **vals)
+    frac = base.max_alarm_fraction
+    if "max_alarm_fraction" in d:
+        frac = as_float(d["max_alarm_fraction"], where.key("max_alarm_fraction"), ge=0, le=1)
+    return Tolerance(bands=tuple(bands), max_alarm_fraction=frac, **vals)
