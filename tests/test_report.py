@@ -363,6 +363,27 @@ def test_first_page_falls_back_to_the_last_update_with_a_label(tmp_path):
     assert "NO VERDICT" in first
 
 
+def test_first_page_falls_back_to_the_last_decision(tmp_path):
+    from liveshape.record.report import decision_spectrum
+    from liveshape.record.writer import load_run
+
+    rec = RunRecorder.create(tmp_path, name="dec", spec_mapping={}, rig_mapping={},
+                             calibration={}, fs_hz=FS_HZ, now=NOW)
+    f = np.arange(FRAME // 2 + 1) * FS_HZ / FRAME
+    target = NAVMAT.asd_at(f)
+    for i, (dec_db, dof) in enumerate(((np.nan, 0.0), (-1.0, 240.0), (np.nan, 0.0)), start=1):
+        rec.update(i, float(i), f, target * 2.0, target, target * 1e-3,
+                   arrays={"decision_psd": target * 10 ** (dec_db / 10)}, decision_dof=dof,
+                   dof=60.0)
+    rec.close({"status": "completed"})
+    d = decision_spectrum(load_run(rec.root))
+    assert d.source == "decision" and d.dof == 240.0
+    np.testing.assert_allclose(d.control_psd[target > 0], target[target > 0] * 10 ** -0.1)
+    first = _pdf_pages(render_report(rec.root).pdf_path)[0]
+    assert "last decision, update 2 at 2.0 s, 240 DOF (no full-level average" in first
+    assert "-1.00 dB   (alarm ±1 dB" in first  # 10 log10 of the power ratio 10^-0.1
+
+
 def test_failed_verdict_lists_its_reasons(tmp_path):
     root = _demo_run(tmp_path)
     _with_summary(root, verdict="fail", verdict_rule="pass: demo rule",
@@ -554,6 +575,19 @@ def test_report_of_real_completed_aborted_and_stopped_runs(tmp_path):
     pages = _pdf_pages(render_report(done.run_dir).pdf_path)
     assert len(pages) >= 5
     assert not any("ABORTED" in p or "STOPPED" in p for p in pages)
+    summary = json.loads((done.run_dir / "summary.json").read_text())
+    assert summary["verdict"].upper() in pages[0].split("\n")  # the verdict's headline
+    dof = summary["full_level_dof"]
+    assert f"full-level average, {dof:.0f} DOF" in pages[0]
+    for words in ("response rms, 0.5 s blocks", "control rms per update", "rms alarm ±1 dB",
+                  "target rms at the level", "test level"):
+        assert words in pages[1], words
+    for words in ("drive PSD", "FRF estimate H1", "coherence", "phase (deg)"):
+        assert words in pages[2], words
+    for words in ("largest line deviation", "smallest line deviation", "rms abort ±1.5 dB",
+                  "alarm ±4.5 dB, 20-40 Hz"):
+        assert words in pages[3], words
+    assert "event log (1 of" in pages[4] and "done: completed" in pages[-1]
     # Kurtosis of the response over the time at full level, as scipy computes it.
     events = _events_of(done.run_dir)
     full = next(e for e in events if e["kind"] == "level" and e["data"]["level_db"] == 0.0)

@@ -623,6 +623,12 @@ def _log_axis(axis: Any) -> None:
     axis.set_minor_formatter(NullFormatter())
 
 
+def _legend(ax: Any, **kwargs: Any) -> None:
+    """A legend when something on the axes has a label."""
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(**kwargs)
+
+
 def _no_data(ax: Any, message: str) -> None:
     ax.text(0.5, 0.5, message, ha="center", va="center", transform=ax.transAxes, fontsize=9)
     ax.set_axis_off()
@@ -671,7 +677,7 @@ def draw_control(ax: Any, d: DecisionSpectrum | None, units: str) -> None:
     ax.set_title(f"control vs target: {d.label}", fontsize=9)
     ax.tick_params(labelsize=7)
     ax.grid(True, which="both", color="#dddddd", lw=0.5)
-    ax.legend(loc="lower center", fontsize=7, ncol=3)
+    _legend(ax, loc="lower center", fontsize=7, ncol=3)
 
 
 def draw_drive(ax: Any, run: RunData, psd_limit_note: str = "") -> None:
@@ -695,7 +701,7 @@ def draw_drive(ax: Any, run: RunData, psd_limit_note: str = "") -> None:
     ax.set_title("drive PSD as played (first and last update)" + psd_limit_note, fontsize=9)
     ax.tick_params(labelsize=7)
     ax.grid(True, which="both", color="#dddddd", lw=0.5)
-    ax.legend(loc="best", fontsize=7)
+    _legend(ax, loc="best", fontsize=7)
 
 
 def draw_frf(axes: Sequence[Any], run: RunData, units: str) -> None:
@@ -733,7 +739,7 @@ def _line_limit_sets(tol: Tolerance) -> list[tuple[str, float, float]]:
     """``(where, alarm_db, abort_db)`` for the base limits and each tolerance band."""
     out = [("elsewhere" if tol.bands else "all lines", tol.alarm_db, tol.abort_db)]
     for b in tol.bands:
-        out.append((f"{b.f_lo_hz:g}–{b.f_hi_hz:g} Hz", b.alarm_db, b.abort_db))
+        out.append((f"{b.f_lo_hz:g}-{b.f_hi_hz:g} Hz", b.alarm_db, b.abort_db))
     return out
 
 
@@ -765,7 +771,7 @@ def draw_line_error(ax: Any, run: RunData, tol: Tolerance) -> None:
     ax.set_title("line deviation per update (each update's own estimate)", fontsize=9)
     ax.tick_params(labelsize=7)
     ax.grid(True, color="#dddddd", lw=0.5)
-    ax.legend(loc="upper right", fontsize=6.5, ncol=2)
+    _legend(ax, loc="upper right", fontsize=6.5, ncol=2)
 
 
 def draw_rms_error(ax: Any, run: RunData, tol: Tolerance) -> None:
@@ -790,7 +796,7 @@ def draw_rms_error(ax: Any, run: RunData, tol: Tolerance) -> None:
     ax.set_title("rms error per update", fontsize=9)
     ax.tick_params(labelsize=7)
     ax.grid(True, color="#dddddd", lw=0.5)
-    ax.legend(loc="upper right", fontsize=7)
+    _legend(ax, loc="upper right", fontsize=7)
 
 
 def _time_limits(ax: Any, run: RunData) -> None:
@@ -821,7 +827,7 @@ def draw_level(ax: Any, run: RunData, ending: _Ending) -> None:
     ax.set_title("test level", fontsize=9)
     ax.tick_params(labelsize=7)
     ax.grid(True, color="#dddddd", lw=0.5)
-    ax.legend(loc="lower right", fontsize=7)
+    _legend(ax, loc="lower right", fontsize=7)
 
 
 def draw_control_rms(ax: Any, run: RunData, tol: Tolerance, ending: _Ending,
@@ -866,7 +872,7 @@ def draw_control_rms(ax: Any, run: RunData, tol: Tolerance, ending: _Ending,
     ax.set_title("control rms against run time", fontsize=9)
     ax.tick_params(labelsize=7)
     ax.grid(True, color="#dddddd", lw=0.5)
-    ax.legend(loc="upper left", fontsize=7)
+    _legend(ax, loc="upper left", fontsize=7)
 
 
 # --------------------------------------------------------------------------------------------
