@@ -291,8 +291,13 @@ def _signal_window(run: RunData) -> tuple[float, float | None, str]:
     if last is not None:
         ramp = last.data.get("ramp_s")
         start = last.t_s + (float(ramp) if _finite(ramp) else 0.0)
-        return start, None, (f"from {start:.1f} s to the end at the last level reached, "
-                             f"{float(last.data['level_db']):+g} dB (full level not reached)")
+        end = next((ev.t_s for ev in run.events if math.isfinite(ev.t_s) and ev.t_s >= start
+                    and (ev.kind in ("trip", "stop", "crash") or (
+                        ev.kind == "stage" and ev.data.get("stage") in ("ramp_down", "done")))),
+                   None)
+        until = f"{end:.1f} s" if end is not None else "the end"
+        return start, end, (f"{start:.1f} s to {until} at the last level reached, "
+                            f"{float(last.data['level_db']):+g} dB (full level not reached)")
     return 0.0, None, "the whole record (no level step recorded)"
 
 
@@ -955,6 +960,8 @@ def _figure_rows(run: RunData, d: DecisionSpectrum | None, tol: Tolerance,
         rows.append(("time in alarm", f"{100 * float(s['alarm_fraction']):.0f} % of the "
                      "full-level time" + (f"   (at most {100 * float(lim):.0f} %)"
                                           if _finite(lim) else "")))
+        if _finite(lim) and float(s["alarm_fraction"]) > float(lim):
+            colours[len(rows) - 1] = red
     full_s = _spec_number(run, "schedule", "full_level_s")
     rows.append(("time at full level", f"{_fmt(s.get('time_at_full_level_s'), '.1f', 's')}"
                  + (f" of {full_s:g} s" if full_s is not None else "")))
