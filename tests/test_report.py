@@ -607,3 +607,19 @@ def test_report_of_real_completed_aborted_and_stopped_runs(tmp_path):
     stop = next(e for e in _events_of(stopped.run_dir) if e["kind"] == "stop")
     pages = _pdf_pages(render_report(stopped.run_dir).pdf_path)
     assert all(f"STOPPED at {stop['t_s']:.1f} s: operator asked to stop" in p for p in pages)
+
+
+def test_signals_of_a_run_stopped_in_a_ramp_come_from_the_step_before(tmp_path):
+    from liveshape.record.report import _signal_window
+    from liveshape.record.writer import load_run
+
+    rec = RunRecorder.create(tmp_path, name="ramp", spec_mapping={}, rig_mapping={},
+                             calibration={}, fs_hz=1000, now=NOW)
+    rec.event(10.0, "level", "level -3 dB", {"level_db": -3.0, "ramp_s": 0.5})
+    rec.event(20.0, "level", "level 0 dB", {"level_db": 0.0, "ramp_s": 0.5})
+    rec.event(20.2, "stop", "stop: asked", {})  # inside the ramp to 0 dB
+    rec.event(20.5, "stage", "ramp down", {"stage": "ramp_down"})
+    rec.close({"status": "stopped"})
+    start, end, words = _signal_window(load_run(rec.root))
+    assert (start, end) == (10.5, 20.0)
+    assert "-3 dB (full level not reached)" in words

@@ -284,20 +284,24 @@ def _signal_window(run: RunData) -> tuple[float, float | None, str]:
     if window is not None:
         return window[0], window[1], (f"{window[1] - window[0]:.1f} s at full level "
                                       f"({window[0]:.1f}–{window[1]:.1f} s)")
-    last = None
-    for ev in run.events:
-        if ev.kind == "level" and math.isfinite(ev.t_s) and _finite(ev.data.get("level_db")):
-            last = ev
-    if last is not None:
-        ramp = last.data.get("ramp_s")
-        start = last.t_s + (float(ramp) if _finite(ramp) else 0.0)
-        end = next((ev.t_s for ev in run.events if math.isfinite(ev.t_s) and ev.t_s >= start
-                    and (ev.kind in ("trip", "stop", "crash") or (
-                        ev.kind == "stage" and ev.data.get("stage") in ("ramp_down", "done")))),
-                   None)
+    levels = [ev for ev in run.events if ev.kind == "level" and math.isfinite(ev.t_s)
+              and _finite(ev.data.get("level_db"))]
+    stops = [ev.t_s for ev in run.events if math.isfinite(ev.t_s) and (
+        ev.kind in ("trip", "stop", "crash")
+        or (ev.kind == "stage" and ev.data.get("stage") in ("ramp_down", "done")))]
+    for i in range(len(levels) - 1, -1, -1):  # the last level step held for a while
+        ev = levels[i]
+        ramp = ev.data.get("ramp_s")
+        start = ev.t_s + (float(ramp) if _finite(ramp) else 0.0)
+        ends = [t for t in stops if t >= ev.t_s]
+        if i + 1 < len(levels):
+            ends.append(levels[i + 1].t_s)
+        end = min(ends) if ends else None
+        if end is not None and end - start < 0.5:
+            continue  # the ramp to this step was cut short: take the step before
         until = f"{end:.1f} s" if end is not None else "the end"
-        return start, end, (f"{start:.1f} s to {until} at the last level reached, "
-                            f"{float(last.data['level_db']):+g} dB (full level not reached)")
+        return start, end, (f"{start:.1f} s to {until} at the last level held, "
+                            f"{float(ev.data['level_db']):+g} dB (full level not reached)")
     return 0.0, None, "the whole record (no level step recorded)"
 
 
@@ -563,7 +567,8 @@ def summary_text(run: RunData) -> str:
     lines.append(f"verdict:         {words}")
     lines += [f"                 - {r}" for r in reasons]
     if s.get("abort_reason"):
-        lines.append(f"abort reason:    {s['abort_reason']}")
+        word = "stop reason: " if run.status == "stopped" else "abort reason:"
+        lines.append(f"{word}    {s['abort_reason']}")
     if s.get("error"):
         lines.append(f"error:           {s['error']}")
     control, target = s.get("control_grms_g"), s.get("target_grms_g")
@@ -986,8 +991,9 @@ def _figure_rows(run: RunData, d: DecisionSpectrum | None, tol: Tolerance,
     for key, word in (("drive", "drive"), ("response", "response")):
         st = stats.get(key)
         if st is not None:
-            rows.append((f"{word} kurtosis / crest", f"{st.kurtosis:.2f} / {st.crest_factor:.2f}"
-                         f"   over {st.seconds:.1f} s (Gaussian: kurtosis 3)"))
+            rows.append((f"{word} kurtosis / crest", f"{_fmt(st.kurtosis, '.2f')} / "
+                         f"{_fmt(st.crest_factor, '.2f')}   over {st.seconds:.1f} s "
+                         "(Gaussian: kurtosis 3)"))
         else:
             rows.append((f"{word} kurtosis / crest", f"not available (no {word}.wav)"))
     if tol_note:

@@ -363,7 +363,10 @@ def result_rows(result: Mapping[str, Any]) -> list[Row]:
     if isinstance(trip, Mapping) and trip.get("rule"):
         rows.append(_row("abort rule", str(trip["rule"]), "abort"))
     if result.get("abort_reason"):
-        rows.append(_row("abort reason", str(result["abort_reason"]), "abort"))
+        if status == "stopped":
+            rows.append(_row("stop reason", str(result["abort_reason"]), "alarm"))
+        else:
+            rows.append(_row("abort reason", str(result["abort_reason"]), "abort"))
     rows += verdict_rows(result)
     rows += [
         _row("grms control / target", f"{fmt(result.get('control_grms_g'), '.3f')} / "
