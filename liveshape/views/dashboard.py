@@ -183,6 +183,8 @@ def _row_table(title: str | None, rows: Sequence[tuple[str, Sequence[tuple[str, 
                *, no_wrap: bool = True) -> Table:
     table = _kv_table(title)
     table.columns[1].no_wrap = no_wrap
+    if not no_wrap:
+        table.columns[1].overflow = "fold"  # a long path folds rather than loses its end
     for label, pieces in rows:
         table.add_row(label, _cell(pieces))
     return table

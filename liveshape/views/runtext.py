@@ -230,7 +230,7 @@ def _outside_pieces(snapshot: Any) -> tuple[Piece, ...]:
 def control_rows(snapshot: Any) -> list[Row]:
     """grms against target, rms error, line deviations, lines outside, DOF and χ² band."""
     grms, err = _grms_text(snapshot)
-    dof = as_finite(field(snapshot, "dof"))
+    dof = as_finite(field(snapshot, "dof")) or None  # 0 DOF: no estimate yet
     lo, hi = chi2_band_db(snapshot, dof)
     return [
         _row("grms control / target", f"{grms}  ({fmt_db(err)})"),
@@ -248,7 +248,7 @@ def compact_control_rows(snapshot: Any) -> list[Row]:
     """The control numbers of the compact view, one per row (label and value within 35
     characters for counts up to 4 digits)."""
     grms, _ = _grms_text(snapshot)
-    dof = as_finite(field(snapshot, "dof"))
+    dof = as_finite(field(snapshot, "dof")) or None  # 0 DOF: no estimate yet
     lo, hi = chi2_band_db(snapshot, dof)
     return [
         _row("grms", grms),
