@@ -337,7 +337,7 @@ def test_first_page_identity_verdict_and_full_level_figures(tmp_path):
     for words in ("demo", "tests/demo.yaml", "ab" * 32, "liveshape 9.8.7",
                   "2024-03-04T05:06:07+00:00", "R. Tester", "SN 0042", "PASS",
                   "rule: pass: demo rule", "full-level average, 364 DOF",
-                  "5 % of the full-level time   (at most 10 %)"):
+                  "5 % of the full-level time   (at most 10 %)", "reviewed by:", "signature:"):
         assert words in first, words
     # The figures are those of the stored average: rms error 10 log10(sum C / sum T) (a power
     # ratio in decibels), signed line deviations (the worst line is negative: no "+").

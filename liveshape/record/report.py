@@ -1027,10 +1027,12 @@ def _first_page(page: _Page, run: RunData, tol: Tolerance, d: DecisionSpectrum |
     n_rows = sum(1 + len(v) // 92 for _, v in rows)
     table_h = 0.0125 * n_rows + 0.01
     plot_top = y - 0.02
-    plot_bottom = 0.045 + table_h + 0.045
+    plot_bottom = 0.075 + table_h + 0.045
     ax = page.axes((0.1, plot_bottom, 0.86, max(plot_top - plot_bottom, 0.15)))
     draw_control(ax, d, units)
     _text_block(fig, 0.06, plot_bottom - 0.045, rows, label_w=0.2, colours=colours)
+    fig.text(0.06, 0.045, "reviewed by: " + "_" * 28 + "     date: " + "_" * 16
+             + "     signature: " + "_" * 28, fontsize=8, color="#444444")
 
 
 def _event_lines(run: RunData) -> list[str]:
