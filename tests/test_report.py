@@ -623,3 +623,18 @@ def test_signals_of_a_run_stopped_in_a_ramp_come_from_the_step_before(tmp_path):
     start, end, words = _signal_window(load_run(rec.root))
     assert (start, end) == (10.5, 20.0)
     assert "-3 dB (full level not reached)" in words
+
+
+def test_report_of_a_record_without_signals(tmp_path):
+    rec = RunRecorder.create(tmp_path, name="nowav", spec_mapping={}, rig_mapping={},
+                             calibration={}, fs_hz=FS_HZ, now=NOW, signals=False)
+    f = np.arange(FRAME // 2 + 1) * FS_HZ / FRAME
+    target = NAVMAT.asd_at(f)
+    drive = np.where(target > 0, 1e-6, 0.0)
+    rec.update(1, 1.0, f, target, target, drive, dof=60.0)
+    rec.close({"status": "completed"})
+    first = _pdf_pages(render_report(rec.root).pdf_path)[0]
+    # Drive rms from the last update's drive PSD: sqrt(sum G df) over the lines with a target.
+    rms = math.sqrt(1e-6 * np.count_nonzero(target > 0) * FS_HZ / FRAME)
+    assert f"{rms:.3f} FS in the band, last update" in first and "no drive.wav, so no peak" in first
+    assert "not available (no drive.wav)" in first and "not available (no response.wav)" in first
