@@ -1035,16 +1035,23 @@ def _first_page(page: _Page, run: RunData, tol: Tolerance, d: DecisionSpectrum |
              + "     signature: " + "_" * 28, fontsize=8, color="#444444")
 
 
-def _event_lines(run: RunData) -> list[str]:
+_EVENT_COLOURS = {"trip": "#c62828", "abort": "#c62828", "crash": "#c62828", "stop": "#b26a00",
+                  "alarm": "#b26a00"}
+
+
+def _event_lines(run: RunData) -> list[tuple[str, str]]:
+    """``(text, colour)`` per printed line of the event log (long messages wrapped)."""
     out = []
     for ev in run.events:
         t = f"{ev.t_s:9.2f}" if math.isfinite(ev.t_s) else "        -"
         msg = textwrap.wrap(ev.message, 88) or [""]
-        out.append(f"{t}  {ev.kind[:12]:<12}  {msg[0]}")
-        out += [" " * 25 + m for m in msg[1:]]
+        colour = _EVENT_COLOURS.get(ev.kind, "#111111")
+        out.append((f"{t}  {ev.kind[:12]:<12}  {msg[0]}", colour))
+        out += [(" " * 25 + m, colour) for m in msg[1:]]
     if run.skipped_event_lines:
-        out.append(f"({run.skipped_event_lines} unreadable line(s) of events.jsonl skipped)")
-    return out or ["(no events recorded)"]
+        out.append((f"({run.skipped_event_lines} unreadable line(s) of events.jsonl skipped)",
+                    "#555555"))
+    return out or [("(no events recorded)", "#555555")]
 
 
 def _build_pages(run: RunData, figure_cls: Any) -> list[_Page]:
@@ -1108,8 +1115,9 @@ def _build_pages(run: RunData, figure_cls: Any) -> list[_Page]:
               for i in range(0, len(lines), EVENT_LINES_PER_PAGE)]
     for k, chunk in enumerate(chunks, start=1):
         p = page(f"{4 + k}  event log ({k} of {len(chunks)}): run time (s), kind, message")
-        p.fig.text(0.06, p.top - 0.01, "\n".join(chunk), fontsize=6.8, va="top",
-                   family="monospace", linespacing=1.25)
+        for i, (line, colour) in enumerate(chunk):
+            p.fig.text(0.06, p.top - 0.01 - i * 0.0108, line, fontsize=6.8, va="top",
+                       family="monospace", color=colour)
         pages.append(p)
     for i, pg in enumerate(pages, start=1):
         pg.footer.set_text(f"page {i} of {len(pages)}")
