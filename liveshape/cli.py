@@ -153,7 +153,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     spec = load_spec(args.spec, overrides)
     # The cautions come first, before anything is driven (on stderr with --json).
     notice_console = dashboard.make_console(stderr=args.json)
-    notice_console.print(dashboard.safety_notice())
+    notice_console.print(dashboard.safety_notice(spec.rig.kind, spec.rig.plant))
     if spec.rig.kind == "sim":
         # Name what the rig cannot honestly do before anything is driven (see check --rig).
         feas = _feasibility(spec)
@@ -222,7 +222,7 @@ def _cmd_survey(args: argparse.Namespace) -> int:
     settings = survey_settings(spec, level_fs=args.level, duration_s=args.duration,
                                seed=args.seed)
     notice = dashboard.make_console(stderr=True)
-    notice.print(dashboard.safety_notice())
+    notice.print(dashboard.safety_notice(spec.rig.kind, spec.rig.plant))
     result, folder = run_survey(spec, settings, out_dir=args.out,
                                 identity={"operator": args.operator,
                                           "test_item": args.test_item})
@@ -242,8 +242,9 @@ SURVEY_FLAGGED_EXIT = 5
 def _cmd_report(args: argparse.Namespace) -> int:
     from liveshape.record.report import render_report
 
-    result = render_report(args.run_dir, out_dir=args.out)
+    result = render_report(args.run_dir, out_dir=args.out, png=args.png)
     sys.stdout.write(result.summary.rstrip("\n") + "\n")
+    sys.stdout.write(f"report: {result.pdf_path}\n")
     for name, path in result.pngs.items():
         sys.stdout.write(f"{name}: {path}\n")
     sys.stdout.write(f"summary: {result.summary_path}\n")
@@ -509,9 +510,10 @@ def build_parser() -> argparse.ArgumentParser:
     sv.add_argument("--json", action="store_true", help="print one JSON object")
     sv.set_defaults(func=_cmd_survey)
 
-    rp = sub.add_parser("report", help="plots and a text summary from a run record")
+    rp = sub.add_parser("report", help="the test report (report.pdf) of a run record")
     rp.add_argument("run_dir", metavar="RUN_DIR", help="a run folder made by liveshape run")
     rp.add_argument("--out", metavar="DIR", help="where to write (default RUN_DIR/report)")
+    rp.add_argument("--png", action="store_true", help="also write the plots as PNG files")
     rp.set_defaults(func=_cmd_report)
 
     d = sub.add_parser("devices", help="list audio devices (index, host API, channels, rate)")

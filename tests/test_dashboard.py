@@ -3,8 +3,9 @@
 Outside references: the chi-square confidence interval of a PSD estimate (Bendat & Piersol,
 Random Data; computed here with scipy.stats.chi2), Welch's (1967) equivalent DOF of overlapped
 Hann segments (c(1) = 1/6 at 50 % overlap), the NAVMAT P-9492 screening profile and the exact
-integral of a power-law segment (docs/methods.md, "Profile integrals"), and the decibel definition
-10·log10 of a power ratio.
+integral of a power-law segment (docs/methods.md, "Profile integrals"), the decibel definition
+10·log10 of a power ratio, and the terminal sizes 80×24 (the VT100's screen, DEC VT100 User
+Guide, 1978) and 140×45 [common practice for a wide terminal].
 """
 
 from __future__ import annotations
@@ -23,6 +24,7 @@ from liveshape.control.safety import Trip
 from liveshape.dsp.profile import Profile
 from liveshape.testdef.tolerance import Tolerance
 from liveshape.views import dashboard as dash
+from liveshape.views import runtext
 
 WIDTH = 120
 
@@ -71,7 +73,8 @@ def test_dashboard_shows_the_numbers():
     out = _render(dash.dashboard(_snapshot()))
     assert "full level" in out
     assert "level +0.0 dB" in out and "step 5 of 5" in out
-    assert "elapsed 0:42" in out and "remaining 0:55" in out and "at full level 0:05" in out
+    assert "elapsed 0:42" in out and "left at full level 0:55" in out
+    assert "at full level 0:05 of 1:00" in out
     assert "5.912 / 6.058 g" in out
     # 20 log10(5.912 / 6.058) = -0.21 dB (decibels of an amplitude ratio).
     assert f"({20 * math.log10(5.912 / 6.058):+.2f} dB)" in out
@@ -251,8 +254,10 @@ def test_run_summary_and_synth_summary():
         "time_at_full_level_s": 12.25, "calibrated": False,
     }))
     for word in ("aborted", "lines_abort: 4 lines beyond 6 dB", "5.500 / 6.058 g", "-0.84 dB",
-                 "+7.20 dB", "40 / 4", "12.2 s", "calibrated"):
+                 "40 / 4", "12.2 s", "calibrated"):
         assert word in out, word
+    # final_max_dev_db is the largest |deviation| of a line: a magnitude, no forced sign.
+    assert re.search(r"final worst line \|deviation\|\s+7.20 dB", out) and "+7.20" not in out
     out = _render(dash.synth_summary({"path": "drive.wav", "duration_s": 60.0,
                                       "rms_fs": 0.25, "crest_factor": 4.0, "kurtosis": 2.98}))
     assert re.search(r"duration\s+60 s", out) and re.search(r"rms\s+0.25 FS", out)
@@ -381,3 +386,176 @@ def test_dashboard_of_a_real_controller_snapshot():
     hi = 10 * math.log10(nu / scipy.stats.chi2.ppf(0.05, nu))
     assert f"{nu:.0f}   90 % χ² band {lo:+.2f} / {hi:+.2f} dB" in out
     assert snap.recent_events[-1].message in out
+
+
+# --------------------------------------------------------------------------------------------
+# The live view at 80×24 and 140×45
+
+
+def _render_sized(renderable, width: int, height: int) -> list[str]:
+    from rich.cells import cell_len
+
+    console = dash.make_console(file=io.StringIO(), width=width)
+    console.height = height
+    console.print(renderable)
+    lines = console.file.getvalue().rstrip("\n").split("\n")
+    assert all(cell_len(line) <= width for line in lines)
+    return lines
+
+
+def _long_snapshot(**kw):
+    """Demo values as wide as they get: hours of run, many updates, limits that vary by band."""
+    alarm = np.where(_F_HZ < 40, 4.5, 3.0)
+    return _snapshot(elapsed_s=99 * 3600.0, t_s=99 * 3600.0, remaining_s=36000.0,
+                     full_level_s=36000.0, time_at_full_level_s=35999.0, updates=12345,
+                     drive_rms_fs=0.4567,
+                     drive_rms_limit_fs=0.5, drive_peak_fs=0.999, max_dev_db=-13.25,
+                     min_dev_db=-18.5, rms_error_db=-10.75, lines_outside_alarm=4096,
+                     lines_outside_abort=4096, dof=1234.0, alarm_db=alarm, abort_db=alarm + 3,
+                     **kw)
+
+
+@pytest.mark.parametrize("make", [_snapshot, _long_snapshot])
+def test_dashboard_fits_80_by_24(make):
+    lines = _render_sized(dash.dashboard(make(), width=80, height=24), 80, 24)
+    assert len(lines) <= 23  # one row left for the cursor, so nothing scrolls off
+    text = "\n".join(lines)
+    # The tolerance state, stage, level and step on the first row inside the panel.
+    assert re.search(r"ABORT PENDING\s+full level\s+level \+0\.0 dB\s+step 5/5", lines[1])
+    # Each key number whole on one row (a wrapped value would be cut across two).
+    snap = make()
+    esc = re.escape
+    for pattern in (r"grms\s+" + esc(f"{snap.control_grms_g:.3f} / {snap.target_grms_g:.3f} g"),
+                    r"rms error\s+" + esc(f"{snap.rms_error_db:+.2f} dB"),
+                    r"max/min dev\s+" + esc(f"{snap.max_dev_db:+.1f}/{snap.min_dev_db:+.1f} dB"),
+                    rf"outside\s+{snap.lines_outside_alarm} alarm  {snap.lines_outside_abort} "
+                    "abort",
+                    rf"DOF\s+{snap.dof:.0f}  χ² ",
+                    rf"drive rms\s+{snap.drive_rms_fs:.3f}/0\.500 FS",
+                    rf"drive peak\s+{snap.drive_peak_fs:.3f}/1\.000 FS",
+                    r"to full level\s+reached", r"at full level\s+\d+:\d\d(:\d\d)? of ",
+                    r"left at full level\s+\d+:\d\d"):
+        assert re.search(pattern, text), pattern
+    # The smaller spectrum plot with its axes and legend, and the last events.
+    assert "└" in text and "Hz" in text and "● control" in text
+    # Nothing cut short either (the legend writes limits that vary by band as 3…4.5).
+    assert "…" not in re.sub(r"\d…\d", "", text)
+    assert "17 lines outside alarm" in text
+
+
+@pytest.mark.parametrize("make", [_snapshot, _long_snapshot])
+def test_dashboard_fits_140_by_45(make):
+    lines = _render_sized(dash.dashboard(make(), width=140, height=45), 140, 45)
+    assert len(lines) <= 44
+    text = "\n".join(lines)
+    assert re.search(r"liveshape\s+ABORT PENDING\s+full level\s+level \+0\.0 dB\s+"
+                     r"step 5 of 5", text)
+    assert re.search(r"elapsed \S+\s+to full level reached\s+at full level \S+ of \S+\s+"
+                     r"left at full level \S+", text)
+    snap = make()
+    for pattern in (rf"grms control / target\s+{snap.control_grms_g:.3f} / ",
+                    r"line deviation max / min\s+"
+                    + re.escape(f"{snap.max_dev_db:+.2f} dB / {snap.min_dev_db:+.2f} dB"),
+                    rf"DOF\s+{snap.dof:.0f}\s+90 % χ² band [-+]\d\.\d\d / \+\d\.\d\d dB",
+                    r"rms\s+\d\.\d{3} of 0\.500 FS  \(\d+ %\)"):
+        assert re.search(pattern, text), pattern
+    assert "events" in text and "identify: low-level noise" in text
+
+
+def test_live_view_takes_the_console_size():
+    console = dash.make_console(file=io.StringIO(), width=80)
+    console.height = 24
+    with dash.LiveView(console, refresh_hz=5.0, clock=lambda: 0.0) as view:
+        view.update(_snapshot())
+    out = console.file.getvalue()
+    assert re.search(r"left at full level\s+0:55", out)  # the compact layout's rows
+
+
+@pytest.mark.parametrize("state, word, role", [
+    ("in tolerance", "IN TOLERANCE", "ok"), ("alarm", "ALARM", "alarm"),
+    ("abort pending", "ABORT PENDING", "abort"),
+])
+def test_tolerance_state_in_words_and_colour(state, word, role):
+    snap = _snapshot(tolerance_state=state)
+    text = dash._cell(runtext.header_pieces(snap, compact=True))
+    start = text.plain.index(word)
+    styles = {str(span.style) for span in text.spans
+              if span.start <= start < span.end}
+    assert styles == {getattr(dash.PALETTE, role)}
+
+
+def test_tolerance_state_from_the_numbers_when_the_snapshot_has_none():
+    def state(**kw):
+        return runtext.tolerance_state(_snapshot(**kw))
+
+    assert state() == "abort pending"  # 2 lines beyond the abort limit
+    assert state(lines_outside_abort=0) == "alarm"
+    assert state(lines_outside_abort=0, lines_outside_alarm=0) == "in tolerance"
+    assert state(lines_outside_abort=-1, lines_outside_alarm=-1) == ""  # no estimate yet
+    lines = _render_sized(dash.dashboard(_snapshot(lines_outside_abort=-1,
+                                                   lines_outside_alarm=-1), width=80,
+                                         height=24), 80, 24)
+    assert "NO ESTIMATE YET" in lines[1]
+    ended = _render_sized(dash.dashboard(_snapshot(status="aborted"), width=80, height=24),
+                          80, 24)
+    assert "ABORTED" in ended[1]
+
+
+def test_steps_to_full_level_and_time_left_at_full_level():
+    lines = "\n".join(_render_sized(dash.dashboard(
+        _snapshot(step_index=1, stage="equalize", level_db=-9.0, time_at_full_level_s=0.0,
+                  remaining_s=60.0), width=140, height=45), 140, 45))
+    assert re.search(r"to full level 3 steps\s+at full level 0:00 of 1:00\s+"
+                     r"left at full level 1:00", lines)
+    one = runtext.to_full_level_text(_snapshot(step_index=3))
+    assert one == "1 step"
+
+
+def test_result_labels_have_units_and_no_raw_keys():
+    out = _render(dash.run_summary({
+        "status": "completed", "calibration": {"accel_mv_per_g": 100.0, "g_per_fs": 10.0,
+                                               "out_v_per_fs": 1.0, "loop_delay_samples": 1536},
+        "rig": {"excursion_last_peak_m": 7.833e-12, "excursion_peak_m": 0.0002154, "t_s": 70.3,
+                "active_faults": []},
+    }))
+    for pattern in (r"calibration accelerometer sensitivity\s+100 mV/g",
+                    r"calibration g per full scale\s+10 g/FS",
+                    r"calibration output\s+1 V/FS", r"calibration loop delay\s+1536 samples",
+                    r"rig excursion last peak\s+0 mm", r"rig excursion peak\s+0.2154 mm",
+                    r"rig run time\s+70.3 s", r"rig active faults\s+none"):
+        assert re.search(pattern, out), pattern
+    assert "e-1" not in out and "mv per" not in out and "g per 10" not in out
+    out = _render(dash.synth_summary({"target_grms": 4.258, "rms_g": 4.25}))
+    assert re.search(r"target\s+4.258 g rms", out)
+
+
+def test_result_rows_show_the_verdict_and_full_level_average():
+    out = _render(dash.run_summary({
+        "status": "completed", "verdict": "fail", "verdict_rule": "pass: demo rule",
+        "verdict_reasons": ["3 lines outside the alarm limit"], "full_level_dof": 364.4,
+        "full_level_rms_error_db": 0.0019, "full_level_max_dev_db": 3.4,
+        "full_level_min_dev_db": -0.9, "full_level_lines_outside_alarm": 3,
+        "full_level_lines_outside_abort": 0, "full_level_control_grms_g": 1.107,
+        "alarm_fraction": 0.25, "max_alarm_fraction": 0.1,
+    }))
+    for pattern in (r"verdict\s+FAIL", r"reason\s+3 lines outside the alarm limit",
+                    r"rule\s+pass: demo rule", r"full-level average\s+364 DOF, 1.107 g",
+                    r"rms error\s+\+0.00 dB", r"line deviation max / min\s+\+3.40 dB / -0.90 dB",
+                    r"lines outside alarm / abort\s+3 / 0",
+                    r"time in alarm\s+25 % of the full-level time \(at most 10 %\)"):
+        assert re.search(pattern, out), pattern
+    assert "verdict_reasons" not in out and "['" not in out
+
+
+@pytest.mark.parametrize("kind, plant, present, absent", [
+    ("sim", "bench", "Simulated rig (bench): nothing is driven", "Loudspeaker"),
+    ("sim", "presets/loudspeaker.yaml", "Loudspeaker shakers are loud", "Shakers can be"),
+    ("audio", None, "Shakers can be loud", "Simulated"),
+])
+def test_safety_notice_fits_the_rig(kind, plant, present, absent):
+    lines = _render_sized(dash.safety_notice(kind, plant), 80, 24)
+    text = "\n".join(lines)
+    assert present in text and absent not in text
+    bullets = [line for line in lines if "•" in line]
+    assert len(bullets) == 6
+    assert len(lines) == 6 + 2 + (kind == "sim")  # one row per caution: none wraps

@@ -76,9 +76,10 @@ def test_run_completes_with_record(completed: tuple[int, dict, str]) -> None:
 
 def test_report_from_the_record(completed: tuple[int, dict, str], tmp_path: Path) -> None:
     _, data, _ = completed
-    proc = subprocess.run(cli("report", data["run_dir"], "--out", str(tmp_path)),
+    proc = subprocess.run(cli("report", data["run_dir"], "--out", str(tmp_path), "--png"),
                           capture_output=True, text=True, cwd=REPO, timeout=300)
     assert proc.returncode == 0, proc.stderr
+    assert (tmp_path / "report.pdf").read_bytes().startswith(b"%PDF-")  # ISO 32000-1 §7.5.2
     pngs = sorted(p.name for p in tmp_path.glob("*.png"))
     assert {"control.png", "drive.png", "frf.png", "convergence.png", "level.png"} <= set(pngs)
     assert "completed" in (tmp_path / "summary.txt").read_text()

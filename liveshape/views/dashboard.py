@@ -100,6 +100,7 @@ def spectrum_plot(
     *,
     width: int = 72,
     height: int = 15,
+    max_width: int | None = None,
 ) -> Text:
     """Character plot of control against target with the alarm and abort limits.
 
@@ -135,13 +136,27 @@ def spectrum_plot(
             run_style = style
         text.append(run_chars + "\n", style=run_style)
     text.append(" " * label_w + "└" + "─" * len(grid.chars[0]) + "\n", style=PALETTE.border)
-    text.append(" " * (label_w + 1) + grid.x_axis + "  Hz\n", style=PALETTE.label)
-    legend = Text(" " * (label_w + 1))
-    legend.append("─ target  ", style=PALETTE.target)
-    legend.append(f"· alarm ±{grid.alarm_span} dB  ", style=PALETTE.alarm)
-    legend.append(f": abort ±{grid.abort_span} dB  ", style=PALETTE.abort)
-    legend.append("● control  ", style=PALETTE.control)
-    legend.append("y: g²/Hz", style=PALETTE.label)
+    axis = grid.x_axis
+    if max_width is not None and label_w + 1 + len(axis) + 4 > max_width:
+        # Drop tick labels that would run past the edge (whole labels only).
+        keep = max(max_width - label_w - 1 - 4, 0)
+        cut = axis[:keep]
+        if len(axis) > keep and axis[keep:keep + 1] not in ("", " "):
+            cut = cut[: len(cut.rstrip().rsplit(" ", 1)[0])] if " " in cut.strip() else ""
+        axis = cut.rstrip()
+    text.append(" " * (label_w + 1) + axis + "  Hz\n", style=PALETTE.label)
+    pieces = (("─ target  ", PALETTE.target), (f"· alarm ±{grid.alarm_span} dB  ", PALETTE.alarm),
+              (f": abort ±{grid.abort_span} dB  ", PALETTE.abort),
+              ("● control  ", PALETTE.control), ("y: g²/Hz", PALETTE.label))
+    indent = " " * (label_w + 1)
+    if max_width is not None and len(indent) + sum(len(t) for t, _ in pieces) > max_width:
+        indent = ""
+        pieces = (("─ target ", PALETTE.target), (f"· alarm ±{grid.alarm_span} ", PALETTE.alarm),
+                  (f": abort ±{grid.abort_span} dB ", PALETTE.abort),
+                  ("● control ", PALETTE.control), ("(g²/Hz)", PALETTE.label))
+    legend = Text(indent)
+    for part, style in pieces:
+        legend.append(part, style=style)
     text.append_text(legend)
     return text
 
@@ -164,19 +179,24 @@ def _cell(pieces: Sequence[tuple[str, str]]) -> str | Text:
     return text
 
 
-def _row_table(title: str | None, rows: Sequence[tuple[str, Sequence[tuple[str, str]]]]) -> Table:
+def _row_table(title: str | None, rows: Sequence[tuple[str, Sequence[tuple[str, str]]]],
+               *, no_wrap: bool = True) -> Table:
     table = _kv_table(title)
+    table.columns[1].no_wrap = no_wrap
+    if not no_wrap:
+        table.columns[1].overflow = "fold"  # a long path folds rather than loses its end
     for label, pieces in rows:
         table.add_row(label, _cell(pieces))
     return table
 
 
-def _events_table(events: Sequence[Any], n: int = 6) -> Table:
-    table = Table(title="events", title_style=PALETTE.title, title_justify="left", box=None,
-                  show_header=False, pad_edge=False, padding=(0, 2, 0, 0))
+def _events_table(events: Sequence[Any], n: int = 6, *, title: bool = True) -> Table:
+    table = Table(title="events" if title else None, title_style=PALETTE.title,
+                  title_justify="left", box=None, show_header=False, pad_edge=False,
+                  padding=(0, 2, 0, 0), expand=True)
     table.add_column(style=PALETTE.label, justify="right", no_wrap=True)
     table.add_column(style=PALETTE.dim, no_wrap=True)
-    table.add_column(style=PALETTE.value)
+    table.add_column(style=PALETTE.value, no_wrap=True, overflow="ellipsis", ratio=1)
     for t, kind, (message, role) in runtext.event_rows(events, n):
         table.add_row(t, kind, Text(message, style=getattr(PALETTE, role)))
     if not table.rows:
@@ -184,28 +204,71 @@ def _events_table(events: Sequence[Any], n: int = 6) -> Table:
     return table
 
 
-def dashboard(snapshot: Any, *, plot_width: int = 72, plot_height: int = 15) -> RenderableType:
-    """The live view of a run, from a frozen controller snapshot.
+#: Below this many columns or rows the live view takes its compact layout.
+COMPACT_BELOW_COLUMNS = 110
+COMPACT_BELOW_ROWS = 40
 
-    Shows the stage, level step, elapsed and remaining time, control against target grms,
-    drive rms and peak against their limits, the line deviations and counts outside the alarm
-    and abort limits, the DOF with the 90 % χ² band it implies (Bendat & Piersol), the spectrum
-    plot (:func:`spectrum_plot`) and the latest events.
-    """
-    tables = Table.grid(padding=(0, 4))
-    tables.add_column()
-    tables.add_column()
-    tables.add_row(_row_table("control", runtext.control_rows(snapshot)),
-                   _row_table("drive", runtext.drive_rows(snapshot)))
+
+def _plot_of(snapshot: Any, width: int, height: int, max_width: int | None) -> Text:
     get = runtext.field
-    plot = spectrum_plot(
+    return spectrum_plot(
         get(snapshot, "f_hz", default=()), get(snapshot, "control_psd"),
         get(snapshot, "target_psd"), get(snapshot, "alarm_db", default=np.nan),
-        get(snapshot, "abort_db", default=np.nan), width=plot_width, height=plot_height,
+        get(snapshot, "abort_db", default=np.nan), width=width, height=height,
+        max_width=max_width,
     )
-    events = get(snapshot, "events", "recent_events", default=())
-    body = Group(_cell(runtext.header_pieces(snapshot)), Text(""), tables, Text(""), plot,
-                 Text(""), _events_table(events))
+
+
+def dashboard(snapshot: Any, *, plot_width: int = 72, plot_height: int = 15,
+              width: int | None = None, height: int | None = None) -> RenderableType:
+    """The live view of a run, from a frozen controller snapshot.
+
+    Shows the tolerance state in words and colour (in tolerance, alarm, abort pending), the
+    stage, level step, elapsed time, the steps still to go to full level and the time left at
+    full level, control against target grms, drive rms and peak against their limits, the line
+    deviations and counts outside the alarm and abort limits, the DOF with the 90 % χ² band it
+    implies (Bendat & Piersol), the spectrum plot (:func:`spectrum_plot`) and the latest events.
+
+    Given the terminal's ``width`` and ``height`` (characters), the layout fits them: below
+    :data:`COMPACT_BELOW_COLUMNS` columns or :data:`COMPACT_BELOW_ROWS` rows a compact layout
+    (one number per row in two columns, a smaller plot, the last two events) that fits 80×24;
+    the full layout otherwise. Without them, the full layout with ``plot_width`` ×
+    ``plot_height``.
+    """
+    inner = None if width is None else max(int(width) - 4, 40)  # panel border and padding
+    if width is not None and (width < COMPACT_BELOW_COLUMNS
+                              or (height is not None and height < COMPACT_BELOW_ROWS)):
+        return _compact(snapshot, inner, 24 if height is None else int(height))
+    if inner is not None:
+        plot_width = min(inner - 22, 110)
+        rows = 45 if height is None else int(height)
+        plot_height = max(min(15, rows - 30), 6)
+    tables = Table.grid(padding=(0, 4))
+    tables.add_column(no_wrap=True)
+    tables.add_column(no_wrap=True)
+    tables.add_row(_row_table("control", runtext.control_rows(snapshot)),
+                   _row_table("drive", runtext.drive_rows(snapshot)))
+    plot = _plot_of(snapshot, plot_width, plot_height, inner)
+    events = runtext.field(snapshot, "events", "recent_events", default=())
+    body = Group(_cell(runtext.header_pieces(snapshot)), _cell(runtext.time_pieces(snapshot)),
+                 Text(""), tables, Text(""), plot, Text(""), _events_table(events))
+    return Panel(body, border_style=PALETTE.border, padding=(0, 1))
+
+
+def _compact(snapshot: Any, inner: int | None, rows: int) -> RenderableType:
+    """The compact live view: fits ``inner`` columns (80 - 4) and ``rows`` rows (24)."""
+    inner = 76 if inner is None else inner
+    # border 2, header 1, numbers 6, blank 1, plot axis + ticks + legend 3, events 2, spare 1
+    plot_height = max(min(8, rows - 16), 3)
+    numbers = Table.grid(padding=(0, 2))
+    numbers.add_column(no_wrap=True)
+    numbers.add_column(no_wrap=True)
+    numbers.add_row(_row_table(None, runtext.compact_control_rows(snapshot)),
+                    _row_table(None, runtext.compact_drive_rows(snapshot)))
+    plot = _plot_of(snapshot, inner - 22, plot_height, inner)
+    events = runtext.field(snapshot, "events", "recent_events", default=())
+    body = Group(_cell(runtext.header_pieces(snapshot, compact=True)), numbers, Text(""), plot,
+                 _events_table(events, 2, title=False))
     return Panel(body, border_style=PALETTE.border, padding=(0, 1))
 
 
@@ -239,8 +302,9 @@ class LiveView:
             return False
         self._pending = None
         self._last_build = now
-        width = min(max(self._live.console.width - 14, 40), 110)
-        self._live.update(dashboard(snapshot, plot_width=width), refresh=True)
+        console = self._live.console
+        self._live.update(dashboard(snapshot, width=console.width, height=console.height),
+                          refresh=True)
         self.builds += 1
         return True
 
@@ -277,22 +341,39 @@ def print_error(console: Console, message: str) -> None:
     console.print(line, soft_wrap=True)
 
 
-def safety_notice() -> RenderableType:
-    """Cautions shown before a run drives real hardware."""
+def safety_notice(rig_kind: str = "audio", plant: str | None = None) -> RenderableType:
+    """Cautions shown before a run, in words that fit the rig in use (each fits 80 columns).
+
+    ``rig_kind`` is ``sim`` for the simulated rig (nothing is driven: a first line says so and
+    names the plant model; the cautions are for the real rig it rehearses) or anything else (a
+    real card driving an amplifier and a shaker). The hearing caution names a loudspeaker only
+    when the plant is one.
+    """
+    name = str(plant).replace("\\", "/").rsplit("/", 1)[-1].removesuffix(".yaml") if plant \
+        else ""
+    if "loudspeaker" in name.lower():
+        hearing = "Loudspeaker shakers are loud at test levels: wear hearing protection."
+    else:
+        hearing = "Shakers can be loud, most of all at resonances: wear hearing protection."
     items = (
-        "Loudspeaker rigs can be loud: wear hearing protection near them.",
+        hearing,
         "Fasten the payload and the fixture; nothing loose on the moving part.",
-        "Turn the amplifier gain to its minimum before the start; raise it only when asked.",
-        "Keep hands, cables and tools clear of the moving parts while the drive is on.",
-        "To stop: press Ctrl-C once; the drive ramps down. Keep the amplifier within reach.",
+        "Turn the amplifier gain to minimum before the start; raise it when asked.",
+        "Keep hands, cables and tools clear of the moving parts while driving.",
+        "To stop: press Ctrl-C once; the drive ramps down. Keep the amp in reach.",
         "Follow your lab's safety rules and work under qualified supervision.",
     )
     text = Text()
+    if rig_kind == "sim":
+        text.append(f"Simulated rig{f' ({name})' if name else ''}: nothing is driven. "
+                    "On the real rig:\n", style=PALETTE.ok)
     for i, item in enumerate(items):
         text.append("• ", style=PALETTE.alarm)
         text.append(item + ("\n" if i < len(items) - 1 else ""), style=PALETTE.value)
-    return Panel(text, title="before you start", title_align="left",
-                 border_style=PALETTE.alarm, padding=(0, 1))
+    title = "before you start" if rig_kind != "sim" else "before you start (simulated run)"
+    return Panel(text, title=title, title_align="left",
+                 border_style=PALETTE.alarm if rig_kind != "sim" else PALETTE.border,
+                 padding=(0, 1))
 
 
 @contextmanager
@@ -323,7 +404,7 @@ def run_summary(result: Mapping[str, Any] | Any) -> RenderableType:
 
     ``result`` is a mapping (``summary.json``) or the controller's result dataclass.
     """
-    table = _row_table(None, runtext.result_rows(runtext.as_mapping(result)))
+    table = _row_table(None, runtext.result_rows(runtext.as_mapping(result)), no_wrap=False)
     return Panel(table, title="run result", title_align="left", border_style=PALETTE.border)
 
 

@@ -16,6 +16,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from liveshape.views.textformat import (
+    DASH,
     as_count,
     as_finite,
     fmt,
@@ -27,8 +28,11 @@ from liveshape.views.textformat import (
 
 __all__ = [
     "STAGE_WORDS",
+    "TOLERANCE_ROLES",
     "as_mapping",
     "chi2_band_db",
+    "compact_control_rows",
+    "compact_drive_rows",
     "control_rows",
     "drive_rows",
     "event_rows",
@@ -36,6 +40,11 @@ __all__ = [
     "header_pieces",
     "limit_role",
     "result_rows",
+    "steps_to_full_level",
+    "time_pieces",
+    "to_full_level_text",
+    "tolerance_state",
+    "verdict_rows",
 ]
 
 #: ``(text, role)``
@@ -53,7 +62,12 @@ _RESULT_SHOWN = frozenset({
     "status", "abort_reason", "control_grms_g", "target_grms_g", "final_rms_error_db",
     "final_max_dev_db", "final_lines_outside_alarm", "final_lines_outside_abort",
     "updates_to_tolerance", "dof", "time_at_full_level_s", "record", "trip",
+    "verdict", "verdict_reasons", "verdict_rule", "full_level_dof", "full_level_rms_error_db",
+    "full_level_max_dev_db", "full_level_min_dev_db", "full_level_lines_outside_alarm",
+    "full_level_lines_outside_abort", "full_level_control_grms_g", "alarm_fraction",
+    "max_alarm_fraction",
 })
+_VERDICT_ROLE = {"pass": "ok", "fail": "abort", "incomplete": "alarm"}
 
 
 def field(obj: Any, *names: str, default: Any = None) -> Any:
@@ -105,48 +119,169 @@ def _row(label: str, text: str, role: str = "value") -> Row:
     return label, ((text, role),)
 
 
-def header_pieces(snapshot: Any) -> list[Piece]:
-    """Stage, level (dB), step of the schedule, elapsed / remaining / full-level time, status."""
+#: The tolerance state in words and the role (colour) each is shown in.
+TOLERANCE_ROLES = {"in tolerance": "ok", "alarm": "alarm", "abort pending": "abort"}
+
+
+def tolerance_state(snapshot: Any) -> str:
+    """``in tolerance``, ``alarm``, ``abort pending`` or ``""`` (no estimate yet).
+
+    The snapshot's ``tolerance_state`` when it has one; otherwise worked out from its numbers:
+    a line outside the abort limit is an abort pending, a line outside the alarm limit or an
+    rms error beyond the rms alarm limit (``rms_alarm_db``, when the snapshot has it) is an
+    alarm.
+    """
+    state = field(snapshot, "tolerance_state")
+    if state:
+        return str(state)
+    n_al = as_count(field(snapshot, "lines_outside_alarm"))
+    n_ab = as_count(field(snapshot, "lines_outside_abort"))
+    if n_al is None and n_ab is None:
+        return ""
+    if n_ab:
+        return "abort pending"
+    rms, rms_lim = as_finite(field(snapshot, "rms_error_db")), as_finite(
+        field(snapshot, "rms_alarm_db"))
+    if n_al or (rms is not None and rms_lim is not None and abs(rms) > rms_lim):
+        return "alarm"
+    return "in tolerance"
+
+
+def _state_pieces(snapshot: Any) -> list[Piece]:
+    status = str(field(snapshot, "status", default="running"))
+    if status not in ("running", ""):
+        return [(status.upper(), _STATUS_ROLE.get(status, "value"))]
+    state = tolerance_state(snapshot)
+    if not state:
+        return [("NO ESTIMATE YET", "dim")]
+    return [(state.upper(), TOLERANCE_ROLES.get(state, "value"))]
+
+
+def _step_text(snapshot: Any, compact: bool) -> str | None:
+    step, n_steps = field(snapshot, "step_index", "step"), field(snapshot, "n_steps", "steps")
+    if step is None:
+        return None
+    shown = int(step) + 1 if field(snapshot, "step_index") is not None else int(step)
+    if n_steps is None:
+        return str(shown)
+    return f"{shown}/{int(n_steps)}" if compact else f"{shown} of {int(n_steps)}"
+
+
+def steps_to_full_level(snapshot: Any) -> int | None:
+    """Level steps still to go before full level (0 at full level), None if unknown."""
+    step, n_steps = field(snapshot, "step_index"), field(snapshot, "n_steps")
+    if step is None or n_steps is None:
+        return None
+    return max(int(n_steps) - 1 - int(step), 0)
+
+
+def to_full_level_text(snapshot: Any) -> str:
+    """``reached``, ``1 step``, ``3 steps`` (each step waits for tolerance, so no clock time)."""
+    n = steps_to_full_level(snapshot)
+    if n is None:
+        return DASH
+    return "reached" if n == 0 else f"{n} step{'s' if n > 1 else ''}"
+
+
+def header_pieces(snapshot: Any, *, compact: bool = False) -> list[Piece]:
+    """Tolerance state (or the run's end), stage, level (dB), step of the schedule.
+
+    The full layout starts with the program name; the times come in :func:`time_pieces`.
+    """
     stage = str(field(snapshot, "stage", default="?"))
-    out: list[Piece] = [("liveshape  ", "title"), (STAGE_WORDS.get(stage, stage), "stage")]
+    out: list[Piece] = [] if compact else [("liveshape  ", "title")]
+    out += _state_pieces(snapshot)
+    out += [("  " if compact else "   ", "value"), (STAGE_WORDS.get(stage, stage), "stage")]
     level = field(snapshot, "level_db")
     if level is not None:
         out += [("   level ", "label"), (fmt(level, "+.1f", "dB"), "value")]
-    step, n_steps = field(snapshot, "step_index", "step"), field(snapshot, "n_steps", "steps")
+    step = _step_text(snapshot, compact)
     if step is not None:
-        shown = int(step) + 1 if field(snapshot, "step_index") is not None else int(step)
-        of = f" of {int(n_steps)}" if n_steps is not None else ""
-        out += [("   step ", "label"), (f"{shown}{of}", "value")]
-    for label, names in (("elapsed", ("elapsed_s", "t_s")), ("remaining", ("remaining_s",)),
-                         ("at full level", ("time_at_full_level_s",))):
-        out += [(f"   {label} ", "label"), (fmt_time(field(snapshot, *names)), "value")]
-    status = field(snapshot, "status")
-    if status:
-        out.append((f"   {status}", "dim"))
+        out += [("   step ", "label"), (step, "value")]
     return out
+
+
+def time_pieces(snapshot: Any) -> list[Piece]:
+    """Elapsed time, steps to full level, time at full level (of the total) and time left."""
+    at = field(snapshot, "time_at_full_level_s")
+    total = field(snapshot, "full_level_s")
+    at_text = fmt_time(at) + (f" of {fmt_time(total)}" if as_finite(total) is not None else "")
+    return [("elapsed ", "label"), (fmt_time(field(snapshot, "elapsed_s", "t_s")), "value"),
+            ("   to full level ", "label"), (to_full_level_text(snapshot), "value"),
+            ("   at full level ", "label"), (at_text, "value"),
+            ("   left at full level ", "label"), (fmt_time(field(snapshot, "remaining_s")),
+                                                  "value")]
+
+
+def _grms_text(snapshot: Any) -> tuple[str, float | None]:
+    c = as_finite(field(snapshot, "control_grms_g"))
+    t = as_finite(field(snapshot, "target_grms_g"))
+    err = 10.0 * math.log10(c**2 / t**2) if c and t else None
+    return f"{fmt(c, '.3f')} / {fmt(t, '.3f')} g", err
+
+
+def _outside_pieces(snapshot: Any) -> tuple[Piece, ...]:
+    n_al = as_count(field(snapshot, "lines_outside_alarm"))
+    n_ab = as_count(field(snapshot, "lines_outside_abort"))
+    return ((f"{fmt_value(n_al)} alarm", "alarm" if n_al else "ok"), ("  ", "value"),
+            (f"{fmt_value(n_ab)} abort", "abort" if n_ab else "ok"))
 
 
 def control_rows(snapshot: Any) -> list[Row]:
     """grms against target, rms error, line deviations, lines outside, DOF and χ² band."""
-    c = as_finite(field(snapshot, "control_grms_g"))
-    t = as_finite(field(snapshot, "target_grms_g"))
-    err = 10.0 * math.log10(c**2 / t**2) if c and t else None
-    n_al = as_count(field(snapshot, "lines_outside_alarm"))
-    n_ab = as_count(field(snapshot, "lines_outside_abort"))
-    dof = as_finite(field(snapshot, "dof"))
+    grms, err = _grms_text(snapshot)
+    dof = as_finite(field(snapshot, "dof")) or None  # 0 DOF: no estimate yet
     lo, hi = chi2_band_db(snapshot, dof)
     return [
-        _row("grms control / target", f"{fmt(c, '.3f')} / {fmt(t, '.3f')} g  ({fmt_db(err)})"),
+        _row("grms control / target", f"{grms}  ({fmt_db(err)})"),
         _row("rms error", fmt_db(field(snapshot, "rms_error_db"))),
         _row("line deviation max / min", f"{fmt_db(field(snapshot, 'max_dev_db'))} / "
              f"{fmt_db(field(snapshot, 'min_dev_db'))}"),
-        ("lines outside", ((f"{fmt_value(n_al)} alarm", "alarm" if n_al else "ok"),
-                           ("  ", "value"),
-                           (f"{fmt_value(n_ab)} abort", "abort" if n_ab else "ok"))),
+        ("lines outside", _outside_pieces(snapshot)),
         _row("DOF", f"{fmt(dof, '.0f')}   90 % χ² band {fmt(lo, '+.2f')} / "
              f"{fmt(hi, '+.2f')} dB"),
         _row("updates", fmt_value(field(snapshot, "updates", "n_updates"))),
     ]
+
+
+def compact_control_rows(snapshot: Any) -> list[Row]:
+    """The control numbers of the compact view, one per row (label and value within 35
+    characters for counts up to 4 digits)."""
+    grms, _ = _grms_text(snapshot)
+    dof = as_finite(field(snapshot, "dof")) or None  # 0 DOF: no estimate yet
+    lo, hi = chi2_band_db(snapshot, dof)
+    return [
+        _row("grms", grms),
+        _row("rms error", fmt_db(field(snapshot, "rms_error_db"))),
+        _row("max/min dev", f"{fmt(field(snapshot, 'max_dev_db'), '+.1f')}/"
+             f"{fmt_db(field(snapshot, 'min_dev_db'), '+.1f')}"),
+        ("outside", _outside_pieces(snapshot)),
+        _row("DOF", f"{fmt(dof, '.0f')}  χ² {fmt(lo, '+.1f')}/{fmt(hi, '+.1f')} dB"),
+        _row("updates", fmt_value(field(snapshot, "updates", "n_updates"))),
+    ]
+
+
+def compact_drive_rows(snapshot: Any) -> list[Row]:
+    """Drive (against its limit, coloured by :func:`limit_role`) and time numbers of the
+    compact view, one per row (within 39 characters for runs under 100 h)."""
+    rows = []
+    for label, key, lim_keys in (
+        ("drive rms", "drive_rms_fs", ("drive_rms_limit_fs", "drive_rms_max_fs")),
+        ("drive peak", "drive_peak_fs", ("drive_peak_limit_fs", "drive_peak_max_fs")),
+    ):
+        value, limit = field(snapshot, key), field(snapshot, *lim_keys)
+        rows.append(_row(label, f"{fmt(value, '.3f')}/{fmt(limit, '.3f')} FS",
+                         limit_role(value, limit)))
+    total = field(snapshot, "full_level_s")
+    at = fmt_time(field(snapshot, "time_at_full_level_s"))
+    rows += [
+        _row("elapsed", fmt_time(field(snapshot, "elapsed_s", "t_s"))),
+        _row("to full level", to_full_level_text(snapshot)),
+        _row("at full level", at + (f" of {fmt_time(total)}"
+                                    if as_finite(total) is not None else "")),
+        _row("left at full level", fmt_time(field(snapshot, "remaining_s"))),
+    ]
+    return rows
 
 
 def drive_rows(snapshot: Any) -> list[Row]:
@@ -186,6 +321,40 @@ def event_rows(events: Sequence[Any], n: int = 6) -> list[tuple[str, str, Piece]
     return rows
 
 
+def verdict_rows(result: Mapping[str, Any]) -> list[Row]:
+    """The verdict in words, its reasons and rule, and the full-level average's figures.
+
+    Nothing for a result without a verdict (a record made before verdicts were recorded).
+    """
+    verdict = result.get("verdict")
+    if not verdict:
+        return []
+    rows = [_row("verdict", str(verdict).upper(), _VERDICT_ROLE.get(str(verdict), "value"))]
+    rows += [_row("  reason", str(r), _VERDICT_ROLE.get(str(verdict), "value"))
+             for r in result.get("verdict_reasons") or ()]
+    if result.get("verdict_rule"):
+        rows.append(_row("  rule", str(result["verdict_rule"]), "dim"))
+    dof = result.get("full_level_dof")
+    if as_finite(dof) is not None:
+        rows += [
+            _row("full-level average", f"{fmt(dof, '.0f')} DOF, "
+                 f"{fmt(result.get('full_level_control_grms_g'), '.3f', 'g')}"),
+            _row("  rms error", fmt_db(result.get("full_level_rms_error_db"))),
+            _row("  line deviation max / min",
+                 f"{fmt_db(result.get('full_level_max_dev_db'))} / "
+                 f"{fmt_db(result.get('full_level_min_dev_db'))}"),
+            _row("  lines outside alarm / abort",
+                 f"{fmt_value(as_count(result.get('full_level_lines_outside_alarm')))} / "
+                 f"{fmt_value(as_count(result.get('full_level_lines_outside_abort')))}"),
+        ]
+    frac = as_finite(result.get("alarm_fraction"))
+    if frac is not None:
+        lim = as_finite(result.get("max_alarm_fraction"))
+        rows.append(_row("time in alarm", f"{100 * frac:.0f} % of the full-level time"
+                         + (f" (at most {100 * lim:.0f} %)" if lim is not None else "")))
+    return rows
+
+
 def result_rows(result: Mapping[str, Any]) -> list[Row]:
     """Status, abort rule and reason, grms, final errors, DOF, time at level, then the rest."""
     status = str(result.get("status", "unknown"))
@@ -194,12 +363,17 @@ def result_rows(result: Mapping[str, Any]) -> list[Row]:
     if isinstance(trip, Mapping) and trip.get("rule"):
         rows.append(_row("abort rule", str(trip["rule"]), "abort"))
     if result.get("abort_reason"):
-        rows.append(_row("abort reason", str(result["abort_reason"]), "abort"))
+        if status == "stopped":
+            rows.append(_row("stop reason", str(result["abort_reason"]), "alarm"))
+        else:
+            rows.append(_row("abort reason", str(result["abort_reason"]), "abort"))
+    rows += verdict_rows(result)
     rows += [
         _row("grms control / target", f"{fmt(result.get('control_grms_g'), '.3f')} / "
              f"{fmt(result.get('target_grms_g'), '.3f')} g"),
         _row("final rms error", fmt_db(result.get("final_rms_error_db"))),
-        _row("final max line deviation", fmt_db(result.get("final_max_dev_db"))),
+        # the largest |deviation| of a line: a magnitude, shown without a sign
+        _row("final worst line |deviation|", fmt(result.get("final_max_dev_db"), ".2f", "dB")),
         _row("lines outside alarm / abort",
              f"{fmt_value(as_count(result.get('final_lines_outside_alarm')))} / "
              f"{fmt_value(as_count(result.get('final_lines_outside_abort')))}"),
