@@ -65,6 +65,10 @@ def _cmd_check(args: argparse.Namespace) -> int:
     else:
         console = dashboard.make_console()
         console.print(dashboard.check_table(report))
+    if feas is not None and not feas.feasible:
+        from liveshape.control.safety import EXIT_INFEASIBLE
+
+        return EXIT_INFEASIBLE
     return 0
 
 
@@ -93,6 +97,9 @@ def _feasibility_warnings(feas: Any) -> list[str]:
     if exceeded and exceeded != "none":
         lines.append(f"rig limits exceeded by the profile at full level: {exceeded} "
                      "(liveshape check SPEC --rig ... shows the budgets)")
+    if feas.binding:
+        lines.append(f"binding limit: {feas.binding}; headroom left: {data['headroom_left']}")
+    lines += [f"to make it feasible: {a}" for a in feas.advice]
     return lines or ["the rig model does not pass its feasibility check (see check --rig)"]
 
 
@@ -154,12 +161,26 @@ def _cmd_run(args: argparse.Namespace) -> int:
     # The cautions come first, before anything is driven (on stderr with --json).
     notice_console = dashboard.make_console(stderr=args.json)
     notice_console.print(dashboard.safety_notice())
+    accepted: dict[str, Any] | None = None
     if spec.rig.kind == "sim":
-        # Name what the rig cannot honestly do before anything is driven (see check --rig).
+        # Name what the rig cannot honestly do before anything is driven (see check --rig);
+        # refuse it unless the user accepts it explicitly (recorded in run.json and events).
         feas = _feasibility(spec)
         if not feas.feasible:
+            word = "warning" if args.accept_infeasible else "refused"
             for line in _feasibility_warnings(feas):
-                dashboard.print_error(notice_console, f"warning: {line}")
+                dashboard.print_error(notice_console, f"{word}: {line}")
+            if not args.accept_infeasible:
+                from liveshape.control.safety import EXIT_INFEASIBLE
+
+                dashboard.print_error(
+                    notice_console, "the profile is infeasible on this rig "
+                    "(liveshape check SPEC --rig ... shows why); nothing was driven; "
+                    "--accept-infeasible runs it anyway")
+                return EXIT_INFEASIBLE
+            accepted = {k: v for k, v in feas.to_dict().items()
+                        if k in ("binding_limit", "reachable_level_db", "headroom_left",
+                                 "limits_exceeded", "unreachable", "lowest_controllable_hz")}
     if spec.rig.kind == "audio":
         from liveshape.session import run_audio_session
 
@@ -173,6 +194,11 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if args.block_size is not None:
         kwargs["block_size"] = args.block_size
     kwargs["identity"] = {"operator": args.operator, "test_item": args.test_item}
+    if accepted is not None:
+        kwargs["identity"]["accepted_infeasible"] = accepted
+        kwargs["start_events"] = [("infeasible_accepted",
+                                   "the profile is infeasible on this rig; run on the user's "
+                                   "--accept-infeasible", accepted)]
     kwargs["record_signals"] = args.record == "full"
     if args.json:
         session = runner(spec, out_dir=args.out, **kwargs)
@@ -373,6 +399,8 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--fs", type=_positive_float, metavar="HZ", help="sample rate override")
     c.add_argument("--json", action="store_true", help="print one JSON object")
     c.set_defaults(func=_cmd_check)
+    c.epilog = ("Exit status 3 when --rig is given and the profile is infeasible on that rig "
+                "(the output names the binding limit and what would make it feasible).")
 
     s = sub.add_parser("synth", help="write a drive file (float WAV) offline with a sidecar")
     s.add_argument("spec", metavar="SPEC", help="test definition (.yaml) or profile (.csv)")
@@ -418,6 +446,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="who runs the test (written to run.json and the report)")
     r.add_argument("--test-item", type=_text_field, metavar="TEXT",
                    help="what is under test, e.g. a serial number (run.json and the report)")
+    r.add_argument("--accept-infeasible", action="store_true",
+                   help="run a profile that check --rig calls infeasible on the simulated rig "
+                   "(refused otherwise with exit status 3; run.json and events record it)")
     r.add_argument("--record", choices=("full", "spectra"), default="full",
                    help="full (default): spectra, events and the drive and response WAVs "
                    "(about 1.3 GB per hour at 48 kHz); spectra: everything but the WAVs")
