@@ -323,12 +323,12 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
     if not args.unattended and not sys.stdin.isatty():
         raise ConfigError(f"calibrate {step}: stdin is not a terminal, so nobody can confirm "
                           "the set-up; nothing played (--unattended skips the wait)")
+    rig, device_name, channel, where = _calibration_rig(args, loopback)
     notice = cal.describe_step(
-        step, device=str(args.device), level_fs=args.level, loopback=loopback,
+        step, device=device_name, level_fs=args.level, loopback=loopback,
         out_v_per_fs=out_v or (data.get("output") or {}).get("v_per_fs"),
         known_v_rms=args.known_v, repeats=args.repeats,
         datasheet_mv_per_g=args.datasheet_mv_per_g)
-    rig, device_name, channel, where = _calibration_rig(args, loopback)
     data["device"] = device_name
     data["fs_hz"] = float(args.fs)
     for line in notice.lines():
