@@ -223,6 +223,19 @@ def test_without_a_terminal_nothing_plays(bench, monkeypatch, capsys, tmp_path) 
     assert bench.rigs == [] and bench.log == [] and not f.exists()
 
 
+def test_ctrl_c_at_the_prompt_stops_before_anything_plays(bench, monkeypatch, capsys,
+                                                          tmp_path) -> None:
+    class Interrupted(Terminal):
+        def readline(self, *args) -> str:
+            raise KeyboardInterrupt
+
+    f = tmp_path / "chain.yaml"
+    monkeypatch.setattr(sys, "stdin", Interrupted("", bench))
+    rc = main(["calibrate", "output", "--device", "3", "-o", str(f)])
+    assert rc == 130 and bench.log == [] and not f.exists()
+    assert "nothing has played yet" in capsys.readouterr().err
+
+
 def test_unattended_plays_without_waiting(bench, monkeypatch, capsys, tmp_path) -> None:
     f = tmp_path / "chain.yaml"
     rc, out, err = calibrate(bench, monkeypatch, capsys, "output", "--reading", "0.35",
