@@ -91,8 +91,10 @@ def _feasibility(spec: Any) -> Any:
 def _feasibility_warnings(feas: Any) -> list[str]:
     """One line per exceeded budget or unreachable band of a rig feasibility."""
     data = feas.to_dict()
-    lines = [f"{u.f_lo_hz:.6g}-{u.f_hi_hz:.6g} Hz cannot be controlled: {u.reason}"
-             for u in feas.unreachable]
+    lines = []
+    for u in feas.unreachable:
+        what = "cannot be held at full level" if "exceeds" in u.reason else "cannot be controlled"
+        lines.append(f"{u.f_lo_hz:.6g}-{u.f_hi_hz:.6g} Hz {what}: {u.reason}")
     exceeded = data.get("limits_exceeded")
     if exceeded and exceeded != "none":
         lines.append(f"rig limits exceeded by the profile at full level: {exceeded} "

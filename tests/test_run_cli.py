@@ -195,7 +195,7 @@ def test_infeasible_profile_is_refused_before_any_drive(tmp_path: Path) -> None:
     assert "Traceback" not in proc.stderr
     assert proc.returncode == 3, proc.stderr
     assert proc.stdout == ""
-    assert "cannot be controlled" in proc.stderr and "binding limit" in proc.stderr
+    assert "cannot be held at full level" in proc.stderr and "binding limit" in proc.stderr
     assert "--accept-infeasible" in proc.stderr and "to make it feasible" in proc.stderr
     # nothing was driven: no run folder was made
     assert not [p for p in tmp_path.iterdir() if p.is_dir()]
@@ -211,7 +211,7 @@ def test_infeasible_profile_runs_when_accepted_and_the_record_says_so(tmp_path: 
                           capture_output=True, text=True, cwd=REPO, timeout=600)
     assert "Traceback" not in proc.stderr
     notice = proc.stderr.index("hearing protection")
-    warning = proc.stderr.index("cannot be controlled")
+    warning = proc.stderr.index("cannot be held at full level")
     assert notice < warning
     data = json.loads(proc.stdout)
     assert data["status"] == "aborted"
