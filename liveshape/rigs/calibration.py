@@ -309,8 +309,8 @@ def describe_step(
             "your voltmeter reading (V rms)", "output.v_per_fs, output.channel: 1")
     if step == "input" and known_v_rms is not None:
         return StepNotice(
-            step, None, f"a signal generator on input 1 of {device}: a sine near "
-            f"{VOLTMETER_F_HZ:g} Hz of {known_v_rms:g} V rms (read on your voltmeter)",
+            step, None, f"a signal generator on input 1 of {device}: a {VOLTMETER_F_HZ:g} Hz "
+            f"sine (within 2 %) of {known_v_rms:g} V rms (read on your voltmeter)",
             "1 s on input 1", "input.v_per_fs, input.channel: 1")
     if step == "input":
         return StepNotice(
@@ -323,12 +323,13 @@ def describe_step(
         if loopback is None:
             return StepNotice(
                 step, bursts + " through the amplifier to the shaker",
-                "amplifier gain low (the bursts are about as loud as a run's first step); "
-                "the accelerometer on the shaker, its conditioner on input 1",
-                f"{0.3 * repeats + 0.2:.1f} s on input 1", "loop_delay.samples, spread")
+                "amplifier gain low (the bursts drive the shaker); the accelerometer on the "
+                "shaker, its conditioner on input 1",
+                f"{0.3 * repeats + 0.2:.1f} s on input 1",
+                "loop_delay.samples, loop_delay.spread_samples")
         return StepNotice(step, bursts, amp_off + cable,
                           f"{0.3 * repeats + 0.2:.1f} s on input {rec_in}",
-                          "loop_delay.samples, spread")
+                          "loop_delay.samples, loop_delay.spread_samples")
     if step == "corner":
         return StepNotice(
             step, f"white noise, 0.1 FS rms (peaks up to 0.4 FS), for 6 s on {outs} of {device}",
