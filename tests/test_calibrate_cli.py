@@ -67,6 +67,8 @@ class Bench:
                 sigma = math.sqrt(amp**2 / 2 / 10 ** (self.snr_db / 10))
                 return x + sigma * self.rng.standard_normal(n)
             return x + 0.01 * noise  # a quiet input: 1e-7 FS rms
+        if self.wiring == "generator":  # 0.5 V rms at 400 Hz on input 1
+            return 0.5 * math.sqrt(2) / TRUE_IN_V * np.sin(2 * np.pi * 400.0 * np.arange(n) / FS)
         raise AssertionError(self.wiring)
 
 
@@ -403,3 +405,25 @@ def test_input_scale_outside_the_range_is_refused(bench, monkeypatch, capsys, tm
                              str(f), keys="\n")
     assert rc == 2 and "outside 0.01-100 V/FS" in one_line(err)
     assert f.read_bytes() == before
+
+
+def test_known_voltage_plays_nothing(bench, monkeypatch, capsys, tmp_path) -> None:
+    # A generator's 0.5 V rms sine on input 1: V/FS = V_rms sqrt 2 / recorded amplitude.
+    f = tmp_path / "chain.yaml"
+    bench.wiring = "generator"
+    rc, out, err = calibrate(bench, monkeypatch, capsys, "input", "--known-v", "0.5", "-o",
+                             str(f), keys="\n")
+    assert rc == 0, err
+    assert "plays:   nothing" in err and "a 400 Hz sine (within 2 %) of 0.5 V rms" in err
+    assert all(not np.any(d) for d in bench.rigs[-1].played)  # the drive stayed silent
+    assert config.read_yaml_file(f)["input"]["v_per_fs"] == pytest.approx(TRUE_IN_V, rel=1e-6)
+
+
+def test_delay_through_the_chain_asks_for_the_gain_low(bench, monkeypatch, capsys,
+                                                       tmp_path) -> None:
+    f = tmp_path / "chain.yaml"
+    rc, out, err = calibrate(bench, monkeypatch, capsys, "delay", "-o", str(f), keys="\n")
+    assert rc == 0, err
+    assert "through the amplifier to the shaker" in err
+    assert "first:   amplifier gain low (the bursts drive the shaker)" in err
+    assert bench.log == ["enter", "play"]
