@@ -65,6 +65,10 @@ def _cmd_check(args: argparse.Namespace) -> int:
     else:
         console = dashboard.make_console()
         console.print(dashboard.check_table(report))
+    if feas is not None and not feas.feasible:
+        from liveshape.control.safety import EXIT_INFEASIBLE
+
+        return EXIT_INFEASIBLE
     return 0
 
 
@@ -87,12 +91,17 @@ def _feasibility(spec: Any) -> Any:
 def _feasibility_warnings(feas: Any) -> list[str]:
     """One line per exceeded budget or unreachable band of a rig feasibility."""
     data = feas.to_dict()
-    lines = [f"{u.f_lo_hz:.6g}-{u.f_hi_hz:.6g} Hz cannot be controlled: {u.reason}"
-             for u in feas.unreachable]
+    lines = []
+    for u in feas.unreachable:
+        what = "cannot be held at full level" if "exceeds" in u.reason else "cannot be controlled"
+        lines.append(f"{u.f_lo_hz:.6g}-{u.f_hi_hz:.6g} Hz {what}: {u.reason}")
     exceeded = data.get("limits_exceeded")
     if exceeded and exceeded != "none":
         lines.append(f"rig limits exceeded by the profile at full level: {exceeded} "
                      "(liveshape check SPEC --rig ... shows the budgets)")
+    if feas.binding:
+        lines.append(f"binding limit: {feas.binding}; headroom left: {data['headroom_left']}")
+    lines += [f"to make it feasible: {a}" for a in feas.advice]
     return lines or ["the rig model does not pass its feasibility check (see check --rig)"]
 
 
@@ -154,12 +163,26 @@ def _cmd_run(args: argparse.Namespace) -> int:
     # The cautions come first, before anything is driven (on stderr with --json).
     notice_console = dashboard.make_console(stderr=args.json)
     notice_console.print(dashboard.safety_notice(spec.rig.kind, spec.rig.plant))
+    accepted: dict[str, Any] | None = None
     if spec.rig.kind == "sim":
-        # Name what the rig cannot honestly do before anything is driven (see check --rig).
+        # Name what the rig cannot honestly do before anything is driven (see check --rig);
+        # refuse it unless the user accepts it explicitly (recorded in run.json and events).
         feas = _feasibility(spec)
         if not feas.feasible:
+            word = "warning" if args.accept_infeasible else "refused"
             for line in _feasibility_warnings(feas):
-                dashboard.print_error(notice_console, f"warning: {line}")
+                dashboard.print_error(notice_console, f"{word}: {line}")
+            if not args.accept_infeasible:
+                from liveshape.control.safety import EXIT_INFEASIBLE
+
+                dashboard.print_error(
+                    notice_console, "the profile is infeasible on this rig "
+                    "(liveshape check SPEC --rig ... shows why); nothing was driven; "
+                    "--accept-infeasible runs it anyway")
+                return EXIT_INFEASIBLE
+            accepted = {k: v for k, v in feas.to_dict().items()
+                        if k in ("binding_limit", "reachable_level_db", "headroom_left",
+                                 "limits_exceeded", "unreachable", "lowest_controllable_hz")}
     if spec.rig.kind == "audio":
         from liveshape.session import run_audio_session
 
@@ -173,6 +196,11 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if args.block_size is not None:
         kwargs["block_size"] = args.block_size
     kwargs["identity"] = {"operator": args.operator, "test_item": args.test_item}
+    if accepted is not None:
+        kwargs["identity"]["accepted_infeasible"] = accepted
+        kwargs["start_events"] = [("infeasible_accepted",
+                                   "the profile is infeasible on this rig; run on the user's "
+                                   "--accept-infeasible", accepted)]
     kwargs["record_signals"] = args.record == "full"
     if args.json:
         session = runner(spec, out_dir=args.out, **kwargs)
@@ -292,10 +320,31 @@ def _cmd_virtual_rig(args: argparse.Namespace) -> int:
 CAL_STEPS = ("output", "input", "delay", "corner", "sensor")
 
 
+def _say(text: str) -> None:
+    """A line for the person at the rig: stderr, so ``--json`` keeps stdout to one object."""
+    sys.stderr.write(text + "\n")
+    sys.stderr.flush()
+
+
+def _ask(prompt: str) -> str:
+    """One answer typed on stdin after ``prompt`` (on stderr); EOF is a one-line error."""
+    sys.stderr.write(prompt)
+    sys.stderr.flush()
+    line = sys.stdin.readline()
+    if not line:
+        raise ConfigError("stdin closed before an answer; nothing more plays")
+    return line.strip()
+
+
 def _cmd_calibrate(args: argparse.Namespace) -> int:
-    """One calibration step; results are merged into the calibration file."""
+    """One calibration step; results are merged into the calibration file.
+
+    Order: every option and the file are checked, then the terminal rule (Enter is needed
+    unless ``--unattended``), then the device; the step says what will play, where and at what
+    level and what to unplug, waits for Enter, plays, checks the result's plausibility and
+    only then writes the file (a refused result writes nothing).
+    """
     from liveshape.rigs import calibration as cal
-    from liveshape.rigs.audio import AudioRig, check_settings
     from liveshape.testdef import config
 
     path = Path(args.file)
@@ -307,66 +356,98 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
         data = loaded
     data.setdefault("liveshape_calibration", cal.SCHEMA_VERSION)
     loopback = _loopback_option(args.loopback)
-    info = check_settings(args.device, args.fs, input_channels=1 + (loopback is not None),
-                          output_channels=1 + (loopback is not None))
-    data["device"] = info.name
-    data["fs_hz"] = float(args.fs)
-    rig = AudioRig(info.index, args.fs, block_size=args.block_size, loopback=loopback,
-                   lead_blocks=8)
-    out: dict[str, Any]
-    if args.step == "output":
-        reading = args.reading
-
-        def read_voltmeter(f_hz: float, level_fs: float) -> float:
-            if reading is not None:
-                return float(reading)
-            answer = input(f"{f_hz:g} Hz sine at {level_fs:g} FS on the drive output. "
-                           "Voltmeter reading, V rms: ")
-            try:
-                return float(answer)
-            except ValueError:
-                raise ConfigError(f"voltmeter reading = {answer!r} is not a number") from None
-
-        res = cal.calibrate_output(rig, read_voltmeter, level_fs=args.level)
-        data["output"] = {"v_per_fs": res.v_per_fs, "method": res.method}
-        out = dataclasses.asdict(res)
-    elif args.step == "input":
-        if args.known_v is not None:
-            res = cal.calibrate_input(rig, known_v_rms=args.known_v, channel="control")
-        else:
-            out_v = _section_value(data, path, "output", "v_per_fs", "calibrate output")
-            if loopback is None:
-                raise ConfigError("calibrate input: give --loopback OUT:IN (a cable from a "
-                                  "second output to a second input) or --known-v V_RMS")
-            res = cal.calibrate_input(rig, out_v_per_fs=out_v, level_fs=args.level)
-        data["input"] = {"v_per_fs": res.v_per_fs, "method": res.method}
-        out = dataclasses.asdict(res)
-    elif args.step == "delay":
-        res = cal.measure_loop_delay(rig, repeats=args.repeats,
-                                     channel="loopback" if loopback else "control")
-        data["loop_delay"] = {"samples": res.samples, "spread_samples": res.spread_samples}
-        out = dataclasses.asdict(res)
-    elif args.step == "corner":
+    step = args.step
+    out_v = in_v = None
+    if step == "input" and args.known_v is None:
+        out_v = _section_value(data, path, "output", "v_per_fs", "calibrate output")
         if loopback is None:
-            raise ConfigError("calibrate corner: needs --loopback OUT:IN (a cable from a "
-                              "second output to a second input)")
+            raise ConfigError("calibrate input: give --loopback OUT:IN (a cable from output OUT "
+                              "to input IN, e.g. 1:1) or --known-v V_RMS")
+    if step == "corner":
+        if loopback is None:
+            raise ConfigError("calibrate corner: needs --loopback OUT:IN (a cable from output "
+                              "OUT to input IN, e.g. 1:1)")
         delay = data.get("loop_delay", {}) or {}
         if delay.get("samples") is None:
             raise ConfigError(f"{path}: loop_delay.samples is missing; run "
                               "liveshape calibrate delay first")
-        res = cal.measure_lowfreq_corner(rig, delay_samples=int(delay["samples"]))
-        data["lowfreq_corner"] = {"order": res.order, "corner_hz": res.corner_hz,
-                                  "q": res.q, "f_3db_hz": res.f_3db_hz}
-        out = dataclasses.asdict(res)
-    else:  # sensor
+    if step == "sensor":
         in_v = _section_value(data, path, "input", "v_per_fs", "calibrate input")
-        res = cal.check_accelerometer(rig, in_v_per_fs=in_v,
-                                      datasheet_mv_per_g=args.datasheet_mv_per_g)
-        acc = {"mv_per_g": res.sensitivity_mv_per_g}
-        if args.datasheet_mv_per_g is not None:
-            acc["datasheet_mv_per_g"] = args.datasheet_mv_per_g
-        data["accelerometer"] = acc
-        out = {k: v for k, v in dataclasses.asdict(res).items() if k != "fit"}
+    if step == "output" and args.unattended and args.reading is None:
+        raise ConfigError("calibrate output --unattended: give the voltmeter reading with "
+                          "--reading V_RMS (nobody is there to type it)")
+    if not args.unattended and not sys.stdin.isatty():
+        raise ConfigError(f"calibrate {step}: stdin is not a terminal, so nobody can confirm "
+                          "the set-up; nothing played (--unattended skips the wait)")
+    rig, device_name, channel, where = _calibration_rig(args, loopback)
+    notice = cal.describe_step(
+        step, device=device_name, level_fs=args.level, loopback=loopback,
+        out_v_per_fs=out_v or (data.get("output") or {}).get("v_per_fs"),
+        known_v_rms=args.known_v, repeats=args.repeats,
+        datasheet_mv_per_g=args.datasheet_mv_per_g)
+    data["device"] = device_name
+    data["fs_hz"] = float(args.fs)
+    for line in notice.lines():
+        _say(line)
+    if args.unattended:
+        _say("  --unattended: going on without waiting")
+    else:
+        _ask("Press Enter when that is so (Ctrl-C stops; nothing has played yet): ")
+    out: dict[str, Any]
+    try:
+        if step == "output":
+            reading = args.reading
+
+            def read_voltmeter(f_hz: float, level_fs: float) -> float:
+                if reading is not None:
+                    return float(reading)
+                answer = _ask(f"Playing {f_hz:g} Hz at {level_fs:g} FS on output 1. "
+                              "Voltmeter reading, V rms: ")
+                try:
+                    return float(answer)
+                except ValueError:
+                    raise ConfigError(
+                        f"voltmeter reading = {answer!r} is not a number") from None
+
+            res: Any = cal.calibrate_output(rig, read_voltmeter, level_fs=args.level)
+            data["output"] = {"v_per_fs": res.v_per_fs, "method": res.method, "channel": 1}
+            out = dataclasses.asdict(res)
+        elif step == "input":
+            if args.known_v is not None:
+                res = cal.calibrate_input(rig, known_v_rms=args.known_v, channel="control",
+                                          where="input 1")
+                in_ch = 1
+            else:
+                res = cal.calibrate_input(rig, out_v_per_fs=out_v, level_fs=args.level,
+                                          channel=channel, where=where)
+                in_ch = loopback[1]
+            data["input"] = {"v_per_fs": res.v_per_fs, "method": res.method, "channel": in_ch}
+            out = dataclasses.asdict(res)
+        elif step == "delay":
+            res = cal.measure_loop_delay(rig, repeats=args.repeats, channel=channel,
+                                         where=where)
+            data["loop_delay"] = {"samples": res.samples, "spread_samples": res.spread_samples}
+            out = dataclasses.asdict(res)
+        elif step == "corner":
+            res = cal.measure_lowfreq_corner(
+                rig, delay_samples=int(data["loop_delay"]["samples"]), channel=channel)
+            data["lowfreq_corner"] = {"order": res.order, "corner_hz": res.corner_hz,
+                                      "q": res.q, "f_3db_hz": res.f_3db_hz}
+            out = dataclasses.asdict(res)
+        else:  # sensor
+            res = cal.check_accelerometer(rig, in_v_per_fs=in_v,
+                                          datasheet_mv_per_g=args.datasheet_mv_per_g,
+                                          where="input 1",
+                                          accept_deviation=args.accept_deviation)
+            acc = {"mv_per_g": res.sensitivity_mv_per_g}
+            if args.datasheet_mv_per_g is not None:
+                acc["datasheet_mv_per_g"] = args.datasheet_mv_per_g
+            data["accelerometer"] = acc
+            out = {k: v for k, v in dataclasses.asdict(res).items() if k != "fit"}
+            out["snr_db"] = res.fit.snr_db
+    except ConfigError as exc:
+        state = "left as it was" if path.exists() else "not written"
+        raise ConfigError(f"calibrate {step}: {exc}; {path} {state}") from None
     config.write_yaml_file(path, json_safe(data))
     out["file"] = str(path)
     if args.json:
@@ -374,7 +455,36 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
     else:
         for key, value in json_safe(out).items():
             sys.stdout.write(f"{key}: {value}\n")
+        sys.stdout.write(f"wrote {path}\n")
     return 0
+
+
+def _calibration_rig(args: argparse.Namespace,
+                     loopback: tuple[int, int] | None) -> tuple[Any, str, str, str]:
+    """The audio rig of a calibration step, the device's name, the channel to fit and its name
+    for messages.
+
+    ``loopback`` is numbered from 1. A cable from output 1 (the drive) to input ``i`` is read
+    as the rig's control channel ``i``; a cable from another output ``o`` gets a copy of the
+    drive (the rig's loopback pair). Without a cable the control input 1 is read.
+    """
+    from liveshape.rigs.audio import AudioRig, check_settings
+
+    kwargs: dict[str, Any] = {}
+    channel, where = "control", "input 1"
+    if loopback is not None:
+        o, i = loopback
+        where = f"input {i}"
+        if o == 1:
+            kwargs["control_channel"] = i - 1
+        else:
+            kwargs["loopback"] = (o - 1, i - 1)
+            channel = "loopback"
+    n_out = max(1, loopback[0] if loopback else 1)
+    n_in = max(1, loopback[1] if loopback else 1)
+    info = check_settings(args.device, args.fs, input_channels=n_in, output_channels=n_out)
+    rig = AudioRig(info.index, args.fs, block_size=args.block_size, lead_blocks=8, **kwargs)
+    return rig, info.name, channel, where
 
 
 def _section_value(data: dict[str, Any], path: Path, section: str, key: str, step: str) -> float:
@@ -385,12 +495,17 @@ def _section_value(data: dict[str, Any], path: Path, section: str, key: str, ste
 
 
 def _loopback_option(text: str | None) -> tuple[int, int] | None:
+    """``OUT:IN`` channel numbers counted from 1, as printed on the interface."""
     if text is None:
         return None
     a, sep, b = text.partition(":")
     if not sep or not a.strip().isdigit() or not b.strip().isdigit():
         raise ConfigError(f"--loopback = {text!r} must be OUT:IN channel numbers, e.g. 1:1")
-    return int(a), int(b)
+    o, i = int(a), int(b)
+    if o < 1 or i < 1:
+        raise ConfigError(f"--loopback = {text!r}: channels count from 1 (output 1 and input 1 "
+                          "are the first on the interface); 0 is not a channel")
+    return o, i
 
 
 def _positive_float(text: str) -> float:
@@ -427,6 +542,8 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--fs", type=_positive_float, metavar="HZ", help="sample rate override")
     c.add_argument("--json", action="store_true", help="print one JSON object")
     c.set_defaults(func=_cmd_check)
+    c.epilog = ("Exit status 3 when --rig is given and the profile is infeasible on that rig "
+                "(the output names the binding limit and what would make it feasible).")
 
     s = sub.add_parser("synth", help="write a drive file (float WAV) offline with a sidecar")
     s.add_argument("spec", metavar="SPEC", help="test definition (.yaml) or profile (.csv)")
@@ -472,6 +589,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="who runs the test (written to run.json and the report)")
     r.add_argument("--test-item", type=_text_field, metavar="TEXT",
                    help="what is under test, e.g. a serial number (run.json and the report)")
+    r.add_argument("--accept-infeasible", action="store_true",
+                   help="run a profile that check --rig calls infeasible on the simulated rig "
+                   "(refused otherwise with exit status 3; run.json and events record it)")
     r.add_argument("--record", choices=("full", "spectra"), default="full",
                    help="full (default): spectra, events and the drive and response WAVs "
                    "(about 1.3 GB per hour at 48 kHz); spectra: everything but the WAVs")
@@ -525,7 +645,10 @@ def build_parser() -> argparse.ArgumentParser:
                         "output (sine + your voltmeter reading), input (through a loopback "
                         "cable or a known voltage), delay (noise bursts), corner (AC coupling "
                         "from a loopback FRF), sensor (159.2 Hz, 10 m/s2 rms reference "
-                        "exciter). See calibration/README.md.")
+                        "exciter). Each step says what it will play, where and how loud, and "
+                        "what to unplug, then waits for Enter. Channels count from 1. A "
+                        "result outside the plausibility limits writes nothing (exit 2). "
+                        "See calibration/README.md.")
     cb.add_argument("step", choices=CAL_STEPS, help="which step")
     cb.add_argument("--device", required=True, help="audio device index or name")
     cb.add_argument("-o", "--file", required=True, metavar="FILE.yaml",
@@ -534,7 +657,8 @@ def build_parser() -> argparse.ArgumentParser:
                     help="sample rate (default 48000)")
     cb.add_argument("--block-size", type=_whole, default=1024, metavar="N")
     cb.add_argument("--loopback", metavar="OUT:IN",
-                    help="channels of a cable from a second output to a second input")
+                    help="a cable from output OUT to input IN, channels counted from 1 as "
+                    "printed on the interface (1:1: the drive output into the control input)")
     cb.add_argument("--level", type=_positive_float, default=0.5, metavar="FS",
                     help="sine level for output/input steps, full scale (default 0.5)")
     cb.add_argument("--reading", type=_positive_float, metavar="V_RMS",
@@ -545,6 +669,11 @@ def build_parser() -> argparse.ArgumentParser:
                     help="delay step: noise bursts (default 5)")
     cb.add_argument("--datasheet-mv-per-g", type=_positive_float, metavar="MV_PER_G",
                     help="sensor step: the datasheet sensitivity to compare with")
+    cb.add_argument("--accept-deviation", action="store_true",
+                    help="sensor step: keep a sensitivity more than 20 %% from the datasheet")
+    cb.add_argument("--unattended", action="store_true",
+                    help="do not wait for Enter before the step plays (scripts; the set-up "
+                    "must already be right). Without it stdin must be a terminal")
     cb.add_argument("--json", action="store_true", help="print the step's result as JSON")
     cb.set_defaults(func=_cmd_calibrate)
 

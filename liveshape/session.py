@@ -15,7 +15,7 @@ import hashlib
 import signal
 import threading
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
@@ -295,6 +295,7 @@ def run_session(
     stop: StopFlag | None = None,
     identity: dict[str, Any] | None = None,
     record_signals: bool = True,
+    start_events: Sequence[tuple[str, str, dict[str, Any]]] = (),
 ) -> SessionResult:
     """Run one test on the rig the spec selects and leave a record folder.
 
@@ -319,6 +320,8 @@ def run_session(
         ``operator`` and ``test_item`` for ``run.json``.
     record_signals : bool
         Record drive and response as WAV files (False: spectra and events only).
+    start_events : sequence of (kind, message, data)
+        Events recorded at 0 s before the first block (e.g. ``infeasible_accepted``).
     """
     if spec.rig.kind != "sim":
         raise ConfigError(
@@ -334,6 +337,8 @@ def run_session(
     recorder = _open_record(spec, out_dir, rig_mapping, cal,
                             {"seed": seed, "fast": fast, "block_size": block_size},
                             identity, record_signals)
+    for kind, message, data in start_events:
+        recorder.event(0.0, kind, message, data)
     with recorder, sigterm_stops(stop):
         loop = RunLoop(controller, recorder, on_snapshot=on_snapshot)
         result = loop.run_sim(rig, block_size=block_size, fast=fast, stop=stop)

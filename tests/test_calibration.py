@@ -296,3 +296,41 @@ def test_moved_names_are_reexported():
     for name in ("SCHEMA_VERSION", "UNCALIBRATED", "calibration_mapping", "write_calibration",
                  "calibration_from_mapping", "load_calibration", "resolve_calibration"):
         assert getattr(cal, name) is getattr(calfile, name)
+
+
+# -- plausibility ------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("snr_db", [3.0, 20.0, 40.0])
+def test_sine_fit_snr_is_the_signal_to_noise_ratio(snr_db: float) -> None:
+    # A sine of amplitude A in white noise of sd sigma: SNR = 10 log10((A²/2) / sigma²) (the
+    # SINAD of IEEE Std 1241 with the fit residual as noise). With N = 96000 samples the
+    # residual power scatters by sqrt(2/N) = 0.46 % (chi-square), i.e. 0.02 dB: 0.1 dB bound.
+    amp = 0.2
+    sigma = math.sqrt(amp**2 / 2 / 10 ** (snr_db / 10))
+    x = noisy_sine(96000, cal.REFERENCE_F_HZ, amp, 0.4, 0.0, sigma, seed=11)
+    fit = cal.sine_fit(x, FS, 159.2)
+    assert fit.snr_db == pytest.approx(snr_db, abs=0.1)
+    if snr_db < cal.MIN_SINE_SNR_DB - 1:
+        with pytest.raises(ConfigError, match=rf"^no 159.2 Hz signal found on input 2: SNR "
+                                              rf"{snr_db:.0f} dB"):
+            cal.require_sine(fit, 159.2, "input 2")
+    elif snr_db > cal.MIN_SINE_SNR_DB + 1:
+        assert cal.require_sine(fit, 159.2, "input 2") is fit
+
+
+def test_a_sine_at_another_frequency_is_not_the_reference() -> None:
+    # 3 % off the nominal frequency (exciters hold about 1 %): over 0.1 s the 4-parameter fit
+    # follows it (4.8 Hz is half a resolution bin of 10 Hz) and finds a clean sine elsewhere
+    x = noisy_sine(4800, 159.155 * 1.03, 0.2, 0.0, 0.0, 1e-5, seed=1)
+    with pytest.raises(ConfigError, match="no 159.2 Hz signal found on input 1: the fit found"):
+        cal.require_sine(cal.sine_fit(x, FS, 159.2), 159.2, "input 1")
+
+
+def test_scattered_burst_delays_are_refused() -> None:
+    ok = cal.LoopDelay(480, 10.0, 3, (480, 481, 483, 480, 480), 0.9)
+    assert cal.require_steady_delay(ok, "input 1") is ok
+    bad = cal.LoopDelay(480, 10.0, 4109, (12, 480, 4112, 900, 3), 0.02)
+    with pytest.raises(ConfigError, match=r"loop delay on input 1: the bursts gave 3-4112 samples"
+                                          r" \(spread 4109 > 3"):
+        cal.require_steady_delay(bad, "input 1")

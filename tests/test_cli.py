@@ -204,3 +204,41 @@ def test_synth_crest_limits_unreachable(tmp_path: Path) -> None:
                    "-o", str(tmp_path / "d.wav"), "--crest-min", "4.5", "--max-tries", "2")
     assert_one_line_error(proc, "crest_min", "max_tries")
     assert list(tmp_path.iterdir()) == []
+
+
+def _scaled_example(tmp_path: Path, db: float) -> Path:
+    """The handlebar example with every breakpoint level times 10^(db/10)."""
+    import re
+
+    text = (EXAMPLES / "handlebar-nav-unit.yaml").read_text()
+    text = re.sub(r"asd: ([0-9.]+)", lambda m: f"asd: {float(m[1]) * 10 ** (db / 10):.6g}",
+                  text)
+    p = tmp_path / f"up{db:g}.yaml"
+    p.write_text(text)
+    return p
+
+
+def test_check_exit_status_gates_on_feasibility(tmp_path: Path) -> None:
+    # Feasible as written (exit 0); 12 dB up the loudspeaker preset's card input and output are
+    # over their 3-sigma budgets (tests/test_feasibility.py): exit 3, with what binds and what
+    # would make it feasible, in the table and in --json alike.
+    ok = run_cli("check", str(EXAMPLES / "handlebar-nav-unit.yaml"), "--rig", "sim")
+    assert ok.returncode == 0, ok.stderr
+    assert "binding limit" in ok.stdout and "the full target (0 dB)" in ok.stdout
+    spec = _scaled_example(tmp_path, 12.0)
+    bad = run_cli("check", str(spec), "--rig", "sim")
+    assert bad.returncode == 3, bad.stderr
+    text = " ".join(bad.stdout.replace("│", " ").split())  # the table's wrapped cells joined
+    for words in ("binding limit card input", "headroom left", "below the target",
+                  "lowest frequency held at full level", "to make it feasible",
+                  "raise the amplifier gain"):
+        assert words in text, words
+    js = run_cli("check", str(spec), "--rig", "sim", "--json")
+    assert js.returncode == 3
+    rig = json.loads(js.stdout)["rig"]
+    assert rig["feasible"] is False and rig["binding_limit"] == "card input"
+    assert -12 < rig["reachable_level_db"] < 0 and rig["lowest_controllable_hz"] > 20
+    assert any("amplifier gain" in a for a in rig["advice"])
+    assert f"{-rig['reachable_level_db']:.1f} dB below the target" in bad.stdout
+    # Without --rig there is no rig verdict and no gate.
+    assert run_cli("check", str(spec)).returncode == 0

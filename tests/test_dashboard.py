@@ -559,3 +559,25 @@ def test_safety_notice_fits_the_rig(kind, plant, present, absent):
     bullets = [line for line in lines if "•" in line]
     assert len(bullets) == 6
     assert len(lines) == 6 + 2 + (kind == "sim")  # one row per caution: none wraps
+
+
+def test_feasibility_rows_say_what_binds_and_what_would_help():
+    from liveshape.views.checktext import feasibility_rows
+
+    rows, used = feasibility_rows({
+        "binding_limit": "excursion", "headroom_left": "card output +4.0 dB",
+        "reachable_level_db": -5.83, "lowest_controllable_hz": 14.65,
+        "lowest_limited_by": "excursion", "advice": ["run at -5.8 dB re the target", "or b"]})
+    assert rows == [
+        ("binding limit", "excursion"), ("headroom left", "card output +4.0 dB"),
+        ("reachable level", "5.8 dB below the target"),
+        ("lowest frequency held at full level", "14.65 Hz (below it: excursion)"),
+        ("to make it feasible", "run at -5.8 dB re the target"),
+        ("to make it feasible", "or b")]
+    assert {"binding_limit", "advice", "reachable_level_db"} <= used
+    rows, _ = feasibility_rows({"binding_limit": "SNR", "reachable_level_db": None,
+                                "lowest_controllable_hz": None})
+    assert ("reachable level", "none: no level keeps every budget and the SNR rule") in rows
+    assert ("lowest frequency held at full level",
+            "none: no lower band edge holds the full level") in rows
+    assert feasibility_rows({"feasible": True}) == ([], set())

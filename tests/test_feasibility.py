@@ -5,6 +5,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -145,7 +146,7 @@ def test_current_trip_limit_is_checked():
     assert not r.amp_current.ok and not r.feasible
     assert r.amp_current.headroom_db == pytest.approx(
         20 * math.log10(6.0 / r.amp_current.peak_3sigma), rel=1e-12)
-    assert any("amp_current" in u.reason for u in r.unreachable)
+    assert any("amplifier current" in u.reason for u in r.unreachable)
 
 
 def test_band_above_nyquist_and_dict_form():
@@ -163,3 +164,127 @@ def test_bad_arguments():
         assess(flat(1.0), load_plant("ideal"), fs_hz=FS, frame_length=0)
     with pytest.raises(ConfigError, match="fs_hz = -1"):
         assess(flat(1.0), load_plant("ideal"), fs_hz=-1, frame_length=N)
+
+
+# -- what binds and what would make it feasible ------------------------------------------------
+
+FINE_N = 65536  # df = 0.73 Hz: the line sum is the integral to well under 1 %
+
+
+def stroke_plant(xmax_m: float):
+    """The loudspeaker preset with only a stroke limit: no AC coupling between the table and the
+    card (measured acceleration = table acceleration), no amplifier limits, a card that neither
+    clips nor hisses, so the excursion budget is the only one that can bind."""
+    p = load_plant("loudspeaker")
+    return dataclasses.replace(
+        p,
+        card=dataclasses.replace(p.card, in_highpass_hz=None, out_v_per_fs=1000.0,
+                                 in_v_per_fs=1000.0, in_noise_fs_rms=1e-12),
+        amplifier=dataclasses.replace(p.amplifier, v_out_max_v=None, i_max_a=None),
+        accelerometer=dataclasses.replace(p.accelerometer, highpass_hz=None, noise_g_rms=1e-9),
+        shaker=dataclasses.replace(p.shaker, xmax_m=xmax_m),
+    )
+
+
+def stroke_ms(asd_g2_hz: float, f1: float, f2: float) -> float:
+    """Mean-square displacement of a flat acceleration ASD over f1..f2, m², in closed form.
+
+    Displacement PSD = acceleration PSD / (2 pi f)^4 (sinusoidal kinematics, x = a / w²;
+    C. M. Harris & A. G. Piersol, Harris' Shock and Vibration Handbook, 5th ed., ch. 1 and 23;
+    Bendat & Piersol, Random Data, 4th ed., §6.1 for the PSD of a derivative), so
+    integral of A g0² / (2 pi f)^4 df = A g0² (f1^-3 - f2^-3) / (3 (2 pi)^4).
+    """
+    return asd_g2_hz * G0_M_S2**2 * (f1**-3 - f2**-3) / (3 * (2 * math.pi) ** 4)
+
+
+def test_stroke_budget_and_lowest_frequency_by_hand():
+    a, f1, f2, xmax = 0.01, 10.0, 1000.0, 0.7e-3
+    df = FS / FINE_N
+    prof = Profile((f1, f2), (a, a), "flat")
+    r = assess(prof, stroke_plant(xmax), fs_hz=FS, frame_length=FINE_N)
+    # The lines sit at k df; their sum is the midpoint rule of the integral over
+    # [first - df/2, last + df/2] (error ~ (df/f)² / 24 relative, < 1e-3 here).
+    lines = LINES_FINE[(LINES_FINE >= f1) & (LINES_FINE <= f2)]
+    x_rms = math.sqrt(stroke_ms(a, lines[0] - df / 2, lines[-1] + df / 2))
+    assert r.excursion.rms == pytest.approx(x_rms, rel=2e-3)
+    assert not r.feasible and r.binding == "excursion" and not r.excursion.ok
+    # Reachable level: displacement scales with the square root of the ASD, so the 3-sigma
+    # peak meets Xmax at 20 log10(Xmax / (3 x_rms)) dB.
+    assert r.reachable_level_db == pytest.approx(20 * math.log10(xmax / (3 * x_rms)), abs=0.02)
+    # Lowest frequency at full level: solve 3 sqrt(stroke_ms(f*, f2)) = Xmax for f*,
+    # f*^-3 = (Xmax/3)² 3 (2 pi)^4 / (A g0²) + f2^-3. The first line whose midpoint cell starts
+    # at or above f* is the answer, within one line.
+    f_star = ((xmax / 3) ** 2 * 3 * (2 * math.pi) ** 4 / (a * G0_M_S2**2) + f2**-3) ** (-1 / 3)
+    assert r.lowest_controllable_hz == pytest.approx(f_star + df / 2, abs=df)
+    assert r.lowest_limited_by == ("excursion",)
+    assert any(f"start the band at {r.lowest_controllable_hz:.6g} Hz" in s for s in r.advice)
+
+
+LINES_FINE = np.arange(FINE_N // 2 + 1) * (FS / FINE_N)
+
+
+def test_minus_12_db_feasible_full_level_not():
+    # The case of a level schedule whose -12 dB step holds and whose 0 dB step cannot: at
+    # -12 dB the whole band is controllable (lowest = the first line of the band, no advice);
+    # at 0 dB the report names the binding budget, a reachable level that re-assessing the
+    # scaled profile confirms, and a band edge that re-assessing the cut profile confirms.
+    p = stroke_plant(0.7e-3)
+    prof = Profile((10.0, 1000.0), (0.01, 0.01), "flat")
+    low = assess(prof.scaled(-12.0), p, fs_hz=FS, frame_length=FINE_N)
+    first = LINES_FINE[LINES_FINE >= 10.0][0]
+    assert low.feasible and low.binding is None and low.advice == ()
+    assert low.lowest_controllable_hz == first and low.reachable_level_db == 0.0
+    full = assess(prof, p, fs_hz=FS, frame_length=FINE_N)
+    assert not full.feasible and full.binding == "excursion"
+    lvl = full.reachable_level_db
+    assert -12.0 < lvl < 0.0
+    assert assess(prof.scaled(lvl - 0.01), p, fs_hz=FS, frame_length=FINE_N).feasible
+    assert not assess(prof.scaled(lvl + 0.01), p, fs_hz=FS, frame_length=FINE_N).feasible
+    f_lo, df = full.lowest_controllable_hz, FS / FINE_N
+    for edge, ok in ((f_lo, True), (f_lo - df, False)):
+        cut = Profile((edge - 0.01, 1000.0), (0.01, 0.01))
+        assert assess(cut, p, fs_hz=FS, frame_length=FINE_N).feasible is ok
+    assert full.advice[0].startswith(f"run at {lvl:.1f} dB re the target")
+
+
+def test_card_output_binding_advises_the_amplifier_gain():
+    # The handlebar example 12 dB up on the loudspeaker preset: the card output and input are
+    # over, the amplifier voltage is not. Raising the amplifier gain by g dB lowers the drive
+    # needed by g dB and leaves the amplifier's output volts as they are (volts = drive x
+    # out_v_per_fs x gain), so the advice spans the card's deficit to the amplifier's headroom.
+    from liveshape.testdef.spec import load_spec
+
+    spec = load_spec(Path(__file__).resolve().parents[1] / "examples" / "handlebar-nav-unit.yaml")
+    p = load_plant("loudspeaker")
+    r = assess(spec.profile.scaled(12.0), p, fs_hz=FS, frame_length=N)
+    assert not r.feasible
+    heads = r.headrooms_db()
+    assert heads["card output"] < 0 < heads["amplifier voltage"]
+    assert r.binding == min(heads, key=heads.get)
+    want = (f"or raise the amplifier gain by {-heads['card output']:.1f} to "
+            f"{heads['amplifier voltage']:.1f} dB")
+    assert any(a.startswith(want) for a in r.advice), r.advice
+    # the gain change really fixes the card output: same plant with that much more gain
+    g = 10 ** (-heads["card output"] / 20 + 0.001)
+    p2 = dataclasses.replace(p, amplifier=dataclasses.replace(
+        p.amplifier, gain_v_per_v=p.amplifier.gain_v_per_v * g))
+    r2 = assess(spec.profile.scaled(12.0), p2, fs_hz=FS, frame_length=N)
+    assert r2.drive.ok and r2.amp_voltage.headroom_db == pytest.approx(
+        heads["amplifier voltage"], abs=1e-9)
+    # and the profile as written (12 dB lower) is feasible with its full band
+    r0 = assess(spec.profile, p, fs_hz=FS, frame_length=N)
+    assert r0.feasible and r0.lowest_controllable_hz == LINES[LINES >= 20.0][0]
+    d = json.loads(json.dumps(r.to_dict()))
+    assert d["binding_limit"] == r.binding and d["reachable_level_db"] == r.reachable_level_db
+    assert d["advice"] == list(r.advice) and "amplifier voltage +" in d["headroom_left"]
+
+
+def test_snr_binding_has_no_reachable_level():
+    # Lowering the level lowers every line's SNR by as much: when the SNR rule already fails at
+    # full level no level below it helps (reachable level None) and the advice says so.
+    p = load_plant("loudspeaker")
+    p = dataclasses.replace(p, accelerometer=dataclasses.replace(p.accelerometer,
+                                                                 noise_g_rms=0.3))
+    r = assess(flat(0.05), p, fs_hz=FS, frame_length=N)
+    assert not r.feasible and r.binding == "SNR" and r.reachable_level_db is None
+    assert any(a.startswith("raise the SNR by") for a in r.advice)

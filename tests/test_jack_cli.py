@@ -97,12 +97,15 @@ def calibration_file(virtual_rig, tmp_path_factory) -> tuple[Path, dict]:
     # (peak) per FS reads level * OUT_V_PER_FS / sqrt(2) V rms.
     reading = level * OUT_V_PER_FS / math.sqrt(2.0)
     steps = {}
+    # The virtual rig's loopback cable runs from output 2 to input 2 (channels count from 1);
+    # scripted, so --unattended (stdin is not a terminal here).
     for args in (
         ("output", "--reading", f"{reading:.6f}", "--level", str(level)),
-        ("input", "--loopback", "1:1"),
-        ("delay", "--loopback", "1:1"),
+        ("input", "--loopback", "2:2"),
+        ("delay", "--loopback", "2:2"),
     ):
-        proc = call(env, "calibrate", *args, "--device", name, "-o", str(path), "--json")
+        proc = call(env, "calibrate", *args, "--device", name, "-o", str(path), "--json",
+                    "--unattended")
         assert proc.returncode == 0, proc.stderr
         steps[args[0]] = json.loads(proc.stdout)
     return path, steps

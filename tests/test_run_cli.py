@@ -179,22 +179,48 @@ def test_bad_fault_option(tmp_path: Path) -> None:
     assert proc.returncode == 2 and "meltdown" in proc.stderr and "Traceback" not in proc.stderr
 
 
-def test_infeasible_profile_is_named_before_the_drive(tmp_path: Path) -> None:
+def _too_high(tmp_path: Path) -> Path:
     # The example profile 25 dB up (about 20 grms) needs more stroke, amplifier voltage and
-    # drive than the loudspeaker preset has (its feasibility budgets, rigs/feasibility.py):
-    # the run names that before it drives. The first rule to trip is the input overload: at
-    # the first step (-12 dB) the control is ~5 grms, which at the preset's 100 mV/g and
-    # 1 V/FS is 0.5 FS rms, so Gaussian peaks (P(|x| > 2 sigma) = 4.6 %) pass 0.98 FS.
+    # drive than the loudspeaker preset has (its feasibility budgets, rigs/feasibility.py).
     text = SPEC.read_text().replace("asd: 0.0005", "asd: 0.158").replace("asd: 0.002",
                                                                          "asd: 0.632")
     spec = tmp_path / "too-high.yaml"
     spec.write_text(text)
+    return spec
+
+
+def test_infeasible_profile_is_refused_before_any_drive(tmp_path: Path) -> None:
+    spec = _too_high(tmp_path)
     proc = subprocess.run(cli("run", str(spec), "--fast", "--json", "--out", str(tmp_path)),
                           capture_output=True, text=True, cwd=REPO, timeout=600)
     assert "Traceback" not in proc.stderr
+    assert proc.returncode == 3, proc.stderr
+    assert proc.stdout == ""
+    assert "cannot be held at full level" in proc.stderr and "binding limit" in proc.stderr
+    assert "--accept-infeasible" in proc.stderr and "to make it feasible" in proc.stderr
+    # nothing was driven: no run folder was made
+    assert not [p for p in tmp_path.iterdir() if p.is_dir()]
+
+
+def test_infeasible_profile_runs_when_accepted_and_the_record_says_so(tmp_path: Path) -> None:
+    # The first rule to trip is the input overload: at the first step (-12 dB) the control is
+    # ~5 grms, which at the preset's 100 mV/g and 1 V/FS is 0.5 FS rms, so Gaussian peaks
+    # (P(|x| > 2 sigma) = 4.6 %) pass 0.98 FS.
+    spec = _too_high(tmp_path)
+    proc = subprocess.run(cli("run", str(spec), "--fast", "--json", "--out", str(tmp_path),
+                              "--accept-infeasible"),
+                          capture_output=True, text=True, cwd=REPO, timeout=600)
+    assert "Traceback" not in proc.stderr
     notice = proc.stderr.index("hearing protection")
-    warning = proc.stderr.index("cannot be controlled")
+    warning = proc.stderr.index("cannot be held at full level")
     assert notice < warning
     data = json.loads(proc.stdout)
     assert data["status"] == "aborted"
     assert data["abort_rule"] == "input_overload"
+    run_dir = Path(data["run_dir"])
+    meta = json.loads((run_dir / "run.json").read_text())
+    acc = meta["accepted_infeasible"]
+    assert acc["binding_limit"] != "none" and acc["reachable_level_db"] < 0
+    events = [json.loads(line) for line in (run_dir / "events.jsonl").read_text().splitlines()]
+    first = events[0]
+    assert first["kind"] == "infeasible_accepted" and first["t_s"] == 0.0

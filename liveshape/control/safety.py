@@ -72,6 +72,9 @@ EXIT_STATUS: dict[str, int] = {
     "connect_check": 18,
 }
 RULES: tuple[str, ...] = tuple(EXIT_STATUS)
+#: Exit status of ``check --rig`` when the profile is infeasible on the rig, and of ``run`` when
+#: it refuses such a profile before any drive (without ``--accept-infeasible``).
+EXIT_INFEASIBLE = 3
 #: Exit status of a run that completed but whose verdict is ``fail`` (its control was outside
 #: the spec's tolerance; see :mod:`liveshape.control.verdict`).
 VERDICT_FAIL_EXIT = 4

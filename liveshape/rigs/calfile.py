@@ -80,8 +80,12 @@ def calibration_from_mapping(data: Any, where: Where) -> ChainCalibration:
     if d.get("fs_hz") is not None:
         as_float(d["fs_hz"], where.key("fs_hz"), gt=0.0)
     wo, wi, wa = where.key("output"), where.key("input"), where.key("accelerometer")
-    out = check_keys(d["output"], ("v_per_fs", "method"), wo, required=("v_per_fs",))
-    inp = check_keys(d["input"], ("v_per_fs", "method"), wi, required=("v_per_fs",))
+    out = check_keys(d["output"], ("v_per_fs", "method", "channel"), wo, required=("v_per_fs",))
+    inp = check_keys(d["input"], ("v_per_fs", "method", "channel"), wi, required=("v_per_fs",))
+    for sec, w in ((out, wo), (inp, wi)):
+        # channels are numbered from 1, as printed on the interface
+        if sec.get("channel") is not None and as_int(sec["channel"], w.key("channel")) < 1:
+            raise w.key("channel").fail(sec["channel"], "must be >= 1 (channels count from 1)")
     acc = check_keys(d["accelerometer"], ("mv_per_g", "datasheet_mv_per_g"), wa,
                      required=("mv_per_g",))
     if acc.get("datasheet_mv_per_g") is not None:

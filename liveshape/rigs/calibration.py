@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -31,6 +32,9 @@ from liveshape.rigs.calfile import (
     write_calibration,
 )
 from liveshape.rigs.calmath import (
+    DATASHEET_TOLERANCE_PCT,
+    MAX_DELAY_SPREAD_SAMPLES,
+    MIN_SINE_SNR_DB,
     REFERENCE_ACCEL_M_S2_RMS,
     REFERENCE_F_HZ,
     VOLTMETER_F_HZ,
@@ -46,11 +50,16 @@ from liveshape.rigs.calmath import (
     highpass_response,
     input_v_per_fs,
     output_v_per_fs,
+    require_sine,
+    require_steady_delay,
+    require_v_per_fs,
     sine_fit,
     tone,
 )
 
 __all__ = [
+    "DATASHEET_TOLERANCE_PCT", "MAX_DELAY_SPREAD_SAMPLES", "MIN_SINE_SNR_DB", "StepNotice",
+    "describe_step", "require_sine", "require_steady_delay", "require_v_per_fs",
     "REFERENCE_ACCEL_M_S2_RMS", "REFERENCE_F_HZ", "SCHEMA_VERSION", "UNCALIBRATED",
     "VOLTMETER_F_HZ", "AccelCheck", "HighpassFit", "LoopDelay", "SineFit", "ToneSource",
     "VoltsPerFs", "accel_sensitivity", "burst_train", "calibrate_input", "calibrate_output",
@@ -124,12 +133,15 @@ def calibrate_input(
     f_hz: float = VOLTMETER_F_HZ,
     level_fs: float = 0.5,
     duration_s: float = 1.0,
+    where: str = "the input",
 ) -> VoltsPerFs:
     """Input scale, either through a cable from the output (``out_v_per_fs`` known) or from an
     external sine of ``known_v_rms`` at the input (the drive stays silent).
 
     ``channel`` is the input to fit: ``"loopback"`` (the rig's loopback input) or ``"control"``.
-    The first and last 0.2 s of the recorded tone are left out (ramps, settling).
+    The first and last 0.2 s of the recorded tone are left out (ramps, settling). A record
+    without the sine (:func:`require_sine`, ``where`` names the input) or a scale outside
+    :data:`~liveshape.rigs.calmath.V_PER_FS_RANGE` is a one-line :class:`ConfigError`.
     """
     if (out_v_per_fs is None) == (known_v_rms is None):
         raise ConfigError("input calibration: give exactly one of out_v_per_fs or known_v_rms")
@@ -142,7 +154,7 @@ def calibrate_input(
     pad = int(round(0.1 * rig.fs_hz))  # play_record's leading silence
     edge = int(round(0.2 * rig.fs_hz))
     seg = y[pad + edge : pad + n - edge] if level else y[pad:]
-    fit = sine_fit(seg, rig.fs_hz, f_hz)
+    fit = require_sine(sine_fit(seg, rig.fs_hz, f_hz), f_hz, where)
     if out_v_per_fs is not None:
         v_rms = level_fs * out_v_per_fs / math.sqrt(2.0)
         return input_v_per_fs(fit, v_rms, method="loopback")
@@ -158,8 +170,13 @@ def measure_loop_delay(
     level_fs: float = 0.1,
     channel: str = "control",
     seed: int = 0,
+    where: str = "the input",
 ) -> LoopDelay:
-    """Loop delay through the rig from ``repeats`` noise bursts (the gap bounds the delay)."""
+    """Loop delay through the rig from ``repeats`` noise bursts (the gap bounds the delay).
+
+    A spread of the per-burst delays above
+    :data:`~liveshape.rigs.calmath.MAX_DELAY_SPREAD_SAMPLES` is a one-line
+    :class:`ConfigError` naming ``where`` (:func:`require_steady_delay`)."""
     x, starts, n_b = burst_train(rig.fs_hz, repeats=repeats, burst_s=burst_s, gap_s=gap_s,
                                  level_fs=level_fs, seed=seed)
     rec = rig.play_record(x, pad_s=0.0, tail_s=gap_s)
@@ -167,8 +184,9 @@ def measure_loop_delay(
     if y is None:
         raise ConfigError("loop delay: channel = 'loopback' but the rig has no loopback")
     max_delay = int(round(gap_s * rig.fs_hz)) - 1
-    return estimate_loop_delay(rec.drive_fs, y, rig.fs_hz, starts=starts, burst_length=n_b,
-                               max_delay=max_delay)
+    return require_steady_delay(
+        estimate_loop_delay(rec.drive_fs, y, rig.fs_hz, starts=starts, burst_length=n_b,
+                            max_delay=max_delay), where)
 
 
 def measure_lowfreq_corner(
@@ -215,9 +233,114 @@ def check_accelerometer(
     in_v_per_fs: float,
     datasheet_mv_per_g: float | None = None,
     duration_s: float = 2.0,
+    where: str = "the control input",
+    accept_deviation: bool = False,
 ) -> AccelCheck:
-    """Record the control channel (drive silent) while the sensor sits on the reference exciter."""
+    """Record the control channel (drive silent) while the sensor sits on the reference exciter.
+
+    The plausibility limits of :func:`~liveshape.rigs.calmath.accel_sensitivity` apply."""
     rec = rig.play_record(np.zeros(int(round(duration_s * rig.fs_hz)), np.float32), pad_s=0.0,
                           tail_s=0.0)
     return accel_sensitivity(rec.response_fs, rig.fs_hz, in_v_per_fs=in_v_per_fs,
-                             datasheet_mv_per_g=datasheet_mv_per_g)
+                             datasheet_mv_per_g=datasheet_mv_per_g, where=where,
+                             accept_deviation=accept_deviation)
+
+
+# -- what each step plays, and what to do before ----------------------------------------------
+@dataclass(frozen=True)
+class StepNotice:
+    """What a calibration step will do, in words, shown before anything plays.
+
+    ``plays`` is None when the step plays nothing (it only records); ``before`` is what to
+    connect and disconnect first; ``records`` what is recorded, and ``writes`` what the step
+    writes into the calibration file.
+    """
+
+    step: str
+    plays: str | None
+    before: str
+    records: str
+    writes: str
+
+    def lines(self) -> list[str]:
+        """The notice as the lines the command prints."""
+        out = [f"calibrate {self.step}:"]
+        out.append(f"  plays:   {self.plays}" if self.plays else "  plays:   nothing")
+        out += [f"  first:   {self.before}", f"  records: {self.records}",
+                f"  writes:  {self.writes}"]
+        return out
+
+
+def _peak_text(level_fs: float, out_v_per_fs: float | None) -> str:
+    db = 20.0 * math.log10(level_fs)
+    volts = "" if out_v_per_fs is None else f", about {level_fs * out_v_per_fs:.3g} V peak"
+    return f"{level_fs:g} FS peak ({db:+.1f} dBFS{volts})"
+
+
+def describe_step(
+    step: str,
+    *,
+    device: str,
+    level_fs: float = 0.5,
+    loopback: tuple[int, int] | None = None,
+    out_v_per_fs: float | None = None,
+    known_v_rms: float | None = None,
+    repeats: int = 5,
+    datasheet_mv_per_g: float | None = None,
+) -> StepNotice:
+    """The :class:`StepNotice` of one ``liveshape calibrate`` step.
+
+    Channels are numbered from 1 as printed on interfaces: output 1 carries the drive, input 1
+    the control accelerometer; ``loopback = (out, in)`` is a cable from output ``out`` to input
+    ``in`` (``(1, 1)``: the drive output straight into the control input). ``out_v_per_fs``,
+    when known, turns the level into volts.
+    """
+    amp_off = "amplifier input unplugged from output 1 (or the amplifier off)"
+    outs = "output 1" if loopback is None or loopback[0] == 1 else f"outputs 1 and {loopback[0]}"
+    cable = ("" if loopback is None else
+             f"; a cable from output {loopback[0]} to input {loopback[1]}"
+             + ("" if loopback[1] != 1 else " (the conditioner unplugged from input 1)"))
+    rec_in = 1 if loopback is None else loopback[1]
+    if step == "output":
+        return StepNotice(
+            step, f"a steady {VOLTMETER_F_HZ:g} Hz sine, {_peak_text(level_fs, None)}, on "
+            f"output 1 of {device} until you type the voltmeter reading",
+            f"{amp_off}; a true-rms AC voltmeter across output 1",
+            "your voltmeter reading (V rms)", "output.v_per_fs, output.channel: 1")
+    if step == "input" and known_v_rms is not None:
+        return StepNotice(
+            step, None, f"a signal generator on input 1 of {device}: a {VOLTMETER_F_HZ:g} Hz "
+            f"sine (within 2 %) of {known_v_rms:g} V rms (read on your voltmeter)",
+            "1 s on input 1", "input.v_per_fs, input.channel: 1")
+    if step == "input":
+        return StepNotice(
+            step, f"a {VOLTMETER_F_HZ:g} Hz sine, {_peak_text(level_fs, out_v_per_fs)}, for "
+            f"1 s on {outs} of {device}", amp_off + cable, f"1 s on input {rec_in}",
+            f"input.v_per_fs, input.channel: {rec_in}")
+    if step == "delay":
+        bursts = (f"{repeats} noise bursts of 0.1 s, 0.1 FS rms (peaks up to 0.4 FS), "
+                  f"0.2 s apart, on {outs} of {device}")
+        if loopback is None:
+            return StepNotice(
+                step, bursts + " through the amplifier to the shaker",
+                "amplifier gain low (the bursts drive the shaker); the accelerometer on the "
+                "shaker, its conditioner on input 1",
+                f"{0.3 * repeats + 0.2:.1f} s on input 1",
+                "loop_delay.samples, loop_delay.spread_samples")
+        return StepNotice(step, bursts, amp_off + cable,
+                          f"{0.3 * repeats + 0.2:.1f} s on input {rec_in}",
+                          "loop_delay.samples, loop_delay.spread_samples")
+    if step == "corner":
+        return StepNotice(
+            step, f"white noise, 0.1 FS rms (peaks up to 0.4 FS), for 6 s on {outs} of {device}",
+            amp_off + cable, f"6 s on input {rec_in}",
+            "lowfreq_corner (order, corner_hz, q, f_3db_hz)")
+    if step == "sensor":
+        sheet = ("" if datasheet_mv_per_g is None else
+                 f"; compared with the datasheet's {datasheet_mv_per_g:g} mV/g")
+        return StepNotice(
+            step, None, f"the accelerometer on the reference exciter ({REFERENCE_F_HZ:.1f} Hz, "
+            f"{REFERENCE_ACCEL_M_S2_RMS:g} m/s² rms), the exciter on, the conditioner on input 1 "
+            f"of {device}; nothing plays on the outputs", "2 s on input 1" + sheet,
+            "accelerometer.mv_per_g")
+    raise ValueError(f"unknown calibration step {step!r}")

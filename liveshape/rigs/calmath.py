@@ -7,6 +7,13 @@ signals through a rig are in :mod:`liveshape.rigs.calibration`; the calibration 
 References: least-squares sine fits with three and four parameters, IEEE Std 1057 (digitizing
 waveform recorders) and IEEE Std 1241 (ADC testing); comparison calibration of vibration
 transducers, ISO 16063-21; H1 and its delay alignment, Bendat & Piersol, *Random Data*.
+
+Plausibility limits (each a one-line :class:`ConfigError`, so a command writes no file):
+volts per full scale within :data:`V_PER_FS_RANGE`; a sensor sensitivity within
+:data:`SENSITIVITY_RANGE_MV_PER_G` and within :data:`DATASHEET_TOLERANCE_PCT` of the datasheet
+value unless the user confirms the deviation; a recorded sine whose fit has an SNR of at least
+:data:`MIN_SINE_SNR_DB` and a frequency within :data:`SINE_F_TOLERANCE` of the nominal one;
+a loop delay whose spread over the bursts is at most :data:`MAX_DELAY_SPREAD_SAMPLES`.
 """
 
 from __future__ import annotations
@@ -28,6 +35,29 @@ REFERENCE_ACCEL_M_S2_RMS = 10.0
 #: ordinary true-rms multimeters (about 40 Hz to 1 kHz; from memory).
 VOLTMETER_F_HZ = 400.0
 
+#: Volts per full scale a sound-card output or input can plausibly have: line outputs give
+#: about 1-10 V peak at full scale, inputs with their gain span about 0.05-20 V (our bounds,
+#: a decade beyond each end). A reading outside is a unit slip (mV typed as V) or no signal.
+V_PER_FS_RANGE = (0.01, 100.0)
+#: Accelerometer sensitivities (with conditioner) that exist: about 0.1 mV/g (shock sensors)
+#: to 10 V/g (seismic sensors) [from memory; common practice].
+SENSITIVITY_RANGE_MV_PER_G = (0.1, 10000.0)
+#: Deviation from the datasheet sensitivity accepted without confirmation, percent. Datasheets
+#: state sensitivity to about ±5-10 %, a reference exciter about ±3 % [from memory]; beyond
+#: ±20 % the sensor, its conditioner gain or its cable is more likely wrong than the sheet.
+DATASHEET_TOLERANCE_PCT = 20.0
+#: Least SNR (SINAD) of a recorded calibration sine, dB. The fit's residual is everything that
+#: is not the sine (noise, hum, distortion); at 20 dB it is 10 % of the sine's rms, far more
+#: than a working calibration chain shows (> 40 dB), so less means the sine is not there or not
+#: alone (our rule).
+MIN_SINE_SNR_DB = 20.0
+#: Largest relative distance of the fitted frequency from the nominal one: reference exciters
+#: hold their frequency to about ±1 % [from memory], so 2 %.
+SINE_F_TOLERANCE = 0.02
+#: Largest spread (max - min) of the per-burst loop delays, samples: one stream's delay is
+#: fixed to the sample, so a larger spread means the bursts were not found (our rule).
+MAX_DELAY_SPREAD_SAMPLES = 3
+
 
 # -- sine fit ---------------------------------------------------------------------------------
 @dataclass(frozen=True)
@@ -45,6 +75,50 @@ class SineFit:
     def rms(self) -> float:
         """Rms of the sine component, ``amplitude / sqrt(2)``."""
         return self.amplitude / math.sqrt(2.0)
+
+    @property
+    def snr_db(self) -> float:
+        """Signal to noise-and-distortion ratio of the fit, dB: ``20 log10(rms / residual_rms)``.
+
+        The residual of a least-squares sine fit is the record's noise and distortion; the
+        ratio of the fitted sine's rms to it is the SINAD of IEEE Std 1241-2010 (ADC testing,
+        the SINAD defined on the residual of the sine fit) and IEEE Std 1057-2017 (waveform
+        recorders, the same fit) [section numbers not quoted: from memory]. ``inf`` for a
+        noiseless record, ``-inf`` when the fitted amplitude is zero or not finite.
+        """
+        if not (math.isfinite(self.amplitude) and self.amplitude > 0):
+            return -math.inf
+        if self.residual_rms <= 0:
+            return math.inf
+        return 20.0 * math.log10(self.rms / self.residual_rms)
+
+
+def require_sine(fit: SineFit, f_nominal_hz: float, where: str) -> SineFit:
+    """Refuse a fit that says no sine of ``f_nominal_hz`` is in the record.
+
+    ``where`` names the input (``"input 1"``). Raises a one-line :class:`ConfigError` when the
+    fit's SNR is below :data:`MIN_SINE_SNR_DB` or its frequency is more than
+    :data:`SINE_F_TOLERANCE` away from the nominal one.
+    """
+    snr = fit.snr_db
+    f_ok = math.isfinite(fit.f_hz) and abs(fit.f_hz / f_nominal_hz - 1.0) <= SINE_F_TOLERANCE
+    if snr >= MIN_SINE_SNR_DB and f_ok:
+        return fit
+    snr_text = f"{snr:.0f} dB" if math.isfinite(snr) else "none"
+    why = (f"SNR {snr_text} (a calibration sine needs >= {MIN_SINE_SNR_DB:g} dB)"
+           if snr < MIN_SINE_SNR_DB else
+           f"the fit found {fit.f_hz:.5g} Hz, not within {100 * SINE_F_TOLERANCE:g} %")
+    raise ConfigError(f"no {f_nominal_hz:.1f} Hz signal found on {where}: {why}")
+
+
+def require_v_per_fs(v_per_fs: float, what: str) -> float:
+    """Refuse a converter scale outside :data:`V_PER_FS_RANGE` (one line naming ``what``)."""
+    lo, hi = V_PER_FS_RANGE
+    if not (math.isfinite(v_per_fs) and lo <= v_per_fs <= hi):
+        raise ConfigError(
+            f"{what} = {v_per_fs:.4g} V/FS is outside {lo:g}-{hi:g} V/FS: no sound card has "
+            "that scale (a reading in mV typed as V, a wrong level, or no signal?)")
+    return v_per_fs
 
 
 def sine_fit(
@@ -125,7 +199,9 @@ def output_v_per_fs(
     where = Where("output calibration")
     level = as_float(level_fs, where.key("level_fs"), gt=0.0, le=1.0)
     reading = as_float(reading_v_rms, where.key("voltmeter reading (V rms)"), gt=0.0)
-    return VoltsPerFs(reading * math.sqrt(2.0) / level, float(f_hz), level, reading, "voltmeter")
+    v = require_v_per_fs(reading * math.sqrt(2.0) / level,
+                         f"output calibration: {reading:g} V rms at {level:g} FS gives v_per_fs")
+    return VoltsPerFs(v, float(f_hz), level, reading, "voltmeter")
 
 
 def input_v_per_fs(
@@ -135,7 +211,10 @@ def input_v_per_fs(
     v = as_float(known_v_rms, Where("input calibration").key("known_v_rms"), gt=0.0)
     if fit.amplitude <= 0.0:
         raise ConfigError("input calibration: the recorded sine has zero amplitude")
-    return VoltsPerFs(v * math.sqrt(2.0) / fit.amplitude, fit.f_hz, fit.amplitude, v, method)
+    scale = require_v_per_fs(v * math.sqrt(2.0) / fit.amplitude,
+                             f"input calibration: {v:g} V rms recorded as "
+                             f"{fit.amplitude:.3g} FS peak gives v_per_fs")
+    return VoltsPerFs(scale, fit.f_hz, fit.amplitude, v, method)
 
 
 # -- loop delay -------------------------------------------------------------------------------
@@ -210,6 +289,18 @@ def estimate_loop_delay(
         peaks.append(abs(float(est.peak)))
     med = int(np.median(per))
     return LoopDelay(med, 1e3 * med / fs_hz, int(max(per) - min(per)), tuple(per), min(peaks))
+
+
+def require_steady_delay(delay: LoopDelay, where: str) -> LoopDelay:
+    """Refuse a delay whose per-burst estimates spread more than
+    :data:`MAX_DELAY_SPREAD_SAMPLES` (the bursts were not found on ``where``)."""
+    if delay.spread_samples > MAX_DELAY_SPREAD_SAMPLES:
+        raise ConfigError(
+            f"loop delay on {where}: the bursts gave {min(delay.per_burst)}-"
+            f"{max(delay.per_burst)} samples (spread {delay.spread_samples} > "
+            f"{MAX_DELAY_SPREAD_SAMPLES}; correlation peak {delay.min_peak:.2f}): the bursts "
+            "did not come back (cable, channel or level?)")
+    return delay
 
 
 # -- low-frequency corner ---------------------------------------------------------------------
@@ -311,14 +402,30 @@ def accel_sensitivity(
     datasheet_mv_per_g: float | None = None,
     f_hz: float = REFERENCE_F_HZ,
     accel_m_s2_rms: float = REFERENCE_ACCEL_M_S2_RMS,
+    where: str = "the control input",
+    accept_deviation: bool = False,
 ) -> AccelCheck:
     """Sensitivity in mV/g from the sine the sensor gives on the reference exciter.
 
     ``V_rms = fit.rms * in_v_per_fs``; ``a = accel_m_s2_rms / g0`` g rms (g0 = 9.80665 m/s²);
     ``S = 1000 V_rms / a`` mV/g; deviation from the datasheet value in percent.
+
+    Refused (one-line :class:`ConfigError`): no sine at ``f_hz`` on ``where``
+    (:func:`require_sine`); ``S`` outside :data:`SENSITIVITY_RANGE_MV_PER_G`; ``S`` more than
+    :data:`DATASHEET_TOLERANCE_PCT` from the datasheet value unless ``accept_deviation``.
     """
-    fit = sine_fit(recorded_fs, fs_hz, f_hz)
+    fit = require_sine(sine_fit(recorded_fs, fs_hz, f_hz), f_hz, where)
     a_g = accel_m_s2_rms / G0_M_S2
     sens = 1e3 * fit.rms * in_v_per_fs / a_g
+    lo, hi = SENSITIVITY_RANGE_MV_PER_G
+    if not lo <= sens <= hi:
+        raise ConfigError(
+            f"sensor sensitivity = {sens:.4g} mV/g on {where} is outside {lo:g}-{hi:g} mV/g: "
+            "no accelerometer has it (exciter on, sensor on it, input scale right?)")
     dev = None if datasheet_mv_per_g is None else 100.0 * (sens / datasheet_mv_per_g - 1.0)
+    if dev is not None and abs(dev) > DATASHEET_TOLERANCE_PCT and not accept_deviation:
+        raise ConfigError(
+            f"sensor sensitivity = {sens:.4g} mV/g is {dev:+.1f} % from the datasheet's "
+            f"{datasheet_mv_per_g:g} mV/g (more than ±{DATASHEET_TOLERANCE_PCT:g} %): check "
+            "the conditioner gain and the cable, or confirm with --accept-deviation")
     return AccelCheck(sens, datasheet_mv_per_g, dev, a_g, fit)

@@ -17,13 +17,26 @@ Noise floor at the card input: sensor noise ``(noise_g_rms c)² / (fs/2)`` plus 
 ``in_noise_fs_rms² / (fs/2)`` FS²/Hz, both white over 0 .. fs/2 as in the simulated rig. The SNR of
 a line is the target's measured PSD ``A_k c²`` over this floor.
 
-Rule for the lowest frequency the rig can honestly control (our own rule, documented here):
-a line ``f_k`` of the band qualifies when (1) its SNR is at least ``snr_min_db`` (default 10 dB:
-noise then biases the measured PSD by at most ``10 log10(1.1) = 0.41 dB``, well inside a ±3 dB
-alarm band) and (2) the profile from ``f_k`` up to its top keeps every 3-sigma budget within its
-limit. The lowest qualifying line is reported. Lines that fail (1), lines below the lowest line
-that meets (2), lines above fs/2 and lines below the first line spacing are listed as
-unreachable bands with their reasons.
+What would make an infeasible profile feasible (our own rules, derived in docs/methods.md,
+"Feasibility budgets"):
+
+* **Reachable level.** Every budget but the card input scales with the level: a profile
+  ``L`` dB below the target has every PSD times ``10^(L/10)`` and every 3-sigma peak times
+  ``10^(L/20)``, so its headroom is ``h - L``. The card input also carries the noise floor,
+  which does not scale: ``9 (R 10^(L/10) + N) <= 1`` FS². The SNR of every line falls by
+  ``L``. The reachable level is the highest ``L <= 0`` that keeps every budget and the SNR rule;
+  None when no level does (the SNR already fails at the full level).
+* **Binding limit.** The budget (or the SNR rule) with the least headroom at full level.
+* **Lowest controllable frequency at full level.** A line ``f_k`` of the band qualifies when
+  (1) every line from ``f_k`` up has an SNR of at least ``snr_min_db`` (default 10 dB: noise
+  then biases the measured PSD by at most ``10 log10(1.1) = 0.41 dB``, well inside a ±3 dB alarm
+  band) and (2) the profile from ``f_k`` up to its top keeps every 3-sigma budget within its
+  limit. The lowest qualifying line is reported with the budgets that bind one line lower. It
+  answers "how far up must the band start to hold the *full* level": a level problem (a
+  budget spread over the whole band) is answered by the reachable level instead, and a profile
+  feasible at full level reports its first line. Lines that fail (1), lines below the lowest
+  line that meets (2), lines above fs/2 and lines below the first line spacing are listed as
+  unreachable bands with their reasons.
 """
 
 from __future__ import annotations
@@ -89,6 +102,22 @@ class Feasibility:
     coil_rise_k: float | None
     unreachable: tuple[Unreachable, ...]
     feasible: bool
+    binding: str | None = None
+    reachable_level_db: float | None = 0.0
+    lowest_limited_by: tuple[str, ...] = ()
+    advice: tuple[str, ...] = ()
+
+    def headrooms_db(self) -> dict[str, float]:
+        """Headroom of every limit at full level, dB, by its plain name (``SNR`` is the worst
+        line's SNR over ``snr_min_db``); limits the plant does not state are left out."""
+        out = {b.name: b.headroom_db for b in self._budgets() if b.headroom_db is not None}
+        if math.isfinite(self.snr_worst_db):
+            out["SNR"] = self.snr_worst_db - self.snr_min_db
+        return out
+
+    def _budgets(self) -> list[Budget]:
+        return [b for b in (self.drive, self.amp_voltage, self.amp_current, self.excursion,
+                            self.card_input) if b is not None]
 
     def to_dict(self) -> dict[str, Any]:
         """Flat plain data with units in the key names (for records, JSON and the screen).
@@ -127,6 +156,13 @@ class Feasibility:
             "unreachable": "; ".join(
                 f"{u.f_lo_hz:.6g}-{u.f_hi_hz:.6g} Hz: {u.reason}" for u in self.unreachable
             ) or "none",
+            "snr_headroom_db": self.snr_worst_db - self.snr_min_db,
+            "binding_limit": self.binding or "none",
+            "reachable_level_db": self.reachable_level_db,
+            "lowest_limited_by": ", ".join(self.lowest_limited_by) or "none",
+            "headroom_left": "; ".join(f"{k} {v:+.1f} dB" for k, v in self.headrooms_db().items()
+                                       if k != self.binding) or "none",
+            "advice": list(self.advice),
         })
         return d
 
@@ -239,17 +275,27 @@ def assess(
     # Lowest line from which the rest of the band keeps every budget (suffix sums).
     fits = np.ones(fb.size, bool)
     over_names: list[list[str]] = [[] for _ in range(fb.size)]
+    # the card input carries the noise floor whatever the band
+    limited.append(("card_input", resp, 1.0))
     for name, psd, limit in limited:
         if limit is None:
             continue
-        tail_peak = PEAK_SIGMA * np.sqrt(np.cumsum(psd[::-1])[::-1] * df)
+        extra = noise_ms if name == "card_input" else 0.0
+        tail_peak = PEAK_SIGMA * np.sqrt(np.cumsum(psd[::-1])[::-1] * df + extra)
         bad = tail_peak > limit
         fits &= ~bad
         for k in np.flatnonzero(bad):
             over_names[k].append(name)
     snr_ok = snr_db >= snr_min_db
-    good = fits & snr_ok
+    # every line from k up must meet the SNR rule (suffix "all")
+    snr_ok_up = np.cumprod(snr_ok[::-1])[::-1].astype(bool) if fb.size else snr_ok
+    good = fits & snr_ok_up
     lowest = float(fb[np.argmax(good)]) if good.any() else None
+    limited_by: tuple[str, ...] = ()
+    if lowest is not None and np.argmax(good) > 0:
+        k = int(np.argmax(good)) - 1
+        limited_by = tuple(_LABEL[n] for n in over_names[k]) + (
+            ("SNR",) if not snr_ok_up[k] else ())
 
     unreachable: list[Unreachable] = []
     f_min = float(getattr(profile, "f_min_hz", fb[0] if fb.size else 0.0))
@@ -257,7 +303,7 @@ def assess(
     if f_min < df:
         unreachable.append(Unreachable(f_min, min(df, f_max), "below the line spacing fs/N"))
     for i, j in _runs(~fits):
-        names = sorted({n for k in range(i, j + 1) for n in over_names[k]})
+        names = sorted({_LABEL[n] for k in range(i, j + 1) for n in over_names[k]})
         unreachable.append(Unreachable(
             float(fb[i]), float(fb[j]),
             f"3-sigma {', '.join(names)} of the band from here up exceeds its limit"))
@@ -277,6 +323,16 @@ def assess(
             coil_rise = coil_power * sh.coil_heating.thermal_resistance_k_per_w
     worst = int(np.argmin(snr_db)) if fb.size else None
     checks = [b for b in budgets.values() if b is not None]
+    snr_worst = float(snr_db[worst]) if worst is not None else -math.inf
+    reachable = _reachable_level_db(checks, budgets["card_input"], noise_ms, snr_worst,
+                                    snr_min_db)
+    heads = {b.name: b.headroom_db for b in checks if b.headroom_db is not None}
+    if math.isfinite(snr_worst):
+        heads["SNR"] = snr_worst - snr_min_db
+    binding = min(heads, key=lambda n: heads[n]) if heads and min(heads.values()) < 0 else None
+    feasible = bool(fb.size) and all(b.ok for b in checks) and not unreachable
+    advice = _advice(heads, binding, reachable, lowest, float(fb[0]) if fb.size else None,
+                     limited_by, unreachable, fs, snr_min_db) if not feasible else ()
     return Feasibility(
         plant=plant.name,
         profile=str(getattr(profile, "name", "") or ""),
@@ -289,11 +345,75 @@ def assess(
         excursion=budgets["excursion"],
         card_input=budgets["card_input"],
         snr_min_db=float(snr_min_db),
-        snr_worst_db=float(snr_db[worst]) if worst is not None else -math.inf,
+        snr_worst_db=snr_worst,
         snr_worst_hz=float(fb[worst]) if worst is not None else math.nan,
         lowest_controllable_hz=lowest,
         coil_power_w=coil_power,
         coil_rise_k=coil_rise,
         unreachable=tuple(unreachable),
-        feasible=bool(fb.size) and all(b.ok for b in checks) and not unreachable,
+        feasible=feasible,
+        binding=binding,
+        reachable_level_db=reachable,
+        lowest_limited_by=limited_by,
+        advice=advice,
     )
+
+
+#: Plain names of the limits (the keys of ``over_names`` in :func:`assess`).
+_LABEL = {"drive": "card output", "amp_voltage": "amplifier voltage", "excursion": "excursion",
+          "amp_current": "amplifier current", "card_input": "card input"}
+
+
+def _reachable_level_db(budgets: list[Budget], card_input: Budget, noise_ms: float,
+                        snr_worst_db: float, snr_min_db: float) -> float | None:
+    """Highest level ``L <= 0`` dB re the target that keeps every budget and the SNR rule
+    (module doc): ``L <= h`` for the budgets that scale with the level, the card input solved
+    with its fixed noise, ``L >= snr_min - snr_worst``. None when no such level exists."""
+    top = 0.0
+    for b in budgets:
+        if b is card_input or b.headroom_db is None or b.limit is None:
+            continue
+        top = min(top, b.headroom_db)
+    if card_input.limit is not None:
+        room = (card_input.limit / PEAK_SIGMA) ** 2 - noise_ms  # FS² left for the response
+        resp_ms = card_input.rms**2 - noise_ms
+        if room <= 0:
+            return None
+        if resp_ms > 0:
+            top = min(top, 10.0 * math.log10(room / resp_ms))
+    bottom = snr_min_db - snr_worst_db
+    if not math.isfinite(top) or top < bottom:
+        return None
+    return top
+
+
+def _advice(heads: dict[str, float], binding: str | None, reachable: float | None,
+            lowest: float | None, first: float | None, limited_by: tuple[str, ...],
+            unreachable: list[Unreachable], fs: float, snr_min_db: float) -> tuple[str, ...]:
+    """What would make the profile feasible, one sentence each (see the module doc)."""
+    out: list[str] = []
+    if reachable is not None and reachable < 0:
+        out.append(f"run at {reachable:.1f} dB re the target: every budget then fits "
+                   f"({binding or 'none'} binds)")
+    out_h, volt_h = heads.get("card output"), heads.get("amplifier voltage")
+    if out_h is not None and out_h < 0:
+        spare = [h for n, h in heads.items() if n in ("amplifier voltage", "amplifier current")]
+        if volt_h is not None and min(spare) >= -out_h:
+            out.append(f"or raise the amplifier gain by {-out_h:.1f} to {min(spare):.1f} dB: "
+                       "the card output then fits and the amplifier still has headroom")
+    in_h = heads.get("card input")
+    if in_h is not None and in_h < 0:
+        out.append(f"or lower the input or conditioner gain by at least {-in_h:.1f} dB "
+                   "(the SNR falls by at most as much)")
+    snr_h = heads.get("SNR")
+    if snr_h is not None and snr_h < 0:
+        out.append(f"raise the SNR by {-snr_h:.1f} dB (a more sensitive sensor, a quieter "
+                   f"input, or a higher level): the SNR rule is {snr_min_db:g} dB per line")
+    if lowest is not None and first is not None and lowest > first:
+        out.append(f"or keep the full level and start the band at {lowest:.6g} Hz "
+                   f"(below it {', '.join(limited_by) or 'the budgets'} cannot hold)")
+    for u in unreachable:
+        if u.reason in ("above fs/2", "below the line spacing fs/N"):
+            out.append(f"{u.f_lo_hz:.6g}-{u.f_hi_hz:.6g} Hz is {u.reason}: change the sample "
+                       f"rate ({fs:g} Hz) or the frame length")
+    return tuple(out)

@@ -19,6 +19,7 @@ __all__ = [
     "TIGHT_HEADROOM_DB",
     "budget_rows",
     "control_rows",
+    "feasibility_rows",
     "headroom_verdict",
     "profile_rows",
     "segment_rows",
@@ -134,3 +135,41 @@ def budget_rows(rig: Mapping[str, Any]) -> tuple[list[tuple[str, ...]], set[str]
                      scaled(b.get("limit")), fmt(headroom, "+.1f", "dB"),
                      headroom_verdict(headroom)))
     return rows, used
+
+
+#: Keys of the feasibility mapping that :func:`feasibility_rows` shows.
+FEASIBILITY_KEYS = ("binding_limit", "headroom_left", "snr_headroom_db", "reachable_level_db",
+                    "lowest_controllable_hz", "lowest_limited_by", "advice")
+
+
+def feasibility_rows(rig: Mapping[str, Any]) -> tuple[Rows, set[str]]:
+    """What binds and what would make the profile feasible, and the keys used.
+
+    Rows: the binding limit and the headroom left on the others, the level the rig can reach
+    (dB re the target), the lowest frequency it holds at full level (with the limits that bind
+    below it), then one ``to make it feasible`` row per piece of advice.
+    """
+    if "binding_limit" not in rig:
+        return [], set()
+    rows: Rows = []
+    binding = rig.get("binding_limit") or "none"
+    rows.append(("binding limit", str(binding)))
+    rows.append(("headroom left" if binding != "none" else "headroom",
+                 str(rig.get("headroom_left") or DASH)))
+    level = as_finite(rig.get("reachable_level_db"))
+    if level is None:
+        rows.append(("reachable level", "none: no level keeps every budget and the SNR rule"))
+    elif level >= 0:
+        rows.append(("reachable level", "the full target (0 dB)"))
+    else:
+        rows.append(("reachable level", f"{-level:.1f} dB below the target"))
+    low = as_finite(rig.get("lowest_controllable_hz"))
+    by = rig.get("lowest_limited_by") or "none"
+    if low is None:
+        text = "none: no lower band edge holds the full level"
+    else:
+        text = f"{low:.6g} Hz" + (f" (below it: {by})" if by != "none" else "")
+    rows.append(("lowest frequency held at full level", text))
+    for line in rig.get("advice") or ():
+        rows.append(("to make it feasible", str(line)))
+    return rows, set(FEASIBILITY_KEYS)

@@ -442,6 +442,9 @@ def _feasibility_parts(rows: dict[str, Any]) -> list[RenderableType]:
         other.add_row("feasible", Text("yes" if feasible else "no",
                                        style=PALETTE.ok if feasible else PALETTE.abort))
         used = used | {"feasible"}
+    verdict, shown = checktext.feasibility_rows(rows)
+    _add_rows(other, verdict)
+    used = used | shown
     _add_mapping_rows(other, {k: v for k, v in rows.items() if k not in used})
     return [other, Text(""), *parts] if parts else [other]
 
