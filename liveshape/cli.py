@@ -151,9 +151,16 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if args.seed is not None:
         overrides["seed"] = args.seed
     spec = load_spec(args.spec, overrides)
+    from liveshape.control.runplan import check_fault_times, nominal_run_s
+    from liveshape.session import record_estimate
+
+    _check_block(args.block_size, spec.control.fs_hz)
+    check_fault_times(spec.faults, nominal_run_s(spec))
+    estimate = record_estimate(spec, args.record == "full")
     # The cautions come first, before anything is driven (on stderr with --json).
     notice_console = dashboard.make_console(stderr=args.json)
     notice_console.print(dashboard.safety_notice())
+    notice_console.print(estimate.describe())
     if spec.rig.kind == "sim":
         # Name what the rig cannot honestly do before anything is driven (see check --rig).
         feas = _feasibility(spec)
@@ -177,12 +184,14 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if args.json:
         session = runner(spec, out_dir=args.out, **kwargs)
         _print_json(session.summary())
-        return session.result.exit_status
-    console = dashboard.make_console()
-    with dashboard.LiveView(console) as view:
-        session = runner(spec, out_dir=args.out, on_snapshot=view.update, **kwargs)
-    console.print(dashboard.run_summary(session.summary()))
-    console.print(f"record: {session.run_dir}  (liveshape report {session.run_dir})")
+    else:
+        console = dashboard.make_console()
+        with dashboard.LiveView(console) as view:
+            session = runner(spec, out_dir=args.out, on_snapshot=view.update, **kwargs)
+        console.print(dashboard.run_summary(session.summary()))
+        console.print(f"record: {session.run_dir}  (liveshape report {session.run_dir})")
+    if session.record_error is not None:
+        sys.stderr.write(f"liveshape: {session.record_error}\n")
     return session.result.exit_status
 
 
@@ -221,6 +230,9 @@ def _cmd_survey(args: argparse.Namespace) -> int:
     spec = load_spec(args.spec, overrides)
     settings = survey_settings(spec, level_fs=args.level, duration_s=args.duration,
                                seed=args.seed)
+    from liveshape.control.runplan import check_fault_times
+
+    check_fault_times(spec.faults, settings.duration_s, "the survey")
     notice = dashboard.make_console(stderr=True)
     notice.print(dashboard.safety_notice())
     result, folder = run_survey(spec, settings, out_dir=args.out,
@@ -306,6 +318,7 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
         data = loaded
     data.setdefault("liveshape_calibration", cal.SCHEMA_VERSION)
     loopback = _loopback_option(args.loopback)
+    _check_block(args.block_size, args.fs)
     info = check_settings(args.device, args.fs, input_channels=1 + (loopback is not None),
                           output_channels=1 + (loopback is not None))
     data["device"] = info.name
@@ -389,7 +402,29 @@ def _loopback_option(text: str | None) -> tuple[int, int] | None:
     a, sep, b = text.partition(":")
     if not sep or not a.strip().isdigit() or not b.strip().isdigit():
         raise ConfigError(f"--loopback = {text!r} must be OUT:IN channel numbers, e.g. 1:1")
-    return int(a), int(b)
+    out_ch, in_ch = int(a), int(b)
+    # Channel 0 is the drive output and the control input: the loopback needs its own pair.
+    if not (1 <= out_ch <= MAX_CHANNEL and 1 <= in_ch <= MAX_CHANNEL):
+        raise ConfigError(f"--loopback = {text!r}: channels must be 1-{MAX_CHANNEL} (channel 0 "
+                          "is the drive output and the control input)")
+    return out_ch, in_ch
+
+
+#: Highest channel number of --loopback (0-based; channel 0 drives and controls).
+MAX_CHANNEL = 63
+
+
+class _OneLineParser(argparse.ArgumentParser):
+    """An :class:`argparse.ArgumentParser` whose usage errors are one line and exit status 2.
+
+    argparse prints the usage block and then the message (2-4 lines); every other user error
+    of liveshape is one line naming the option, the value and the rule, and so are these.
+    """
+
+    def error(self, message: str) -> Any:  # type: ignore[override]
+        text = " ".join(message.split())
+        sys.stderr.write(f"liveshape: {self.prog}: {text} (see {self.prog} --help)\n")
+        sys.exit(EXIT_USAGE)
 
 
 def _positive_float(text: str) -> float:
@@ -409,9 +444,73 @@ def _whole(text: str) -> int:
         raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
 
 
+def _bounded(kind: str, low: float, high: float, *, low_open: bool = False,
+             unit: str = "") -> Any:
+    """An argparse type: a number (``float``) or whole number (``int``) within bounds.
+
+    ``low_open`` excludes ``low`` itself (``> low`` instead of ``>= low``).
+    """
+    u = f" {unit}" if unit else ""
+
+    def parse(text: str) -> float | int:
+        x: float | int = _whole(text) if kind == "int" else _positive_or_any_float(text)
+        below = x <= low if low_open else x < low
+        if below or x > high:
+            rel = ">" if low_open else ">="
+            raise argparse.ArgumentTypeError(
+                f"{text!r} must be {rel} {low:g} and <= {high:g}{u}")
+        return x
+
+    parse.__name__ = "whole number" if kind == "int" else "number"
+    return parse
+
+
+def _positive_or_any_float(text: str) -> float:
+    try:
+        x = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if not math.isfinite(x):
+        raise argparse.ArgumentTypeError(f"{text!r} is not a finite number")
+    return x
+
+
+#: Bounds of the numeric options (one-line errors name the option, the value and the bound).
+BLOCK_MIN, BLOCK_MAX = 16, 16384
+#: Longest block, s of audio: the drive must react within the abort ramp (0.25 s default).
+BLOCK_MAX_S = 0.25
+FS_MIN_HZ, FS_MAX_HZ = 1000.0, 384000.0
+RUN_MAX_S = 7 * 86400.0
+SYNTH_MAX_S = 86400.0
+SURVEY_MAX_S = 3600.0
+SEED_MAX = 2**63 - 1
+
+_block = _bounded("int", BLOCK_MIN, BLOCK_MAX, unit="samples")
+_fs = _bounded("float", FS_MIN_HZ, FS_MAX_HZ, unit="Hz")
+_seed = _bounded("int", 0, SEED_MAX)
+_level_fs = _bounded("float", 0.0, 1.0, low_open=True, unit="FS")
+# the floor of 2.5 is checked with its source by the drive-file writer
+_clip_sigma = _bounded("float", 0.0, 100.0, low_open=True)
+_shift_pct = _bounded("float", 0.0, 100.0, low_open=True)
+_drop_db = _bounded("float", 0.0, 60.0, low_open=True)
+_volts = _bounded("float", 0.0, 1000.0, low_open=True, unit="V")
+_mv_per_g = _bounded("float", 0.0, 1e5, low_open=True)
+_survey_s = _bounded("float", 1.0, SURVEY_MAX_S, unit="s")
+_synth_s = _bounded("float", 0.0, SYNTH_MAX_S, low_open=True, unit="s")
+_run_s = _bounded("float", 0.0, RUN_MAX_S, low_open=True, unit="s")
+
+
+def _check_block(block_size: int | None, fs_hz: float, option: str = "--block-size") -> None:
+    """Refuse a block longer than :data:`BLOCK_MAX_S` of audio at ``fs_hz``."""
+    if block_size is not None and block_size > BLOCK_MAX_S * fs_hz:
+        raise ConfigError(
+            f"{option} = {block_size} is {block_size / fs_hz:.3g} s at {fs_hz:g} Hz; a block "
+            f"must be at most {BLOCK_MAX_S:g} s of audio ({int(BLOCK_MAX_S * fs_hz)} samples)")
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of every command (exposed for tests and documentation)."""
-    p = argparse.ArgumentParser(
+    p = _OneLineParser(
         prog="liveshape",
         description="Closed-loop random-vibration control of small shakers through an audio "
         "interface. The simulated rig is the default; real hardware is driven only when named.",
@@ -423,24 +522,25 @@ def build_parser() -> argparse.ArgumentParser:
     c = sub.add_parser("check", help="profile figures, tolerances, DOF and rig feasibility")
     c.add_argument("spec", metavar="SPEC", help="test definition (.yaml) or profile (.csv)")
     c.add_argument("--rig", help="add rig feasibility: sim, sim:PRESET, sim:PLANT.yaml")
-    c.add_argument("--fs", type=_positive_float, metavar="HZ", help="sample rate override")
+    c.add_argument("--fs", type=_fs, metavar="HZ", help="sample rate override")
     c.add_argument("--json", action="store_true", help="print one JSON object")
     c.set_defaults(func=_cmd_check)
 
     s = sub.add_parser("synth", help="write a drive file (float WAV) offline with a sidecar")
     s.add_argument("spec", metavar="SPEC", help="test definition (.yaml) or profile (.csv)")
-    s.add_argument("--duration", type=_positive_float, required=True, metavar="S",
+    s.add_argument("--duration", type=_synth_s,
+                   required=True, metavar="S",
                    help="length of the file in seconds")
     s.add_argument("-o", "--output", required=True, metavar="FILE.wav", help="output WAV")
-    s.add_argument("--fs", type=_positive_float, metavar="HZ", help="sample rate")
-    s.add_argument("--seed", type=_whole, metavar="N", help="random seed")
-    s.add_argument("--clip-sigma", type=_positive_float, metavar="X",
+    s.add_argument("--fs", type=_fs, metavar="HZ", help="sample rate")
+    s.add_argument("--seed", type=_seed, metavar="N", help="random seed")
+    s.add_argument("--clip-sigma", type=_clip_sigma, metavar="X",
                    help="clip the drive at X times its rms (>= 2.5)")
-    s.add_argument("--crest-min", type=_positive_float, metavar="X",
+    s.add_argument("--crest-min", type=_bounded("float", 1.0, 100.0), metavar="X",
                    help="keep only realizations with crest factor >= X")
-    s.add_argument("--crest-max", type=_positive_float, metavar="Y",
+    s.add_argument("--crest-max", type=_bounded("float", 1.0, 100.0), metavar="Y",
                    help="keep only realizations with crest factor <= Y")
-    s.add_argument("--max-tries", type=_whole, default=10, metavar="N",
+    s.add_argument("--max-tries", type=_bounded("int", 1, 1000), default=10, metavar="N",
                    help="realizations to try for the crest-factor criterion (default 10)")
     s.add_argument("--json", action="store_true", help="print the sidecar as one JSON object")
     s.set_defaults(func=_cmd_synth)
@@ -457,13 +557,15 @@ def build_parser() -> argparse.ArgumentParser:
                    "the record says so)")
     r.add_argument("--fast", action="store_true",
                    help="simulated rig: run as fast as the CPU allows (same results per seed)")
-    r.add_argument("--seed", type=_whole, metavar="N", help="random seed")
+    r.add_argument("--seed", type=_seed, metavar="N", help="random seed")
     r.add_argument("--fault", action="append", metavar="KIND@SECONDS",
                    help="inject a fault into the simulated rig, e.g. sensor_gain@12=0.5 "
                    "or noise_burst@20=0.1/0.5 (repeatable)")
-    r.add_argument("--duration", type=_positive_float, metavar="S",
+    r.add_argument("--duration", type=_run_s,
+                   metavar="S",
                    help="time at full level, s (overrides schedule.full_level_s)")
-    r.add_argument("--block-size", type=_whole, metavar="N", help="samples per block")
+    r.add_argument("--block-size", type=_block, metavar="N",
+                   help=f"samples per block ({BLOCK_MIN}-{BLOCK_MAX}, at most {BLOCK_MAX_S:g} s)")
     r.add_argument("--out", default="runs", metavar="DIR",
                    help="folder for run records (default: runs)")
     r.add_argument("--json", action="store_true", help="print the run summary as JSON")
@@ -491,16 +593,16 @@ def build_parser() -> argparse.ArgumentParser:
     sv.add_argument("--calibration", metavar="FILE", help="chain calibration file (audio rigs)")
     sv.add_argument("--uncalibrated", action="store_true",
                     help="audio rig without calibration (FRF in FS per FS)")
-    sv.add_argument("--level", type=_positive_float, default=0.02, metavar="FS",
+    sv.add_argument("--level", type=_level_fs, default=0.02, metavar="FS",
                     help="drive rms in full scale (default 0.02)")
-    sv.add_argument("--duration", type=_positive_float, default=20.0, metavar="S",
+    sv.add_argument("--duration", type=_survey_s, default=20.0, metavar="S",
                     help="seconds of drive (default 20, about 110 DOF)")
-    sv.add_argument("--seed", type=_whole, metavar="N", help="random seed")
+    sv.add_argument("--seed", type=_seed, metavar="N", help="random seed")
     sv.add_argument("--fault", action="append", metavar="KIND@SECONDS",
                     help="inject a fault into the simulated rig (e.g. resonance_shift@0=1.03)")
-    sv.add_argument("--shift-pct", type=_positive_float, default=2.0, metavar="PCT",
+    sv.add_argument("--shift-pct", type=_shift_pct, default=2.0, metavar="PCT",
                     help="--compare: flag frequency shifts beyond this (default 2 %%)")
-    sv.add_argument("--drop-db", type=_positive_float, default=0.92, metavar="DB",
+    sv.add_argument("--drop-db", type=_drop_db, default=0.92, metavar="DB",
                     help="--compare: flag peak drops beyond this (default 0.92 dB = 10 %%)")
     sv.add_argument("--operator", type=_text_field, metavar="NAME", help="who runs the survey")
     sv.add_argument("--test-item", type=_text_field, metavar="TEXT", help="what is surveyed")
@@ -528,20 +630,21 @@ def build_parser() -> argparse.ArgumentParser:
     cb.add_argument("--device", required=True, help="audio device index or name")
     cb.add_argument("-o", "--file", required=True, metavar="FILE.yaml",
                     help="calibration file to create or update")
-    cb.add_argument("--fs", type=_positive_float, default=48000.0, metavar="HZ",
+    cb.add_argument("--fs", type=_fs, default=48000.0, metavar="HZ",
                     help="sample rate (default 48000)")
-    cb.add_argument("--block-size", type=_whole, default=1024, metavar="N")
+    cb.add_argument("--block-size", type=_block, default=1024, metavar="N",
+                    help=f"samples per block ({BLOCK_MIN}-{BLOCK_MAX}, at most {BLOCK_MAX_S:g} s)")
     cb.add_argument("--loopback", metavar="OUT:IN",
                     help="channels of a cable from a second output to a second input")
-    cb.add_argument("--level", type=_positive_float, default=0.5, metavar="FS",
+    cb.add_argument("--level", type=_level_fs, default=0.5, metavar="FS",
                     help="sine level for output/input steps, full scale (default 0.5)")
-    cb.add_argument("--reading", type=_positive_float, metavar="V_RMS",
+    cb.add_argument("--reading", type=_volts, metavar="V_RMS",
                     help="output step: the voltmeter reading (else asked for)")
-    cb.add_argument("--known-v", type=_positive_float, metavar="V_RMS",
+    cb.add_argument("--known-v", type=_volts, metavar="V_RMS",
                     help="input step: a known sine voltage at the control input")
-    cb.add_argument("--repeats", type=_whole, default=5, metavar="N",
+    cb.add_argument("--repeats", type=_bounded("int", 1, 100), default=5, metavar="N",
                     help="delay step: noise bursts (default 5)")
-    cb.add_argument("--datasheet-mv-per-g", type=_positive_float, metavar="MV_PER_G",
+    cb.add_argument("--datasheet-mv-per-g", type=_mv_per_g, metavar="MV_PER_G",
                     help="sensor step: the datasheet sensitivity to compare with")
     cb.add_argument("--json", action="store_true", help="print the step's result as JSON")
     cb.set_defaults(func=_cmd_calibrate)
@@ -553,9 +656,20 @@ def build_parser() -> argparse.ArgumentParser:
     v.add_argument("--plant", default="loudspeaker", help="preset name or plant YAML file")
     v.add_argument("--name", default="liveshape-plant", help="JACK client name")
     v.add_argument("--server", help="JACK server name (default: JACK_DEFAULT_SERVER)")
-    v.add_argument("--seed", type=_whole, metavar="N", help="seed of the simulated noise")
+    v.add_argument("--seed", type=_seed, metavar="N", help="seed of the simulated noise")
     v.set_defaults(func=_cmd_virtual_rig)
     return p
+
+
+def _one_line(text: str) -> str:
+    return " ".join(text.split())
+
+
+def _os_error_line(exc: OSError) -> str:
+    """``FILE: reason`` for an :class:`OSError` (errno text when there is one)."""
+    where = exc.filename if exc.filename is not None else None
+    reason = exc.strerror or str(exc) or exc.__class__.__name__
+    return _one_line(f"{where}: {reason}" if where is not None else reason)
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -565,7 +679,12 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         return int(args.func(args))
     except LiveshapeError as exc:
-        sys.stderr.write(f"liveshape: {exc}\n")
+        sys.stderr.write(f"liveshape: {_one_line(str(exc))}\n")
+        return EXIT_USAGE
+    except OSError as exc:
+        # A file system error not met by a command's own checks (unwritable, full, missing):
+        # one line naming the file and the error, like every other user-side error.
+        sys.stderr.write(f"liveshape: {_os_error_line(exc)}\n")
         return EXIT_USAGE
     except KeyboardInterrupt:
         sys.stderr.write("liveshape: interrupted\n")
