@@ -47,6 +47,62 @@ def _rig_overrides(rig: str | None, option: str = "--rig") -> dict[str, Any]:
     )
 
 
+def _check_writable(path: str | Path, option: str, value: str | Path | None = None) -> None:
+    """Refuse an output place that cannot be written, before anything is driven or made.
+
+    ``path`` is a folder to write into (made if missing). The nearest existing folder of it is
+    tried with a temporary file that is removed again (root ignores file modes, so asking
+    :func:`os.access` is not enough). ``value`` is what the message shows (default ``path``).
+    """
+    import tempfile
+
+    shown = str(path if value is None else value)
+    p = Path(path)
+    probe = p
+    while not probe.exists() and probe != probe.parent:
+        probe = probe.parent
+    if not probe.is_dir():
+        raise ConfigError(f"{option} = {shown!r}: {str(probe)!r} is a file, expected a folder")
+    try:
+        with tempfile.TemporaryFile(dir=probe):
+            pass
+    except OSError as exc:
+        raise ConfigError(f"{option} = {shown!r}: cannot write into {str(probe)!r} "
+                          f"({exc.strerror or exc})") from None
+
+
+class _Terminated(BaseException):
+    """SIGTERM while a file is being written: unwinds so that temporary files are removed."""
+
+
+#: Exit status after SIGTERM (128 + 15, shell convention).
+EXIT_TERMINATED = 143
+
+
+def _sigterm_unwinds() -> Any:
+    """While inside, SIGTERM raises :class:`_Terminated` (main thread only)."""
+    import contextlib
+    import signal
+    import threading
+
+    @contextlib.contextmanager
+    def guard() -> Any:
+        if threading.current_thread() is not threading.main_thread():
+            yield
+            return
+
+        def handler(signum: int, frame: Any) -> None:
+            raise _Terminated()
+
+        previous = signal.signal(signal.SIGTERM, handler)
+        try:
+            yield
+        finally:
+            signal.signal(signal.SIGTERM, previous)
+
+    return guard()
+
+
 def _cmd_check(args: argparse.Namespace) -> int:
     from liveshape.control.checks import check_report
     from liveshape.testdef.spec import load_spec
@@ -115,11 +171,12 @@ def _cmd_synth(args: argparse.Namespace) -> int:
         max_tries=args.max_tries,
     )
     if args.json:
-        result = make_drive_file(spec, args.output, **kwargs)
+        with _sigterm_unwinds():
+            result = make_drive_file(spec, args.output, **kwargs)
         _print_json(result.to_dict())
         return 0
     console = dashboard.make_console()
-    with dashboard.progress_bar(console, f"writing {args.output}") as progress:
+    with _sigterm_unwinds(), dashboard.progress_bar(console, f"writing {args.output}") as progress:
         result = make_drive_file(spec, args.output, progress=progress, **kwargs)
     console.print(dashboard.synth_summary(result.to_dict()))
     return 0
@@ -157,6 +214,14 @@ def _cmd_run(args: argparse.Namespace) -> int:
     _check_block(args.block_size, spec.control.fs_hz)
     check_fault_times(spec.faults, nominal_run_s(spec))
     estimate = record_estimate(spec, args.record == "full")
+    _check_writable(args.out, "--out")
+    from liveshape.record.diskspace import check_free_space
+
+    check_free_space(args.out, estimate)
+    if spec.rig.kind == "audio":
+        from liveshape.rigs.audio import check_settings
+
+        check_settings(spec.rig.device, spec.control.fs_hz)  # a device must be named
     # The cautions come first, before anything is driven (on stderr with --json).
     notice_console = dashboard.make_console(stderr=args.json)
     notice_console.print(dashboard.safety_notice())
@@ -233,6 +298,11 @@ def _cmd_survey(args: argparse.Namespace) -> int:
     from liveshape.control.runplan import check_fault_times
 
     check_fault_times(spec.faults, settings.duration_s, "the survey")
+    _check_writable(args.out, "--out")
+    if spec.rig.kind == "audio":
+        from liveshape.rigs.audio import check_settings
+
+        check_settings(spec.rig.device, spec.control.fs_hz)  # a device must be named
     notice = dashboard.make_console(stderr=True)
     notice.print(dashboard.safety_notice())
     result, folder = run_survey(spec, settings, out_dir=args.out,
@@ -254,7 +324,8 @@ SURVEY_FLAGGED_EXIT = 5
 def _cmd_report(args: argparse.Namespace) -> int:
     from liveshape.record.report import render_report
 
-    result = render_report(args.run_dir, out_dir=args.out)
+    with _sigterm_unwinds():
+        result = render_report(args.run_dir, out_dir=args.out)
     sys.stdout.write(result.summary.rstrip("\n") + "\n")
     for name, path in result.pngs.items():
         sys.stdout.write(f"{name}: {path}\n")
@@ -287,6 +358,9 @@ def _cmd_devices(args: argparse.Namespace) -> int:
 
 def _cmd_virtual_rig(args: argparse.Namespace) -> int:
     from liveshape.rigs.jackrig import serve
+    from liveshape.rigs.plant import load_plant
+
+    load_plant(args.plant)  # a bad plant is one line before JACK is asked for anything
 
     def ready(rig: Any) -> None:
         sys.stderr.write(
@@ -319,6 +393,7 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
     data.setdefault("liveshape_calibration", cal.SCHEMA_VERSION)
     loopback = _loopback_option(args.loopback)
     _check_block(args.block_size, args.fs)
+    _check_writable(path.parent, "--file", path)
     info = check_settings(args.device, args.fs, input_channels=1 + (loopback is not None),
                           output_channels=1 + (loopback is not None))
     data["device"] = info.name
@@ -423,7 +498,7 @@ class _OneLineParser(argparse.ArgumentParser):
 
     def error(self, message: str) -> Any:  # type: ignore[override]
         text = " ".join(message.split())
-        sys.stderr.write(f"liveshape: {self.prog}: {text} (see {self.prog} --help)\n")
+        sys.stderr.write(f"{self.prog}: {text} (see {self.prog} --help)\n")
         sys.exit(EXIT_USAGE)
 
 
@@ -689,6 +764,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         sys.stderr.write("liveshape: interrupted\n")
         return EXIT_INTERRUPTED
+    except _Terminated:
+        sys.stderr.write("liveshape: terminated by SIGTERM (no partial file left)\n")
+        return EXIT_TERMINATED
     except BrokenPipeError:
         return 0
 

@@ -449,9 +449,9 @@ def run_audio_session(
     if block_size < 16:
         raise ConfigError(f"--block-size = {block_size} must be at least 16 samples")
     seed = spec.seed if seed is None else seed
-    cal = resolve_calibration(spec.rig.calibration, spec.rig.uncalibrated)
     fs = spec.control.fs_hz
-    info = check_settings(spec.rig.device, fs)
+    info = check_settings(spec.rig.device, fs)  # first: no device named is the first error
+    cal = resolve_calibration(spec.rig.calibration, spec.rig.uncalibrated)
     rig = AudioRig(info.index, fs, block_size=block_size, lead_blocks=lead_blocks)
     controller = Controller(spec, cal, seed=seed)
     stop = stop or StopFlag()
@@ -559,8 +559,8 @@ def run_survey(
         from liveshape.rigs.audio import AudioRig, check_settings
         from liveshape.rigs.calibration import resolve_calibration
 
+        info = check_settings(spec.rig.device, fs)  # first: no device named is the first error
         cal = resolve_calibration(spec.rig.calibration, spec.rig.uncalibrated)
-        info = check_settings(spec.rig.device, fs)
         b = block_size or AUDIO_BLOCK
         audio = AudioRig(info.index, fs, block_size=b)
         src = SurveySource(settings, g_per_fs=cal.g_per_fs, block_size=b)

@@ -205,7 +205,7 @@ def test_match_device_errors_are_one_line_with_close_matches() -> None:
     with pytest.raises(DeviceError, match="index 9 does not exist"):
         match_device(DEVICES, 9)
     with pytest.raises(DeviceError, match="no audio devices"):
-        match_device([], None)
+        match_device([], "scarlett")
 
 
 def test_check_settings_reports_too_few_channels() -> None:

@@ -18,13 +18,15 @@ from pathlib import Path
 
 from liveshape.errors import ConfigError
 
-__all__ = ["CHECK_EVERY_S", "RESERVE_BYTES", "SIZE_MARGIN", "RecordEstimate", "check_free_space",
-           "estimate_record", "free_bytes", "human_bytes"]
+__all__ = ["CHECK_EVERY_S", "FILE_SPARE_BYTES", "RESERVE_BYTES", "SIZE_MARGIN", "RecordEstimate",
+           "check_file_space", "check_free_space", "estimate_record", "free_bytes", "human_bytes"]
 
 #: Free space a running record keeps in hand: below it the run ramps down and stops, bytes.
 RESERVE_BYTES = 64 * 1024 * 1024
 #: Factor on the estimate a run needs free at the start (runs settle longer than planned).
 SIZE_MARGIN = 2.0
+#: Spare room a file of known size (a drive file) needs beyond its own size, bytes.
+FILE_SPARE_BYTES = 1024 * 1024
 #: Run time between two looks at the free space, s.
 CHECK_EVERY_S = 0.5
 #: Bytes of one signal sample in each WAV file (float32 mono).
@@ -120,3 +122,24 @@ def check_free_space(out_dir: str | os.PathLike[str], estimate: RecordEstimate, 
             f"{human_bytes(estimate.total_bytes)} (at least {human_bytes(need)} free with the "
             f"margin and reserve); free some space or use --record spectra or a shorter run")
     return free
+
+
+def check_file_space(path: str | os.PathLike[str], size_bytes: int, *,
+                     option: str = "--output") -> None:
+    """Refuse to write a file of ``size_bytes`` where it will not fit (with a small spare).
+
+    Raises
+    ------
+    ConfigError
+        One line naming the file, the free space and the size.
+    """
+    p = Path(path)
+    try:
+        free = free_bytes(p.parent)
+    except OSError as exc:
+        raise ConfigError(f"{option} = {str(p)!r}: cannot read the free space "
+                          f"({exc.strerror or exc})") from None
+    if free < size_bytes + FILE_SPARE_BYTES:
+        raise ConfigError(
+            f"{option} = {str(p)!r}: {human_bytes(free)} free, the file needs about "
+            f"{human_bytes(size_bytes)}; free some space or write a shorter file")

@@ -27,6 +27,7 @@ from typing import Any
 
 import numpy as np
 
+from liveshape.atomic import atomic_write, atomic_write_text
 from liveshape.errors import ConfigError
 from liveshape.record.writer import RunData, load_run
 from liveshape.schema import Where
@@ -219,7 +220,8 @@ def _log_axis(axis: Any) -> None:
 
 def _save(fig: Any, canvas_cls: Any, path: Path) -> Path:
     canvas_cls(fig)
-    fig.savefig(path, dpi=110)
+    # Atomic: a full disk leaves no half-written PNG (the temporary file is removed).
+    atomic_write(path, lambda fh: fig.savefig(fh, dpi=110, format="png"))
     return path
 
 
@@ -375,6 +377,7 @@ def render_report(
     run = load_run(run_dir)
     figure_cls, canvas_cls = _import_matplotlib()
     out = Path(out_dir) if out_dir is not None else run.root / "report"
+    made = [p for p in (out, *out.parents) if not p.exists()]
     try:
         out.mkdir(parents=True, exist_ok=True)
     except (FileExistsError, NotADirectoryError):
@@ -386,6 +389,24 @@ def render_report(
     units = "g²/Hz, uncalibrated" if uncal else "g²/Hz"
     frf_units = "g/FS, uncalibrated" if uncal else "g/FS"
     pngs: dict[str, Path] = {}
+    try:
+        return _render(run, out, figure_cls, canvas_cls, tol, tol_note, units, frf_units, pngs)
+    except OSError as exc:
+        # Nothing half-made stays behind: the plots written so far and the folders made here.
+        for path in pngs.values():
+            path.unlink(missing_ok=True)
+        (out / "summary.txt").unlink(missing_ok=True)
+        for folder in made:
+            try:
+                folder.rmdir()
+            except OSError:
+                pass
+        raise ConfigError(f"{out}: cannot write the report ({exc.strerror or exc})") from None
+
+
+def _render(run: Any, out: Path, figure_cls: Any, canvas_cls: Any, tol: Any, tol_note: Any,
+            units: str, frf_units: str, pngs: dict[str, Path]) -> ReportResult:
+    """Draw and write every plot and ``summary.txt`` into ``out`` (see :func:`render_report`)."""
 
     def figure(name: str, size: tuple[float, float], draw: Any, *args: Any) -> None:
         fig = figure_cls(figsize=size)
@@ -406,6 +427,6 @@ def render_report(
     text = summary_text(run)
     text += "plots:           " + ", ".join(p.name for p in pngs.values()) + "\n"
     summary_path = out / "summary.txt"
-    summary_path.write_text(text, encoding="utf-8")
+    atomic_write_text(summary_path, text)
     return ReportResult(run_dir=run.root, out_dir=out, pngs=pngs, summary_path=summary_path,
                         summary=text)

@@ -85,16 +85,16 @@ def match_device(devices: list[DeviceInfo], device: int | str | None) -> DeviceI
         No device named (listing the devices), unknown index or name (listing close matches),
         or an ambiguous part of a name.
     """
-    if not devices:
-        raise DeviceError("no audio devices found (is the interface connected and powered?)")
-    names = [d.name for d in devices]
     if device is None or (isinstance(device, str) and not device.strip()):
         # Real hardware is driven only when the user names it: never a default device.
-        listed = ", ".join(f"{d.index}: {d.name}" for d in devices)
+        listed = ", ".join(f"{d.index}: {d.name}" for d in devices) or "none found"
         raise DeviceError(
             "an audio rig needs a device: set rig.device in the test definition or give "
             f"--rig audio:DEVICE (available: {listed})"
         )
+    if not devices:
+        raise DeviceError("no audio devices found (is the interface connected and powered?)")
+    names = [d.name for d in devices]
     if isinstance(device, int) or (isinstance(device, str) and device.strip().isdigit()):
         idx = int(device)
         for d in devices:
