@@ -16,6 +16,7 @@ root and are skipped when not root, except under CI, where they fail instead.
 
 from __future__ import annotations
 
+import json
 import os
 import shutil
 import subprocess
@@ -500,3 +501,19 @@ def test_real_process_prints_one_line(argv: list[str], tmp_path: Path) -> None:
     assert proc.returncode == 2, proc.stderr
     assert len(lines) == 1 and "Traceback" not in proc.stderr, proc.stderr
     assert list(tmp_path.iterdir()) == []
+
+
+def test_unicode_test_name_is_accepted_by_check_and_run(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # The same names for every command: the name is sanitized for the folder name only.
+    spec = tmp_path / "named.yaml"
+    spec.write_text(EXAMPLE.read_text(encoding="utf-8").replace(
+        "name: handlebar-nav-unit", "name: 名前"), encoding="utf-8")
+    assert main(["check", str(spec), "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["name"] == "名前"
+    status = main(["run", str(spec), "--fast", "--json", "--duration", "1", "--record",
+                   "spectra", "--out", str(tmp_path / "runs")])
+    cap = capsys.readouterr()
+    assert status in (0, 4), cap.err
+    (folder,) = (tmp_path / "runs").iterdir()
+    assert folder.name.endswith("-名前")
