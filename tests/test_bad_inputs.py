@@ -202,7 +202,7 @@ CASES: list[Case] = [
     C("survey-level-above-fs", *SUR, "--level", "2", words="--level"),
     C("survey-level-above-limit", *SUR, "--level", "0.9", words=("--level", "drive_rms_max")),
     C("survey-duration-zero", *SUR, "--duration", "0", words="--duration"),
-    C("survey-duration-huge", *SUR, "--duration", "1e6", words="--duration"),
+    C("survey-duration-huge", *SUR, "--duration", "1e6", words="duration"),
     C("survey-shift-zero", "survey", "--compare", "{tmp}", "{tmp}", "--shift-pct", "0",
       words="--shift-pct"),
     C("survey-drop-negative", "survey", "--compare", "{tmp}", "{tmp}", "--drop-db", "-1",
