@@ -47,6 +47,62 @@ def _rig_overrides(rig: str | None, option: str = "--rig") -> dict[str, Any]:
     )
 
 
+def _check_writable(path: str | Path, option: str, value: str | Path | None = None) -> None:
+    """Refuse an output place that cannot be written, before anything is driven or made.
+
+    ``path`` is a folder to write into (made if missing). The nearest existing folder of it is
+    tried with a temporary file that is removed again (root ignores file modes, so asking
+    :func:`os.access` is not enough). ``value`` is what the message shows (default ``path``).
+    """
+    import tempfile
+
+    shown = str(path if value is None else value)
+    p = Path(path)
+    probe = p
+    while not probe.exists() and probe != probe.parent:
+        probe = probe.parent
+    if not probe.is_dir():
+        raise ConfigError(f"{option} = {shown!r}: {str(probe)!r} is a file, expected a folder")
+    try:
+        with tempfile.TemporaryFile(dir=probe):
+            pass
+    except OSError as exc:
+        raise ConfigError(f"{option} = {shown!r}: cannot write into {str(probe)!r} "
+                          f"({exc.strerror or exc})") from None
+
+
+class _Terminated(BaseException):
+    """SIGTERM while a file is being written: unwinds so that temporary files are removed."""
+
+
+#: Exit status after SIGTERM (128 + 15, shell convention).
+EXIT_TERMINATED = 143
+
+
+def _sigterm_unwinds() -> Any:
+    """While inside, SIGTERM raises :class:`_Terminated` (main thread only)."""
+    import contextlib
+    import signal
+    import threading
+
+    @contextlib.contextmanager
+    def guard() -> Any:
+        if threading.current_thread() is not threading.main_thread():
+            yield
+            return
+
+        def handler(signum: int, frame: Any) -> None:
+            raise _Terminated()
+
+        previous = signal.signal(signal.SIGTERM, handler)
+        try:
+            yield
+        finally:
+            signal.signal(signal.SIGTERM, previous)
+
+    return guard()
+
+
 def _cmd_check(args: argparse.Namespace) -> int:
     from liveshape.control.checks import check_report
     from liveshape.testdef.spec import load_spec
@@ -124,11 +180,12 @@ def _cmd_synth(args: argparse.Namespace) -> int:
         max_tries=args.max_tries,
     )
     if args.json:
-        result = make_drive_file(spec, args.output, **kwargs)
+        with _sigterm_unwinds():
+            result = make_drive_file(spec, args.output, **kwargs)
         _print_json(result.to_dict())
         return 0
     console = dashboard.make_console()
-    with dashboard.progress_bar(console, f"writing {args.output}") as progress:
+    with _sigterm_unwinds(), dashboard.progress_bar(console, f"writing {args.output}") as progress:
         result = make_drive_file(spec, args.output, progress=progress, **kwargs)
     console.print(dashboard.synth_summary(result.to_dict()))
     return 0
@@ -160,9 +217,24 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if args.seed is not None:
         overrides["seed"] = args.seed
     spec = load_spec(args.spec, overrides)
+    from liveshape.control.runplan import check_fault_times, nominal_run_s
+    from liveshape.session import record_estimate
+
+    _check_block(args.block_size, spec.control.fs_hz)
+    check_fault_times(spec.faults, nominal_run_s(spec))
+    estimate = record_estimate(spec, args.record == "full")
+    _check_writable(args.out, "--out")
+    from liveshape.record.diskspace import check_free_space
+
+    check_free_space(args.out, estimate)
+    if spec.rig.kind == "audio":
+        from liveshape.rigs.audio import check_settings
+
+        check_settings(spec.rig.device, spec.control.fs_hz)  # a device must be named
     # The cautions come first, before anything is driven (on stderr with --json).
     notice_console = dashboard.make_console(stderr=args.json)
     notice_console.print(dashboard.safety_notice(spec.rig.kind, spec.rig.plant))
+    notice_console.print(estimate.describe())
     accepted: dict[str, Any] | None = None
     if spec.rig.kind == "sim":
         # Name what the rig cannot honestly do before anything is driven (see check --rig);
@@ -205,12 +277,14 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if args.json:
         session = runner(spec, out_dir=args.out, **kwargs)
         _print_json(session.summary())
-        return session.result.exit_status
-    console = dashboard.make_console()
-    with dashboard.LiveView(console) as view:
-        session = runner(spec, out_dir=args.out, on_snapshot=view.update, **kwargs)
-    console.print(dashboard.run_summary(session.summary()))
-    console.print(f"record: {session.run_dir}  (liveshape report {session.run_dir})")
+    else:
+        console = dashboard.make_console()
+        with dashboard.LiveView(console) as view:
+            session = runner(spec, out_dir=args.out, on_snapshot=view.update, **kwargs)
+        console.print(dashboard.run_summary(session.summary()))
+        console.print(f"record: {session.run_dir}  (liveshape report {session.run_dir})")
+    if session.record_error is not None:
+        sys.stderr.write(f"liveshape: {session.record_error}\n")
     return session.result.exit_status
 
 
@@ -249,6 +323,14 @@ def _cmd_survey(args: argparse.Namespace) -> int:
     spec = load_spec(args.spec, overrides)
     settings = survey_settings(spec, level_fs=args.level, duration_s=args.duration,
                                seed=args.seed)
+    from liveshape.control.runplan import check_fault_times
+
+    check_fault_times(spec.faults, settings.duration_s, "the survey")
+    _check_writable(args.out, "--out")
+    if spec.rig.kind == "audio":
+        from liveshape.rigs.audio import check_settings
+
+        check_settings(spec.rig.device, spec.control.fs_hz)  # a device must be named
     notice = dashboard.make_console(stderr=True)
     notice.print(dashboard.safety_notice(spec.rig.kind, spec.rig.plant))
     result, folder = run_survey(spec, settings, out_dir=args.out,
@@ -270,7 +352,8 @@ SURVEY_FLAGGED_EXIT = 5
 def _cmd_report(args: argparse.Namespace) -> int:
     from liveshape.record.report import render_report
 
-    result = render_report(args.run_dir, out_dir=args.out, png=args.png)
+    with _sigterm_unwinds():
+        result = render_report(args.run_dir, out_dir=args.out, png=args.png)
     sys.stdout.write(result.summary.rstrip("\n") + "\n")
     sys.stdout.write(f"report: {result.pdf_path}\n")
     for name, path in result.pngs.items():
@@ -304,6 +387,9 @@ def _cmd_devices(args: argparse.Namespace) -> int:
 
 def _cmd_virtual_rig(args: argparse.Namespace) -> int:
     from liveshape.rigs.jackrig import serve
+    from liveshape.rigs.plant import load_plant
+
+    load_plant(args.plant)  # a bad plant is one line before JACK is asked for anything
 
     def ready(rig: Any) -> None:
         sys.stderr.write(
@@ -356,6 +442,8 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
         data = loaded
     data.setdefault("liveshape_calibration", cal.SCHEMA_VERSION)
     loopback = _loopback_option(args.loopback)
+    _check_block(args.block_size, args.fs)
+    _check_writable(path.parent, "--file", path)
     step = args.step
     out_v = in_v = None
     if step == "input" and args.known_v is None:
@@ -505,7 +593,26 @@ def _loopback_option(text: str | None) -> tuple[int, int] | None:
     if o < 1 or i < 1:
         raise ConfigError(f"--loopback = {text!r}: channels count from 1 (output 1 and input 1 "
                           "are the first on the interface); 0 is not a channel")
+    if o > MAX_CHANNEL or i > MAX_CHANNEL:
+        raise ConfigError(f"--loopback = {text!r}: channels must be 1-{MAX_CHANNEL}")
     return o, i
+
+
+#: Highest channel number of --loopback (counted from 1, as printed on the interface).
+MAX_CHANNEL = 64
+
+
+class _OneLineParser(argparse.ArgumentParser):
+    """An :class:`argparse.ArgumentParser` whose usage errors are one line and exit status 2.
+
+    argparse prints the usage block and then the message (2-4 lines); every other user error
+    of liveshape is one line naming the option, the value and the rule, and so are these.
+    """
+
+    def error(self, message: str) -> Any:  # type: ignore[override]
+        text = " ".join(message.split())
+        sys.stderr.write(f"{self.prog}: {text} (see {self.prog} --help)\n")
+        sys.exit(EXIT_USAGE)
 
 
 def _positive_float(text: str) -> float:
@@ -525,9 +632,71 @@ def _whole(text: str) -> int:
         raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
 
 
+def _bounded(kind: str, low: float, high: float, *, low_open: bool = False,
+             unit: str = "") -> Any:
+    """An argparse type: a number (``float``) or whole number (``int``) within bounds.
+
+    ``low_open`` excludes ``low`` itself (``> low`` instead of ``>= low``).
+    """
+    u = f" {unit}" if unit else ""
+
+    def parse(text: str) -> float | int:
+        x: float | int = _whole(text) if kind == "int" else _positive_or_any_float(text)
+        below = x <= low if low_open else x < low
+        if below or x > high:
+            rel = ">" if low_open else ">="
+            raise argparse.ArgumentTypeError(
+                f"{text!r} must be {rel} {low:g} and <= {high:g}{u}")
+        return x
+
+    parse.__name__ = "whole number" if kind == "int" else "number"
+    return parse
+
+
+def _positive_or_any_float(text: str) -> float:
+    try:
+        x = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if not math.isfinite(x):
+        raise argparse.ArgumentTypeError(f"{text!r} is not a finite number")
+    return x
+
+
+#: Bounds of the numeric options (one-line errors name the option, the value and the bound).
+BLOCK_MIN, BLOCK_MAX = 16, 16384
+#: Longest block, s of audio: the drive must react within the abort ramp (0.25 s default).
+BLOCK_MAX_S = 0.25
+FS_MIN_HZ, FS_MAX_HZ = 1000.0, 384000.0
+RUN_MAX_S = 7 * 86400.0
+SYNTH_MAX_S = 86400.0
+SEED_MAX = 2**63 - 1
+
+_block = _bounded("int", BLOCK_MIN, BLOCK_MAX, unit="samples")
+_fs = _bounded("float", FS_MIN_HZ, FS_MAX_HZ, unit="Hz")
+_seed = _bounded("int", 0, SEED_MAX)
+_level_fs = _bounded("float", 0.0, 1.0, low_open=True, unit="FS")
+# the floor of 2.5 is checked with its source by the drive-file writer
+_clip_sigma = _bounded("float", 0.0, 100.0, low_open=True)
+_shift_pct = _bounded("float", 0.0, 100.0, low_open=True)
+_drop_db = _bounded("float", 0.0, 60.0, low_open=True)
+_volts = _bounded("float", 0.0, 1000.0, low_open=True, unit="V")
+_mv_per_g = _bounded("float", 0.0, 1e5, low_open=True)
+_synth_s = _bounded("float", 0.0, SYNTH_MAX_S, low_open=True, unit="s")
+_run_s = _bounded("float", 0.0, RUN_MAX_S, low_open=True, unit="s")
+
+
+def _check_block(block_size: int | None, fs_hz: float, option: str = "--block-size") -> None:
+    """Refuse a block longer than :data:`BLOCK_MAX_S` of audio at ``fs_hz``."""
+    if block_size is not None and block_size > BLOCK_MAX_S * fs_hz:
+        raise ConfigError(
+            f"{option} = {block_size} is {block_size / fs_hz:.3g} s at {fs_hz:g} Hz; a block "
+            f"must be at most {BLOCK_MAX_S:g} s of audio ({int(BLOCK_MAX_S * fs_hz)} samples)")
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of every command (exposed for tests and documentation)."""
-    p = argparse.ArgumentParser(
+    p = _OneLineParser(
         prog="liveshape",
         description="Closed-loop random-vibration control of small shakers through an audio "
         "interface. The simulated rig is the default; real hardware is driven only when named.",
@@ -539,7 +708,7 @@ def build_parser() -> argparse.ArgumentParser:
     c = sub.add_parser("check", help="profile figures, tolerances, DOF and rig feasibility")
     c.add_argument("spec", metavar="SPEC", help="test definition (.yaml) or profile (.csv)")
     c.add_argument("--rig", help="add rig feasibility: sim, sim:PRESET, sim:PLANT.yaml")
-    c.add_argument("--fs", type=_positive_float, metavar="HZ", help="sample rate override")
+    c.add_argument("--fs", type=_fs, metavar="HZ", help="sample rate override")
     c.add_argument("--json", action="store_true", help="print one JSON object")
     c.set_defaults(func=_cmd_check)
     c.epilog = ("Exit status 3 when --rig is given and the profile is infeasible on that rig "
@@ -547,18 +716,19 @@ def build_parser() -> argparse.ArgumentParser:
 
     s = sub.add_parser("synth", help="write a drive file (float WAV) offline with a sidecar")
     s.add_argument("spec", metavar="SPEC", help="test definition (.yaml) or profile (.csv)")
-    s.add_argument("--duration", type=_positive_float, required=True, metavar="S",
+    s.add_argument("--duration", type=_synth_s,
+                   required=True, metavar="S",
                    help="length of the file in seconds")
     s.add_argument("-o", "--output", required=True, metavar="FILE.wav", help="output WAV")
-    s.add_argument("--fs", type=_positive_float, metavar="HZ", help="sample rate")
-    s.add_argument("--seed", type=_whole, metavar="N", help="random seed")
-    s.add_argument("--clip-sigma", type=_positive_float, metavar="X",
+    s.add_argument("--fs", type=_fs, metavar="HZ", help="sample rate")
+    s.add_argument("--seed", type=_seed, metavar="N", help="random seed")
+    s.add_argument("--clip-sigma", type=_clip_sigma, metavar="X",
                    help="clip the drive at X times its rms (>= 2.5)")
-    s.add_argument("--crest-min", type=_positive_float, metavar="X",
+    s.add_argument("--crest-min", type=_bounded("float", 1.0, 100.0), metavar="X",
                    help="keep only realizations with crest factor >= X")
-    s.add_argument("--crest-max", type=_positive_float, metavar="Y",
+    s.add_argument("--crest-max", type=_bounded("float", 1.0, 100.0), metavar="Y",
                    help="keep only realizations with crest factor <= Y")
-    s.add_argument("--max-tries", type=_whole, default=10, metavar="N",
+    s.add_argument("--max-tries", type=_bounded("int", 1, 1000), default=10, metavar="N",
                    help="realizations to try for the crest-factor criterion (default 10)")
     s.add_argument("--json", action="store_true", help="print the sidecar as one JSON object")
     s.set_defaults(func=_cmd_synth)
@@ -575,13 +745,15 @@ def build_parser() -> argparse.ArgumentParser:
                    "the record says so)")
     r.add_argument("--fast", action="store_true",
                    help="simulated rig: run as fast as the CPU allows (same results per seed)")
-    r.add_argument("--seed", type=_whole, metavar="N", help="random seed")
+    r.add_argument("--seed", type=_seed, metavar="N", help="random seed")
     r.add_argument("--fault", action="append", metavar="KIND@SECONDS",
                    help="inject a fault into the simulated rig, e.g. sensor_gain@12=0.5 "
                    "or noise_burst@20=0.1/0.5 (repeatable)")
-    r.add_argument("--duration", type=_positive_float, metavar="S",
+    r.add_argument("--duration", type=_run_s,
+                   metavar="S",
                    help="time at full level, s (overrides schedule.full_level_s)")
-    r.add_argument("--block-size", type=_whole, metavar="N", help="samples per block")
+    r.add_argument("--block-size", type=_block, metavar="N",
+                   help=f"samples per block ({BLOCK_MIN}-{BLOCK_MAX}, at most {BLOCK_MAX_S:g} s)")
     r.add_argument("--out", default="runs", metavar="DIR",
                    help="folder for run records (default: runs)")
     r.add_argument("--json", action="store_true", help="print the run summary as JSON")
@@ -612,16 +784,16 @@ def build_parser() -> argparse.ArgumentParser:
     sv.add_argument("--calibration", metavar="FILE", help="chain calibration file (audio rigs)")
     sv.add_argument("--uncalibrated", action="store_true",
                     help="audio rig without calibration (FRF in FS per FS)")
-    sv.add_argument("--level", type=_positive_float, default=0.02, metavar="FS",
+    sv.add_argument("--level", type=_level_fs, default=0.02, metavar="FS",
                     help="drive rms in full scale (default 0.02)")
     sv.add_argument("--duration", type=_positive_float, default=20.0, metavar="S",
                     help="seconds of drive (default 20, about 110 DOF)")
-    sv.add_argument("--seed", type=_whole, metavar="N", help="random seed")
+    sv.add_argument("--seed", type=_seed, metavar="N", help="random seed")
     sv.add_argument("--fault", action="append", metavar="KIND@SECONDS",
                     help="inject a fault into the simulated rig (e.g. resonance_shift@0=1.03)")
-    sv.add_argument("--shift-pct", type=_positive_float, default=2.0, metavar="PCT",
+    sv.add_argument("--shift-pct", type=_shift_pct, default=2.0, metavar="PCT",
                     help="--compare: flag frequency shifts beyond this (default 2 %%)")
-    sv.add_argument("--drop-db", type=_positive_float, default=0.92, metavar="DB",
+    sv.add_argument("--drop-db", type=_drop_db, default=0.92, metavar="DB",
                     help="--compare: flag peak drops beyond this (default 0.92 dB = 10 %%)")
     sv.add_argument("--operator", type=_text_field, metavar="NAME", help="who runs the survey")
     sv.add_argument("--test-item", type=_text_field, metavar="TEXT", help="what is surveyed")
@@ -653,21 +825,22 @@ def build_parser() -> argparse.ArgumentParser:
     cb.add_argument("--device", required=True, help="audio device index or name")
     cb.add_argument("-o", "--file", required=True, metavar="FILE.yaml",
                     help="calibration file to create or update")
-    cb.add_argument("--fs", type=_positive_float, default=48000.0, metavar="HZ",
+    cb.add_argument("--fs", type=_fs, default=48000.0, metavar="HZ",
                     help="sample rate (default 48000)")
-    cb.add_argument("--block-size", type=_whole, default=1024, metavar="N")
+    cb.add_argument("--block-size", type=_block, default=1024, metavar="N",
+                    help=f"samples per block ({BLOCK_MIN}-{BLOCK_MAX}, at most {BLOCK_MAX_S:g} s)")
     cb.add_argument("--loopback", metavar="OUT:IN",
                     help="a cable from output OUT to input IN, channels counted from 1 as "
                     "printed on the interface (1:1: the drive output into the control input)")
-    cb.add_argument("--level", type=_positive_float, default=0.5, metavar="FS",
+    cb.add_argument("--level", type=_level_fs, default=0.5, metavar="FS",
                     help="sine level for output/input steps, full scale (default 0.5)")
-    cb.add_argument("--reading", type=_positive_float, metavar="V_RMS",
+    cb.add_argument("--reading", type=_volts, metavar="V_RMS",
                     help="output step: the voltmeter reading (else asked for)")
-    cb.add_argument("--known-v", type=_positive_float, metavar="V_RMS",
+    cb.add_argument("--known-v", type=_volts, metavar="V_RMS",
                     help="input step: a known sine voltage at the control input")
-    cb.add_argument("--repeats", type=_whole, default=5, metavar="N",
+    cb.add_argument("--repeats", type=_bounded("int", 1, 100), default=5, metavar="N",
                     help="delay step: noise bursts (default 5)")
-    cb.add_argument("--datasheet-mv-per-g", type=_positive_float, metavar="MV_PER_G",
+    cb.add_argument("--datasheet-mv-per-g", type=_mv_per_g, metavar="MV_PER_G",
                     help="sensor step: the datasheet sensitivity to compare with")
     cb.add_argument("--accept-deviation", action="store_true",
                     help="sensor step: keep a sensitivity more than 20 %% from the datasheet")
@@ -684,9 +857,20 @@ def build_parser() -> argparse.ArgumentParser:
     v.add_argument("--plant", default="loudspeaker", help="preset name or plant YAML file")
     v.add_argument("--name", default="liveshape-plant", help="JACK client name")
     v.add_argument("--server", help="JACK server name (default: JACK_DEFAULT_SERVER)")
-    v.add_argument("--seed", type=_whole, metavar="N", help="seed of the simulated noise")
+    v.add_argument("--seed", type=_seed, metavar="N", help="seed of the simulated noise")
     v.set_defaults(func=_cmd_virtual_rig)
     return p
+
+
+def _one_line(text: str) -> str:
+    return " ".join(text.split())
+
+
+def _os_error_line(exc: OSError) -> str:
+    """``FILE: reason`` for an :class:`OSError` (errno text when there is one)."""
+    where = exc.filename if exc.filename is not None else None
+    reason = exc.strerror or str(exc) or exc.__class__.__name__
+    return _one_line(f"{where}: {reason}" if where is not None else reason)
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -696,11 +880,19 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         return int(args.func(args))
     except LiveshapeError as exc:
-        sys.stderr.write(f"liveshape: {exc}\n")
+        sys.stderr.write(f"liveshape: {_one_line(str(exc))}\n")
+        return EXIT_USAGE
+    except OSError as exc:
+        # A file system error not met by a command's own checks (unwritable, full, missing):
+        # one line naming the file and the error, like every other user-side error.
+        sys.stderr.write(f"liveshape: {_os_error_line(exc)}\n")
         return EXIT_USAGE
     except KeyboardInterrupt:
         sys.stderr.write("liveshape: interrupted\n")
         return EXIT_INTERRUPTED
+    except _Terminated:
+        sys.stderr.write("liveshape: terminated by SIGTERM (no partial file left)\n")
+        return EXIT_TERMINATED
     except BrokenPipeError:
         return 0
 

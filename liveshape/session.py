@@ -27,6 +27,7 @@ from liveshape import __version__
 from liveshape.control.controller import Controller
 from liveshape.control.runstate import ControlSnapshot, RunResult
 from liveshape.errors import ConfigError
+from liveshape.record import diskspace
 from liveshape.record.exports import SPECTRA_CSV, spectra_csv_text
 from liveshape.record.writer import RunRecorder
 from liveshape.testdef.chain import ChainCalibration
@@ -45,6 +46,8 @@ class SessionResult:
     run_dir: Path
     rig: dict[str, Any]
     calibration: dict[str, Any]
+    #: One line when the record could not be closed (summary.json missing), else None.
+    record_error: str | None = None
 
     def summary(self) -> dict[str, Any]:
         """The JSON summary of the run (``run --json`` and ``summary.json``)."""
@@ -156,6 +159,30 @@ def _calibration_mapping(cal: ChainCalibration) -> dict[str, Any]:
     return data
 
 
+def record_estimate(spec: TestSpec, record_signals: bool = True) -> diskspace.RecordEstimate:
+    """Expected size of the record of a run of ``spec`` for its nominal length.
+
+    See :func:`liveshape.control.runplan.nominal_run_s` and
+    :func:`liveshape.record.diskspace.estimate_record`.
+    """
+    from liveshape.control.runplan import nominal_run_s, update_period_s
+
+    c = spec.control
+    n_lines = int(np.count_nonzero(spec.profile.lines(c.fs_hz, c.frame_length) > 0))
+    return diskspace.estimate_record(nominal_run_s(spec), c.fs_hz, signals=record_signals,
+                                     n_lines=n_lines, update_period_s=update_period_s(spec))
+
+
+def _close_record(recorder: RunRecorder, session: SessionResult) -> SessionResult:
+    """Close the record with the session's summary; a failed write is noted, not raised."""
+    try:
+        recorder.close(session.summary())
+    except OSError as exc:
+        text = f"{recorder.root}: record not closed ({exc.strerror or exc})"
+        return dataclasses.replace(session, record_error=text)
+    return session
+
+
 def _open_record(spec: TestSpec, out_dir: str | Path, rig_mapping: dict[str, Any],
                  cal: ChainCalibration, extra: dict[str, Any],
                  identity: dict[str, Any] | None = None,
@@ -165,6 +192,8 @@ def _open_record(spec: TestSpec, out_dir: str | Path, rig_mapping: dict[str, Any
     ``run.json`` names the software version, the SHA-256 of the test file as read (None for a
     spec made in code) and ``identity`` (``operator``, ``test_item``).
     """
+    # Refused before anything is made when the record will not fit (one line, exit 2).
+    diskspace.check_free_space(out_dir, record_estimate(spec, record_signals))
     ident = {"software_version": __version__, "spec_file": spec.source or None,
              "spec_sha256": file_sha256(spec.source), "operator": None, "test_item": None,
              **(identity or {})}
@@ -210,9 +239,53 @@ class RunLoop:
         self._last_view = -np.inf
         self._last_update: Any = None
         self._closed_out = False
+        #: Free-space look-up (bytes free under a path); replaceable in tests.
+        self.free_bytes: Callable[[Path], int] = diskspace.free_bytes
+        self._disk_every = max(1, int(diskspace.CHECK_EVERY_S * controller.spec.control.fs_hz))
+        self._disk_count = 0
+        #: One line when writing the record failed (the run was stopped; nothing more written).
+        self.record_error: str | None = None
 
     def after_block(self, drive: np.ndarray, response: np.ndarray) -> None:
-        """Record one block pair and whatever the controller has to say since the last one."""
+        """Record one block pair and whatever the controller has to say since the last one.
+
+        A record that cannot be written (full disk, removed folder) or free space below
+        :data:`liveshape.record.diskspace.RESERVE_BYTES` trips ``disk_space``: the drive ramps
+        down as for any trip, and after a failed write nothing more is written but the summary.
+        """
+        ctrl = self.controller
+        if self.record_error is None:
+            try:
+                self._record(drive, response)
+                self._watch_disk(int(np.shape(drive)[0]) if np.ndim(drive) else 0)
+            except OSError as exc:
+                self.record_error = " ".join(str(exc).split()) or exc.__class__.__name__
+                ctrl.request_abort("disk_space", f"the record cannot be written: "
+                                   f"{self.record_error}", {"error": self.record_error})
+        else:
+            ctrl.drain_events()
+        if self.on_snapshot is not None:
+            now = self.clock()
+            if now - self._last_view >= self.view_period_s or ctrl.finished:
+                self._last_view = now
+                self.on_snapshot(ctrl.snapshot())
+
+    def _watch_disk(self, n_samples: int) -> None:
+        """Every ``CHECK_EVERY_S`` of run time: trip ``disk_space`` below the reserve."""
+        self._disk_count += n_samples
+        if self._disk_count < self._disk_every:
+            return
+        self._disk_count = 0
+        free = self.free_bytes(self.recorder.root)
+        if free < diskspace.RESERVE_BYTES:
+            self.controller.request_abort(
+                "disk_space",
+                f"free space under {self.recorder.root.parent} is "
+                f"{diskspace.human_bytes(free)}, below the reserve of "
+                f"{diskspace.human_bytes(diskspace.RESERVE_BYTES)}",
+                {"free_bytes": int(free), "reserve_bytes": diskspace.RESERVE_BYTES})
+
+    def _record(self, drive: np.ndarray, response: np.ndarray) -> None:
         ctrl = self.controller
         self.recorder.signals(drive, response)
         for ev in ctrl.drain_events():
@@ -224,11 +297,6 @@ class RunLoop:
         if ctrl.finished and not self._closed_out:
             self._closed_out = True
             self._write_final_spectra()
-        if self.on_snapshot is not None:
-            now = self.clock()
-            if now - self._last_view >= self.view_period_s or ctrl.finished:
-                self._last_view = now
-                self.on_snapshot(ctrl.snapshot())
 
     def _write_final_spectra(self) -> None:
         """The full-level average (``decisions/full_level.npz``) and ``spectra.csv``."""
@@ -349,7 +417,7 @@ def run_session(
             rig=rig_figures,
             calibration=_calibration_mapping(cal),
         )
-        recorder.close(session.summary())
+        session = _close_record(recorder, session)
     return session
 
 
@@ -386,9 +454,9 @@ def run_audio_session(
     if block_size < 16:
         raise ConfigError(f"--block-size = {block_size} must be at least 16 samples")
     seed = spec.seed if seed is None else seed
-    cal = resolve_calibration(spec.rig.calibration, spec.rig.uncalibrated)
     fs = spec.control.fs_hz
-    info = check_settings(spec.rig.device, fs)
+    info = check_settings(spec.rig.device, fs)  # first: no device named is the first error
+    cal = resolve_calibration(spec.rig.calibration, spec.rig.uncalibrated)
     rig = AudioRig(info.index, fs, block_size=block_size, lead_blocks=lead_blocks)
     controller = Controller(spec, cal, seed=seed)
     stop = stop or StopFlag()
@@ -419,7 +487,7 @@ def run_audio_session(
             rig={**rig_mapping, "stream": stats},
             calibration=_calibration_mapping(cal),
         )
-        recorder.close(session.summary())
+        session = _close_record(recorder, session)
     return session
 
 
@@ -496,8 +564,8 @@ def run_survey(
         from liveshape.rigs.audio import AudioRig, check_settings
         from liveshape.rigs.calibration import resolve_calibration
 
+        info = check_settings(spec.rig.device, fs)  # first: no device named is the first error
         cal = resolve_calibration(spec.rig.calibration, spec.rig.uncalibrated)
-        info = check_settings(spec.rig.device, fs)
         b = block_size or AUDIO_BLOCK
         audio = AudioRig(info.index, fs, block_size=b)
         src = SurveySource(settings, g_per_fs=cal.g_per_fs, block_size=b)

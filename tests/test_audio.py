@@ -184,7 +184,16 @@ def test_match_device_by_index_name_and_part() -> None:
     assert match_device(DEVICES, "2").name == "pulse"
     assert match_device(DEVICES, "pulse").index == 2
     assert match_device(DEVICES, "scarlett").index == 1
-    assert match_device(DEVICES, None).index == 0
+
+
+def test_match_device_has_no_default_device() -> None:
+    # A real card is driven only when the user names it: no device is an error listing them all.
+    for missing in (None, "", "  "):
+        with pytest.raises(DeviceError, match="needs a device") as err:
+            match_device(DEVICES, missing)
+        text = str(err.value)
+        assert "\n" not in text
+        assert all(f"{d.index}: {d.name}" in text for d in DEVICES)
 
 
 def test_match_device_errors_are_one_line_with_close_matches() -> None:
@@ -196,7 +205,7 @@ def test_match_device_errors_are_one_line_with_close_matches() -> None:
     with pytest.raises(DeviceError, match="index 9 does not exist"):
         match_device(DEVICES, 9)
     with pytest.raises(DeviceError, match="no audio devices"):
-        match_device([], None)
+        match_device([], "scarlett")
 
 
 def test_check_settings_reports_too_few_channels() -> None:

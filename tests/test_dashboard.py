@@ -581,3 +581,27 @@ def test_feasibility_rows_say_what_binds_and_what_would_help():
     assert ("lowest frequency held at full level",
             "none: no lower band edge holds the full level") in rows
     assert feasibility_rows({"feasible": True}) == ([], set())
+
+
+def test_long_profile_table_sums_up_the_middle_segments():
+    # A measured profile of 100 points: 10 rows, one row for the 79 between, 10 rows. The
+    # summary row's area is the sum of those segments' areas (the integral of the ASD over a
+    # band is the sum over its parts [common practice]).
+    from liveshape.control.checks import check_report
+    from liveshape.testdef.spec import spec_from_mapping
+    from liveshape.views import checktext
+
+    f = np.geomspace(20.0, 2000.0, 100)
+    pts = [{"f_hz": float(x), "asd": 0.01 * (1.2 if i % 2 else 1.0)} for i, x in enumerate(f)]
+    spec = spec_from_mapping({"profile": {"breakpoints": pts}}, source="long.yaml")
+    report = check_report(spec, None)
+    segs = report["segments"]
+    assert len(segs) == 99
+    rows = checktext.segment_rows(report)
+    assert len(rows) == 2 * checktext.SEGMENT_ENDS + 1
+    mid = segs[checktext.SEGMENT_ENDS:-checktext.SEGMENT_ENDS]
+    summary = rows[checktext.SEGMENT_ENDS]
+    assert f"{len(mid)} segments" in summary[2]
+    assert float(summary[4]) == pytest.approx(sum(s["area_g2"] for s in mid), rel=1e-3)
+    short = {**report, "segments": segs[:checktext.MAX_SEGMENT_ROWS]}
+    assert len(checktext.segment_rows(short)) == checktext.MAX_SEGMENT_ROWS

@@ -76,12 +76,27 @@ def test_folder_layout_and_unique_names(tmp_path):
 
 @pytest.mark.parametrize(
     ("kw", "word"),
-    [({"name": "///"}, "run name"), ({"fs_hz": 44100.5}, "fs_hz"), ({"fs_hz": 0}, "fs_hz")],
+    [({"fs_hz": 44100.5}, "fs_hz"), ({"fs_hz": 0}, "fs_hz")],
 )
 def test_bad_arguments_are_one_line_errors(tmp_path, kw, word):
     with pytest.raises(ConfigError) as info:
         _recorder(tmp_path, **kw)
     assert word in str(info.value) and "\n" not in str(info.value)
+
+
+@pytest.mark.parametrize(("name", "folder"), [
+    ("名前", "20240506-070809-名前"),            # Unicode letters are kept
+    ("Prüfling 3/4", "20240506-070809-Prüfling-3-4"),
+    ("///", "20240506-070809-run"),             # nothing usable: a fixed word, never refused
+])
+def test_any_test_name_gives_a_folder_name(tmp_path, name, folder):
+    # The name is sanitized for the folder only (any name the spec accepts is accepted).
+    rec = _recorder(tmp_path, name=name)
+    try:
+        assert rec.root.name == folder
+        assert _strict_json((rec.root / "run.json").read_text())["name"] == name
+    finally:
+        rec.close({"status": "stopped"})
 
 
 def test_output_folder_that_is_a_file(tmp_path):

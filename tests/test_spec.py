@@ -388,3 +388,39 @@ def test_moved_names_are_reexported():
     for name in ("FAULT_KINDS", "FaultSpec", "parse_fault"):
         assert getattr(spec, name) is getattr(fault_spec, name)
     assert spec.COMMAND_LINE is overrides.COMMAND_LINE
+
+
+# -- duplicate keys ------------------------------------------------------------------------
+def test_duplicate_key_is_one_error_naming_key_and_both_lines(tmp_path):
+    # YAML 1.2 §3.2.1.1: the keys of a mapping are unique. The example with a second schedule
+    # appended must not run straight at 0 dB (the last key used to win in silence).
+    text = (EXAMPLES / "handlebar-nav-unit.yaml").read_text(encoding="utf-8")
+    first = 1 + text.splitlines().index("schedule:")
+    path = tmp_path / "twice.yaml"
+    path.write_text(text + "schedule: {steps_db: [0]}\n", encoding="utf-8")
+    last = len(path.read_text(encoding="utf-8").splitlines())
+    with pytest.raises(ConfigError) as info:
+        load_spec(path)
+    msg = str(info.value)
+    assert "\n" not in msg
+    assert str(path) in msg and "'schedule'" in msg
+    assert f"lines {first} and {last}" in msg
+
+
+@pytest.mark.parametrize("text", [
+    "a: {b: 1, b: 2}\n",
+    "a:\n  - x: 1\n    x: 2\n",
+    "a: 1\n'a': 2\n",
+])
+def test_duplicate_keys_anywhere_are_refused(text):
+    with pytest.raises(ConfigError, match="given twice"):
+        config.read_yaml_text(text, "t.yaml")
+
+
+def test_merge_keys_and_safe_load_semantics_are_kept():
+    # A key written next to a merge (<<) overrides the merged one (yaml.org/type/merge.html);
+    # that is not a duplicate. Tags beyond safe_load's stay refused.
+    data = config.read_yaml_text("b: &x {c: 1, d: 2}\ne:\n  <<: *x\n  c: 3\n", "t.yaml")
+    assert data == {"b": {"c": 1, "d": 2}, "e": {"c": 3, "d": 2}}
+    with pytest.raises(ConfigError, match="malformed"):
+        config.read_yaml_text("a: !!python/object/apply:os.system ['true']\n", "t.yaml")

@@ -107,6 +107,22 @@ class Controller(LoopState):
         self._emit("stop", f"stop: {reason}", {"reason": reason})
         self._begin_ramp_down(self._abort_ramp_s)
 
+    def request_abort(self, rule: str, message: str, detail: dict[str, Any] | None = None) -> None:
+        """Trip ``rule`` from the shell (e.g. ``disk_space``): ramp down, status ``aborted``.
+
+        Parameters
+        ----------
+        rule : str
+            A rule of :data:`liveshape.control.safety.EXIT_STATUS` (its exit status is the run's).
+        message : str
+            One line a person reads, with the numbers.
+        detail : dict, optional
+            The numbers, units in the key names.
+        """
+        if self._status != "running":
+            return
+        self._abort(Trip(rule, message, self.t_s, dict(detail or {})))
+
     def report_underflow(self, count: int) -> None:
         """The rig's output ran dry ``count`` times: trips ``controller_late``."""
         if count > 0:

@@ -36,6 +36,7 @@ import numpy as np
 from liveshape.dsp.spectra import PsdAverager, chi2_interval_db, welch_dof
 from liveshape.dsp.synth import CLIP_SIGMA_MIN, RandomPhaseSynth, SynthStats
 from liveshape.errors import ConfigError
+from liveshape.record.diskspace import check_file_space
 
 #: Lines this close to a band edge (in lines) are left out of the PSD check: the synthesis
 #: window (about 3 lines wide) and the Hann estimate round the edge, the edge line reads about
@@ -242,6 +243,8 @@ def make_drive_file(
             f"fs_hz = {fs:g}, frame_length = {n_frame}: no line falls in the profile band "
             f"{spec.profile.f_min_hz:g}-{spec.profile.f_max_hz:g} Hz"
         )
+    # The WAV (float32 mono) and its sidecar must fit before anything is written.
+    check_file_space(out, 4 * n_samples + 64 * 1024)
     report = _Progress(progress)
 
     job = _Job(

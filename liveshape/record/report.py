@@ -1153,6 +1153,7 @@ def render_report(
     run = load_run(run_dir)
     figure_cls, canvas_cls, pdf_pages = _import_matplotlib()
     out = Path(out_dir) if out_dir is not None else run.root / "report"
+    made = [p for p in (out, *out.parents) if not p.exists()]
     try:
         out.mkdir(parents=True, exist_ok=True)
     except (FileExistsError, NotADirectoryError):
@@ -1174,26 +1175,40 @@ def render_report(
                 pdf.savefig(pg.fig)
 
     pdf_path = out / PDF_NAME
-    atomic_write(pdf_path, write_pdf)
-    pngs: dict[str, Path] = {}
-    if png:
-        pngs = _write_pngs(run, out, figure_cls, canvas_cls)
-    text = summary_text(run)
-    text += f"report:          {pdf_path.name} ({len(pages)} pages)\n"
-    if pngs:
-        text += "plots:           " + ", ".join(p.name for p in pngs.values()) + "\n"
     summary_path = out / "summary.txt"
-    atomic_write_text(summary_path, text)
+    pngs: dict[str, Path] = {}
+    written: list[Path] = []
+    try:
+        atomic_write(pdf_path, write_pdf)
+        written.append(pdf_path)
+        if png:
+            _write_pngs(run, out, figure_cls, canvas_cls, pngs)
+        text = summary_text(run)
+        text += f"report:          {pdf_path.name} ({len(pages)} pages)\n"
+        if pngs:
+            text += "plots:           " + ", ".join(p.name for p in pngs.values()) + "\n"
+        atomic_write_text(summary_path, text)
+    except OSError as exc:
+        # Nothing half-made stays behind: the files written so far and the folders made here.
+        for path in (*written, *pngs.values()):
+            path.unlink(missing_ok=True)
+        for folder in made:
+            try:
+                folder.rmdir()
+            except OSError:
+                pass
+        raise ConfigError(f"{out}: cannot write the report ({exc.strerror or exc})") from None
     return ReportResult(run_dir=run.root, out_dir=out, pdf_path=pdf_path,
                         pages=tuple(pg.title for pg in pages), pngs=pngs,
                         summary_path=summary_path, summary=text)
 
 
-def _write_pngs(run: RunData, out: Path, figure_cls: Any, canvas_cls: Any) -> dict[str, Path]:
+def _write_pngs(run: RunData, out: Path, figure_cls: Any, canvas_cls: Any,
+                pngs: dict[str, Path]) -> dict[str, Path]:
+    """Write the PNG plots into ``out``, adding each to ``pngs`` as soon as it exists."""
     tol, _ = _tolerance(run)
     ending = _ending(run)
     uncal = run.calibrated is False
-    pngs: dict[str, Path] = {}
 
     def save(name: str, size: tuple[float, float], draw: Any, n_axes: int = 1) -> None:
         fig = figure_cls(figsize=size)

@@ -87,25 +87,28 @@ UPDATE_ARRAYS = ("f_hz", "control_psd", "target_psd", "drive_psd", "h1", "cohere
 #: index arrays ``numbers`` and ``arrays`` (the names of the figures and of the extra arrays).
 _UPDATE_RESERVED = frozenset(UPDATE_ARRAYS) | {"index", "t_s", "numbers", "arrays", "units"}
 
-_NAME_BAD = re.compile(r"[^A-Za-z0-9_.-]+")
+#: Characters a folder name does not keep: anything but Unicode letters, digits and ``_ . -``
+#: (``\w`` of a str pattern is Unicode-aware, so a name such as ``名前`` stays as it is).
+_NAME_BAD = re.compile(r"[^\w.-]+")
+#: Folder name used when nothing of the test's name can be kept (e.g. a name of symbols only).
+_NAME_FALLBACK = "run"
 
 
 def new_run_folder(out_dir: str | os.PathLike[str], name: str, stamp: _dt.datetime) -> Path:
     """Make the empty folder of a new run: ``<out_dir>/<yyyymmdd-hhmmss>-<name>[-n]``.
 
-    Characters of ``name`` other than letters, digits and ``_ . -`` become ``-`` (at most 64
-    kept); ``stamp`` is the start time, written in UTC. ``-2``, ``-3`` ... are added when the
-    folder exists already: an existing folder is never written into. ``out_dir`` is made if
-    missing.
+    Characters of ``name`` other than (Unicode) letters, digits and ``_ . -`` become ``-`` (at
+    most 64 kept; ``run`` when nothing is left): the name is sanitized for the folder only, any
+    name the test definition accepts is accepted here. ``stamp`` is the start time, in UTC.
+    ``-2``, ``-3`` ... are added when the folder exists already: an existing folder is never
+    written into. ``out_dir`` is made if missing.
 
     Raises
     ------
     ConfigError
-        One line when the name has no letters or digits or ``out_dir`` cannot be made.
+        One line when ``out_dir`` cannot be made (or is a file).
     """
-    safe = _NAME_BAD.sub("-", str(name)).strip("-.")[:64]
-    if not safe:
-        raise ConfigError(f"run name = {name!r} has no letters or digits (used in the folder name)")
+    safe = _NAME_BAD.sub("-", str(name)).strip("-.")[:64].strip("-.") or _NAME_FALLBACK
     base = Path(out_dir)
     try:
         base.mkdir(parents=True, exist_ok=True)
@@ -441,6 +444,8 @@ def load_run(run_dir: str | os.PathLike[str]) -> RunData:
         One line when the folder is missing or is not a run folder.
     """
     root = Path(run_dir)
+    if root.exists() and not root.is_dir():
+        raise ConfigError(f"{root}: is a file, expected a run folder")
     if not root.is_dir():
         raise ConfigError(f"{root}: run folder not found")
     meta_path = root / META_NAME

@@ -101,7 +101,10 @@ class WavStream:
         if (self.frames + data.shape[0]) * data.shape[1] * 4 > self.max_bytes:
             self.full = True
             return False
-        self._file.write(data)
+        try:
+            self._file.write(data)
+        except (RuntimeError, AssertionError) as exc:  # libsndfile: short write, disk full
+            raise _write_error(self.path, exc) from None
         self.frames += data.shape[0]
         self._since_header += data.shape[0]
         if self._since_header >= self.period:
@@ -122,11 +125,24 @@ class WavStream:
         """Write buffered samples and bring the header up to date."""
         if self._file is None:
             return
-        self._file.flush()
-        sf_command(self._file, SFC_UPDATE_HEADER_NOW)
+        try:
+            self._file.flush()
+            sf_command(self._file, SFC_UPDATE_HEADER_NOW)
+        except (RuntimeError, AssertionError) as exc:
+            raise _write_error(self.path, exc) from None
         self._since_header = 0
 
     def close(self) -> None:
+        """Close the file (its header is rewritten); a failed write is an :class:`OSError`."""
         if self._file is not None:
-            self._file.close()
-            self._file = None
+            f, self._file = self._file, None
+            try:
+                f.close()
+            except (RuntimeError, AssertionError) as exc:
+                raise _write_error(self.path, exc) from None
+
+
+def _write_error(path: Path, exc: BaseException) -> OSError:
+    """libsndfile's failed or short write as an :class:`OSError` naming the file."""
+    text = str(exc).strip() or "short write"
+    return OSError(f"{path.name}: cannot write ({text}; is the disk full?)")

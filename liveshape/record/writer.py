@@ -71,6 +71,12 @@ __all__ = [
 # JSON-safe values
 
 
+#: Hidden file of zeros each open record keeps, removed on close so that ``summary.json`` can
+#: still be written when the disk filled during the run.
+SPACE_RESERVE_NAME = ".space-reserve"
+SPACE_RESERVE_BYTES = 1024 * 1024
+
+
 def json_safe(value: Any) -> Any:
     """Turn nested data into values :func:`json.dumps` accepts with ``allow_nan=False``.
 
@@ -158,6 +164,15 @@ class RunRecorder:
         self._events: IO[str] = open(
             root / EVENTS_NAME, "a", encoding="utf-8", buffering=1
         )
+        # Room for the summary even when the disk fills during the run: freed by close().
+        self._space_reserve = root / SPACE_RESERVE_NAME
+        try:
+            with open(self._space_reserve, "wb") as fh:
+                fh.write(bytes(SPACE_RESERVE_BYTES))
+        except OSError:
+            self._space_reserve.unlink(missing_ok=True)
+            self._events.close()
+            raise
 
     # -- making a folder ------------------------------------------------------------------
 
@@ -417,12 +432,20 @@ class RunRecorder:
         with self._lock:
             self._check_open()
             self._closed = True
-            try:
-                for w in (self._drive, self._response):
-                    if w is not None:
+            self._space_reserve.unlink(missing_ok=True)
+            errors: list[str] = []
+            for w in (self._drive, self._response):
+                if w is not None:
+                    try:
                         w.close()
-            finally:
+                    except OSError as exc:
+                        errors.append(str(exc))
+            try:
                 self._events.close()
+            except OSError as exc:
+                errors.append(f"{EVENTS_NAME}: cannot write ({exc.strerror or exc})")
+            if errors:
+                data["record_errors"] = errors
             data["record"] = {
                 "name": self.name,
                 "created_utc": self.created_utc.isoformat(timespec="seconds"),

@@ -98,7 +98,8 @@ class AudioRig:
     Parameters
     ----------
     device : int, str or None
-        Device index, name or unique part of a name (None: first full-duplex device).
+        Device index, name or unique part of a name (None is an error listing the devices:
+        a real card is driven only when named).
     fs_hz : float
         Sample rate of the stream, Hz.
     block_size : int, optional

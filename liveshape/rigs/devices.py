@@ -76,19 +76,25 @@ def rescan_devices(sd: Any, between: Callable[[], None] | None = None) -> None:
 def match_device(devices: list[DeviceInfo], device: int | str | None) -> DeviceInfo:
     """Pick one device by index, exact name, or a unique case-insensitive part of the name.
 
+    There is no default: ``device=None`` is an error that lists the devices, so a real card is
+    driven only when the user names it.
+
     Raises
     ------
     DeviceError
-        Unknown index or name (listing close matches), or an ambiguous part of a name.
+        No device named (listing the devices), unknown index or name (listing close matches),
+        or an ambiguous part of a name.
     """
+    if device is None or (isinstance(device, str) and not device.strip()):
+        # Real hardware is driven only when the user names it: never a default device.
+        listed = ", ".join(f"{d.index}: {d.name}" for d in devices) or "none found"
+        raise DeviceError(
+            "an audio rig needs a device: set rig.device in the test definition or give "
+            f"--rig audio:DEVICE (available: {listed})"
+        )
     if not devices:
         raise DeviceError("no audio devices found (is the interface connected and powered?)")
     names = [d.name for d in devices]
-    if device is None:
-        duplex = [d for d in devices if d.full_duplex]
-        if not duplex:
-            raise DeviceError(f"no full-duplex audio device among: {', '.join(names)}")
-        return duplex[0]
     if isinstance(device, int) or (isinstance(device, str) and device.strip().isdigit()):
         idx = int(device)
         for d in devices:

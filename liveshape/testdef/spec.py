@@ -309,6 +309,8 @@ def _profile(data: Any, w: OverrideWhere, base_dir: Path | None, name: str) -> P
             path = base_dir / path
         if path.suffix.lower() not in (".csv", ".txt"):
             raise w.key("file").fail(fname, "must be a two-column .csv or .txt profile")
+        if path.is_dir():
+            raise w.key("file").fail(fname, f"is a directory, expected a profile file ({path})")
         if not path.is_file():
             raise w.key("file").fail(fname, f"does not exist (looked for {path})")
         return read_profile_csv(path, name=pname)
@@ -451,6 +453,8 @@ def load_spec(path: str | Path, overrides: Mapping[str, Any] | None = None) -> T
     if suffix not in SPEC_SUFFIXES:
         raise ConfigError(f"{p}: unknown kind of test file (valid: {', '.join(SPEC_SUFFIXES)})")
     if suffix in (".csv", ".txt"):
+        if p.is_dir():
+            raise ConfigError(f"{p}: is a directory, expected a profile file")
         if not p.is_file():
             raise ConfigError(f"{p}: file not found")
         data: Any = {"name": p.stem, "profile": {"file": p.name}}

@@ -53,10 +53,40 @@ def profile_rows(report: Mapping[str, Any]) -> Rows:
     return rows
 
 
+#: Segments listed one per row; beyond this the table shows the first and last
+#: :data:`SEGMENT_ENDS` and one row summing up the ones between (``--json`` lists them all).
+MAX_SEGMENT_ROWS = 24
+SEGMENT_ENDS = 10
+
+
 def segment_rows(report: Mapping[str, Any]) -> list[tuple[str, ...]]:
-    """One row per profile segment, in the order of :data:`SEGMENT_COLUMNS`."""
+    """Rows of the profile's segments, in the order of :data:`SEGMENT_COLUMNS`.
+
+    Up to :data:`MAX_SEGMENT_ROWS` segments one row each; a longer profile (a measured CSV of
+    thousands of points) shows its first and last :data:`SEGMENT_ENDS` segments and one row
+    for the segments between them: their band, the range of their slopes, their summed area
+    and share.
+    """
+    segs = list(report.get("segments", ()))
+    if len(segs) <= MAX_SEGMENT_ROWS:
+        return _segment_rows(segs)
+    head, mid, tail = segs[:SEGMENT_ENDS], segs[SEGMENT_ENDS:-SEGMENT_ENDS], segs[-SEGMENT_ENDS:]
+    slopes = [v for v in (as_finite(g.get("slope_db_oct")) for g in mid) if v is not None]
+    areas = [v for v in (as_finite(g.get("area_g2")) for g in mid) if v is not None]
+    shares = [v for v in (as_finite(g.get("share_of_ms")) for g in mid) if v is not None]
+    slope = (f"{fmt(min(slopes), '+.2f')} … {fmt(max(slopes), '+.2f')}" if slopes else "—")
+    summary = (
+        fmt(mid[0].get("f_lo_hz"), "g"), fmt(mid[-1].get("f_hi_hz"), "g"),
+        f"… {len(mid)} segments (check --json lists all)", slope,
+        fmt(sum(areas), ".4g") if areas else "—",
+        fmt(100 * sum(shares), ".1f", "%") if shares else "—",
+    )
+    return [*_segment_rows(head), summary, *_segment_rows(tail)]
+
+
+def _segment_rows(segs: list[Any]) -> list[tuple[str, ...]]:
     rows = []
-    for seg in report.get("segments", ()):
+    for seg in segs:
         share = as_finite(seg.get("share_of_ms"))
         rows.append((
             fmt(seg.get("f_lo_hz"), "g"), fmt(seg.get("f_hi_hz"), "g"),
