@@ -113,6 +113,7 @@ def _cmd_synth(args: argparse.Namespace) -> int:
         crest_min=args.crest_min,
         crest_max=args.crest_max,
         max_tries=args.max_tries,
+        kurtosis=args.kurtosis,
     )
     if args.json:
         result = make_drive_file(spec, args.output, **kwargs)
@@ -442,6 +443,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="keep only realizations with crest factor <= Y")
     s.add_argument("--max-tries", type=_whole, default=10, metavar="N",
                    help="realizations to try for the crest-factor criterion (default 10)")
+    s.add_argument("--kurtosis", type=_positive_float, metavar="K",
+                   help="kurtosis target >= 3 (3: Gaussian); the PSD is kept")
     s.add_argument("--json", action="store_true", help="print the sidecar as one JSON object")
     s.set_defaults(func=_cmd_synth)
 

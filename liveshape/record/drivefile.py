@@ -34,6 +34,13 @@ from typing import Any
 import numpy as np
 
 from liveshape.dsp.spectra import PsdAverager, chi2_interval_db, welch_dof
+from liveshape.dsp.nongauss import (
+    GROUP_FRAMES,
+    BlockKurtosis,
+    check_kurtosis,
+    clip_sigma_needed,
+    required_crest_factor,
+)
 from liveshape.dsp.synth import CLIP_SIGMA_MIN, RandomPhaseSynth, SynthStats
 from liveshape.errors import ConfigError
 
@@ -109,12 +116,15 @@ class DriveFileResult:
     tries: int
     settings: dict[str, Any] = field(default_factory=dict)
     psd_check: PsdCheck | None = None
+    kurtosis_check: dict[str, Any] | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """Plain data (the sidecar's content)."""
         d = {k: _json_number(v) for k, v in asdict(self).items() if k != "psd_check"}
         d["settings"] = dict(self.settings)
         d["psd_check"] = self.psd_check.to_dict() if self.psd_check else None
+        if self.kurtosis_check is None:
+            d.pop("kurtosis_check", None)
         return d
 
 
@@ -187,6 +197,7 @@ def make_drive_file(
     crest_min: float | None = None,
     crest_max: float | None = None,
     max_tries: int = 10,
+    kurtosis: float | None = None,
     progress: Callable[[float], None] | None = None,
 ) -> DriveFileResult:
     """Write a drive file of the spec's profile: float32 mono WAV plus a JSON sidecar.
@@ -215,6 +226,13 @@ def make_drive_file(
     max_tries : int, optional
         Realizations to try before giving up (ConfigError naming the limits and the best crest
         factor reached).
+    kurtosis : float, optional
+        Kurtosis target (>= 3; default ``spec.drive.kurtosis``, 3 there: Gaussian). Above 3 the
+        frames get random gains that keep the PSD (:mod:`liveshape.dsp.nongauss`), with fixed
+        line amplitudes. Refused (ConfigError) when ``clip_sigma`` would cut the kurtosis by more
+        than 2 % (:func:`~liveshape.dsp.nongauss.clip_sigma_needed`). The sidecar's
+        ``kurtosis_check`` gives the kurtosis with its standard error from the scatter of
+        independent blocks and the record length a +-0.1 accuracy (90 %) needs.
     progress : callable, optional
         Called with the fraction of the planned work done (0 .. 1, never decreasing; it jumps
         ahead when a realization is accepted before ``max_tries``).
@@ -236,6 +254,7 @@ def make_drive_file(
     out = Path(out_path)
     opts = _resolve(spec, out, duration_s, fs_hz, seed, clip_sigma, crest_min, crest_max, max_tries)
     fs, n_frame, n_samples, base_seed, clip = opts
+    kurt = _resolve_kurtosis(spec, kurtosis, clip, n_samples)
     lines = spec.profile.lines(fs, n_frame)
     if not np.any(lines > 0):
         raise ConfigError(
@@ -254,6 +273,7 @@ def make_drive_file(
         wav_format="RF64" if 4 * n_samples > _WAV_MAX_BYTES else "WAV",
         f_min_hz=spec.profile.f_min_hz,
         f_max_hz=spec.profile.f_max_hz,
+        kurtosis=kurt,
     )
     limits = crest_min is not None or crest_max is not None
     n_tries = max_tries if limits else 1
@@ -313,7 +333,12 @@ def make_drive_file(
             settings={
                 "profile": spec.profile.name,
                 "spec_source": spec.source,
-                "amplitudes": "rayleigh",
+                "amplitudes": "fixed" if kurt > 3.0 else "rayleigh",
+                "kurtosis_target": kurt,
+                "kurtosis_method": (
+                    "random frame gains, gamma shares of groups of "
+                    f"{GROUP_FRAMES} frames (PSD kept)" if kurt > 3.0 else "Gaussian"
+                ),
                 "clip_sigma": clip,
                 "crest_min": crest_min,
                 "crest_max": crest_max,
@@ -321,7 +346,8 @@ def make_drive_file(
                 "wav_format": f"{job.wav_format} float32 mono",
                 "realization_seed": f"numpy SeedSequence([{base_seed}, {k}])",
             },
-            psd_check=check,
+            psd_check=check[0],
+            kurtosis_check=check[1],
         )
         tmp_json = _temp_name(sidecar)
         try:
@@ -355,12 +381,23 @@ class _Job:
     wav_format: str
     f_min_hz: float
     f_max_hz: float
+    kurtosis: float = 3.0
 
 
 def _realization(job: _Job, k: int, report, span, sink) -> SynthStats:
     """Synthesize realization ``k`` block by block, feeding ``sink``; return its statistics."""
     rng = np.random.default_rng(np.random.SeedSequence([job.seed, k]))
-    synth = RandomPhaseSynth(job.fs_hz, job.frame_length, seed=rng, clip_sigma=job.clip_sigma)
+    if job.kurtosis > 3.0:
+        synth = RandomPhaseSynth(
+            job.fs_hz,
+            job.frame_length,
+            seed=rng,
+            clip_sigma=job.clip_sigma,
+            amplitudes="fixed",
+            kurtosis=job.kurtosis,
+        )
+    else:
+        synth = RandomPhaseSynth(job.fs_hz, job.frame_length, seed=rng, clip_sigma=job.clip_sigma)
     synth.set_psd(job.lines)
     buf = np.empty(BLOCK)
     n = job.n_samples
@@ -378,6 +415,7 @@ def _realization(job: _Job, k: int, report, span, sink) -> SynthStats:
 def _write_realization(sf, path, job: _Job, k: int, full_scale_g: float, report, span):
     """Write realization ``k`` scaled by ``1 / full_scale_g``; return its stats and PSD check."""
     averager = PsdAverager(job.fs_hz, job.frame_length)
+    blocks = BlockKurtosis(_kurtosis_block(job))
     buf32 = np.empty(BLOCK, dtype=np.float32)
     scale = 1.0 / full_scale_g
     with sf.SoundFile(
@@ -390,6 +428,7 @@ def _write_realization(sf, path, job: _Job, k: int, full_scale_g: float, report,
             np.clip(y, -1.0, 1.0, out=y)  # guards the last rounding at the clip level
             wav.write(y)
             averager.push(x)
+            blocks.push(x)
 
         st = _realization(job, k, report, span, write)
     check = check_psd(
@@ -400,7 +439,24 @@ def _write_realization(sf, path, job: _Job, k: int, full_scale_g: float, report,
         job.f_min_hz,
         job.f_max_hz,
     )
-    return st, check
+    return st, (check, _kurtosis_check(blocks))
+
+
+def _kurtosis_block(job: _Job) -> int:
+    """Block length for the kurtosis scatter: 2 groups of frame gains, at most 1/20 of the record."""
+    hop = job.frame_length // 2
+    return max(min(2 * GROUP_FRAMES * hop, job.n_samples // 20), hop)
+
+
+def _kurtosis_check(blocks: BlockKurtosis) -> dict[str, Any] | None:
+    try:
+        r = blocks.result()
+    except ConfigError:
+        return None
+    d = r.to_dict()
+    d["accuracy_90"] = 1.645 * r.std_error
+    d["samples_for_0.1"] = r.samples_for(0.1)
+    return d
 
 
 # ------------------------------------------------------------------------------------- helpers
@@ -451,6 +507,26 @@ def _resolve(spec, out, duration_s, fs_hz, seed, clip_sigma, crest_min, crest_ma
     if not os.access(folder, os.W_OK):
         raise ConfigError(f"--output = {str(out)!r}: folder {str(folder)!r} is not writable")
     return fs, n_frame, n_samples, int(seed), clip
+
+
+def _resolve_kurtosis(spec, kurtosis, clip, n_samples) -> float:
+    """The kurtosis target; refuse a clip level that would cap it (one line, with numbers)."""
+    if kurtosis is None:
+        drive = getattr(spec, "drive", None)
+        kurtosis = getattr(drive, "kurtosis", 3.0) if drive is not None else 3.0
+        name = "drive.kurtosis"
+    else:
+        name = "kurtosis"
+    k = check_kurtosis(kurtosis, name)
+    if k > 3.0 and clip is not None:
+        need = clip_sigma_needed(k)
+        if clip < need:
+            raise ConfigError(
+                f"clip_sigma = {clip:g} would cut {name} = {k:g} by more than 2 %: it needs "
+                f"clip_sigma >= {need:.2f} (peaks to ~{required_crest_factor(k, n_samples):.1f} "
+                f"x rms in this record; raise --clip-sigma or safety.clip_sigma)"
+            )
+    return k
 
 
 class _Progress:
