@@ -147,7 +147,8 @@ def required_crest_factor(kurtosis: float, n_samples: int) -> float:
     """Peak / rms a record of ``n_samples`` reaches with probability 1/2, for the gain model.
 
     The samples are a Gaussian scale mixture ``x = a g`` (the stream level ``sqrt(w1^2 a1^2 +
-    w2^2 a2^2)`` approximated by one gain with ``E[a^4] = K / 3``, the stream's kurtosis). ``P(|x| > c) = E[2 Q(c / a)]``; the median
+    w2^2 a2^2)`` approximated by one gain with ``E[a^4] = K / 3``, the stream's kurtosis).
+    ``P(|x| > c) = E[2 Q(c / a)]``; the median
     peak of ``n`` nearly independent samples is where ``n P(|x| > c) = ln 2`` (extreme value of
     independent samples [common practice]). ``E[.]`` over ``a^2`` ~ gamma(s) / s by 64-point
     Gauss-Laguerre quadrature; kurtosis 3 gives the Gaussian crest factor.

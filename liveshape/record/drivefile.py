@@ -33,7 +33,6 @@ from typing import Any
 
 import numpy as np
 
-from liveshape.dsp.spectra import PsdAverager, chi2_interval_db, welch_dof
 from liveshape.dsp.nongauss import (
     GROUP_FRAMES,
     BlockKurtosis,
@@ -41,6 +40,7 @@ from liveshape.dsp.nongauss import (
     clip_sigma_needed,
     required_crest_factor,
 )
+from liveshape.dsp.spectra import PsdAverager, chi2_interval_db, welch_dof
 from liveshape.dsp.synth import CLIP_SIGMA_MIN, RandomPhaseSynth, SynthStats
 from liveshape.errors import ConfigError
 
@@ -443,7 +443,7 @@ def _write_realization(sf, path, job: _Job, k: int, full_scale_g: float, report,
 
 
 def _kurtosis_block(job: _Job) -> int:
-    """Block length for the kurtosis scatter: 2 groups of frame gains, at most 1/20 of the record."""
+    """Block length of the kurtosis scatter: 2 groups of frame gains, <= 1/20 of the record."""
     hop = job.frame_length // 2
     return max(min(2 * GROUP_FRAMES * hop, job.n_samples // 20), hop)
 
