@@ -9,10 +9,16 @@ the expected PSD of the stream is ``E[a^2]`` times the Gaussian one, line by lin
 samples, so no harmonics or intermodulation leak out of the band). A Gaussian frame scaled by an
 independent gain is a Gaussian scale mixture (Andrews & Mallows 1974) with kurtosis
 ``3 E[a^4] / E[a^2]^2``; bursts of high level give the heavy tails of road and terrain records.
-This is the amplitude-modulation family of non-Gaussian random testing (Rouillard, "Generating
-non-Gaussian vibration with a prescribed kurtosis"; Smallwood 2005 names it among the
-spectrum-preserving ways to raise kurtosis) with the modulation made piecewise constant per frame,
-so the sine-window overlap-add does the smoothing of the envelope.
+This is the amplitude-modulation family of non-Gaussian random testing (a Gaussian signal of
+the PSD times a slowly varying modulation signal; e.g. Xu, Yang, Ahlin & Chen 2024, who draw the
+modulation from Beta and Weibull laws) with the modulation made piecewise constant per frame, so
+the sine-window overlap-add smooths the envelope. With a gamma law for ``a^2`` the samples follow
+the symmetric generalized Laplace law (Kotz, Kozubowski & Podgorski 2001); kurtosis 6 is the
+Laplace law itself. Chosen over phase selection (Steinwolf) and zero-memory nonlinear transforms
+(Smallwood 2005) because it needs no iteration, keeps the expected PSD exactly (a transform
+leaks power out of the band and needs a spectral correction; phase selection keeps the
+per-frame spectrum but its kurtosis is limited by the number of lines and needs a search), and
+is a one-line change to the frame loop, cheap enough to run in real time.
 
 Stream kurtosis. Two frames overlap at every sample with weights ``w1^2 + w2^2 = 1`` (sine
 window). Fourth cumulants of independent frames add with weights ``w^4`` and the mean of
@@ -35,7 +41,12 @@ References
 ----------
 D. F. Andrews and C. L. Mallows, "Scale mixtures of normal distributions", J. R. Stat. Soc. B
 36(1), 1974. D. O. Smallwood, "Generating non-Gaussian vibration for testing purposes", Sound and
-Vibration 39(10), 2005. D. N. Joanes and C. A. Gill, "Comparing measures of sample skewness and
+Vibration 39(10), 2005. F. Xu, H. Yang, K. Ahlin and Z. Chen, "Kurtosis control of
+amplitude-modulated non-Gaussian signals for fatigue test", Strojniski vestnik - J. Mech. Eng.
+70(9-10), 2024. S. Kotz, T. J. Kozubowski and K. Podgorski, The Laplace Distribution and
+Generalizations, Birkhauser 2001. A. Steinwolf, "Random vibration testing beyond PSD
+limitations", Sound and Vibration 40(9), 2006 [issue from memory].
+D. N. Joanes and C. A. Gill, "Comparing measures of sample skewness and
 kurtosis", The Statistician 47(1), 1998 (standard error sqrt(24/N) of the kurtosis of normal data).
 """
 
