@@ -74,6 +74,8 @@ __all__ = [
 
 #: Frames per renormalized group (power of each group of this many frames is exact).
 GROUP_FRAMES = 64
+#: Samples per step of the block moments (keeps their temporaries small and constant).
+_CHUNK = 4096
 #: Largest kurtosis target accepted (the gamma shape then gets small and bursts very rare).
 KURTOSIS_MAX = 20.0
 
@@ -305,7 +307,7 @@ class BlockKurtosis:
         x = np.asarray(x, dtype=float)
         i = 0
         while i < x.size:
-            k = min(x.size - i, self._len - self._fill)
+            k = min(x.size - i, self._len - self._fill, _CHUNK)  # bounded temporaries
             c = x[i : i + k]
             c2 = c * c
             self._cur += (c.sum(), c2.sum(), (c2 * c).sum(), (c2 * c2).sum())

@@ -227,7 +227,7 @@ def make_drive_file(
         Realizations to try before giving up (ConfigError naming the limits and the best crest
         factor reached).
     kurtosis : float, optional
-        Kurtosis target (>= 3; default ``spec.drive.kurtosis``, 3 there: Gaussian). Above 3 the
+        Kurtosis target (>= 3; default None: Gaussian, the same stream as before). Above 3 the
         frames get random gains that keep the PSD (:mod:`liveshape.dsp.nongauss`), with fixed
         line amplitudes. Refused (ConfigError) when ``clip_sigma`` would cut the kurtosis by more
         than 2 % (:func:`~liveshape.dsp.nongauss.clip_sigma_needed`). The sidecar's
@@ -511,13 +511,8 @@ def _resolve(spec, out, duration_s, fs_hz, seed, clip_sigma, crest_min, crest_ma
 
 def _resolve_kurtosis(spec, kurtosis, clip, n_samples) -> float:
     """The kurtosis target; refuse a clip level that would cap it (one line, with numbers)."""
-    if kurtosis is None:
-        drive = getattr(spec, "drive", None)
-        kurtosis = getattr(drive, "kurtosis", 3.0) if drive is not None else 3.0
-        name = "drive.kurtosis"
-    else:
-        name = "kurtosis"
-    k = check_kurtosis(kurtosis, name)
+    name = "kurtosis"
+    k = 3.0 if kurtosis is None else check_kurtosis(kurtosis, name)
     if k > 3.0 and clip is not None:
         need = clip_sigma_needed(k)
         if clip < need:
