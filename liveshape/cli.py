@@ -166,6 +166,10 @@ def _cmd_synth(args: argparse.Namespace) -> int:
     from liveshape.testdef.spec import load_spec
     from liveshape.views import dashboard
 
+    if args.from_run is not None:
+        return _synth_from_run(args)
+    if args.spec is None or args.duration is None:
+        raise ConfigError("synth: give SPEC and --duration S (or --from-run RUN_DIR)")
     overrides: dict[str, Any] = {}
     if args.fs is not None:
         overrides["control.fs_hz"] = args.fs
@@ -178,6 +182,7 @@ def _cmd_synth(args: argparse.Namespace) -> int:
         crest_min=args.crest_min,
         crest_max=args.crest_max,
         max_tries=args.max_tries,
+        kurtosis=args.kurtosis,
     )
     if args.json:
         with _sigterm_unwinds():
@@ -188,6 +193,31 @@ def _cmd_synth(args: argparse.Namespace) -> int:
     with _sigterm_unwinds(), dashboard.progress_bar(console, f"writing {args.output}") as progress:
         result = make_drive_file(spec, args.output, progress=progress, **kwargs)
     console.print(dashboard.synth_summary(result.to_dict()))
+    return 0
+
+
+def _synth_from_run(args: argparse.Namespace) -> int:
+    from liveshape.record.drivefile import make_run_drive_file
+
+    if args.spec is not None:
+        raise ConfigError(f"synth: SPEC = {args.spec!r} and --from-run are exclusive")
+    for name in ("fs", "clip_sigma", "crest_min", "crest_max", "kurtosis"):
+        if getattr(args, name) is not None:
+            opt = "--" + name.replace("_", "-")
+            raise ConfigError(f"synth: {opt} does not apply with --from-run (the run fixes it)")
+    duration = 60.0 if args.duration is None else args.duration
+    with _sigterm_unwinds():
+        result = make_run_drive_file(
+            args.from_run, args.output, duration_s=duration, seed=args.seed, force=args.force
+        )
+    d = result.to_dict()
+    if args.json:
+        _print_json(d)
+    else:
+        print(
+            f"wrote {d['path']} ({d['duration_s']:g} s, {d['rms_fs']:.4g} FS rms, open-loop) "
+            f"from {d['source_run']} update {d['source_update']}; sidecar {d['sidecar_path']}"
+        )
     return 0
 
 
@@ -715,10 +745,14 @@ def build_parser() -> argparse.ArgumentParser:
                 "(the output names the binding limit and what would make it feasible).")
 
     s = sub.add_parser("synth", help="write a drive file (float WAV) offline with a sidecar")
-    s.add_argument("spec", metavar="SPEC", help="test definition (.yaml) or profile (.csv)")
-    s.add_argument("--duration", type=_synth_s,
-                   required=True, metavar="S",
-                   help="length of the file in seconds")
+    s.add_argument("spec", metavar="SPEC", nargs="?",
+                   help="test definition (.yaml) or profile (.csv)")
+    s.add_argument("--duration", type=_synth_s, metavar="S",
+                   help="length of the file in seconds (required with SPEC; 60 with --from-run)")
+    s.add_argument("--from-run", metavar="RUN_DIR",
+                   help="synthesize the run's last equalized drive (FS) for open-loop playback")
+    s.add_argument("--force", action="store_true",
+                   help="with --from-run: export from a run that did not complete")
     s.add_argument("-o", "--output", required=True, metavar="FILE.wav", help="output WAV")
     s.add_argument("--fs", type=_fs, metavar="HZ", help="sample rate")
     s.add_argument("--seed", type=_seed, metavar="N", help="random seed")
@@ -730,6 +764,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="keep only realizations with crest factor <= Y")
     s.add_argument("--max-tries", type=_bounded("int", 1, 1000), default=10, metavar="N",
                    help="realizations to try for the crest-factor criterion (default 10)")
+    s.add_argument("--kurtosis", type=_positive_float, metavar="K",
+                   help="kurtosis target >= 3 (3: Gaussian); the PSD is kept")
     s.add_argument("--json", action="store_true", help="print the sidecar as one JSON object")
     s.set_defaults(func=_cmd_synth)
 

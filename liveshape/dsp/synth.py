@@ -69,6 +69,7 @@ from liveshape.dsp.frames import (  # re-exported: AMPLITUDES .. sine_window
     sine_window,
 )
 from liveshape.dsp.moments import RunningMoments  # re-exported
+from liveshape.dsp.nongauss import FrameGains, check_kurtosis
 from liveshape.dsp.ramp import GainRamp, check_positive  # re-exported: GainRamp
 from liveshape.errors import ConfigError
 
@@ -181,6 +182,7 @@ class RandomPhaseSynth:
         gain: float = 1.0,
         rate_db_s: float = 6.0,
         fade_s: float = 0.25,
+        kurtosis: float | None = None,
     ) -> None:
         self._fs_hz = check_positive(fs_hz, "fs_hz")
         if (
@@ -208,6 +210,9 @@ class RandomPhaseSynth:
         self._amplitudes = amplitudes
         self._clip_sigma = clip_sigma
         self._rng = seed if isinstance(seed, np.random.Generator) else np.random.default_rng(seed)
+        self._gains: FrameGains | None = None
+        if kurtosis is not None and check_kurtosis(kurtosis, "synth: kurtosis") > 3.0:
+            self._gains = FrameGains(kurtosis, self._rng)
         self._ramp = GainRamp(self._fs_hz, gain=gain, rate_db_s=rate_db_s, fade_s=fade_s)
         self._moments = RunningMoments()
         self._n_clipped = 0
@@ -462,15 +467,21 @@ class RandomPhaseSynth:
         irfft_into(coef, m, frame, axis=0)
         return self._frame_buf
 
-    def _prime(self) -> None:
+    def _modulated_frame(self) -> np.ndarray:
         frame = self._frame()
+        if self._gains is not None:
+            frame *= self._gains.next()
+        return frame
+
+    def _prime(self) -> None:
+        frame = self._modulated_frame()
         np.multiply(frame[self._hop :], self._window[self._hop :], out=self._tail)
         self._var_tail = self._var_cur
         self._primed = True
 
     def _next_block(self) -> None:
         var_prev = self._var_tail
-        frame = self._frame()
+        frame = self._modulated_frame()
         hop, w, block = self._hop, self._window, self._block
         np.multiply(frame[:hop], w[:hop], out=block)
         block += self._tail

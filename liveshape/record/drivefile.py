@@ -33,6 +33,13 @@ from typing import Any
 
 import numpy as np
 
+from liveshape.dsp.nongauss import (
+    GROUP_FRAMES,
+    BlockKurtosis,
+    check_kurtosis,
+    clip_sigma_needed,
+    required_crest_factor,
+)
 from liveshape.dsp.spectra import PsdAverager, chi2_interval_db, welch_dof
 from liveshape.dsp.synth import CLIP_SIGMA_MIN, RandomPhaseSynth, SynthStats
 from liveshape.errors import ConfigError
@@ -110,12 +117,15 @@ class DriveFileResult:
     tries: int
     settings: dict[str, Any] = field(default_factory=dict)
     psd_check: PsdCheck | None = None
+    kurtosis_check: dict[str, Any] | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """Plain data (the sidecar's content)."""
         d = {k: _json_number(v) for k, v in asdict(self).items() if k != "psd_check"}
         d["settings"] = dict(self.settings)
         d["psd_check"] = self.psd_check.to_dict() if self.psd_check else None
+        if self.kurtosis_check is None:
+            d.pop("kurtosis_check", None)
         return d
 
 
@@ -188,6 +198,7 @@ def make_drive_file(
     crest_min: float | None = None,
     crest_max: float | None = None,
     max_tries: int = 10,
+    kurtosis: float | None = None,
     progress: Callable[[float], None] | None = None,
 ) -> DriveFileResult:
     """Write a drive file of the spec's profile: float32 mono WAV plus a JSON sidecar.
@@ -216,6 +227,13 @@ def make_drive_file(
     max_tries : int, optional
         Realizations to try before giving up (ConfigError naming the limits and the best crest
         factor reached).
+    kurtosis : float, optional
+        Kurtosis target (>= 3; default None: Gaussian, the same stream as before). Above 3 the
+        frames get random gains that keep the PSD (:mod:`liveshape.dsp.nongauss`), with fixed
+        line amplitudes. Refused (ConfigError) when ``clip_sigma`` would cut the kurtosis by more
+        than 2 % (:func:`~liveshape.dsp.nongauss.clip_sigma_needed`). The sidecar's
+        ``kurtosis_check`` gives the kurtosis with its standard error from the scatter of
+        independent blocks and the record length a +-0.1 accuracy (90 %) needs.
     progress : callable, optional
         Called with the fraction of the planned work done (0 .. 1, never decreasing; it jumps
         ahead when a realization is accepted before ``max_tries``).
@@ -237,6 +255,7 @@ def make_drive_file(
     out = Path(out_path)
     opts = _resolve(spec, out, duration_s, fs_hz, seed, clip_sigma, crest_min, crest_max, max_tries)
     fs, n_frame, n_samples, base_seed, clip = opts
+    kurt = _resolve_kurtosis(spec, kurtosis, clip, n_samples)
     lines = spec.profile.lines(fs, n_frame)
     if not np.any(lines > 0):
         raise ConfigError(
@@ -257,6 +276,7 @@ def make_drive_file(
         wav_format="RF64" if 4 * n_samples > _WAV_MAX_BYTES else "WAV",
         f_min_hz=spec.profile.f_min_hz,
         f_max_hz=spec.profile.f_max_hz,
+        kurtosis=kurt,
     )
     limits = crest_min is not None or crest_max is not None
     n_tries = max_tries if limits else 1
@@ -316,7 +336,12 @@ def make_drive_file(
             settings={
                 "profile": spec.profile.name,
                 "spec_source": spec.source,
-                "amplitudes": "rayleigh",
+                "amplitudes": "fixed" if kurt > 3.0 else "rayleigh",
+                "kurtosis_target": kurt,
+                "kurtosis_method": (
+                    "random frame gains, gamma shares of groups of "
+                    f"{GROUP_FRAMES} frames (PSD kept)" if kurt > 3.0 else "Gaussian"
+                ),
                 "clip_sigma": clip,
                 "crest_min": crest_min,
                 "crest_max": crest_max,
@@ -324,7 +349,8 @@ def make_drive_file(
                 "wav_format": f"{job.wav_format} float32 mono",
                 "realization_seed": f"numpy SeedSequence([{base_seed}, {k}])",
             },
-            psd_check=check,
+            psd_check=check[0],
+            kurtosis_check=check[1],
         )
         tmp_json = _temp_name(sidecar)
         try:
@@ -358,12 +384,23 @@ class _Job:
     wav_format: str
     f_min_hz: float
     f_max_hz: float
+    kurtosis: float = 3.0
 
 
 def _realization(job: _Job, k: int, report, span, sink) -> SynthStats:
     """Synthesize realization ``k`` block by block, feeding ``sink``; return its statistics."""
     rng = np.random.default_rng(np.random.SeedSequence([job.seed, k]))
-    synth = RandomPhaseSynth(job.fs_hz, job.frame_length, seed=rng, clip_sigma=job.clip_sigma)
+    if job.kurtosis > 3.0:
+        synth = RandomPhaseSynth(
+            job.fs_hz,
+            job.frame_length,
+            seed=rng,
+            clip_sigma=job.clip_sigma,
+            amplitudes="fixed",
+            kurtosis=job.kurtosis,
+        )
+    else:
+        synth = RandomPhaseSynth(job.fs_hz, job.frame_length, seed=rng, clip_sigma=job.clip_sigma)
     synth.set_psd(job.lines)
     buf = np.empty(BLOCK)
     n = job.n_samples
@@ -381,6 +418,7 @@ def _realization(job: _Job, k: int, report, span, sink) -> SynthStats:
 def _write_realization(sf, path, job: _Job, k: int, full_scale_g: float, report, span):
     """Write realization ``k`` scaled by ``1 / full_scale_g``; return its stats and PSD check."""
     averager = PsdAverager(job.fs_hz, job.frame_length)
+    blocks = BlockKurtosis(_kurtosis_block(job))
     buf32 = np.empty(BLOCK, dtype=np.float32)
     scale = 1.0 / full_scale_g
     with sf.SoundFile(
@@ -393,6 +431,7 @@ def _write_realization(sf, path, job: _Job, k: int, full_scale_g: float, report,
             np.clip(y, -1.0, 1.0, out=y)  # guards the last rounding at the clip level
             wav.write(y)
             averager.push(x)
+            blocks.push(x)
 
         st = _realization(job, k, report, span, write)
     check = check_psd(
@@ -403,7 +442,24 @@ def _write_realization(sf, path, job: _Job, k: int, full_scale_g: float, report,
         job.f_min_hz,
         job.f_max_hz,
     )
-    return st, check
+    return st, (check, _kurtosis_check(blocks))
+
+
+def _kurtosis_block(job: _Job) -> int:
+    """Block length of the kurtosis scatter: 2 groups of frame gains, <= 1/20 of the record."""
+    hop = job.frame_length // 2
+    return max(min(2 * GROUP_FRAMES * hop, job.n_samples // 20), hop)
+
+
+def _kurtosis_check(blocks: BlockKurtosis) -> dict[str, Any] | None:
+    try:
+        r = blocks.result()
+    except ConfigError:
+        return None
+    d = r.to_dict()
+    d["accuracy_90"] = 1.645 * r.std_error
+    d["samples_for_0.1"] = r.samples_for(0.1)
+    return d
 
 
 # ------------------------------------------------------------------------------------- helpers
@@ -456,6 +512,21 @@ def _resolve(spec, out, duration_s, fs_hz, seed, clip_sigma, crest_min, crest_ma
     return fs, n_frame, n_samples, int(seed), clip
 
 
+def _resolve_kurtosis(spec, kurtosis, clip, n_samples) -> float:
+    """The kurtosis target; refuse a clip level that would cap it (one line, with numbers)."""
+    name = "kurtosis"
+    k = 3.0 if kurtosis is None else check_kurtosis(kurtosis, name)
+    if k > 3.0 and clip is not None:
+        need = clip_sigma_needed(k)
+        if clip < need:
+            raise ConfigError(
+                f"clip_sigma = {clip:g} would cut {name} = {k:g} by more than 2 %: it needs "
+                f"clip_sigma >= {need:.2f} (peaks to ~{required_crest_factor(k, n_samples):.1f} "
+                f"x rms in this record; raise --clip-sigma or safety.clip_sigma)"
+            )
+    return k
+
+
 class _Progress:
     """Calls ``progress`` with a never-decreasing fraction, at most every 0.1 %."""
 
@@ -504,3 +575,239 @@ def _json_number(v: Any) -> Any:
     if isinstance(v, float) and not math.isfinite(v):
         return None
     return v
+
+
+# ------------------------------------------------------------------- drive files from a run
+@dataclass(frozen=True)
+class RunDriveFileResult:
+    """What :func:`make_run_drive_file` wrote (also the sidecar's content, ``to_dict``)."""
+
+    path: str
+    sidecar_path: str
+    source_run: str
+    source_status: str
+    source_update: int
+    spec_file: str | None
+    spec_sha256: str | None
+    calibration: dict[str, Any] | None
+    fs_hz: float
+    frame_length: int
+    duration_s: float
+    n_samples: int
+    seed: int
+    clip_sigma: float | None
+    rms_fs: float
+    target_rms_fs: float
+    peak_fs: float
+    crest_factor: float
+    psd_check: PsdCheck
+    playback: str = "open-loop: the run's last equalized drive, no control during playback"
+    units: str = "sample = drive in FS (full scale of the run's output), as the run played it"
+
+    def to_dict(self) -> dict[str, Any]:
+        d = {k: _json_number(v) for k, v in asdict(self).items() if k != "psd_check"}
+        d["psd_check"] = self.psd_check.to_dict()
+        return d
+
+
+def run_drive_psd(run: Any, frame_length: int) -> tuple[np.ndarray, int]:
+    """The last update's ``new_drive_psd`` (FS²/Hz) on all ``frame_length / 2 + 1`` lines.
+
+    Returns the PSD (zero off the band lines) and the update number it comes from. Raises
+    ConfigError (one line) when the run has no update with a drive spectrum.
+    """
+    u = run.updates
+    new = u.arrays.get("new_drive_psd") if u.n else None
+    rows = [] if new is None else [i for i in range(u.n) if np.all(np.isfinite(new[i]))]
+    if not rows:
+        raise ConfigError(
+            f"--from-run {str(run.root)!r}: the run has no drive update (no new_drive_psd in "
+            "updates/); nothing to export"
+        )
+    i = rows[-1]
+    df = run.fs_hz / frame_length
+    k = np.rint(np.asarray(u.f_hz) / df).astype(int)
+    if np.any(np.abs(k * df - u.f_hz) > 1e-6 * df) or k.min() < 0 or k.max() > frame_length // 2:
+        raise ConfigError(
+            f"--from-run {str(run.root)!r}: update lines are not on the {df:g} Hz grid of "
+            f"frame_length = {frame_length}"
+        )
+    psd = np.zeros(frame_length // 2 + 1)
+    psd[k] = np.maximum(new[i], 0.0)
+    return psd, int(u.index[i])
+
+
+def make_run_drive_file(
+    run_dir: str | os.PathLike[str],
+    out_path: str | os.PathLike[str],
+    *,
+    duration_s: float,
+    seed: int | None = None,
+    force: bool = False,
+) -> RunDriveFileResult:
+    """Write a run's final equalized drive as a float32 WAV in FS with a JSON sidecar.
+
+    The drive spectrum is the last update's ``new_drive_psd`` (FS²/Hz on the band lines, read
+    with :func:`liveshape.record.runfolder.load_run`), synthesized Gaussian on the run's
+    ``control.frame_length`` lines at its sample rate (:class:`RandomPhaseSynth`, clipped at
+    the run spec's ``safety.clip_sigma``). Samples are the drive in FS at the level the run
+    played, for open-loop playback on the same rig and calibration. Refused (ConfigError, one
+    line): a run with no update, or a run that did not complete (aborted, stopped, killed)
+    unless ``force``; a drive whose peaks would pass full scale or the run's
+    ``safety.drive_peak_max_fs``.
+    """
+    import soundfile as sf
+
+    from liveshape.record.runfolder import load_run
+
+    run = load_run(run_dir)
+    if run.status != "completed" and not force:
+        raise ConfigError(
+            f"--from-run {str(run.root)!r}: the run's status is {run.status!r}, not "
+            "'completed'; its last drive may not be equalized (--force exports it anyway)"
+        )
+    control = run.spec.get("control") or {}
+    safety = run.spec.get("safety") or {}
+    n_frame = int(control.get("frame_length", 0) or 0)
+    fs = run.fs_hz
+    if n_frame < 4 or not math.isfinite(fs) or fs != round(fs):
+        raise ConfigError(
+            f"--from-run {str(run.root)!r}: spec.yaml gives no usable control.frame_length / "
+            "fs_hz"
+        )
+    psd, update = run_drive_psd(run, n_frame)
+    out = Path(out_path)
+    _check_out(out)
+    d = _finite(duration_s, "duration_s")
+    n_samples = int(round(d * fs))
+    if d <= 0 or n_samples < n_frame:
+        raise ConfigError(
+            f"duration_s = {duration_s!r} must give at least one frame "
+            f"({n_frame} samples = {n_frame / fs:g} s at {fs:g} Hz)"
+        )
+    if seed is None:
+        seed = int(np.random.SeedSequence().entropy % (1 << 63))
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise ConfigError(f"seed = {seed!r} must be a whole number >= 0")
+    clip = safety.get("clip_sigma", None)
+    clip = None if clip is None else max(float(clip), CLIP_SIGMA_MIN)
+    peak_max = float(safety.get("drive_peak_max_fs", 1.0) or 1.0)
+    target_rms = math.sqrt(float(np.sum(psd)) * fs / n_frame)
+    if clip is not None and clip * target_rms > min(peak_max, 1.0):
+        raise ConfigError(
+            f"--from-run {str(run.root)!r}: the drive's clip level {clip:g} x {target_rms:.4g} "
+            f"FS rms passes drive_peak_max_fs = {peak_max:g}; this drive cannot be exported"
+        )
+    synth = RandomPhaseSynth(
+        fs, n_frame, seed=np.random.default_rng(np.random.SeedSequence([int(seed), 0])),
+        clip_sigma=clip,
+    )
+    synth.set_psd(psd)
+    averager = PsdAverager(fs, n_frame)
+    sidecar = out.with_suffix(".json")
+    tmp_wav = _temp_name(out)
+    fmt = "RF64" if 4 * n_samples > _WAV_MAX_BYTES else "WAV"
+    try:
+        buf = np.empty(BLOCK)
+        with sf.SoundFile(
+            tmp_wav, "w", samplerate=int(fs), channels=1, format=fmt, subtype="FLOAT"
+        ) as wav:
+            done = 0
+            while done < n_samples:
+                m = min(BLOCK, n_samples - done)
+                x = synth.read(m, out=buf[:m])
+                wav.write(x.astype(np.float32))
+                averager.push(x)
+                done += m
+        st = synth.stats
+        if st.peak > min(peak_max, 1.0):
+            raise ConfigError(
+                f"--from-run {str(run.root)!r}: the drive's peak {st.peak:.4g} FS passes "
+                f"drive_peak_max_fs = {peak_max:g} (no clip level in the run's spec)"
+            )
+        band = np.flatnonzero(psd)
+        check = check_psd(
+            averager.f_hz, averager.psd, expected_welch_psd(psd, n_frame),
+            welch_dof(averager.n_segments),
+            float(band[0]) * fs / n_frame, float(band[-1]) * fs / n_frame,
+        )
+        result = RunDriveFileResult(
+            path=str(out),
+            sidecar_path=str(sidecar),
+            source_run=str(run.root.resolve()),
+            source_status=run.status,
+            source_update=update,
+            spec_file=run.meta.get("spec_file"),
+            spec_sha256=run.meta.get("spec_sha256"),
+            calibration=run.meta.get("calibration"),
+            fs_hz=fs,
+            frame_length=n_frame,
+            duration_s=n_samples / fs,
+            n_samples=n_samples,
+            seed=int(seed),
+            clip_sigma=clip,
+            rms_fs=st.rms,
+            target_rms_fs=target_rms,
+            peak_fs=st.peak,
+            crest_factor=st.crest_factor,
+            psd_check=check,
+        )
+        tmp_json = _temp_name(sidecar)
+        try:
+            with open(tmp_json, "w", encoding="utf-8") as fh:
+                json.dump(result.to_dict(), fh, indent=2, allow_nan=False)
+                fh.write("\n")
+            os.replace(tmp_wav, out)
+            os.replace(tmp_json, sidecar)
+        except BaseException:
+            _unlink(tmp_json)
+            raise
+    except BaseException as exc:
+        _unlink(tmp_wav)
+        if isinstance(exc, (OSError, getattr(sf, "LibsndfileError", OSError))):
+            raise ConfigError(f"--output = {str(out)!r} cannot be written ({exc})") from exc
+        raise
+    return result
+
+
+def expected_welch_psd(psd: np.ndarray, frame_length: int) -> np.ndarray:
+    """Expected Welch estimate (Hann, 50 %, ``nperseg = frame_length``) of the synthesized drive.
+
+    A line ``j`` of an overlap-added frame (sine window ``w_s``, hop ``N / 2``) seen through a
+    Hann segment ``h`` aligned with the frames leaks to line ``k`` with the weight
+    ``K(k - j) = sum_o |DFT_{k-j}(h(n) w_s(n - o))|^2`` over the three frames ``o`` that overlap
+    the segment (independent frames: powers add), normalized to sum 1. A jagged drive spectrum
+    (an equalized drive scatters from line to line) is rounded by this kernel, about 3 lines wide,
+    so this, not the raw line spectrum, is what a Welch estimate of the file should match.
+    """
+    from liveshape.dsp.synth import sine_window
+
+    n = int(frame_length)
+    hop = n // 2
+    h = 0.5 - 0.5 * np.cos(2.0 * np.pi * np.arange(n) / n)  # periodic Hann, as scipy's welch
+    ws = sine_window(n)
+    idx = np.arange(n)
+    kern = np.zeros(n)
+    for o in (-hop, 0, hop):
+        m = idx - o
+        inside = (m >= 0) & (m < n)
+        g = np.where(inside, h * ws[np.clip(m, 0, n - 1)], 0.0)
+        kern += np.abs(np.fft.fft(g)) ** 2
+    kern /= kern.sum()
+    p = np.asarray(psd, dtype=float)
+    full = np.zeros(n)
+    full[: p.size] = p
+    # circular convolution over the N-point line circle; the one-sided band sits far from DC
+    # and Nyquist, where wrap-around is negligible
+    out = np.real(np.fft.ifft(np.fft.fft(full) * np.fft.fft(kern)))
+    return np.maximum(out[: p.size], 0.0)
+
+
+def _check_out(out: Path) -> None:
+    if out.suffix.lower() != ".wav":
+        raise ConfigError(f"--output = {str(out)!r} must end in .wav")
+    folder = out.parent
+    if not folder.is_dir():
+        raise ConfigError(f"--output = {str(out)!r}: folder {str(folder)!r} does not exist")
+    if out.is_dir():
+        raise ConfigError(f"--output = {str(out)!r} is a folder, not a file")
