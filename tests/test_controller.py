@@ -555,3 +555,27 @@ def test_moved_names_are_reexported():
     assert issubclass(controller.Controller, loopstate.LoopState)
     assert (controller.FADE_IN_S, controller.IDENTIFY_BELOW_DB) == (
         loopstate.FADE_IN_S, loopstate.IDENTIFY_BELOW_DB)
+
+
+def test_target_follows_the_level_as_it_ramps():
+    # The target shown is the full-level target scaled by the gain playing now (a level of L dB
+    # is a power ratio 10^(L/10): the decibel definition), also while a step ramps and before a
+    # new estimate exists at the new level.
+    spec = make_spec(steps=(-6.0, 0.0), hold_s=1.0, full_s=2.0)
+    rig = SimRig(load_plant("ideal"), FS, seed=5)
+    ctl = Controller(spec, rig.calibration)
+    resp = np.zeros(BLOCK)
+    full = None
+    ramping = []
+    while not ctl.finished:
+        resp = rig.process(ctl.exchange(resp))
+        s = ctl.snapshot()
+        if s.stage in ("equalize", "full_level") and np.isfinite(s.gain_db):
+            ramping.append((s.gain_db, s.target_grms_g))
+        if s.stage == "full_level":
+            full = s.target_grms_g
+    assert full is not None
+    mid = [(g, t) for g, t in ramping if -5.5 < g < -0.5]
+    assert mid, "no snapshot while the level ramped from -6 to 0 dB"
+    for g_db, t in ramping:
+        assert t == pytest.approx(full * 10 ** (g_db / 20), rel=1e-9)

@@ -256,13 +256,17 @@ class LoopState:
         """A frozen view of the loop now."""
         band = self._band
         g = self._out.gain
-        lvl_gain = self._est_gain if self._stage in ("equalize", "full_level") else g
-        target_b = self._target[band] * lvl_gain ** 2
         d = self._judgement()
         ctrl = None if d is None else d.control_psd
         dof = 0.0 if d is None else d.dof
-        if d is not None:
+        if self._stage in ("equalize", "full_level", "ramp_down"):
+            # The target at the level playing now: it follows the level as it ramps, while the
+            # judged figures (deviations, lines outside) stay those of the estimate's own level.
+            target_b = self._target[band] * g ** 2
+        elif d is not None:
             target_b = d.target_psd
+        else:
+            target_b = self._target[band] * g ** 2
         lo, hi = chi2_interval_db(dof) if dof > 0 else (math.nan, math.nan)
         drive_b = self._out.played_psd(band)
         return ControlSnapshot(
