@@ -19,6 +19,7 @@ from typing import Any
 from liveshape import __version__
 from liveshape.errors import ConfigError, LiveshapeError
 from liveshape.record.writer import json_safe
+from liveshape.testdef.chain import ACCEL_UNITS
 
 EXIT_USAGE = 2
 EXIT_INTERRUPTED = 130
@@ -309,9 +310,9 @@ def _cmd_run(args: argparse.Namespace) -> int:
         _print_json(session.summary())
     else:
         console = dashboard.make_console()
-        with dashboard.LiveView(console) as view:
+        with dashboard.LiveView(console, units=ACCEL_UNITS[args.units]) as view:
             session = runner(spec, out_dir=args.out, on_snapshot=view.update, **kwargs)
-        console.print(dashboard.run_summary(session.summary()))
+        console.print(dashboard.run_summary(session.summary(), ACCEL_UNITS[args.units]))
         console.print(f"record: {session.run_dir}  (liveshape report {session.run_dir})")
     if session.record_error is not None:
         sys.stderr.write(f"liveshape: {session.record_error}\n")
@@ -383,7 +384,8 @@ def _cmd_report(args: argparse.Namespace) -> int:
     from liveshape.record.report import render_report
 
     with _sigterm_unwinds():
-        result = render_report(args.run_dir, out_dir=args.out, png=args.png)
+        result = render_report(args.run_dir, out_dir=args.out, png=args.png,
+                               units=ACCEL_UNITS[args.units])
     sys.stdout.write(result.summary.rstrip("\n") + "\n")
     sys.stdout.write(f"report: {result.pdf_path}\n")
     for name, path in result.pngs.items():
@@ -793,6 +795,8 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--out", default="runs", metavar="DIR",
                    help="folder for run records (default: runs)")
     r.add_argument("--json", action="store_true", help="print the run summary as JSON")
+    r.add_argument("--units", choices=tuple(ACCEL_UNITS), default="g",
+                   help="show acceleration in g (default) or m/s² (the record is in g)")
     r.add_argument("--operator", type=_text_field, metavar="NAME",
                    help="who runs the test (written to run.json and the report)")
     r.add_argument("--test-item", type=_text_field, metavar="TEXT",
@@ -842,6 +846,8 @@ def build_parser() -> argparse.ArgumentParser:
     rp.add_argument("run_dir", metavar="RUN_DIR", help="a run folder made by liveshape run")
     rp.add_argument("--out", metavar="DIR", help="where to write (default RUN_DIR/report)")
     rp.add_argument("--png", action="store_true", help="also write the plots as PNG files")
+    rp.add_argument("--units", choices=tuple(ACCEL_UNITS), default="g",
+                    help="acceleration in g (default) or m/s² in the report and summary.txt")
     rp.set_defaults(func=_cmd_report)
 
     d = sub.add_parser("devices", help="list audio devices (index, host API, channels, rate)")

@@ -605,3 +605,53 @@ def test_long_profile_table_sums_up_the_middle_segments():
     assert float(summary[4]) == pytest.approx(sum(s["area_g2"] for s in mid), rel=1e-3)
     short = {**report, "segments": segs[:checktext.MAX_SEGMENT_ROWS]}
     assert len(checktext.segment_rows(short)) == checktext.MAX_SEGMENT_ROWS
+
+
+# The standard acceleration of gravity g0 = 9.80665 m/s² (3rd CGPM, 1901): an amplitude in g is
+# g0 times as many m/s², an ASD in g²/Hz g0² times as many (m/s²)²/Hz.
+G0 = 9.80665
+
+
+def test_si_units_convert_amplitudes_and_spectra_for_display():
+    from liveshape.testdef.chain import ACCEL_UNITS
+
+    snap = _snapshot()
+    si = runtext.in_units(snap, ACCEL_UNITS["m/s2"])
+    assert si["control_grms_g"] == pytest.approx(snap.control_grms_g * G0, rel=1e-12)
+    assert si["target_grms_g"] == pytest.approx(snap.target_grms_g * G0, rel=1e-12)
+    np.testing.assert_allclose(si["control_psd"], snap.control_psd * G0**2, rtol=1e-12)
+    np.testing.assert_allclose(si["target_psd"], snap.target_psd * G0**2, rtol=1e-12)
+    assert runtext.in_units(snap, ACCEL_UNITS["g"]) is snap  # g is shown as recorded
+    for width, height in ((80, 24), (140, 45)):
+        lines = _render_sized(dash.dashboard(si, width=width, height=height), width, height)
+        text = "\n".join(lines)
+        assert f"{snap.control_grms_g * G0:.3f} / {snap.target_grms_g * G0:.3f} m/s²" in text
+        assert "(m/s²)²/Hz" in text and "g²/Hz" not in text.replace("(m/s²)²/Hz", "")
+    # The plot's y ticks follow the data: the NAVMAT plateau 0.04 g²/Hz is 3.85 (m/s²)²/Hz,
+    # so the ticks are between 1 and 10 rather than near 0.01-0.1.
+    plot = dash.spectrum_plot(si["f_hz"], si["control_psd"], si["target_psd"],
+                              asd_unit=si["asd_unit"]).plain
+    assert re.search(r"^\s*[1-9](\.\d+)?\s*│", plot, re.M)
+
+
+def test_si_units_in_the_run_result_rows():
+    from liveshape.testdef.chain import ACCEL_UNITS
+
+    result = {"status": "completed", "control_grms_g": 1.103, "target_grms_g": 1.106,
+              "verdict": "pass", "full_level_dof": 364.0, "full_level_control_grms_g": 1.104}
+    out = _render(dash.run_summary(result, ACCEL_UNITS["m/s2"]))
+    assert f"{1.103 * G0:.3f} / {1.106 * G0:.3f} m/s²" in out
+    assert f"364 DOF, {1.104 * G0:.3f} m/s²" in out
+    assert "accel_unit" not in out and "asd_unit" not in out
+    assert "1.103 / 1.106 g" in _render(dash.run_summary(result))
+
+
+def test_live_view_shows_the_chosen_units():
+    from liveshape.testdef.chain import ACCEL_UNITS
+
+    console = dash.make_console(file=io.StringIO(), width=140)
+    console.height = 45
+    with dash.LiveView(console, refresh_hz=5.0, clock=lambda: 0.0,
+                       units=ACCEL_UNITS["m/s2"]) as view:
+        view.update(_snapshot())
+    assert "m/s²" in console.file.getvalue()

@@ -639,3 +639,34 @@ def test_report_of_a_record_without_signals(tmp_path):
     rms = math.sqrt(1e-6 * np.count_nonzero(target > 0) * FS_HZ / FRAME)
     assert f"{rms:.3f} FS in the band, last update" in first and "no drive.wav, so no peak" in first
     assert "not available (no drive.wav)" in first and "not available (no response.wav)" in first
+
+
+def test_report_in_si_units(tmp_path, capsys):
+    # g0 = 9.80665 m/s² (3rd CGPM, 1901): the same record reported in m/s² shows every
+    # acceleration g0 times larger (ASDs g0² times), and nothing else changes.
+    from liveshape.cli import main
+    from liveshape.record.writer import load_run
+    from liveshape.testdef.chain import ACCEL_UNITS
+
+    root = _demo_run(tmp_path)
+    g = summary_text(load_run(root))
+    si = summary_text(load_run(root), ACCEL_UNITS["m/s2"])
+    assert "grms control:    6.010 g   target: 6.060 g" in g
+    assert f"rms control:     {6.01 * 9.80665:.3f} m/s²   target: {6.06 * 9.80665:.3f} m/s²" in si
+    assert [x for x in g.splitlines() if "control" not in x] == \
+        [x for x in si.splitlines() if "control" not in x]
+    assert main(["report", str(root), "--units", "m/s2", "--out", str(tmp_path / "si")]) == 0
+    first = _pdf_pages(tmp_path / "si" / "report.pdf")[0]
+    assert "m/s²" in first and "(m/s²)²/Hz" in first
+
+
+def test_report_units_option_is_checked(tmp_path, capsys):
+    from liveshape.cli import main
+
+    root = _demo_run(tmp_path)
+    with pytest.raises(SystemExit) as exc:
+        main(["report", str(root), "--units", "furlong"])
+    assert exc.value.code == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "--units" in err and "furlong" in err
+    assert not (root / "report").exists()

@@ -224,3 +224,19 @@ def test_infeasible_profile_runs_when_accepted_and_the_record_says_so(tmp_path: 
     events = [json.loads(line) for line in (run_dir / "events.jsonl").read_text().splitlines()]
     first = events[0]
     assert first["kind"] == "infeasible_accepted" and first["t_s"] == 0.0
+
+
+def test_units_option_shows_si_and_keeps_the_record_in_g(tmp_path: Path) -> None:
+    # g0 = 9.80665 m/s² (3rd CGPM, 1901). The screen shows m/s²; summary.json stays in g.
+    proc = subprocess.run(
+        cli("run", str(SPEC), "--fast", "--duration", "2", "--seed", "3", "--units", "m/s2",
+            "--out", str(tmp_path)),
+        capture_output=True, text=True, cwd=REPO, timeout=600,
+        env={**os.environ, "COLUMNS": "140", "LINES": "45"},
+    )
+    assert proc.returncode == 0, proc.stderr
+    (run_dir,) = [p for p in tmp_path.iterdir() if p.is_dir()]
+    summary = json.loads((run_dir / "summary.json").read_text())
+    c, t = summary["control_grms_g"], summary["target_grms_g"]
+    assert 0.5 < t < 2.0  # the example's target is about 1.1 g rms: the record is in g
+    assert f"{c * 9.80665:.3f} / {t * 9.80665:.3f} m/s²" in proc.stdout

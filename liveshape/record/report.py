@@ -34,6 +34,7 @@ leaves no partial file.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import os
 import textwrap
@@ -48,6 +49,7 @@ from liveshape.atomic import atomic_write, atomic_write_text
 from liveshape.errors import ConfigError
 from liveshape.record.writer import RunData, load_run
 from liveshape.schema import Where
+from liveshape.testdef.chain import G_UNIT, AccelUnit
 from liveshape.testdef.tolerance import Tolerance, tolerance_from_mapping
 
 __all__ = [
@@ -547,11 +549,12 @@ def _identity_rows(run: RunData) -> list[tuple[str, str]]:
 # The text summary
 
 
-def summary_text(run: RunData) -> str:
+def summary_text(run: RunData, units: AccelUnit = G_UNIT) -> str:
     """The run's summary as plain text (no plotting library needed).
 
     A run killed before it closed has no ``summary.json``: its figures are then taken from the
-    last update file and said to be so.
+    last update file and said to be so. ``units`` is the display unit of acceleration (the
+    record is in g).
     """
     s = dict(run.summary or {})
     up = run.updates
@@ -580,8 +583,12 @@ def summary_text(run: RunData) -> str:
     err = (20 * math.log10(float(control) / float(target))
            if _finite(control) and _finite(target) and float(control) > 0 < float(target)
            else None)
-    lines.append(f"grms control:    {_fmt(control, '.3f', 'g')}   target: "
-                 f"{_fmt(target, '.3f', 'g')}   ({_fmt(err, '+.2f', 'dB')})")
+    k = units.per_g
+    control = float(control) * k if _finite(control) else control
+    target = float(target) * k if _finite(target) else target
+    word = "rms control:" if k != 1.0 else "grms control:"
+    lines.append(f"{word:<17}{_fmt(control, '.3f', units.amplitude)}   target: "
+                 f"{_fmt(target, '.3f', units.amplitude)}   ({_fmt(err, '+.2f', 'dB')})")
     rms_err = s.get("final_rms_error_db", _last_number(run, "rms_error_db"))
     lines.append(f"rms error:       {_fmt(rms_err, '+.2f', 'dB')}")
     if "final_max_dev_db" in s:  # the largest |deviation| of the final decision: no sign
@@ -714,9 +721,10 @@ def draw_drive(ax: Any, run: RunData, psd_limit_note: str = "") -> None:
     _legend(ax, loc="best", fontsize=7)
 
 
-def draw_frf(axes: Sequence[Any], run: RunData, units: str) -> None:
+def draw_frf(axes: Sequence[Any], run: RunData, units: str, per_g: float = 1.0) -> None:
+    """|H1| (in ``units``, the record's g/FS times ``per_g``), phase and coherence."""
     up = run.updates
-    f, h, coh = up.f_hz, up.h1[-1], up.coherence[-1]
+    f, h, coh = up.f_hz, up.h1[-1] * per_g, up.coherence[-1]
     pos = (f > 0) & np.isfinite(h)
     if not pos.any():
         for ax in axes:
@@ -841,15 +849,16 @@ def draw_level(ax: Any, run: RunData, ending: _Ending) -> None:
 
 
 def draw_control_rms(ax: Any, run: RunData, tol: Tolerance, ending: _Ending,
-                     g_per_fs: float | None, units: str) -> None:
+                     g_per_fs: float | None, units: str, per_g: float = 1.0) -> None:
     """Control rms against run time: the response in 0.5 s blocks (from the WAV) and each
-    update's estimate, against the target rms at the level played and its rms limits."""
+    update's estimate, against the target rms at the level played and its rms limits; in
+    ``units`` (g times ``per_g``)."""
     up = run.updates
     drawn = False
     if run.response_wav is not None and g_per_fs:
         track = _rms_track(run.response_wav)
         if track is not None:
-            ax.plot(track[0], track[1] * g_per_fs, color="#9bb7cf", lw=0.8,
+            ax.plot(track[0], track[1] * g_per_fs * per_g, color="#9bb7cf", lw=0.8,
                     label="response rms, 0.5 s blocks (whole band)")
             drawn = True
     if up.n:
@@ -857,8 +866,8 @@ def draw_control_rms(ax: Any, run: RunData, tol: Tolerance, ending: _Ending,
         c_rms, t_rms = [], []
         for k in range(up.n):
             band = _band(up.f_hz, up.target_psd[k])
-            c_rms.append(_grms(up.control_psd[k], band, df))
-            t_rms.append(_grms(up.target_psd[k], band, df))
+            c_rms.append(_grms(up.control_psd[k], band, df) * per_g)
+            t_rms.append(_grms(up.target_psd[k], band, df) * per_g)
         t_arr, tr = up.t_s, np.asarray(t_rms)
         ax.plot(t_arr, c_rms, "o", ms=3.5, color="#2f6f9f", label="control rms per update (band)")
         ax.step(t_arr, tr, where="mid", color="#222222", lw=1.0, label="target rms at the level")
@@ -934,8 +943,8 @@ def _text_block(fig: Any, x: float, y: float, rows: Sequence[tuple[str, str]], *
 
 
 def _figure_rows(run: RunData, d: DecisionSpectrum | None, tol: Tolerance,
-                 stats: dict[str, SignalStats | None], window_note: str, tol_note: str = ""
-                 ) -> tuple[list[tuple[str, str]], dict[int, str]]:
+                 stats: dict[str, SignalStats | None], window_note: str, tol_note: str = "",
+                 amplitude: str = "g") -> tuple[list[tuple[str, str]], dict[int, str]]:
     s = run.summary or {}
     rows: list[tuple[str, str]] = []
     colours: dict[int, str] = {}
@@ -945,8 +954,9 @@ def _figure_rows(run: RunData, d: DecisionSpectrum | None, tol: Tolerance,
         rows.append(("figures", "no control spectrum was recorded"))
     else:
         rows.append(("judged on", d.label if d is not None else ""))
-        rows.append(("grms control / target", f"{fig.control_grms_g:.3f} g / "
-                     f"{fig.target_grms_g:.3f} g"))
+        word = "grms" if amplitude == "g" else "rms"
+        rows.append((f"{word} control / target", f"{fig.control_grms_g:.3f} {amplitude} / "
+                     f"{fig.target_grms_g:.3f} {amplitude}"))
         over = abs(fig.rms_error_db) > tol.rms_alarm_db
         rows.append(("rms error", f"{fig.rms_error_db:+.2f} dB   (alarm ±{tol.rms_alarm_db:g} dB, "
                      f"abort ±{tol.rms_abort_db:g} dB)"))
@@ -1006,7 +1016,7 @@ def _figure_rows(run: RunData, d: DecisionSpectrum | None, tol: Tolerance,
 
 def _first_page(page: _Page, run: RunData, tol: Tolerance, d: DecisionSpectrum | None,
                 units: str, stats: dict[str, SignalStats | None], window_note: str,
-                tol_note: str) -> None:
+                tol_note: str, amplitude: str = "g") -> None:
     fig = page.fig
     y = _text_block(fig, 0.06, page.top - 0.005, _identity_rows(run), wrap=95)
     key, words, reasons, rule = _verdict(run)
@@ -1023,7 +1033,7 @@ def _first_page(page: _Page, run: RunData, tol: Tolerance, d: DecisionSpectrum |
     for text in lines:
         fig.text(0.22, y, text, fontsize=7.5, va="top", color="#222222")
         y -= 0.0115 * (text.count("\n") + 1)
-    rows, colours = _figure_rows(run, d, tol, stats, window_note, tol_note)
+    rows, colours = _figure_rows(run, d, tol, stats, window_note, tol_note, amplitude)
     n_rows = sum(1 + len(v) // 92 for _, v in rows)
     table_h = 0.0125 * n_rows + 0.01
     plot_top = y - 0.02
@@ -1054,12 +1064,25 @@ def _event_lines(run: RunData) -> list[tuple[str, str]]:
     return out or [("(no events recorded)", "#555555")]
 
 
-def _build_pages(run: RunData, figure_cls: Any) -> list[_Page]:
+def _in_units(d: DecisionSpectrum | None, units: AccelUnit) -> DecisionSpectrum | None:
+    """The decision spectrum with its ASDs in ``units`` (the record holds g²/Hz)."""
+    if d is None or units.per_g == 1.0:
+        return d
+    k2 = units.per_g ** 2
+    return dataclasses.replace(d, control_psd=d.control_psd * k2, target_psd=d.target_psd * k2)
+
+
+def _unit_labels(run: RunData, units: AccelUnit) -> tuple[str, str, str]:
+    """Labels of an ASD, an amplitude and an FRF in ``units`` (said when uncalibrated)."""
+    tag = ", uncalibrated" if run.calibrated is False else ""
+    return (units.asd + tag, units.amplitude + tag, f"{units.amplitude}/FS" + tag)
+
+
+def _build_pages(run: RunData, figure_cls: Any, units_of: AccelUnit = G_UNIT) -> list[_Page]:
     tol, tol_note = _tolerance(run)
     ending = _ending(run)
     key, words, _, _ = _verdict(run)
-    uncal = run.calibrated is False
-    units = "g²/Hz, uncalibrated" if uncal else "g²/Hz"
+    units, amp_units, frf_units = _unit_labels(run, units_of)
     cal = run.meta.get("calibration") if isinstance(run.meta.get("calibration"), Mapping) else {}
     g_per_fs = cal.get("g_per_fs") if cal and _finite(cal.get("g_per_fs")) else None
     if g_per_fs is None and cal and all(_finite(cal.get(k)) for k in
@@ -1070,20 +1093,20 @@ def _build_pages(run: RunData, figure_cls: Any) -> list[_Page]:
         "drive": signal_stats(run.drive_wav, start, end) if run.drive_wav else None,
         "response": signal_stats(run.response_wav, start, end) if run.response_wav else None,
     }
-    d = decision_spectrum(run, tol)
+    d = _in_units(decision_spectrum(run, tol), units_of)
 
     def page(title: str) -> _Page:
         return _Page(figure_cls, title, run, ending, key, words)
 
     pages = []
     p = page("1  identity, verdict, control against target, figures")
-    _first_page(p, run, tol, d, units, stats, window_note, tol_note[:90])
+    _first_page(p, run, tol, d, units, stats, window_note, tol_note[:90], units_of.amplitude)
     pages.append(p)
 
     p = page("2  control rms and test level against run time")
     top = p.top - 0.03
     ax1 = p.axes((0.1, 0.52, 0.86, top - 0.52 - 0.02))
-    draw_control_rms(ax1, run, tol, ending, g_per_fs, "g, uncalibrated" if uncal else "g")
+    draw_control_rms(ax1, run, tol, ending, g_per_fs, amp_units, units_of.per_g)
     ax2 = p.axes((0.1, 0.08, 0.86, 0.36))
     draw_level(ax2, run, ending)
     pages.append(p)
@@ -1094,7 +1117,7 @@ def _build_pages(run: RunData, figure_cls: Any) -> list[_Page]:
         draw_drive(p.axes((0.1, 0.62, 0.86, top - 0.62 - 0.02)), run)
         axes = [p.axes((0.1, 0.40, 0.86, 0.17)), p.axes((0.1, 0.25, 0.86, 0.12)),
                 p.axes((0.1, 0.08, 0.86, 0.14))]
-        draw_frf(axes, run, "g/FS, uncalibrated" if uncal else "g/FS")
+        draw_frf(axes, run, frf_units, units_of.per_g)
         for ax in axes[:2]:
             ax.tick_params(labelbottom=False)
     else:
@@ -1126,7 +1149,7 @@ def _build_pages(run: RunData, figure_cls: Any) -> list[_Page]:
 
 def render_report(
     run_dir: str | os.PathLike[str], *, out_dir: str | os.PathLike[str] | None = None,
-    png: bool = False,
+    png: bool = False, units: AccelUnit = G_UNIT,
 ) -> ReportResult:
     """Write the test report (``report.pdf``), ``summary.txt`` and, if asked, PNG plots.
 
@@ -1139,6 +1162,8 @@ def render_report(
     png : bool
         Also write the plots as PNG files (``control``, ``drive``, ``frf``, ``convergence``,
         ``level``).
+    units : AccelUnit
+        Display unit of acceleration (g or m/s²; the record holds g).
 
     Returns
     -------
@@ -1160,7 +1185,7 @@ def render_report(
         raise ConfigError(f"{out}: report folder is a file, expected a folder") from None
     except OSError as exc:
         raise ConfigError(f"{out}: cannot make report folder ({exc.strerror})") from None
-    pages = _build_pages(run, figure_cls)
+    pages = _build_pages(run, figure_cls, units)
     key, words, _, _ = _verdict(run)
     meta = {
         "Title": f"liveshape test report: {run.meta.get('name', run.root.name)}",
@@ -1182,8 +1207,8 @@ def render_report(
         atomic_write(pdf_path, write_pdf)
         written.append(pdf_path)
         if png:
-            _write_pngs(run, out, figure_cls, canvas_cls, pngs)
-        text = summary_text(run)
+            _write_pngs(run, out, figure_cls, canvas_cls, pngs, units)
+        text = summary_text(run, units)
         text += f"report:          {pdf_path.name} ({len(pages)} pages)\n"
         if pngs:
             text += "plots:           " + ", ".join(p.name for p in pngs.values()) + "\n"
@@ -1204,11 +1229,10 @@ def render_report(
 
 
 def _write_pngs(run: RunData, out: Path, figure_cls: Any, canvas_cls: Any,
-                pngs: dict[str, Path]) -> dict[str, Path]:
+                pngs: dict[str, Path], units_of: AccelUnit = G_UNIT) -> dict[str, Path]:
     """Write the PNG plots into ``out``, adding each to ``pngs`` as soon as it exists."""
     tol, _ = _tolerance(run)
     ending = _ending(run)
-    uncal = run.calibrated is False
 
     def save(name: str, size: tuple[float, float], draw: Any, n_axes: int = 1) -> None:
         fig = figure_cls(figsize=size)
@@ -1230,11 +1254,11 @@ def _write_pngs(run: RunData, out: Path, figure_cls: Any, canvas_cls: Any,
         atomic_write(path, write)
         pngs[name] = path
 
-    units = "g²/Hz, uncalibrated" if uncal else "g²/Hz"
-    save("control", (8.0, 5.0), lambda a: draw_control(a[0], decision_spectrum(run, tol), units))
+    asd_units, _, frf_units = _unit_labels(run, units_of)
+    d = _in_units(decision_spectrum(run, tol), units_of)
+    save("control", (8.0, 5.0), lambda a: draw_control(a[0], d, asd_units))
     save("drive", (8.0, 4.0), lambda a: draw_drive(a[0], run))
-    save("frf", (8.0, 6.5), lambda a: draw_frf(a, run, "g/FS, uncalibrated" if uncal
-                                                else "g/FS"), 3)
+    save("frf", (8.0, 6.5), lambda a: draw_frf(a, run, frf_units, units_of.per_g), 3)
     save("convergence", (8.0, 7.0), lambda a: (draw_line_error(a[0], run, tol),
                                                 draw_rms_error(a[1], run, tol)), 2)
     save("level", (8.0, 3.5), lambda a: draw_level(a[0], run, ending))

@@ -9,6 +9,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from liveshape.dsp.profile import G0_M_S2
+
 
 @dataclass(frozen=True)
 class ChainCalibration:
@@ -47,3 +49,39 @@ class ChainCalibration:
     def fs_per_g(self) -> float:
         """Input full scale per g."""
         return 1.0 / self.g_per_fs
+
+
+@dataclass(frozen=True)
+class AccelUnit:
+    """A unit in which acceleration figures are shown (the record always holds g).
+
+    Parameters
+    ----------
+    key : str
+        The name on the command line: ``g`` or ``m/s2``.
+    per_g : float
+        Amplitude in this unit per g (9.80665 for m/s²: the standard acceleration of gravity,
+        3rd CGPM, 1901). An ASD scales by ``per_g**2``.
+    amplitude : str
+        Label of an amplitude (rms, peak): ``g`` or ``m/s²``.
+    asd : str
+        Label of an ASD: ``g²/Hz`` or ``(m/s²)²/Hz``.
+    """
+
+    key: str
+    per_g: float
+    amplitude: str
+    asd: str
+
+    @property
+    def rms(self) -> str:
+        """Label of an rms figure: ``g rms`` or ``m/s² rms``."""
+        return f"{self.amplitude} rms"
+
+
+#: The display units of acceleration, by command-line name.
+ACCEL_UNITS: dict[str, AccelUnit] = {
+    "g": AccelUnit("g", 1.0, "g", "g²/Hz"),
+    "m/s2": AccelUnit("m/s2", G0_M_S2, "m/s²", "(m/s²)²/Hz"),
+}
+G_UNIT = ACCEL_UNITS["g"]

@@ -29,6 +29,7 @@ from rich.progress import BarColumn, Progress, TaskProgressColumn, TextColumn, T
 from rich.table import Table
 from rich.text import Text
 
+from liveshape.testdef.chain import G_UNIT, AccelUnit
 from liveshape.views import checktext, runtext
 from liveshape.views.textformat import as_finite, mapping_rows
 from liveshape.views.textplot import ROLES, spectrum_grid
@@ -101,6 +102,7 @@ def spectrum_plot(
     width: int = 72,
     height: int = 15,
     max_width: int | None = None,
+    asd_unit: str = "g²/Hz",
 ) -> Text:
     """Character plot of control against target with the alarm and abort limits.
 
@@ -111,7 +113,8 @@ def spectrum_plot(
     -------
     rich.text.Text
         Rows of the plot: ``─`` target, ``·`` alarm limits, ``:`` abort limits, ``●`` control
-        (``▲``/``▼`` when off the plot), x axis in Hz (log), y axis in g²/Hz, then a legend.
+        (``▲``/``▼`` when off the plot), x axis in Hz (log), y axis in ``asd_unit`` (the unit
+        of the PSDs given, g²/Hz unless converted for display), then a legend.
     """
     grid = spectrum_grid(f_hz, control_psd, target_psd, alarm_db, abort_db,
                          width=width, height=height)
@@ -147,13 +150,13 @@ def spectrum_plot(
     text.append(" " * (label_w + 1) + axis + "  Hz\n", style=PALETTE.label)
     pieces = (("─ target  ", PALETTE.target), (f"· alarm ±{grid.alarm_span} dB  ", PALETTE.alarm),
               (f": abort ±{grid.abort_span} dB  ", PALETTE.abort),
-              ("● control  ", PALETTE.control), ("y: g²/Hz", PALETTE.label))
+              ("● control  ", PALETTE.control), (f"y: {asd_unit}", PALETTE.label))
     indent = " " * (label_w + 1)
     if max_width is not None and len(indent) + sum(len(t) for t, _ in pieces) > max_width:
         indent = ""
         pieces = (("─ target ", PALETTE.target), (f"· alarm ±{grid.alarm_span} ", PALETTE.alarm),
                   (f": abort ±{grid.abort_span} dB ", PALETTE.abort),
-                  ("● control ", PALETTE.control), ("(g²/Hz)", PALETTE.label))
+                  ("● control ", PALETTE.control), (f"({asd_unit})", PALETTE.label))
     legend = Text(indent)
     for part, style in pieces:
         legend.append(part, style=style)
@@ -215,7 +218,7 @@ def _plot_of(snapshot: Any, width: int, height: int, max_width: int | None) -> T
         get(snapshot, "f_hz", default=()), get(snapshot, "control_psd"),
         get(snapshot, "target_psd"), get(snapshot, "alarm_db", default=np.nan),
         get(snapshot, "abort_db", default=np.nan), width=width, height=height,
-        max_width=max_width,
+        max_width=max_width, asd_unit=runtext.asd_label(snapshot),
     )
 
 
@@ -279,13 +282,16 @@ class LiveView:
     second (calls in between are dropped, the last one is kept for :meth:`flush`). Drawing
     happens in the caller's thread, only when a snapshot is taken (no refresh thread): a full
     redraw costs a few tens of milliseconds of pure Python, so keep ``refresh_hz`` at 4-10.
-    Use as a context manager.
+    Use as a context manager. ``units`` is the display unit of acceleration (the snapshots are
+    in g; :func:`liveshape.views.runtext.in_units` converts them).
     """
 
     def __init__(
         self, console: Console | None = None, *, refresh_hz: float = 4.0,
         clock: Callable[[], float] = time.monotonic, transient: bool = False,
+        units: AccelUnit = G_UNIT,
     ) -> None:
+        self.units = units
         self.refresh_hz = float(refresh_hz)
         self._clock = clock
         self._last_build = -math.inf
@@ -303,7 +309,8 @@ class LiveView:
         self._pending = None
         self._last_build = now
         console = self._live.console
-        self._live.update(dashboard(snapshot, width=console.width, height=console.height),
+        shown = runtext.in_units(snapshot, self.units)
+        self._live.update(dashboard(shown, width=console.width, height=console.height),
                           refresh=True)
         self.builds += 1
         return True
@@ -399,12 +406,14 @@ def progress_bar(console: Console | str | None = None, description: str = "worki
         yield progress
 
 
-def run_summary(result: Mapping[str, Any] | Any) -> RenderableType:
+def run_summary(result: Mapping[str, Any] | Any, units: AccelUnit = G_UNIT) -> RenderableType:
     """The result of a run: status, abort reason, grms, error figures, DOF, time at level.
 
-    ``result`` is a mapping (``summary.json``) or the controller's result dataclass.
+    ``result`` is a mapping (``summary.json``) or the controller's result dataclass, in g;
+    ``units`` is the display unit of its acceleration figures.
     """
-    table = _row_table(None, runtext.result_rows(runtext.as_mapping(result)), no_wrap=False)
+    shown = runtext.in_units(runtext.as_mapping(result), units)
+    table = _row_table(None, runtext.result_rows(shown), no_wrap=False)
     return Panel(table, title="run result", title_align="left", border_style=PALETTE.border)
 
 

@@ -15,6 +15,9 @@ import math
 from collections.abc import Mapping, Sequence
 from typing import Any
 
+import numpy as np
+
+from liveshape.testdef.chain import AccelUnit
 from liveshape.views.textformat import (
     DASH,
     as_count,
@@ -27,6 +30,9 @@ from liveshape.views.textformat import (
 )
 
 __all__ = [
+    "accel_label",
+    "asd_label",
+    "in_units",
     "STAGE_WORDS",
     "TOLERANCE_ROLES",
     "as_mapping",
@@ -65,7 +71,7 @@ _RESULT_SHOWN = frozenset({
     "verdict", "verdict_reasons", "verdict_rule", "full_level_dof", "full_level_rms_error_db",
     "full_level_max_dev_db", "full_level_min_dev_db", "full_level_lines_outside_alarm",
     "full_level_lines_outside_abort", "full_level_control_grms_g", "alarm_fraction",
-    "max_alarm_fraction",
+    "max_alarm_fraction", "accel_unit", "asd_unit",
 })
 _VERDICT_ROLE = {"pass": "ok", "fail": "abort", "incomplete": "alarm"}
 
@@ -217,7 +223,50 @@ def _grms_text(snapshot: Any) -> tuple[str, float | None]:
     c = as_finite(field(snapshot, "control_grms_g"))
     t = as_finite(field(snapshot, "target_grms_g"))
     err = 10.0 * math.log10(c**2 / t**2) if c and t else None
-    return f"{fmt(c, '.3f')} / {fmt(t, '.3f')} g", err
+    return f"{fmt(c, '.3f')} / {fmt(t, '.3f')} {accel_label(snapshot)}", err
+
+
+#: Acceleration amplitudes (g) among the fields of a snapshot or a run result.
+ACCEL_FIELDS = ("control_grms_g", "target_grms_g", "full_level_control_grms_g",
+                "full_level_target_grms_g")
+#: Acceleration spectra (g²/Hz) among the fields of a snapshot.
+ASD_FIELDS = ("control_psd", "target_psd")
+
+
+def in_units(obj: Any, unit: AccelUnit) -> Any:
+    """A snapshot or result with its acceleration figures in ``unit`` (for display only).
+
+    The record and the controller always work in g; this converts the fields of
+    :data:`ACCEL_FIELDS` (times ``unit.per_g``) and :data:`ASD_FIELDS` (times ``unit.per_g²``)
+    and adds ``accel_unit`` and ``asd_unit`` labels that the rows use. ``obj`` is returned
+    unchanged for g.
+    """
+    if unit.per_g == 1.0:
+        return obj
+    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
+        out = {f.name: getattr(obj, f.name) for f in dataclasses.fields(obj)}  # shallow
+    else:
+        out = as_mapping(obj)
+    for key in ACCEL_FIELDS:
+        v = as_finite(out.get(key))
+        if v is not None:
+            out[key] = v * unit.per_g
+    for key in ASD_FIELDS:
+        if out.get(key) is not None:
+            out[key] = np.asarray(out[key], dtype=float) * unit.per_g ** 2
+    out["accel_unit"] = unit.amplitude
+    out["asd_unit"] = unit.asd
+    return out
+
+
+def accel_label(obj: Any) -> str:
+    """The amplitude unit of a snapshot or result shown (``g`` unless :func:`in_units` set it)."""
+    return str(field(obj, "accel_unit", default="g"))
+
+
+def asd_label(obj: Any) -> str:
+    """The ASD unit of a snapshot or result shown (``g²/Hz`` unless :func:`in_units` set it)."""
+    return str(field(obj, "asd_unit", default="g²/Hz"))
 
 
 def _outside_pieces(snapshot: Any) -> tuple[Piece, ...]:
@@ -338,7 +387,7 @@ def verdict_rows(result: Mapping[str, Any]) -> list[Row]:
     if as_finite(dof) is not None:
         rows += [
             _row("full-level average", f"{fmt(dof, '.0f')} DOF, "
-                 f"{fmt(result.get('full_level_control_grms_g'), '.3f', 'g')}"),
+                 f"{fmt(result.get('full_level_control_grms_g'), '.3f', accel_label(result))}"),
             _row("  rms error", fmt_db(result.get("full_level_rms_error_db"))),
             _row("  line deviation max / min",
                  f"{fmt_db(result.get('full_level_max_dev_db'))} / "
@@ -370,7 +419,7 @@ def result_rows(result: Mapping[str, Any]) -> list[Row]:
     rows += verdict_rows(result)
     rows += [
         _row("grms control / target", f"{fmt(result.get('control_grms_g'), '.3f')} / "
-             f"{fmt(result.get('target_grms_g'), '.3f')} g"),
+             f"{fmt(result.get('target_grms_g'), '.3f')} {accel_label(result)}"),
         _row("final rms error", fmt_db(result.get("final_rms_error_db"))),
         # the largest |deviation| of a line: a magnitude, shown without a sign
         _row("final worst line |deviation|", fmt(result.get("final_max_dev_db"), ".2f", "dB")),
