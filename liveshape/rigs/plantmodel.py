@@ -68,7 +68,9 @@ def electromechanical_tf(
     """Transfer functions per amplifier volt, as polynomials in ``s`` (see the module doc).
 
     Returns a dict with ``current_a_per_v`` (None for the ideal shaker), ``displacement_m_per_v``
-    (table), ``table_accel_m_s2_per_v`` and ``accel_m_s2_per_v`` (at the control point).
+    (table), ``table_accel_m_s2_per_v``, ``accel_m_s2_per_v`` (at the control point) and
+    ``mode_accel_m_s2_per_v`` (a tuple: the acceleration of each modal mass, the points a monitor
+    accelerometer on the test item would read).
     ``re_ohm`` overrides the coil resistance (heating); ``f_factor`` scales every modal frequency.
     """
     modes = [mode_constants(r, f_factor) for r in plant.payload.resonances]
@@ -97,6 +99,7 @@ def electromechanical_tf(
             "displacement_m_per_v": (np.array([g]), s2),
             "table_accel_m_s2_per_v": table,
             "accel_m_s2_per_v": accel,
+            "mode_accel_m_s2_per_v": tuple((g * n, d) for n, d in zip(n_j, d_j, strict=True)),
         }
     re = sh.re_ohm if re_ohm is None else re_ohm
     mech = np.array([plant.moving_mass_kg, sh.rms_kg_s, 1.0 / sh.cms_m_per_n])
@@ -110,12 +113,30 @@ def electromechanical_tf(
         a_num = np.polymul(s2, x_num)
     else:
         a_num = np.polymul(s2, sh.bl_tm * np.polymul(n_j[ctrl], others(ctrl)))
+    modes_accel = tuple((np.polymul(s2, sh.bl_tm * np.polymul(n_j[j], others(j))), q)
+                        for j in range(len(modes)))
     return {
         "current_a_per_v": (p, q),
         "displacement_m_per_v": (x_num, q),
         "table_accel_m_s2_per_v": (np.polymul(s2, x_num), q),
         "accel_m_s2_per_v": (a_num, q),
+        "mode_accel_m_s2_per_v": modes_accel,
     }
+
+
+def mode_transmissibility_tf(plant: Plant, index: int, *, f_factor: float = 1.0) -> Poly:
+    """Table acceleration -> acceleration of modal mass ``index``: ``(c s + k)/(m s² + c s + k)``.
+
+    The base-excitation transmissibility of a single-degree-of-freedom system; its magnitude is
+    ``sqrt((1 + (2ζr)²)/((1 - r²)² + (2ζr)²))`` with ``r = f/f_n`` and ``ζ = 1/(2Q)`` (e.g. S. S.
+    Rao, *Mechanical Vibrations*, 5th ed., §3.6). It does not depend on the shaker: the modal
+    mass only sees the table's motion.
+    """
+    res = plant.payload.resonances
+    if not 0 <= index < len(res):
+        raise IndexError(f"mode index {index} is outside 0-{len(res) - 1}")
+    m, c, k = mode_constants(res[index], f_factor)
+    return np.array([c, k]), np.array([m, c, k])
 
 
 def drive_to_volts_tf(plant: Plant) -> Poly:
