@@ -43,6 +43,15 @@ Nonlinear and protective behaviour (simple models, documented):
   power ``mean(i²) Re`` drives the first-order thermal model; the shaker model follows ``Re``
   whenever it has moved by more than :data:`RE_STEP` (relative) since the last rebuild.
 
+Monitor points (``monitors``, names of payload resonances, with the control accelerometer on the
+table): each reads the acceleration of that modal mass, which is the table's acceleration (after
+the Xmax compression) through the base-excitation transmissibility ``(c s + k)/(m s² + c s + k)``
+of the mode (bilinear, like every other stage), then an accelerometer and card input like the
+control channel's with noise of its own. A ``resonance_shift`` moves the monitor's mode too (its
+filter keeps its state across the change); ``sensor_gain``, ``sensor_detached``, ``noise_burst``
+and ``dropout`` act on the control channel only. :attr:`SimRig.last_monitor_fs` holds the monitor
+signals of the last ``process`` call.
+
 Faults (objects with ``kind, at_s, value, duration_s``, as
 :class:`liveshape.testdef.spec.FaultSpec`) act from sample ``round(at_s fs)`` for ``duration_s``
 (None: to the end); see :data:`FAULT_RULES` (defined, with their validation, in
@@ -57,6 +66,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+from scipy import signal
 
 from liveshape.dsp.profile import G0_M_S2
 from liveshape.errors import ConfigError
@@ -73,7 +83,11 @@ from liveshape.rigs.faults import (
 )
 from liveshape.rigs.modal import ModalSystem, highpass_sos, sos_freqz, sosfilt_inplace
 from liveshape.rigs.plant import IdealShaker, Plant
-from liveshape.rigs.plantmodel import electromechanical_ss, electromechanical_tf
+from liveshape.rigs.plantmodel import (
+    electromechanical_ss,
+    electromechanical_tf,
+    mode_transmissibility_tf,
+)
 from liveshape.testdef.chain import ChainCalibration
 
 __all__ = ["FAULT_KINDS", "FAULT_RULES", "RE_STEP", "THERMAL_STEP_MAX_S", "SimRig", "SimStatus"]
@@ -143,6 +157,9 @@ class SimRig:
     faults : iterable
         Objects with ``kind``, ``at_s``, ``value``, ``duration_s``
         (:class:`liveshape.testdef.spec.FaultSpec`).
+    monitors : iterable of str
+        Names of payload resonances to read with a monitor accelerometer (see the module
+        docstring); needs ``payload.control_point: table``.
 
     Raises
     ------
@@ -151,7 +168,7 @@ class SimRig:
     """
 
     def __init__(self, plant: Plant, fs_hz: float, *, seed: int | None = None,
-                 faults: Iterable[Any] = ()) -> None:
+                 faults: Iterable[Any] = (), monitors: Iterable[str] = ()) -> None:
         fs = float(fs_hz)
         if not (math.isfinite(fs) and fs > 0):
             raise ConfigError(f"sim: fs_hz = {fs_hz!r} must be a finite number > 0")
@@ -200,6 +217,52 @@ class SimRig:
         self._x_peak = 0.0
         self._x_last = 0.0
         self._i_peak = 0.0
+        self._setup_monitors(tuple(monitors), seed)
+
+    def _setup_monitors(self, names: tuple[str, ...], seed: int | None) -> None:
+        res = self._plant.payload.resonances
+        by_name = {r.name: j for j, r in enumerate(res)}
+        for name in names:
+            if name not in by_name:
+                known = ", ".join(sorted(by_name)) or "none"
+                raise ConfigError(f"monitors: {name!r} names no payload resonance of plant "
+                                  f"{self._plant.name!r} (resonances: {known})")
+        if names and self._plant.payload.control_point != "table":
+            raise ConfigError(f"monitors: {', '.join(names)} need payload.control_point: table "
+                              f"(it is {self._plant.payload.control_point!r})")
+        self._mon_idx = [by_name[n] for n in names]
+        self.monitor_names = names
+        self._mon_sos = [self._monitor_sos(j, 1.0) for j in self._mon_idx]
+        self._mon_zi = [np.zeros((1, sos.shape[0], 2)) for sos in self._mon_sos]
+        self._mon_f_factor = 1.0
+        streams = np.random.SeedSequence(seed, spawn_key=(7,)).spawn(max(len(names), 1))
+        self._mon_rng = [np.random.default_rng(st) for st in streams[:len(names)]]
+        self._mon_buf = np.empty((len(names), 0))
+        #: Monitor signals (FS), one row per name of ``monitors``, of the last ``process`` call.
+        self.last_monitor_fs = np.empty((len(names), 0))
+
+    def _monitor_sos(self, j: int, f_factor: float) -> np.ndarray:
+        """Table m/s² -> monitor FS: the mode's transmissibility, then the sensor chain."""
+        b, a = mode_transmissibility_tf(self._plant, j, f_factor=f_factor)
+        bz, az = signal.bilinear(b, a, self._fs)
+        sections = [signal.tf2sos(bz, az)]
+        gain = self._down_gain / G0_M_S2
+        sections.append(self._down if self._down is not None
+                        else np.array([[self._down_gain, 0.0, 0.0, 1.0, 0.0, 0.0]]))
+        sos = np.vstack(sections)
+        sos[0, :3] = sos[0, :3] * (gain / self._down_gain)  # m/s² in: the chain expects g
+        return np.ascontiguousarray(sos)
+
+    def _monitor_piece(self, acc: np.ndarray, f_factor: float) -> None:
+        """Monitor signals (before noise) for table acceleration ``acc`` (m/s²)."""
+        if f_factor != self._mon_f_factor:  # resonance_shift: the modes move, states stay
+            self._mon_sos = [self._monitor_sos(j, f_factor) for j in self._mon_idx]
+            self._mon_f_factor = f_factor
+        piece = np.empty((len(self._mon_idx), acc.size))
+        for k, (sos, zi) in enumerate(zip(self._mon_sos, self._mon_zi, strict=True)):
+            piece[k] = acc
+            sosfilt_inplace(sos, piece[k:k + 1], zi)
+        self._mon_pieces.append(piece)
 
     # -- properties ---------------------------------------------------------------------------
     @property
@@ -284,6 +347,7 @@ class SimRig:
             joined = np.concatenate((self._delay, d))
             d, self._delay = joined[:n], joined[n:]
         self._x_last = 0.0
+        self._mon_pieces: list[np.ndarray] = []
         stop = self._next_boundary(self._n)
         if stop >= self._n + n:  # one fault state for the whole block (the usual case)
             out = self._segment(d, self._n)
@@ -296,6 +360,13 @@ class SimRig:
                 out[pos:stop - self._n] = self._segment(d[pos:stop - self._n], start)
                 pos = stop - self._n
         self._n += n
+        if self._mon_idx:
+            mon = np.concatenate(self._mon_pieces, axis=1)
+            for k, rng in enumerate(self._mon_rng):  # each monitor's sensor and card noise
+                noise_rms = math.hypot(self._sensor_noise_fs, self._card_noise_fs)
+                if noise_rms > 0:
+                    mon[k] += noise_rms * rng.standard_normal(n)
+            self.last_monitor_fs = np.clip(mon, -1.0, 1.0)
         return out
 
     def _clip(self, x: np.ndarray, limit: float, counter: str) -> np.ndarray:
@@ -417,17 +488,19 @@ class SimRig:
             self._x_last = max(self._x_last, x_peak)
         xmax = self._plant.shaker.xmax_m
         squeeze = x is not None and xmax is not None and x_peak > xmax
-        if not (squeeze or st.detached):  # shaker and sensor chain in one pass
+        if not (squeeze or st.detached or self._mon_idx):  # shaker and sensor chain in one pass
             self._run(2, v, outs[3:4])
             return
         acc = self._run(2, v, outs[2:3], slice(None, self._n_acc))
-        if st.detached:
-            acc[:] = 0.0
-        elif squeeze:
+        if squeeze:
             ax = np.abs(x)
             beyond = ax > xmax
             self._counts["xmax"] += int(np.count_nonzero(beyond))
             np.multiply(acc, xmax / np.where(beyond, ax, xmax), out=acc)
+        if self._mon_idx:
+            self._monitor_piece(acc, st.f_factor)
+        if st.detached:
+            acc[:] = 0.0
         self._run(2, acc, outs[3:4], slice(self._n_acc, None))
 
     def _work(self, n: int) -> tuple[np.ndarray, np.ndarray]:
