@@ -579,3 +579,75 @@ def test_target_follows_the_level_as_it_ramps():
     assert mid, "no snapshot while the level ramped from -6 to 0 dB"
     for g_db, t in ramping:
         assert t == pytest.approx(full * 10 ** (g_db / 20), rel=1e-9)
+
+
+# ---- a level that cannot be reached ----------------------------------------------------------
+
+
+def _with_max_step(spec, max_step_s):
+    import dataclasses
+
+    return dataclasses.replace(spec, schedule=dataclasses.replace(spec.schedule,
+                                                                  max_step_s=max_step_s))
+
+
+def test_a_level_that_cannot_be_held_ends_the_run_after_max_step_s():
+    # An alarm band of ±0.3 dB is narrower than the 90 % χ² band of any estimate the loop
+    # makes (±0.7 dB at ~180 DOF; Bendat & Piersol, Random Data, 4th ed., §8.5.4): no decision
+    # can be in tolerance, so the first step never ends. The run must end on its own rule after
+    # schedule.max_step_s of that step and ramp the drive down, not sit there for ever.
+    from liveshape.control.runplan import least_step_s
+    from liveshape.control.safety import EXIT_STATUS
+
+    spec = make_spec(steps=(-6.0, 0.0), hold_s=1.0, full_s=4.0,
+                     tolerance=Tolerance(alarm_db=0.3, abort_db=6.0))
+    limit = round(2.0 * least_step_s(spec), 1)
+    spec = _with_max_step(spec, limit)
+    rig = SimRig(load_plant("ideal"), FS, seed=2)
+    ctl, drive, events = run(spec, rig, max_s=limit + 60.0)
+    res = ctl.result()
+    assert res.status == "aborted" and res.trip.rule == "level_unreachable"
+    assert EXIT_STATUS["level_unreachable"] == 20
+    (level,) = [e for e in events if e.kind == "level"]
+    assert res.trip.t_s - level.t_s == pytest.approx(limit, abs=BLOCK / FS + 1e-9)
+    assert "lines outside the alarm limits" in res.trip.message
+    assert "χ² band" in res.trip.message and f"max_step_s = {limit:g}" in res.trip.message
+    # the drive ramps down within the abort ramp and stays quiet (a per-sample fade, no step)
+    after = drive[int((res.trip.t_s + spec.safety.abort_ramp_s) * FS) + BLOCK:]
+    assert after.size and np.max(np.abs(after)) < 1e-3 * np.std(drive[: int(res.trip.t_s * FS)])
+
+
+def test_the_automatic_limit_lets_a_normal_run_complete():
+    from liveshape.control.runplan import DEFAULT_MAX_STEP_S, least_step_s, max_step_s
+
+    spec = make_spec(steps=(-9.0, -6.0, -3.0, 0.0), hold_s=1.0, full_s=2.0)
+    assert spec.schedule.max_step_s is None
+    assert max_step_s(spec) == max(DEFAULT_MAX_STEP_S, 4 * least_step_s(spec))
+    ctl, _, _ = run(spec, SimRig(load_plant("ideal"), FS, seed=2), max_s=200.0)
+    assert ctl.result().status == "completed"
+
+
+def test_a_max_step_no_step_could_meet_is_refused_in_one_line():
+    from liveshape.control.runplan import least_step_s
+    from liveshape.errors import ConfigError
+
+    spec = make_spec(steps=(-6.0, 0.0), hold_s=1.0)
+    least = least_step_s(spec)
+    cal = SimRig(load_plant("ideal"), FS, seed=2).calibration
+    with pytest.raises(ConfigError) as exc:
+        Controller(_with_max_step(spec, least), cal)
+    text = str(exc.value)
+    assert "schedule.max_step_s" in text and f"{least:.1f} s" in text and "\n" not in text
+    Controller(_with_max_step(spec, 1.5 * least + 0.1), cal)
+
+
+def test_level_schedule_overdue_only_below_full_level():
+    from liveshape.control.schedule import LevelSchedule
+
+    sch = LevelSchedule(Schedule(steps_db=(-3.0, 0.0), hold_s=1.0, max_step_s=5.0))
+    assert not sch.overdue(100.0)  # no step started yet
+    sch.start_step(10.0)
+    assert not sch.overdue(15.0) and sch.overdue(15.01)
+    sch.step_up()
+    sch.start_step(16.0)
+    assert not sch.overdue(1000.0)  # full level: the test time runs, no limit

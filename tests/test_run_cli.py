@@ -240,3 +240,33 @@ def test_units_option_shows_si_and_keeps_the_record_in_g(tmp_path: Path) -> None
     c, t = summary["control_grms_g"], summary["target_grms_g"]
     assert 0.5 < t < 2.0  # the example's target is about 1.1 g rms: the record is in g
     assert f"{c * 9.80665:.3f} / {t * 9.80665:.3f} m/s²" in proc.stdout
+
+
+def test_a_level_that_cannot_be_reached_ends_with_its_own_status(tmp_path: Path) -> None:
+    # ±0.3 dB alarm limits are narrower than the χ² band of any estimate (Bendat & Piersol,
+    # Random Data, 4th ed., §8.5.4), so the first step can never be left.
+    text = SPEC.read_text(encoding="utf-8")
+    text = text.replace("  alarm_db: 3.0\n", "  alarm_db: 0.3\n").replace(
+        "alarm_db: 4.5, abort_db: 7.5", "alarm_db: 0.3, abort_db: 7.5").replace(
+        "  rate_db_s: 6.0\n", "  rate_db_s: 6.0\n  max_step_s: 20\n")
+    spec = tmp_path / "tight.yaml"
+    spec.write_text(text, encoding="utf-8")
+    proc = subprocess.run(cli("run", str(spec), "--fast", "--json", "--out", str(tmp_path)),
+                          capture_output=True, text=True, cwd=REPO, timeout=600)
+    assert proc.returncode == 20, proc.stderr
+    summary = json.loads(proc.stdout)
+    assert summary["status"] == "aborted" and summary["trip"]["rule"] == "level_unreachable"
+    assert "lines outside the alarm limits" in summary["abort_reason"]
+    run = load_run(summary["run_dir"])
+    levels = [e for e in run.events if e.kind == "level"]
+    assert len(levels) == 1  # never left the first step
+    assert summary["trip"]["t_s"] - levels[0].t_s == pytest.approx(20.0, abs=0.1)
+    drive, fs = sf.read(run.drive_wav)
+    tail = drive[int((summary["trip"]["t_s"] + 0.3) * fs):]
+    assert tail.size and np.max(np.abs(tail)) < 1e-4  # ramped down
+    bad = text.replace("max_step_s: 20", "max_step_s: 5")
+    spec.write_text(bad, encoding="utf-8")
+    proc = subprocess.run(cli("run", str(spec), "--fast", "--out", str(tmp_path / "b")),
+                          capture_output=True, text=True, cwd=REPO, timeout=600)
+    assert proc.returncode == 2 and "schedule.max_step_s = 5 s" in proc.stderr
+    assert len(proc.stderr.strip().splitlines()) == 1 and not (tmp_path / "b").exists()

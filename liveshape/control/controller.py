@@ -71,7 +71,7 @@ from liveshape.control.loopstate import FADE_IN_S, IDENTIFY_BELOW_DB, LoopState
 from liveshape.control.runstate import RunResult
 from liveshape.control.safety import Trip
 from liveshape.control.stages import ControlEstimate, judge
-from liveshape.dsp.spectra import welch_dof
+from liveshape.dsp.spectra import chi2_interval_db, welch_dof
 
 __all__ = ["FADE_IN_S", "IDENTIFY_BELOW_DB", "Controller", "run_offline"]
 
@@ -278,6 +278,7 @@ class Controller(LoopState):
         self._decision = None  # decisions restart at the new level
         self.supervisor.reset_persistence()
         self._restart_estimate(after=self._out.n_out + max(ramp, self.frame_length))
+        self.schedule.start_step(self.t_s)
         self._emit("level", f"level {level_db:+.1f} dB (ramp {ramp / self.fs_hz:.2f} s)",
                    {"level_db": level_db, "step_index": self.schedule.index,
                     "ramp_s": ramp / self.fs_hz})
@@ -391,6 +392,9 @@ class Controller(LoopState):
         return out
 
     def _after_read(self, n: int, settled_full: bool) -> None:
+        if (self._status == "running" and self._stage == "equalize"
+                and self.schedule.overdue(self.t_s)):
+            self._abort(self._unreachable_trip())
         if self._status == "running" and self._stage in ("equalize", "full_level"):
             if self._stage == "equalize" and self.schedule.at_last_step and settled_full:
                 self._set_stage("full_level", "full level: counting test time")
@@ -405,6 +409,43 @@ class Controller(LoopState):
             self._tail_left -= n
             if self._tail_left <= 0:
                 self._set_stage("done", f"done: {self._status}")
+
+    def _unreachable_trip(self) -> Trip:
+        """``level_unreachable``: why the control never held tolerance for ``hold_s`` here."""
+        sch, tol = self.schedule, self.spec.tolerance
+        d = self._decision
+        detail: dict[str, Any] = {
+            "level_db": sch.level_db, "step_index": sch.index,
+            "time_at_step_s": sch.time_at_step_s(self.t_s), "max_step_s": sch.max_step_s,
+            "hold_s": sch.hold_s, "drive_at_ceiling": bool(self._out.ceiling_hit),
+        }
+        if d is None:
+            why = "no tolerance decision was reached at this level"
+        else:
+            parts = []
+            if d.lines_outside_alarm:
+                parts.append(f"{d.lines_outside_alarm} lines outside the alarm limits "
+                             f"(max {d.max_dev_db:+.2f} / min {d.min_dev_db:+.2f} dB)")
+            if abs(d.rms_error_db) > tol.rms_alarm_db:
+                parts.append(f"rms error {d.rms_error_db:+.2f} dB beyond ±{tol.rms_alarm_db:g} dB")
+            why = "last decision: " + ("; ".join(parts) if parts else "in tolerance, but not "
+                                       f"for {sch.hold_s:g} s in a row")
+            detail.update(lines_outside_alarm=d.lines_outside_alarm,
+                          rms_error_db=d.rms_error_db, max_dev_db=d.max_dev_db,
+                          min_dev_db=d.min_dev_db, dof=d.dof)
+            lo, hi = chi2_interval_db(d.dof)
+            narrowest = float(np.min(self._alarm_db))
+            if d.lines_outside_alarm and max(-lo, hi) > narrowest:
+                why += (f"; at {d.dof:.0f} DOF the estimate's own 90 % χ² band is "
+                        f"{lo:+.2f}/{hi:+.2f} dB, wider than the ±{narrowest:g} dB alarm limit, "
+                        "so scatter alone keeps lines outside (raise control.target_dof or "
+                        "widen tolerance.alarm_db)")
+        if self._out.ceiling_hit:
+            why += "; the drive is at its rms ceiling (safety.drive_rms_max_fs)"
+        msg = (f"level {sch.level_db:+.1f} dB held for {sch.time_at_step_s(self.t_s):.1f} s "
+               f"without {sch.hold_s:g} s in tolerance (schedule.max_step_s = "
+               f"{sch.max_step_s:g} s); {why}")
+        return Trip("level_unreachable", msg, self.t_s, detail)
 
     def _begin_ramp_down(self, duration_s: float) -> None:
         self._switch_to = None

@@ -17,6 +17,7 @@ import numpy as np
 
 from liveshape.control.connect import ConnectionCheck, ConnectStage
 from liveshape.control.drivestream import DriveStream, ResponseQueue
+from liveshape.control.runplan import check_max_step, max_step_s
 from liveshape.control.runstate import ControlSnapshot, Event, RunResult, UpdateRecord, frozen_array
 from liveshape.control.safety import LevelSchedule, Supervisor, Trip, band_sum_dof
 from liveshape.control.stages import (
@@ -88,7 +89,8 @@ class LoopState:
         rate = min(float(spec.schedule.rate_db_s), float(s.max_rate_db_s))
         self._abort_ramp_s = float(s.abort_ramp_s)
         self._end_ramp_s = float(end_ramp_s)
-        self.schedule = LevelSchedule(spec.schedule)
+        check_max_step(spec)
+        self.schedule = LevelSchedule(spec.schedule, max_step_s=max_step_s(spec))
         self.supervisor = Supervisor(s, spec.tolerance, fs_hz=fs, silent_window=self._hop)
         self._update_dof_target = float(update_dof or update_dof_for(c.target_dof))
         self._k_update = segments_for_dof(self._update_dof_target)

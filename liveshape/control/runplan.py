@@ -10,12 +10,14 @@ and the bound within which an injected fault must fall.
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
 from liveshape.control.stages import segments_for_dof, update_dof_for
 from liveshape.errors import ConfigError
 
-__all__ = ["START_S", "check_fault_times", "nominal_run_s", "update_period_s"]
+__all__ = ["DEFAULT_MAX_STEP_S", "START_S", "check_fault_times", "check_max_step",
+           "least_step_s", "max_step_s", "nominal_run_s", "update_period_s"]
 
 #: Silent look at the start plus the connection check, s (about 0.5 s + 2.7 s; [from the
 #: controller's defaults], a generous round figure).
@@ -62,6 +64,62 @@ def nominal_run_s(spec: Any) -> float:
         level = float(step)
         total += decision_s + (float(sch.hold_s) if float(step) < 0 else 0.0)
     return total + float(sch.full_level_s) + END_RAMP_S
+
+
+#: Shortest automatic limit on the time at one reduced-level step, s.
+DEFAULT_MAX_STEP_S = 60.0
+#: The automatic limit is at least this many times the least time a step takes.
+AUTO_STEP_FACTOR = 4.0
+#: An explicit ``schedule.max_step_s`` must be at least this many times the least time a step
+#: takes (a loop needs a few updates to settle at a new level [common practice margin]).
+MIN_STEP_FACTOR = 1.5
+
+
+def least_step_s(spec: Any) -> float:
+    """The least run time a reduced-level step can last at ``spec``'s settings, s.
+
+    The largest ramp between steps, one frame for the estimate to start after it, one tolerance
+    decision (two update estimates), then ``hold_s`` rounded up to whole update periods (a step
+    up happens at a decision).
+    """
+    c, sch = spec.control, spec.schedule
+    period = update_period_s(spec)
+    steps = [float(s) for s in sch.steps_db]
+    rate = float(sch.rate_db_s)
+    ramp = max((abs(b - a) / rate for a, b in zip(steps[:-1], steps[1:], strict=True)),
+               default=0.0)
+    hold = math.ceil(float(sch.hold_s) / period - 1e-9) * period
+    return ramp + int(c.frame_length) / float(c.fs_hz) + 2.0 * period + hold
+
+
+def max_step_s(spec: Any) -> float:
+    """The limit on the time at one reduced-level step, s: ``schedule.max_step_s`` when given,
+    else the larger of :data:`DEFAULT_MAX_STEP_S` and :data:`AUTO_STEP_FACTOR` × the least time
+    a step takes (:func:`least_step_s`)."""
+    given = getattr(spec.schedule, "max_step_s", None)
+    if given is not None:
+        return float(given)
+    return max(DEFAULT_MAX_STEP_S, AUTO_STEP_FACTOR * least_step_s(spec))
+
+
+def check_max_step(spec: Any) -> None:
+    """Refuse a ``schedule.max_step_s`` that no step could meet at these settings.
+
+    Raises
+    ------
+    ConfigError
+        One line naming the key, its value and the least time a step takes.
+    """
+    given = getattr(spec.schedule, "max_step_s", None)
+    if given is None:
+        return
+    least = least_step_s(spec)
+    if float(given) < MIN_STEP_FACTOR * least:
+        raise ConfigError(
+            f"{spec.source or spec.name}: schedule.max_step_s = {float(given):g} s is shorter "
+            f"than {MIN_STEP_FACTOR:g} × the least time a step takes at these settings "
+            f"({least:.1f} s: ramp, two update estimates of {update_period_s(spec):.1f} s, "
+            f"hold_s rounded up to updates); give at least {MIN_STEP_FACTOR * least:.0f} s")
 
 
 def check_fault_times(faults: Any, run_s: float, what: str = "the run") -> None:

@@ -3,12 +3,15 @@
 Pure. :class:`LevelSchedule` steps the test level through ``schedule.steps_db`` (e.g. −12, −9,
 −6, −3, 0 dB). It steps up only after the control has been inside tolerance continuously for
 ``hold_s``; time at full level is counted only at 0 dB with the gain settled there (time at
-reduced level does not count toward the test duration; common practice). Re-exported by
+reduced level does not count toward the test duration; common practice). A step below full level
+that lasts longer than ``max_step_s`` is :meth:`~LevelSchedule.overdue`: the controller then
+ends the run (rule ``level_unreachable``) instead of waiting for ever. Re-exported by
 :mod:`liveshape.control.safety`.
 """
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
 
@@ -18,7 +21,11 @@ class LevelSchedule:
     Parameters
     ----------
     schedule : spec.Schedule
-        ``steps_db`` (increasing, last 0), ``hold_s``, ``full_level_s``, ``rate_db_s``.
+        ``steps_db`` (increasing, last 0), ``hold_s``, ``full_level_s``, ``rate_db_s`` and
+        ``max_step_s`` (None or absent: no limit).
+    max_step_s : float, optional
+        The limit to use instead of ``schedule.max_step_s`` (the controller passes the
+        automatic one of :func:`liveshape.control.runplan.max_step_s`).
 
     Notes
     -----
@@ -27,7 +34,7 @@ class LevelSchedule:
     :meth:`count_full_level` for every block played with the gain settled at the step's level.
     """
 
-    def __init__(self, schedule: Any) -> None:
+    def __init__(self, schedule: Any, *, max_step_s: float | None = None) -> None:
         steps = tuple(float(s) for s in schedule.steps_db)
         rising = all(b > a for a, b in zip(steps[:-1], steps[1:], strict=True))
         if not steps or steps[-1] != 0.0 or not rising:
@@ -36,6 +43,9 @@ class LevelSchedule:
         self.hold_s = float(schedule.hold_s)
         self.full_level_s = float(schedule.full_level_s)
         self.rate_db_s = float(schedule.rate_db_s)
+        given = getattr(schedule, "max_step_s", None) if max_step_s is None else max_step_s
+        self.max_step_s = math.inf if given is None else float(given)
+        self._step_started_s: float | None = None
         self._index = 0
         self._since_s: float | None = None
         self._full_s = 0.0
@@ -84,6 +94,18 @@ class LevelSchedule:
         if self._since_s is None:
             self._since_s = float(t_s)
         return (not self.at_last_step) and (t_s - self._since_s >= self.hold_s)
+
+    def start_step(self, t_s: float) -> None:
+        """The current step's level starts playing at run time ``t_s`` (its clock starts)."""
+        self._step_started_s = float(t_s)
+
+    def time_at_step_s(self, t_s: float) -> float:
+        """Run time spent at the current step so far, s (0 before :meth:`start_step`)."""
+        return 0.0 if self._step_started_s is None else max(0.0, t_s - self._step_started_s)
+
+    def overdue(self, t_s: float) -> bool:
+        """True when a step below full level has lasted longer than ``max_step_s``."""
+        return (not self.at_last_step) and self.time_at_step_s(t_s) > self.max_step_s
 
     def step_up(self) -> tuple[float, float]:
         """Move to the next step; return ``(new level_db, ramp duration_s)``."""

@@ -65,6 +65,7 @@ class Schedule:
     hold_s: float = 3.0
     full_level_s: float = 60.0
     rate_db_s: float = 6.0
+    max_step_s: float | None = None  # None: automatic (liveshape.control.runplan)
 
 
 @dataclass(frozen=True)
@@ -204,7 +205,10 @@ def _schedule(data: Any, w: OverrideWhere) -> Schedule:
                 raise ws.index(i).fail(raw[i], f"is not above steps_db[{i - 1}] (steps increase)")
         if steps[-1] != 0.0:
             raise ws.index(len(steps) - 1).fail(raw[-1], "must be 0 (the last step is full level)")
-    return Schedule(steps_db=steps, **_plain_fields("schedule", d, w, Schedule()))
+    plain = _plain_fields("schedule", d, w, Schedule())
+    if d.get("max_step_s") is not None:  # checked against the step's least time by the loop
+        plain["max_step_s"] = as_float(d["max_step_s"], w.key("max_step_s"), gt=0)
+    return Schedule(steps_db=steps, **plain)
 
 
 def _control(data: Any, w: OverrideWhere) -> ControlSettings:
