@@ -14,6 +14,7 @@ through the connection's H1.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass
 from typing import Any
@@ -26,6 +27,16 @@ from liveshape.dsp.spectra import CrossSpectrum, PsdAverager, estimate_delay
 
 #: Welch segments of the connection check (coherence bias for no response ≈ 1/16).
 CONNECT_SEGMENTS = 16
+#: A segment of the connection record whose band gain (response over drive power) is this far
+#: below the median of the segments means the response stopped following the drive inside the
+#: window (a sensor come loose, an amplifier that tripped, a dropout), dB. The gain of one
+#: segment scatters by a fraction of a dB on a coherent loop (see docs/methods.md, "Connection
+#: check windows"); 6 dB is a margin of common practice.
+CONNECT_DROP_DB = 6.0
+#: The drop check's segments are this many times shorter than the control frame ...
+SUB_SEGMENT_DIVISOR = 8
+#: ... and at least this long, samples.
+SUB_SEGMENT_MIN = 256
 
 
 @dataclass(frozen=True)
@@ -50,6 +61,12 @@ class ConnectionCheck:
         Response rms while silent, FS.
     snr_db : float
         Band power of the response with drive over the band power while silent, dB.
+    segment_gain_db : ndarray
+        Band power of the response over that of the drive in short Hann segments of the
+        aligned record laid back from its end (the last one ends with the record), dB re the
+        early segments (:func:`segment_gains_db`).
+    segment_end_s : ndarray
+        End of each of those segments, s after the start of the aligned record.
     """
 
     delay_samples: int
@@ -60,13 +77,53 @@ class ConnectionCheck:
     response_rms_fs: float
     background_rms_fs: float
     snr_db: float
+    segment_gain_db: np.ndarray = dataclasses.field(default_factory=lambda: np.zeros(0))
+    segment_end_s: np.ndarray = dataclasses.field(default_factory=lambda: np.zeros(0))
+
+    @property
+    def worst_drop_db(self) -> float:
+        """How far the weakest segment's gain lies below the median, dB (0 when none)."""
+        g = self.segment_gain_db
+        return float(max(0.0, -np.min(g))) if g.size else 0.0
+
+
+def segment_gains_db(x: np.ndarray, y: np.ndarray, nperseg: int, band: np.ndarray
+                     ) -> tuple[np.ndarray, np.ndarray]:
+    """Band gain of short Hann segments laid back from the end of the record.
+
+    The segments are :data:`SUB_SEGMENT_DIVISOR` times shorter than ``nperseg`` (at least
+    :data:`SUB_SEGMENT_MIN` samples), hop half a segment, the last one ending with the record,
+    so a fault in the last few tens of milliseconds fills a segment. Returns ``(gain_db,
+    end_index)``: ``10 log10(Σ_band |Y|² / Σ_band |X|²)`` per segment (the band is taken at the
+    short segment's resolution) re the median of the first third of the segments (the loop
+    before any fault), and the index one past each segment's last sample; a segment whose
+    response is all zeros reads −300 dB.
+    """
+    n_full = int(nperseg)
+    n = max(SUB_SEGMENT_MIN, n_full // SUB_SEGMENT_DIVISOR)
+    hop = n // 2
+    if x.size < n:
+        return np.zeros(0), np.zeros(0, dtype=int)
+    ends = np.arange(x.size, n - 1, -hop)[::-1]
+    idx = ends[:, None] - n + np.arange(n)[None, :]
+    # the band at the short segment's resolution: lines whose frequency lies in the full band
+    f_full = np.flatnonzero(band) / n_full
+    f_short = np.arange(n // 2 + 1) / n
+    sub = (f_short >= f_full.min()) & (f_short <= f_full.max()) if f_full.size else f_short > 0
+    w = np.hanning(n + 2)[1:-1]  # symmetric Hann without the zero end points
+    px = np.sum(np.abs(np.fft.rfft(x[idx] * w, axis=1)[:, sub]) ** 2, axis=1)
+    py = np.sum(np.abs(np.fft.rfft(y[idx] * w, axis=1)[:, sub]) ** 2, axis=1)
+    g = 10.0 * np.log10(np.maximum(py, 1e-30 * px + 1e-300) / np.maximum(px, 1e-300))
+    first = g[: max(1, g.size // 3)]
+    return g - float(np.median(first)), ends
 
 
 def connection_data(chk: ConnectionCheck) -> dict[str, float]:
     """The connection check's numbers for events and trips (units in the keys)."""
     return {"loop_delay_samples": chk.delay_samples, "delay_peak": chk.delay_peak,
             "mean_coherence": chk.mean_coherence, "response_rms_fs": chk.response_rms_fs,
-            "background_rms_fs": chk.background_rms_fs, "snr_db": chk.snr_db}
+            "background_rms_fs": chk.background_rms_fs, "snr_db": chk.snr_db,
+            "worst_segment_drop_db": chk.worst_drop_db}
 
 
 def connection_trip(chk: ConnectionCheck, safety: Any, t_s: float) -> Trip | None:
@@ -86,6 +143,14 @@ def connection_trip(chk: ConnectionCheck, safety: Any, t_s: float) -> Trip | Non
         return Trip("connect_check",
                     f"control channel does not respond to the drive: mean coherence "
                     f"{chk.mean_coherence:.2f} < {cmin:g}", t_s, data)
+    if chk.worst_drop_db > CONNECT_DROP_DB:
+        k = int(np.flatnonzero(chk.segment_gain_db < -CONNECT_DROP_DB)[0])  # the first one
+        drop = "all" if chk.worst_drop_db > 200 else f"{chk.worst_drop_db:.1f} dB"
+        return Trip("connect_check",
+                    f"control channel stopped following the drive inside the connection check: "
+                    f"from {chk.segment_end_s[k]:.2f} s into it the response lost up to {drop} "
+                    f"of its gain re the start (limit {CONNECT_DROP_DB:g} dB)", t_s,
+                    {**data, "segment_end_s": float(chk.segment_end_s[k])})
     return None
 
 
@@ -128,6 +193,7 @@ def analyse_connection(
     coh = cs.coherence
     cb = coh[band]
     mean_coh = float(np.mean(np.where(np.isfinite(cb), cb, 0.0)))
+    gains, ends = segment_gains_db(xa, ya, nperseg, band)
     bg = PsdAverager(fs_hz, nperseg, averaging="linear")
     bg.push(np.asarray(background, dtype=float))
     p_sig = float(np.sum(cs.gyy[band]))
@@ -146,6 +212,8 @@ def analyse_connection(
         background_rms_fs=float(np.sqrt(np.mean(np.square(background)))) if len(background)
         else 0.0,
         snr_db=snr_db,
+        segment_gain_db=gains,
+        segment_end_s=ends / float(fs_hz),
     )
 
 
