@@ -916,7 +916,25 @@ def _os_error_line(exc: OSError) -> str:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Run the command line; returns the exit status."""
+    """Run the command line; returns the exit status.
+
+    When a PortAudio call had to be abandoned (a stalled or dead audio server), the process
+    ends here with ``os._exit``: the audio library's exit handler would block for ever.
+    """
+    code = _main(argv)
+    audio = sys.modules.get("liveshape.rigs.audio")
+    if audio is not None and audio.wedged():
+        import os
+
+        sys.stderr.write("liveshape: the audio stream could not be closed (server gone); "
+                         "leaving without closing the audio library\n")
+        sys.stdout.flush()
+        sys.stderr.flush()
+        os._exit(code)
+    return code
+
+
+def _main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     try:

@@ -480,11 +480,15 @@ def run_audio_session(
             should_stop=stop.is_set,
         )
         loop.after_block(np.zeros(0), np.zeros(0))
+        if rig.stall is not None:
+            recorder.event(controller.t_s, "stall",
+                           f"no input from the audio stream for {rig.stall['no_input_s']:.2f} s "
+                           f"after {int(rig.stall['blocks'])} blocks", dict(rig.stall))
         stats = dataclasses.asdict(rig.stats)
         session = SessionResult(
             result=result,
             run_dir=recorder.root,
-            rig={**rig_mapping, "stream": stats},
+            rig={**rig_mapping, "stream": stats, "stall": rig.stall},
             calibration=_calibration_mapping(cal),
         )
         session = _close_record(recorder, session)

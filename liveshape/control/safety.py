@@ -70,6 +70,7 @@ EXIT_STATUS: dict[str, int] = {
     "non_finite": 16,
     "controller_late": 17,
     "connect_check": 18,
+    "audio_stall": 19,  # the audio stream stopped delivering input (device or server gone)
     "level_unreachable": 20,  # a step below full level lasted longer than schedule.max_step_s
     "disk_space": 21,  # free space for the record ran low, or the record could not be written
 }

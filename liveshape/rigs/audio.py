@@ -17,6 +17,14 @@ Design (see DEVELOPERS.md, "The realtime path"):
   the response blocks read from the input ring (``source`` is a
   :class:`liveshape.control.controller.Controller` or anything with the same methods).
 
+Deadlines: no call on the safety path waits without one. A stream that stops delivering input
+(device unplugged, audio server stopped or killed) is a stall after ``stall_timeout_s``: the
+worker trips the source's ``audio_stall`` rule (``request_abort``) and ends; opening, starting,
+aborting and closing the stream run on a helper thread that is abandoned after
+:data:`CALL_DEADLINE_S` (PortAudio can block for ever in them when the server is gone). Once a
+call was abandoned, :func:`wedged` is True and the process must not call PortAudio again, not
+even at exit (the command line ends with ``os._exit`` after its record is closed).
+
 Timeline: drive block ``j`` returned by the source is always played in the stream slot
 ``[j*B, (j+1)*B)`` (B = block size) or not at all: samples that were missing when their slot
 came (an underflow) are skipped when they arrive late, so the loop delay seen by the source never
@@ -41,6 +49,7 @@ from liveshape.rigs.devices import DeviceInfo, device_error, match_device  # re-
 from liveshape.rigs.ring import StreamCore, StreamStats, summarize
 
 __all__ = [
+    "CALL_DEADLINE_S",
     "AudioRig",
     "BlockIO",
     "DeviceInfo",
@@ -53,7 +62,45 @@ __all__ = [
     "list_devices",
     "match_device",
     "rescan_devices",
+    "wedged",
 ]
+
+#: Longest wait for a PortAudio call that can block when the device or server is gone, s.
+CALL_DEADLINE_S = 2.0
+#: PortAudio calls abandoned after their deadline in this process (see :func:`wedged`).
+_ABANDONED: list[str] = []
+
+
+def wedged() -> bool:
+    """True once a PortAudio call was abandoned in this process (do not call PortAudio again)."""
+    return bool(_ABANDONED)
+
+
+def call_with_deadline(fn: Callable[[], Any], what: str,
+                       deadline_s: float = CALL_DEADLINE_S) -> tuple[bool, Any]:
+    """Run ``fn()`` on a daemon thread; ``(True, its result)`` or ``(False, None)`` after the
+    deadline (the call is abandoned and :func:`wedged` turns True). Waits in short steps so
+    the calling (main) thread keeps handling signals; an exception of ``fn`` is re-raised."""
+    done = threading.Event()
+    box: dict[str, Any] = {}
+
+    def target() -> None:
+        try:
+            box["value"] = fn()
+        except BaseException as exc:  # noqa: BLE001 - handed to the caller
+            box["error"] = exc
+        finally:
+            done.set()
+
+    threading.Thread(target=target, name=f"liveshape-audio-{what}", daemon=True).start()
+    end = time.monotonic() + deadline_s
+    while not done.wait(0.02):
+        if time.monotonic() > end:
+            _ABANDONED.append(what)
+            return False, None
+    if "error" in box:
+        raise box["error"]
+    return True, box.get("value")
 
 PORTAUDIO_MISSING = (
     "PortAudio library not found: install the system package libportaudio2 "
@@ -208,6 +255,8 @@ class AudioRig:
         self._interval_before: float | None = None
         self._source: Any = None
         self._poll_s: float | None = None  # worker poll period override (tests)
+        #: The stall's numbers when the stream stopped delivering input, else None.
+        self.stall: dict[str, float] | None = None
 
     # -- public control -------------------------------------------------------------------
 
@@ -305,7 +354,7 @@ class AudioRig:
 
         try:
             kwargs = {} if self.latency is None else {"latency": self.latency}
-            self._stream = sd.Stream(
+            ok, self._stream = call_with_deadline(lambda: sd.Stream(
                 device=(self.info.index, self.info.index),
                 samplerate=self.fs_hz,
                 blocksize=0 if self.host_period else b,
@@ -315,9 +364,12 @@ class AudioRig:
                 finished_callback=self._stream_done.set,
                 clip_off=False,
                 **kwargs,
-            )
+            ), "open")
         except sd.PortAudioError as exc:
             raise device_error(str(exc), self.info, self.fs_hz) from None
+        if not ok:
+            raise DeviceError(f"opening the audio stream on {self.info.name!r} did not return "
+                              f"within {CALL_DEADLINE_S:g} s (audio server stopped?)")
         if on_open is not None:
             try:
                 on_open()
@@ -327,7 +379,13 @@ class AudioRig:
         if self.switch_interval_s is not None:
             self._interval_before = sys.getswitchinterval()
             sys.setswitchinterval(self.switch_interval_s)
-        self._stream.start()
+        try:
+            started, _ = call_with_deadline(self._stream.start, "start")
+        except sd.PortAudioError as exc:
+            raise device_error(str(exc), self.info, self.fs_hz) from None
+        if not started:
+            raise DeviceError(f"starting the audio stream on {self.info.name!r} did not return "
+                              f"within {CALL_DEADLINE_S:g} s (audio server stopped?)")
         self._thread = threading.Thread(
             target=self._work,
             args=(source, produced, on_block, should_stop),
@@ -362,11 +420,12 @@ class AudioRig:
             raise RuntimeError("this AudioRig was not started")
         if not self._done.wait(timeout_s):
             raise TimeoutError("the audio run has not finished")
-        self._thread.join()
-        if not self._stream_done.wait(self.stop_timeout_s):
+        self._thread.join(CALL_DEADLINE_S)  # the worker has set _done: it is on its way out
+        if self.stall is not None or not self._stream_done.wait(self.stop_timeout_s):
             self._abort_stream()
         try:
-            self._stream.close()
+            if not wedged():
+                call_with_deadline(self._stream.close, "close")
         finally:
             if self._interval_before is not None:
                 sys.setswitchinterval(self._interval_before)
@@ -400,12 +459,12 @@ class AudioRig:
         return drive
 
     def _abort_stream(self) -> None:
-        if self._stream is not None:
+        if self._stream is not None and not wedged():
             try:
-                self._stream.abort()
+                call_with_deadline(self._stream.abort, "abort")
             except Exception:  # noqa: BLE001 - best effort on the way out
                 pass
-            self._stream_done.set()
+        self._stream_done.set()
 
     def _work(self, source, produced, on_block, should_stop) -> None:
         core = self._core
@@ -445,10 +504,17 @@ class AudioRig:
                     )
                 if core.input_available < b:
                     if now - last_input > self.stall_timeout_s:
-                        raise DeviceError(
-                            f"audio stream stalled: no input for {self.stall_timeout_s:g} s "
-                            "(device unplugged or audio server stopped?)"
-                        )
+                        message = (f"audio stream stalled: no input for {now - last_input:.2f} s "
+                                   f"after {index} blocks (device unplugged or audio server "
+                                   "stopped?)")
+                        self.stall = {"no_input_s": now - last_input, "blocks": float(index),
+                                      "stall_timeout_s": self.stall_timeout_s,
+                                      "t_stream_s": index * b / self.fs_hz}
+                        if not hasattr(source, "request_abort"):
+                            raise DeviceError(message)
+                        source.request_abort("audio_stall", message, dict(self.stall))
+                        core.request_stop(now=True)  # if the stream lives, it fades out
+                        break
                     time.sleep(poll_s)
                     continue
                 last_input = now
