@@ -457,7 +457,8 @@ def run_audio_session(
     fs = spec.control.fs_hz
     info = check_settings(spec.rig.device, fs)  # first: no device named is the first error
     cal = resolve_calibration(spec.rig.calibration, spec.rig.uncalibrated)
-    rig = AudioRig(info.index, fs, block_size=block_size, lead_blocks=lead_blocks)
+    rig = AudioRig(info.index, fs, block_size=block_size, lead_blocks=lead_blocks,
+                   stop_fade_s=spec.safety.abort_ramp_s)
     controller = Controller(spec, cal, seed=seed)
     stop = stop or StopFlag()
     rig_mapping = {

@@ -379,3 +379,36 @@ def test_jackrig_command_line_refuses_unknown_options() -> None:
 
     with pytest.raises(ConfigError, match="option '--plnt' is unknown"):
         main(["--plnt", "ideal"])
+
+
+@pytest.mark.jack
+@pytest.mark.parametrize("how", ["trip", "ctrl_c"])
+def test_the_drive_is_quiet_at_the_port_within_the_stop_time(jack_server, how) -> None:
+    # The README's promise: a trip or a stop ramps the drive down within 0.25 s. The drive
+    # already queued ahead (LEAD blocks, 0.17 s) must not play at full level first. Measured
+    # from the callback's output position when the worker saw the trip or stop to the end of
+    # the fade, and checked on the independent tap: the drive ends with no step.
+    from liveshape.control.controller import Controller
+    from liveshape.testdef.spec import FaultSpec
+
+    faults = [FaultSpec("sensor_detached", at_s=7.0)] if how == "trip" else []
+    with virtual_rig("ideal", seed=9, faults=faults) as vr, \
+            JackTap(["PortAudio:out_0"]) as tap:
+        rig = audio.AudioRig(PLANT, FS, lead_blocks=LEAD, stop_fade_s=0.25)
+        ctl = Controller(make_spec(full_s=60.0), vr.processor.calibration, seed=3)
+        timer = threading.Timer(5.0, _thread.interrupt_main) if how == "ctrl_c" else None
+        if timer is not None:
+            timer.start()
+        try:
+            result, events, drive = tapped_run(rig, ctl, tap)
+        finally:
+            if timer is not None:
+                timer.cancel()
+    assert result.status == ("aborted" if how == "trip" else "stopped"), result
+    core = rig._core
+    assert core.fade_asked_frame >= 0 and core.fade_done_frame > core.fade_asked_frame
+    stop_s = (core.fade_done_frame - core.fade_asked_frame) / FS
+    print(f"{how}: decision to quiet at the port {stop_s:.3f} s")
+    assert stop_s <= 0.25 - 1024 / FS  # leaves a block for the worker's reaction
+    assert np.max(np.abs(drive)) > 1e-3
+    assert_no_step(drive, 1024)

@@ -27,11 +27,10 @@ from liveshape.dsp.spectra import CrossSpectrum, PsdAverager, estimate_delay
 
 #: Welch segments of the connection check (coherence bias for no response ≈ 1/16).
 CONNECT_SEGMENTS = 16
-#: A segment of the connection record whose band gain (response over drive power) is this far
-#: below the median of the segments means the response stopped following the drive inside the
-#: window (a sensor come loose, an amplifier that tripped, a dropout), dB. The gain of one
-#: segment scatters by a fraction of a dB on a coherent loop (see docs/methods.md, "Connection
-#: check windows"); 6 dB is a margin of common practice.
+#: A short piece of the connection record whose band gain (response over drive power) is this
+#: far below the early pieces' means the response stopped following the drive inside the
+#: window (a sensor come loose, an amplifier that tripped, a dropout), dB; a margin of common
+#: practice over the scatter of a piece's gain (docs/methods.md, "Connection check windows").
 CONNECT_DROP_DB = 6.0
 #: The drop check's segments are this many times shorter than the control frame ...
 SUB_SEGMENT_DIVISOR = 8

@@ -214,6 +214,7 @@ class AudioRig:
         stall_timeout_s: float = 2.0,
         stop_timeout_s: float = 5.0,
         switch_interval_s: float | None = 0.001,
+        stop_fade_s: float = 0.25,
     ) -> None:
         if block_size < 16:
             raise ValueError(f"block_size = {block_size} must be >= 16")
@@ -233,6 +234,12 @@ class AudioRig:
         self.stall_timeout_s = float(stall_timeout_s)
         self.stop_timeout_s = float(stop_timeout_s)
         self.switch_interval_s = switch_interval_s
+        # A trip or stop fades the drive in the callback, from the sample it plays next, so the
+        # drive is quiet at the port within ``stop_fade_s`` of the decision (the lead blocks
+        # already queued are not played at full level first). Two blocks of the budget go to
+        # the worker's reaction and the callback period.
+        self.stop_fade_frames = max(self.block_size,
+                                    int(round(stop_fade_s * self.fs_hz)) - 2 * self.block_size)
         outs = [self.drive_channel] + ([loopback[0]] if loopback else [])
         ins = [self.control_channel] + ([loopback[1]] if loopback else [])
         if monitor_channel is not None:
@@ -331,6 +338,7 @@ class AudioRig:
             drive_capacity=capacity_in + self.lead_blocks * b,
             input_capacity=capacity_in,
             stop_zero_blocks=self.stop_zero_blocks,
+            fade_now_frames=self.stop_fade_frames,
         )
         self._source = source
         self._done.clear()
@@ -487,6 +495,8 @@ class AudioRig:
                     if self._stop_reason is not None and not forwarded:
                         source.request_stop(self._stop_reason)
                         forwarded, stop_asked_at = True, now
+                        if getattr(source, "status", "running") in ("aborted", "stopped"):
+                            core.fade_now()
                     dry = core.dry_blocks
                     if dry > reported and hasattr(source, "report_underflow"):
                         source.report_underflow(dry - reported)
@@ -522,6 +532,8 @@ class AudioRig:
                 response = np.ascontiguousarray(frames[:, ctrl])
                 if exchanging:
                     drive = self._exchange(source, response)
+                    if getattr(source, "status", "running") in ("aborted", "stopped"):
+                        core.fade_now()  # a trip or a stop: quiet at the port at once
                     if core.write_drive(drive) < b:
                         raise DeviceError(
                             "the audio worker fell behind: the drive queue overflowed; "

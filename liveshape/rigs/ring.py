@@ -235,6 +235,7 @@ class StreamCore:
         input_capacity: int,
         stop_zero_blocks: int = 3,
         max_frames: int = 16384,
+        fade_now_frames: int | None = None,
     ) -> None:
         self.block_size = r = int(block_size)
         self.max_frames = int(max(max_frames, block_size))
@@ -250,6 +251,20 @@ class StreamCore:
         # uses rise[p+1 : p+1+frames] or fall[R-p+1 : R-p+1+frames].
         self._rise = np.concatenate([g, np.ones(tail)]).astype(np.float32).reshape(-1, 1)
         self._fall = np.concatenate([g[::-1], np.zeros(tail)]).astype(np.float32).reshape(-1, 1)
+        # The emergency fade (:meth:`fade_now`): a raised cosine over ``fade_now_frames`` from
+        # the sample the callback plays next, then zeros; the ring keeps being read so the slots
+        # stay aligned for the source's own ramp-down and closing.
+        k = max(int(fade_now_frames or r), 1)
+        gk = 0.5 + 0.5 * np.cos(np.pi * np.arange(k + 1) / k)
+        self._kill_gain = np.concatenate([gk, np.zeros(tail)]).astype(np.float32).reshape(-1, 1)
+        self.fade_now_frames = k
+        self._kill = 0  # 0 off, 1 fading now; written by the worker
+        self._kill_pos = 0  # position in the emergency fade; only the callback writes it
+        #: Frames the callback has written so far (the stream's output position).
+        self.frames_out = 0
+        #: ``frames_out`` when :meth:`fade_now` was asked (-1: never), and when its fade ended.
+        self.fade_asked_frame = -1
+        self.fade_done_frame = -1
         self._pos = 0  # gain position 0..R (0 = silent); only the callback writes it
         self._holding = False  # the drive ran dry: fading the held last value to zero
         self._hold = np.float32(0.0)
@@ -300,6 +315,15 @@ class StreamCore:
         """Stop after the queued drive has played (``now=False``) or fade out at once."""
         self._stop = max(self._stop, 2 if now else 1)
 
+    def fade_now(self) -> None:
+        """Fade the drive to zero over ``fade_now_frames`` from the next sample played.
+
+        For a trip or a stop: the drive already queued (the lead blocks) is not played at full
+        level first. The stream keeps running (zeros) until the source finishes."""
+        if not self._kill:
+            self.fade_asked_frame = self.frames_out
+            self._kill = 1
+
     # -- callback side --------------------------------------------------------------------
 
     def count_status(self, input_overflow: bool, output_underflow: bool) -> None:
@@ -334,6 +358,7 @@ class StreamCore:
             stop = False
         self.durations_s[self.callbacks % self.durations_s.size] = time.perf_counter() - t0
         self.callbacks += 1
+        self.frames_out += frames
         if stop:
             self.finished = True
         return stop
@@ -385,6 +410,12 @@ class StreamCore:
             np.multiply(buf, self._rise[p + 1 : p + 1 + frames], out=buf)
             p = min(p + frames, r)
         self._pos = p
+        if self._kill:
+            q = self._kill_pos
+            np.multiply(buf, self._kill_gain[q : q + frames], out=buf)
+            self._kill_pos = q = min(q + frames, self.fade_now_frames + 1)
+            if q > self.fade_now_frames and self.fade_done_frame < 0:
+                self.fade_done_frame = self.frames_out + frames
         np.clip(buf, -1.0, 1.0, out=buf)
         self._write_out(outdata, buf)
         return False
