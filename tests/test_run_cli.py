@@ -270,3 +270,22 @@ def test_a_level_that_cannot_be_reached_ends_with_its_own_status(tmp_path: Path)
                           capture_output=True, text=True, cwd=REPO, timeout=600)
     assert proc.returncode == 2 and "schedule.max_step_s = 5 s" in proc.stderr
     assert len(proc.stderr.strip().splitlines()) == 1 and not (tmp_path / "b").exists()
+
+
+@pytest.mark.parametrize("kind", ["sensor_detached", "amp_trip", "dropout"])
+@pytest.mark.parametrize("at_s", [1.6, 2.0, 2.6])
+def test_a_fault_inside_the_connection_window_stops_at_the_connection_level(
+        tmp_path: Path, kind: str, at_s: float) -> None:
+    # The cases an outside audit found passing the connection check (window 0.6-2.73 s): the
+    # drive then rose up to +6.2 dB above the connection level before loop_open tripped. Now
+    # the run stops with connect_check and the drive never exceeds the connection noise.
+    code, summary, stderr = run_json(tmp_path, "--fault", f"{kind}@{at_s}")
+    assert code == 18, stderr
+    assert summary["trip"]["rule"] == "connect_check"
+    run = load_run(summary["run_dir"])
+    drive, fs = sf.read(run.drive_wav)
+    level = 0.01  # safety.connect_level_fs of the example (the default)
+    piece = int(0.02 * fs)
+    frames = drive[: drive.size // piece * piece].reshape(-1, piece)
+    assert np.max(np.sqrt(np.mean(frames**2, axis=1))) < 1.5 * level
+    assert not any(e.kind == "stage" and e.message.startswith("identify") for e in run.events)

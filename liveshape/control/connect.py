@@ -78,6 +78,8 @@ class ConnectionCheck:
     snr_db: float
     segment_gain_db: np.ndarray = dataclasses.field(default_factory=lambda: np.zeros(0))
     segment_end_s: np.ndarray = dataclasses.field(default_factory=lambda: np.zeros(0))
+    #: Absolute band gain of the early pieces (their median), dB: the reference of the drop.
+    reference_gain_db: float = 0.0
 
     @property
     def worst_drop_db(self) -> float:
@@ -98,23 +100,68 @@ def segment_gains_db(x: np.ndarray, y: np.ndarray, nperseg: int, band: np.ndarra
     before any fault), and the index one past each segment's last sample; a segment whose
     response is all zeros reads −300 dB.
     """
-    n_full = int(nperseg)
-    n = max(SUB_SEGMENT_MIN, n_full // SUB_SEGMENT_DIVISOR)
+    n = piece_length(nperseg)
     hop = n // 2
     if x.size < n:
         return np.zeros(0), np.zeros(0, dtype=int)
     ends = np.arange(x.size, n - 1, -hop)[::-1]
-    idx = ends[:, None] - n + np.arange(n)[None, :]
-    # the band at the short segment's resolution: lines whose frequency lies in the full band
+    g = piece_gains_db(x, y, ends, nperseg, band)
+    first = g[: max(1, g.size // 3)]
+    return g - float(np.median(first)), ends
+
+
+def piece_length(nperseg: int) -> int:
+    """Length of the drop check's pieces, samples (see :func:`segment_gains_db`)."""
+    return max(SUB_SEGMENT_MIN, int(nperseg) // SUB_SEGMENT_DIVISOR)
+
+
+def piece_gains_db(x: np.ndarray, y: np.ndarray, ends: np.ndarray, nperseg: int,
+                   band: np.ndarray) -> np.ndarray:
+    """Absolute band gain, dB, of the Hann pieces of :func:`piece_length` ending at ``ends``."""
+    n_full, n = int(nperseg), piece_length(nperseg)
+    idx = np.asarray(ends)[:, None] - n + np.arange(n)[None, :]
+    # the band at the short piece's resolution: lines whose frequency lies in the full band
     f_full = np.flatnonzero(band) / n_full
     f_short = np.arange(n // 2 + 1) / n
     sub = (f_short >= f_full.min()) & (f_short <= f_full.max()) if f_full.size else f_short > 0
     w = np.hanning(n + 2)[1:-1]  # symmetric Hann without the zero end points
     px = np.sum(np.abs(np.fft.rfft(x[idx] * w, axis=1)[:, sub]) ** 2, axis=1)
     py = np.sum(np.abs(np.fft.rfft(y[idx] * w, axis=1)[:, sub]) ** 2, axis=1)
-    g = 10.0 * np.log10(np.maximum(py, 1e-30 * px + 1e-300) / np.maximum(px, 1e-300))
-    first = g[: max(1, g.size // 3)]
-    return g - float(np.median(first)), ends
+    return 10.0 * np.log10(np.maximum(py, 1e-30 * px + 1e-300) / np.maximum(px, 1e-300))
+
+
+class ConfirmWatch:
+    """After the connection check passed: the drop check on the response still in flight.
+
+    The check's record ends a loop latency before its decision; the connection drive goes on
+    until the response to every drive sample up to the decision (drive index ``until``) has
+    been looked at in pieces, each against the connection's own gain ``reference_db``.
+    """
+
+    def __init__(self, *, until: int, reference_db: float, nperseg: int,
+                 band: np.ndarray) -> None:
+        self.until = int(until)
+        self.reference_db = float(reference_db)
+        self.nperseg, self.band = int(nperseg), band
+        self.n = piece_length(nperseg)
+        self._x = np.zeros(0)
+        self._y = np.zeros(0)
+        self.covered = None  # response index (aligned drive index) looked at so far
+
+    def feed(self, x: np.ndarray, y: np.ndarray, i0: int) -> tuple[bool, float]:
+        """Aligned drive and response from drive index ``i0``: ``(done, worst drop dB)``."""
+        self._x = np.concatenate((self._x, np.asarray(x, float)))
+        self._y = np.concatenate((self._y, np.asarray(y, float)))
+        end = i0 + len(x)
+        worst = 0.0
+        k = self._x.size // self.n
+        if k:
+            ends = (np.arange(k) + 1) * self.n
+            g = piece_gains_db(self._x, self._y, ends, self.nperseg, self.band)
+            worst = float(max(0.0, self.reference_db - float(np.min(g))))
+            self._x, self._y = self._x[k * self.n:], self._y[k * self.n:]
+        self.covered = end
+        return end >= self.until, worst
 
 
 def connection_data(chk: ConnectionCheck) -> dict[str, float]:
@@ -193,6 +240,10 @@ def analyse_connection(
     cb = coh[band]
     mean_coh = float(np.mean(np.where(np.isfinite(cb), cb, 0.0)))
     gains, ends = segment_gains_db(xa, ya, nperseg, band)
+    ref_db = 0.0
+    if ends.size:
+        absolute = piece_gains_db(xa, ya, ends, nperseg, band)
+        ref_db = float(np.median(absolute[: max(1, absolute.size // 3)]))
     bg = PsdAverager(fs_hz, nperseg, averaging="linear")
     bg.push(np.asarray(background, dtype=float))
     p_sig = float(np.sum(cs.gyy[band]))
@@ -213,6 +264,7 @@ def analyse_connection(
         snr_db=snr_db,
         segment_gain_db=gains,
         segment_end_s=ends / float(fs_hz),
+        reference_gain_db=ref_db,
     )
 
 

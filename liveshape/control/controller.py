@@ -61,6 +61,9 @@ import numpy as np
 
 from liveshape.control import equalizer
 from liveshape.control.connect import (
+    CONNECT_DROP_DB,
+    ConfirmWatch,
+    ConnectionCheck,
     connection_data,
     connection_message,
     connection_trip,
@@ -167,7 +170,9 @@ class Controller(LoopState):
         x, y, i0 = got
         if self._status != "running":
             return  # ramping down: nothing more to learn from the response
-        if self._stage == "connect":
+        if self._stage == "connect" and self._confirm is not None:
+            self._confirm_connection(x, y, i0)
+        elif self._stage == "connect":
             self._connect(x, y, i0)
         elif self._stage in ("identify", "equalize", "full_level"):
             # silence counts once the identification drive has faded in (the fades to and from
@@ -195,7 +200,7 @@ class Controller(LoopState):
         if chk is None:
             return
         self._connection, self._conn = chk, None
-        s, c = self.spec.safety, self.spec.control
+        s = self.spec.safety
         self._emit("connect", connection_message(chk), {
             **connection_data(chk),
             "calibration_delay_samples": self.calibration.loop_delay_samples})
@@ -204,6 +209,27 @@ class Controller(LoopState):
             self._abort(trip)
             return
         self._delay = chk.delay_samples
+        # The check's record ended a loop latency ago: keep the connection drive until the
+        # response to every drive sample up to now has passed the drop check too.
+        self._confirm = ConfirmWatch(until=self._out.n_out, reference_db=chk.reference_gain_db,
+                                     nperseg=self.frame_length, band=self._band)
+
+    def _confirm_connection(self, x: np.ndarray, y: np.ndarray, i0: int) -> None:
+        done, worst = self._confirm.feed(x, y, i0 - (self._delay or 0))
+        if worst > CONNECT_DROP_DB:
+            self._abort(Trip(
+                "connect_check",
+                f"control channel stopped following the drive at the end of the connection "
+                f"check: the response lost {min(worst, 300.0):.1f} dB of its gain (limit "
+                f"{CONNECT_DROP_DB:g} dB), before any louder drive", self.t_s,
+                {"drop_db": min(worst, 300.0), "confirm_until_sample": self._confirm.until}))
+            return
+        if done:
+            self._confirm = None
+            self._start_identification(self._connection)
+
+    def _start_identification(self, chk: ConnectionCheck) -> None:
+        s, c = self.spec.safety, self.spec.control
         # identification drive: the target shape through the connection FRF, 6 dB below step 1
         g_id = 10.0 ** ((self.schedule.steps_db[0] - IDENTIFY_BELOW_DB) / 20.0)
         self._h1, psd = identification_drive(

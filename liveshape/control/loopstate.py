@@ -115,6 +115,7 @@ class LoopState:
         self._trip: Trip | None = None
         self._stop_reason: str | None = None
         self._log = EventLog()
+        self._confirm: Any = None  # the drop check after the connection check (controller)
         self._conn: ConnectStage | None = ConnectStage(
             fs_hz=fs, nperseg=n, band=band, background_len=self._bg_len, max_lag=self._max_lag,
             skip=self._fade_in)
