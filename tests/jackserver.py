@@ -88,6 +88,22 @@ def start_jack_server(
                       period_frames=period_frames, proc=proc)
 
 
+def reclaim_server_slot(name: str, timeout_s: float = 10.0) -> None:
+    """Free the registry slot of a server that was killed with SIGKILL.
+
+    jackd keeps its servers in a shared-memory registry of 8 slots; a server killed with
+    SIGKILL leaves its slot behind, and jackd reclaims a dead server's slot only when a server
+    of the same name starts (jack2, common/shm.c, ``jack_register_server``). So a server of that
+    name is started and stopped cleanly, which unregisters it.
+    """
+    proc = subprocess.Popen(
+        ["jackd", "--no-realtime", "-n", name, "-d", "dummy", "-r", "48000", "-p", "1024"],
+        stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    env = dict(os.environ, JACK_DEFAULT_SERVER=name)
+    subprocess.run(["jack_wait", "-w", "-t", str(int(timeout_s))], env=env, capture_output=True)
+    stop_pid(proc)
+
+
 def stop_pid(proc: subprocess.Popen) -> None:
     """End one process we started: SIGTERM by its PID, SIGKILL if it lingers."""
     if proc.poll() is None:

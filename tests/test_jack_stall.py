@@ -22,7 +22,13 @@ from pathlib import Path
 
 import pytest
 
-from tests.jackserver import missing_reason, skip_or_fail, start_jack_server, stop_pid
+from tests.jackserver import (
+    missing_reason,
+    reclaim_server_slot,
+    skip_or_fail,
+    start_jack_server,
+    stop_pid,
+)
 
 REPO = Path(__file__).resolve().parents[1]
 #: What the README promises: a stall ends the run within this many seconds of the last input.
@@ -60,7 +66,10 @@ def stack(tmp_path: Path):
                     pass
                 p.kill()
                 p.wait(timeout=10)
+        killed = server.proc.poll() == -signal.SIGKILL
         stop_pid(server.proc)
+        if killed:  # its registry slot stays taken until a server of its name starts again
+            reclaim_server_slot(server.name)
 
 
 def _start_run(tmp_path: Path, name: str, env: dict) -> tuple[subprocess.Popen, Path]:
