@@ -262,9 +262,17 @@ def _cmd_run(args: argparse.Namespace) -> int:
         from liveshape.rigs.audio import check_settings
 
         check_settings(spec.rig.device, spec.control.fs_hz)  # a device must be named
+    # Guided bring-up: on a real rig unless --unattended, on the simulated rig with --bring-up.
+    hold = (spec.rig.kind == "audio" and not args.unattended) or bool(args.bring_up)
+    if hold and not _stdin_is_terminal():
+        raise ConfigError(
+            f"run --rig {args.rig or spec.rig.kind}: the bring-up waits for Enter once the "
+            "amplifier gain is set, but stdin is not a terminal; nothing was driven "
+            "(--unattended skips the bring-up when the gain is already set)")
     # The cautions come first, before anything is driven (on stderr with --json).
     notice_console = dashboard.make_console(stderr=args.json)
-    notice_console.print(dashboard.safety_notice(spec.rig.kind, spec.rig.plant))
+    notice_console.print(dashboard.safety_notice(spec.rig.kind, spec.rig.plant,
+                                                 bring_up=spec.rig.kind == "sim" or hold))
     notice_console.print(estimate.describe())
     accepted: dict[str, Any] | None = None
     if spec.rig.kind == "sim":
@@ -305,8 +313,11 @@ def _cmd_run(args: argparse.Namespace) -> int:
                                    "the profile is infeasible on this rig; run on the user's "
                                    "--accept-infeasible", accepted)]
     kwargs["record_signals"] = args.record == "full"
+    if hold:
+        kwargs["bring_up"] = _enter_flag()
     if args.json:
-        session = runner(spec, out_dir=args.out, **kwargs)
+        meter = _MeterLines(spec.safety.connect_level_fs, ACCEL_UNITS[args.units])
+        session = runner(spec, out_dir=args.out, on_snapshot=meter if hold else None, **kwargs)
         _print_json(session.summary())
     else:
         console = dashboard.make_console()
@@ -317,6 +328,60 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if session.record_error is not None:
         sys.stderr.write(f"liveshape: {session.record_error}\n")
     return session.result.exit_status
+
+
+def _stdin_is_terminal() -> bool:
+    """True when stdin is an open terminal (someone can press Enter)."""
+    import os
+
+    try:
+        return sys.stdin is not None and os.isatty(sys.stdin.fileno())
+    except (AttributeError, ValueError, OSError):
+        return False
+
+
+def _enter_flag() -> Any:
+    """A :class:`threading.Event` that a daemon thread sets on every line read from stdin.
+
+    The controller polls it during the bring-up hold (it never waits on it); the reader thread
+    is the only thing that blocks, on stdin, and it is off every safety path.
+    """
+    import threading
+
+    flag = threading.Event()
+
+    def read() -> None:
+        try:
+            while sys.stdin.readline():
+                flag.set()
+        except (OSError, ValueError):
+            return
+
+    threading.Thread(target=read, name="liveshape-enter", daemon=True).start()
+    return flag
+
+
+class _MeterLines:
+    """``run --json``: the bring-up instruction and meter as plain lines on stderr (1 per s)."""
+
+    def __init__(self, level_fs: float, units: Any) -> None:
+        self.level_fs, self.units = level_fs, units
+        self._said_instruction = False
+        self._last_t = -1.0
+
+    def __call__(self, snapshot: Any) -> None:
+        from liveshape.views import bringuptext
+
+        if snapshot.stage != "bring_up":
+            return
+        lines = bringuptext.bring_up_lines(snapshot.bring_up, self.level_fs, self.units,
+                                           bringuptext.last_refusal(snapshot.recent_events))
+        if not self._said_instruction:
+            self._said_instruction = True
+            _say("\n".join(lines[:2]))
+        if snapshot.bring_up is not None and snapshot.bring_up.t_s >= self._last_t + 1.0:
+            self._last_t = snapshot.bring_up.t_s
+            _say("  " + "\n  ".join(lines[2:]))
 
 
 def _cmd_survey(args: argparse.Namespace) -> int:
@@ -804,6 +869,14 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--accept-infeasible", action="store_true",
                    help="run a profile that check --rig calls infeasible on the simulated rig "
                    "(refused otherwise with exit status 3; run.json and events record it)")
+    hold = r.add_mutually_exclusive_group()
+    hold.add_argument("--unattended", action="store_true",
+                      help="audio rigs: skip the bring-up (no pause to raise the amplifier "
+                      "gain; it must be set already). Without it an audio run holds the drive "
+                      "at the connection level, shows a meter and waits for Enter, so stdin "
+                      "must be a terminal")
+    hold.add_argument("--bring-up", action="store_true",
+                      help="simulated rig: rehearse the bring-up hold (meter, Enter to go on)")
     r.add_argument("--record", choices=("full", "spectra"), default="full",
                    help="full (default): spectra, events and the drive and response WAVs "
                    "(about 1.3 GB per hour at 48 kHz); spectra: everything but the WAVs")
