@@ -487,17 +487,49 @@ def _cmd_virtual_rig(args: argparse.Namespace) -> int:
     from liveshape.rigs.plant import load_plant
 
     load_plant(args.plant)  # a bad plant is one line before JACK is asked for anything
+    if args.calibration_out is not None:
+        _check_writable(Path(args.calibration_out).parent, "--calibration-out",
+                        args.calibration_out)
 
     def ready(rig: Any) -> None:
+        cal_note = ""
+        if args.calibration_out is not None:
+            path = write_virtual_rig_calibration(rig, args.calibration_out)
+            cal_note = f" --calibration {path}"
         sys.stderr.write(
             f"liveshape: virtual rig {args.name!r} running plant {args.plant!r}; "
-            f"run with --rig audio:{args.name}; Ctrl-C ends it\n"
+            f"run with --rig audio:{args.name}{cal_note}; Ctrl-C ends it\n"
         )
         sys.stderr.flush()
 
     serve(args.plant, server_name=args.server, client_name=args.name, seed=args.seed,
           ready=ready)
     return 0
+
+
+def write_virtual_rig_calibration(rig: Any, path: str | Path) -> Path:
+    """Write the chain calibration file of the plant a running virtual rig simulates.
+
+    The simulated chain's truth in the format ``calibrate`` writes: the card's output and input
+    V/FS, the accelerometer's mV/g and the loop delay of a ``run`` through this server (one
+    JACK period, one 1024-frame stream block, the card's own delay; see
+    :func:`liveshape.rigs.jackrig.jack_loop_delay_samples`).
+    """
+    from datetime import datetime, timezone
+
+    from liveshape.rigs.calfile import write_calibration
+    from liveshape.rigs.jackrig import jack_loop_delay_samples
+    from liveshape.session import AUDIO_BLOCK
+
+    truth = rig.processor.calibration
+    delay = jack_loop_delay_samples(rig.period_frames, AUDIO_BLOCK,
+                                    plant_delay=int(truth.loop_delay_samples or 0))
+    cal = dataclasses.replace(truth, loop_delay_samples=delay, source=str(path))
+    write_calibration(path, cal, device=rig.client_name, fs_hz=rig.fs_hz,
+                      date=datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+                      notes=f"the truth of the virtual rig's plant {rig.processor.plant.name!r} "
+                      f"(JACK period {rig.period_frames}, stream blocks of {AUDIO_BLOCK})")
+    return Path(path)
 
 
 CAL_STEPS = ("output", "input", "delay", "corner", "sensor")
@@ -841,7 +873,9 @@ def build_parser() -> argparse.ArgumentParser:
                        "default; a real card is driven only with --rig audio:DEVICE. Ctrl-C "
                        "or SIGTERM ramps the drive down and stops.")
     r.add_argument("spec", metavar="SPEC", help="test definition (.yaml) or profile (.csv)")
-    r.add_argument("--rig", help="sim (default), sim:PRESET, sim:PLANT.yaml or audio:DEVICE")
+    r.add_argument("--rig", help="sim (default: the simulated plant the file names, the "
+                   "loudspeaker preset when it names none), sim:PRESET, sim:PLANT.yaml or "
+                   "audio:DEVICE")
     r.add_argument("--calibration", metavar="FILE", help="chain calibration file (audio rigs)")
     r.add_argument("--uncalibrated", action="store_true",
                    help="run an audio rig without calibration (levels in full scale only; "
@@ -973,6 +1007,10 @@ def build_parser() -> argparse.ArgumentParser:
     v.add_argument("--name", default="liveshape-plant", help="JACK client name")
     v.add_argument("--server", help="JACK server name (default: JACK_DEFAULT_SERVER)")
     v.add_argument("--seed", type=_seed, metavar="N", help="seed of the simulated noise")
+    v.add_argument("--calibration-out", metavar="FILE.yaml",
+                   help="write the chain calibration file of the simulated plant (its true "
+                   "V/FS, mV/g and the loop delay through this server, as calibrate writes it) "
+                   "for run --calibration FILE")
     v.set_defaults(func=_cmd_virtual_rig)
     return p
 
