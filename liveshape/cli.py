@@ -247,6 +247,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
         overrides["rig.uncalibrated"] = True
     if args.seed is not None:
         overrides["seed"] = args.seed
+    overrides.update(_channel_overrides(args))
     spec = load_spec(args.spec, overrides)
     from liveshape.control.runplan import check_fault_times, nominal_run_s
     from liveshape.session import record_estimate
@@ -259,9 +260,9 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
     check_free_space(args.out, estimate)
     if spec.rig.kind == "audio":
-        from liveshape.rigs.audio import check_settings
+        from liveshape.session import check_audio_map
 
-        check_settings(spec.rig.device, spec.control.fs_hz)  # a device must be named
+        check_audio_map(spec)  # a device must be named, and have the map's channels
     # Guided bring-up: on a real rig unless --unattended, on the simulated rig with --bring-up.
     hold = (spec.rig.kind == "audio" and not args.unattended) or bool(args.bring_up)
     if hold and not _stdin_is_terminal():
@@ -328,6 +329,36 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if session.record_error is not None:
         sys.stderr.write(f"liveshape: {session.record_error}\n")
     return session.result.exit_status
+
+
+def _channel_overrides(args: argparse.Namespace) -> dict[str, Any]:
+    """``--drive-output``, ``--control-input``, ``--loopback-input`` as spec overrides."""
+    keys = ("drive_output", "control_input", "loopback_input")
+    return {f"rig.{k}": getattr(args, k) for k in keys if getattr(args, k, None) is not None}
+
+
+def _add_channel_options(parser: argparse.ArgumentParser) -> None:
+    """The channel map of an audio rig on the command line (counted from 1)."""
+    parser.add_argument("--drive-output", type=_channel, metavar="N",
+                        help="audio rigs: output channel of the drive, from 1 (default 1; "
+                        "rig.drive_output)")
+    parser.add_argument("--control-input", type=_channel, metavar="N",
+                        help="audio rigs: input channel of the control accelerometer, from 1 "
+                        "(default 1; rig.control_input)")
+    parser.add_argument("--loopback-input", type=_channel, metavar="N",
+                        help="audio rigs: input receiving a copy of the drive by a cable, from "
+                        "1 (default none; rig.loopback_input)")
+
+
+def _channel(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if value < 1 or str(value) != text.strip():
+        raise argparse.ArgumentTypeError(
+            f"{text!r} is not a channel number (whole number >= 1; channels count from 1)")
+    return value
 
 
 def _stdin_is_terminal() -> bool:
@@ -416,6 +447,7 @@ def _cmd_survey(args: argparse.Namespace) -> int:
         overrides["rig.calibration"] = args.calibration
     if args.uncalibrated:
         overrides["rig.uncalibrated"] = True
+    overrides.update(_channel_overrides(args))
     spec = load_spec(args.spec, overrides)
     settings = survey_settings(spec, level_fs=args.level, duration_s=args.duration,
                                seed=args.seed)
@@ -424,9 +456,9 @@ def _cmd_survey(args: argparse.Namespace) -> int:
     check_fault_times(spec.faults, settings.duration_s, "the survey")
     _check_writable(args.out, "--out")
     if spec.rig.kind == "audio":
-        from liveshape.rigs.audio import check_settings
+        from liveshape.session import check_audio_map
 
-        check_settings(spec.rig.device, spec.control.fs_hz)  # a device must be named
+        check_audio_map(spec)  # a device must be named, and have the map's channels
     notice = dashboard.make_console(stderr=True)
     notice.print(dashboard.safety_notice(spec.rig.kind, spec.rig.plant))
     result, folder = run_survey(spec, settings, out_dir=args.out,
@@ -467,13 +499,13 @@ def _cmd_devices(args: argparse.Namespace) -> int:
     if args.json:
         _print_json({"devices": rows})
         return 0
-    head = (f"{'index':>5}  {'name':<32} {'host API':<12} {'in':>3} {'out':>3} "
+    head = (f"{'index':>5}  {'name':<32} {'host API':<12} {'inputs':>6} {'outputs':>7} "
             f"{'rate Hz':>8}  duplex")
     lines = [head]
     for d in rows:
         lines.append(
             f"{d['index']:>5}  {d['name'][:32]:<32} {d['host_api'][:12]:<12} "
-            f"{d['max_input_channels']:>3} {d['max_output_channels']:>3} "
+            f"{d['max_input_channels']:>6} {d['max_output_channels']:>7} "
             f"{d['default_fs_hz']:>8.0f}  {'yes' if d['full_duplex'] else '-'}"
         )
     if not rows:
@@ -877,6 +909,7 @@ def build_parser() -> argparse.ArgumentParser:
                    "loudspeaker preset when it names none), sim:PRESET, sim:PLANT.yaml or "
                    "audio:DEVICE")
     r.add_argument("--calibration", metavar="FILE", help="chain calibration file (audio rigs)")
+    _add_channel_options(r)
     r.add_argument("--uncalibrated", action="store_true",
                    help="run an audio rig without calibration (levels in full scale only; "
                    "the record says so)")
@@ -929,6 +962,7 @@ def build_parser() -> argparse.ArgumentParser:
                     help="compare two survey folders instead of running one")
     sv.add_argument("--rig", help="sim (default), sim:PRESET, sim:PLANT.yaml or audio:DEVICE")
     sv.add_argument("--calibration", metavar="FILE", help="chain calibration file (audio rigs)")
+    _add_channel_options(sv)
     sv.add_argument("--uncalibrated", action="store_true",
                     help="audio rig without calibration (FRF in FS per FS)")
     sv.add_argument("--level", type=_level_fs, default=0.02, metavar="FS",

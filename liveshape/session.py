@@ -427,6 +427,25 @@ def run_session(
     return session
 
 
+def check_audio_map(spec: TestSpec) -> Any:
+    """The spec's audio device, checked: named, full duplex at the rate, and its channel map.
+
+    A channel beyond what the device has is one line naming the key (``rig.drive_output`` ...),
+    before anything is opened or made. Returns the device's
+    :class:`~liveshape.rigs.devices.DeviceInfo`.
+    """
+    from liveshape.rigs.audio import check_settings
+    from liveshape.rigs.devices import check_channel_map
+
+    fs = spec.control.fs_hz
+    info = check_settings(spec.rig.device, fs)  # first: no device named is the first error
+    cmap = spec.rig.channel_map()
+    check_channel_map(info, cmap)
+    ins = [c for c in (cmap["control_input"], cmap["loopback_input"]) if c is not None]
+    return check_settings(spec.rig.device, fs, input_channels=max(ins),
+                          output_channels=int(cmap["drive_output"]))
+
+
 #: Drive blocks the audio worker keeps ahead of the stream by default: the margin against a
 #: slow update (measured: up to 160 ms on a loaded 2-core machine, so 8 x 1024 at 48 kHz).
 AUDIO_LEAD_BLOCKS = 8
@@ -456,8 +475,9 @@ def run_audio_session(
     at the connection level after the connection check until the user confirms (see
     :mod:`liveshape.control.bringup`); None (``run --unattended``): no hold.
     """
-    from liveshape.rigs.audio import AudioRig, check_settings
+    from liveshape.rigs.audio import AudioRig
     from liveshape.rigs.calibration import resolve_calibration
+    from liveshape.rigs.devices import audio_channels
 
     if spec.rig.kind != "audio":
         raise ConfigError(f"rig.kind = {spec.rig.kind!r}: expected audio for an audio session")
@@ -465,9 +485,10 @@ def run_audio_session(
         raise ConfigError(f"--block-size = {block_size} must be at least 16 samples")
     seed = spec.seed if seed is None else seed
     fs = spec.control.fs_hz
-    info = check_settings(spec.rig.device, fs)  # first: no device named is the first error
+    info = check_audio_map(spec)  # first: no device named is the first error
     cal = resolve_calibration(spec.rig.calibration, spec.rig.uncalibrated)
-    rig = AudioRig(info.index, fs, block_size=block_size, lead_blocks=lead_blocks)
+    rig = AudioRig(info.index, fs, block_size=block_size, lead_blocks=lead_blocks,
+                   **audio_channels(spec.rig.channel_map()))
     controller = Controller(spec, cal, seed=seed, bring_up=bring_up)
     stop = stop or StopFlag()
     rig_mapping = {
@@ -478,6 +499,7 @@ def run_audio_session(
         "fs_hz": fs,
         "block_size": block_size,
         "lead_blocks": lead_blocks,
+        **spec.rig.channel_map(),
     }
     recorder = _open_record(spec, out_dir, rig_mapping, cal,
                             {"seed": seed, "block_size": block_size, "calibrated": cal.calibrated,
@@ -572,16 +594,18 @@ def run_survey(
                     stop.set("Ctrl-C")
         result = src.result()
     else:
-        from liveshape.rigs.audio import AudioRig, check_settings
+        from liveshape.rigs.audio import AudioRig
         from liveshape.rigs.calibration import resolve_calibration
+        from liveshape.rigs.devices import audio_channels
 
-        info = check_settings(spec.rig.device, fs)  # first: no device named is the first error
+        info = check_audio_map(spec)  # first: no device named is the first error
         cal = resolve_calibration(spec.rig.calibration, spec.rig.uncalibrated)
         b = block_size or AUDIO_BLOCK
-        audio = AudioRig(info.index, fs, block_size=b)
+        audio = AudioRig(info.index, fs, block_size=b, **audio_channels(spec.rig.channel_map()))
         src = SurveySource(settings, g_per_fs=cal.g_per_fs, block_size=b)
         rig_mapping = {"kind": "audio", "device": info.name, "device_index": info.index,
-                       "host_api": info.host_api, "fs_hz": fs, "block_size": b}
+                       "host_api": info.host_api, "fs_hz": fs, "block_size": b,
+                       **spec.rig.channel_map()}
         with sigterm_stops(stop):
             result = audio.run(src, should_stop=stop.is_set)
     folder = write_survey(out_dir, name=spec.name, result=result, settings=settings,

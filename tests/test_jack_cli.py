@@ -169,7 +169,8 @@ def test_run_through_the_stream_with_the_calibration(virtual_rig, calibration_fi
     kinds = [json.loads(x)["kind"] for x in
              (Path(summary["run_dir"]) / "events.jsonl").read_text().splitlines()]
     assert "bring_up_confirmed" not in kinds and "identify" in kinds
-    assert json.loads((Path(summary["run_dir"]) / "run.json").read_text())["extra"]["bring_up"] is False
+    run_json = json.loads((Path(summary["run_dir"]) / "run.json").read_text())
+    assert run_json["extra"]["bring_up"] is False
     assert summary["rig"]["stream"]["dry_blocks"] == 0
     # The acceleration the plant really produced: response FS x the chain's true g per FS
     # (IN_V_PER_FS volts per FS over 0.1 V/g). Its rms over the last full-level second is the
@@ -263,3 +264,40 @@ def test_run_without_a_terminal_stops_before_any_drive(virtual_rig, calibration_
     block = 4800
     rms = np.sqrt(np.mean(y[: y.size - y.size % block].reshape(-1, block) ** 2, axis=1))
     assert rms.max() < 1e-3, rms.max()
+
+
+def test_channel_map_through_the_stream(virtual_rig, calibration_file, tmp_path: Path) -> None:
+    from liveshape.control.safety import EXIT_STATUS
+
+    name, env = virtual_rig
+    data = config.read_yaml_file(calibration_file[0])
+    data["accelerometer"] = {"mv_per_g": SENS_MV_PER_G}
+    path = tmp_path / "chain.yaml"
+    config.write_yaml_file(path, data)
+    proc = call(env, "devices")
+    head = proc.stdout.splitlines()[0]
+    assert "inputs" in head and "outputs" in head
+    row = next(line for line in proc.stdout.splitlines() if name in line)
+    assert row.split()[-4:-2] == ["2", "2"]  # the virtual rig: drive + loopback cable each way
+    # a map the device cannot satisfy: one line naming the key, nothing written
+    out = tmp_path / "runs"
+    proc = call(env, "run", "examples/handlebar-nav-unit.yaml", "--rig", f"audio:{name}",
+                "--calibration", str(path), "--control-input", "3", "--unattended",
+                "--out", str(out))
+    assert proc.returncode == 2 and proc.stderr.count("\n") == 1
+    assert f"rig.control_input = 3: audio device {name!r} has 2 input channel(s)" in proc.stderr
+    assert not out.exists() or not any(out.iterdir())
+    # the drive on output 2 reaches the loopback cable, not the shaker: the control input 1
+    # does not answer and the connection check stops the run at the connection level
+    spec = tmp_path / "short.yaml"
+    spec.write_text(
+        "name: jack-map\n"
+        "profile: {units: g2/Hz, breakpoints: [{f_hz: 20, asd: 0.001}, {f_hz: 1000, asd: 0.001}]}\n"
+        "control: {fs_hz: 48000, frame_length: 4096}\n"
+        "rig: {drive_output: 2}\n")
+    proc = call(env, "run", str(spec), "--rig", f"audio:{name}", "--calibration", str(path),
+                "--unattended", "--json", "--out", str(out), timeout=120)
+    summary = json.loads(proc.stdout)
+    assert summary["abort_rule"] == "connect_check", proc.stderr
+    assert proc.returncode == EXIT_STATUS["connect_check"]
+    assert summary["rig"]["drive_output"] == 2 and summary["rig"]["control_input"] == 1

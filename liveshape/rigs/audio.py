@@ -111,6 +111,7 @@ class AudioRig:
     loopback : (int, int) or None, optional
         ``(out_ch, in_ch)``: a cable from a second output to a second input. The drive is copied
         to ``out_ch``; ``in_ch`` returns the true drive reference (and the loop delay).
+        ``(None, in_ch)``: ``in_ch`` receives the drive output itself (no copy is played).
     lead_blocks : int, optional
         Drive blocks produced ahead of the stream (default 4): the margin against late updates.
     stop_zero_blocks : int, optional
@@ -186,7 +187,9 @@ class AudioRig:
         self.stall_timeout_s = float(stall_timeout_s)
         self.stop_timeout_s = float(stop_timeout_s)
         self.switch_interval_s = switch_interval_s
-        outs = [self.drive_channel] + ([loopback[0]] if loopback else [])
+        # loopback (None, in): the drive reaches ``in`` by a cable from the drive output itself
+        outs = [self.drive_channel] + ([loopback[0]] if loopback and loopback[0] is not None
+                                       else [])
         ins = [self.control_channel] + ([loopback[1]] if loopback else [])
         if monitor_channel is not None:
             ins.append(int(monitor_channel))
