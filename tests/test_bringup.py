@@ -236,3 +236,76 @@ def test_bring_up_with_enter_runs_and_records_the_confirmation(tmp_path: Path) -
     conf = [e for e in events if e["kind"] == "bring_up_confirmed"]
     assert len(conf) == 1 and conf[0]["data"]["response_rms_fs"] > 0
     assert conf[0]["t_s"] > 0
+
+
+# --------------------------------------------------------------------------- what is shown
+
+
+def test_panel_and_safety_notice_say_what_the_run_does() -> None:
+    import io
+    from types import SimpleNamespace
+
+    from liveshape.control.bringup import MeterReading
+    from liveshape.views import dashboard as dash
+
+    def render(x) -> str:
+        console = dash.make_console(file=io.StringIO(), width=200)
+        console.print(x)
+        return " ".join(console.file.getvalue().split())
+
+    r = MeterReading(t_s=4.0, response_rms_fs=0.002, response_rms_g=0.02, background_rms_fs=1e-5,
+                     snr_db=0.3, coherence=0.12, headroom_db=48.0, drive_rms_fs=0.01,
+                     drive_rms_v=0.02, delay_samples=3584, usable=False,
+                     reason="coherence 0.12 < 0.5")
+    refused = SimpleNamespace(kind="bring_up_refused",
+                              message="Enter refused: coherence 0.12 < 0.5")
+    snap = SimpleNamespace(stage="bring_up", bring_up=r, drive_rms_fs=0.01,
+                           recent_events=(refused,))
+    text = render(dash.bring_up_panel(snap))
+    assert ("Bring-up: the drive is held at the connection level, 0.01 FS rms; nothing louder "
+            "plays until you confirm.") in text
+    assert ("Raise the amplifier gain slowly until the meter says 'usable'. Press Enter to go on, "
+            "Ctrl-C to stop.") in text
+    assert ("response 0.002 FS rms = 0.02 g rms | SNR 0.3 dB | coherence 0.12 | input headroom "
+            "48.0 dB | drive 0.0100 FS rms = 0.02 V rms") in text
+    assert "not usable yet: coherence 0.12 < 0.5 (Enter refused: coherence 0.12 < 0.5)" in text
+    ok = render(dash.bring_up_panel(SimpleNamespace(
+        stage="bring_up", drive_rms_fs=0.01, recent_events=(),
+        bring_up=MeterReading(**{**r.to_dict(), "usable": True, "reason": ""}))))
+    assert "usable: press Enter to go on" in ok
+    # the cautions: a real rig is asked to raise the gain; --unattended says no one asks
+    assert "raise it when the meter asks you" in render(dash.safety_notice("audio"))
+    unattended = render(dash.safety_notice("audio", bring_up=False))
+    assert "--unattended: no pause to set the amplifier gain; it must be set already" in unattended
+    assert "when the meter asks" not in unattended
+
+
+def test_ctrl_c_during_the_hold_ramps_down_and_stops(tmp_path: Path) -> None:
+    import signal
+    import time
+
+    master, slave = pty.openpty()
+    proc = subprocess.Popen(_cli("run", "examples/handlebar-nav-unit.yaml", "--bring-up",
+                                 "--json", "--out", str(tmp_path / "runs")),
+                            stdin=slave, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True, cwd=REPO)
+    os.close(slave)
+    try:
+        for line in proc.stderr:
+            if "usable: press Enter" in line:
+                break
+        time.sleep(0.5)
+        proc.send_signal(signal.SIGINT)  # what Ctrl-C sends
+        out, _ = proc.communicate(timeout=60)
+    finally:
+        os.close(master)
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    assert proc.returncode == 130
+    summary = json.loads(out)
+    assert summary["status"] == "stopped"
+    events = [json.loads(x) for x in
+              (Path(summary["run_dir"]) / "events.jsonl").read_text().splitlines()]
+    kinds = [e["kind"] for e in events]
+    assert "stop" in kinds and "bring_up_confirmed" not in kinds and "identify" not in kinds
