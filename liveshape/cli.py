@@ -460,7 +460,7 @@ def _cmd_survey(args: argparse.Namespace) -> int:
 
         check_audio_map(spec)  # a device must be named, and have the map's channels
     notice = dashboard.make_console(stderr=True)
-    notice.print(dashboard.safety_notice(spec.rig.kind, spec.rig.plant))
+    notice.print(dashboard.safety_notice(spec.rig.kind, spec.rig.plant, bring_up=None))
     result, folder = run_survey(spec, settings, out_dir=args.out,
                                 identity={"operator": args.operator,
                                           "test_item": args.test_item})

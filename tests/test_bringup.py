@@ -278,6 +278,9 @@ def test_panel_and_safety_notice_say_what_the_run_does() -> None:
     unattended = render(dash.safety_notice("audio", bring_up=False))
     assert "--unattended: no pause to set the amplifier gain; it must be set already" in unattended
     assert "when the meter asks" not in unattended
+    survey = render(dash.safety_notice("audio", bring_up=None))
+    assert "Set the amplifier gain before the start: the survey does not pause for it" in survey
+    assert "when the meter asks" not in survey
 
 
 def test_ctrl_c_during_the_hold_ramps_down_and_stops(tmp_path: Path) -> None:

@@ -375,12 +375,13 @@ def print_error(console: Console, message: str) -> None:
 
 
 def safety_notice(rig_kind: str = "audio", plant: str | None = None, *,
-                  bring_up: bool = True) -> RenderableType:
+                  bring_up: bool | None = True) -> RenderableType:
     """Cautions shown before a run, in words that fit the rig in use (each fits 80 columns).
 
     ``bring_up`` says whether the run holds a very low drive after the connection check and
     waits for the user to raise the gain (the default on real rigs); False (``--unattended``)
-    says the gain must already be set, as no one is asked.
+    says the gain must already be set, as no one is asked; None (``survey``, which has no
+    hold) says to set it before the start.
 
     ``rig_kind`` is ``sim`` for the simulated rig (nothing is driven: a first line says so and
     names the plant model; the cautions are for the real rig it rehearses) or anything else (a
@@ -398,7 +399,9 @@ def safety_notice(rig_kind: str = "audio", plant: str | None = None, *,
         "Fasten the payload and the fixture; nothing loose on the moving part.",
         ("Turn the amplifier gain to minimum; raise it when the meter asks you."
          if bring_up else
-         "--unattended: no pause to set the amplifier gain; it must be set already."),
+         "--unattended: no pause to set the amplifier gain; it must be set already."
+         if bring_up is False else
+         "Set the amplifier gain before the start: the survey does not pause for it."),
         "Keep hands, cables and tools clear of the moving parts while driving.",
         "To stop: press Ctrl-C once; the drive ramps down. Keep the amp in reach.",
         "Follow your lab's safety rules and work under qualified supervision.",
