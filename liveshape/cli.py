@@ -247,6 +247,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
         overrides["rig.uncalibrated"] = True
     if args.seed is not None:
         overrides["seed"] = args.seed
+    overrides.update(_channel_overrides(args))
     spec = load_spec(args.spec, overrides)
     from liveshape.control.runplan import check_fault_times, nominal_run_s
     from liveshape.session import record_estimate
@@ -259,12 +260,20 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
     check_free_space(args.out, estimate)
     if spec.rig.kind == "audio":
-        from liveshape.rigs.audio import check_settings
+        from liveshape.session import check_audio_map
 
-        check_settings(spec.rig.device, spec.control.fs_hz)  # a device must be named
+        check_audio_map(spec)  # a device must be named, and have the map's channels
+    # Guided bring-up: on a real rig unless --unattended, on the simulated rig with --bring-up.
+    hold = (spec.rig.kind == "audio" and not args.unattended) or bool(args.bring_up)
+    if hold and not _stdin_is_terminal():
+        raise ConfigError(
+            f"run --rig {args.rig or spec.rig.kind}: the bring-up waits for Enter once the "
+            "amplifier gain is set, but stdin is not a terminal; nothing was driven "
+            "(--unattended skips the bring-up when the gain is already set)")
     # The cautions come first, before anything is driven (on stderr with --json).
     notice_console = dashboard.make_console(stderr=args.json)
-    notice_console.print(dashboard.safety_notice(spec.rig.kind, spec.rig.plant))
+    notice_console.print(dashboard.safety_notice(spec.rig.kind, spec.rig.plant,
+                                                 bring_up=spec.rig.kind == "sim" or hold))
     notice_console.print(estimate.describe())
     accepted: dict[str, Any] | None = None
     if spec.rig.kind == "sim":
@@ -305,8 +314,11 @@ def _cmd_run(args: argparse.Namespace) -> int:
                                    "the profile is infeasible on this rig; run on the user's "
                                    "--accept-infeasible", accepted)]
     kwargs["record_signals"] = args.record == "full"
+    if hold:
+        kwargs["bring_up"] = _enter_flag()
     if args.json:
-        session = runner(spec, out_dir=args.out, **kwargs)
+        meter = _MeterLines(spec.safety.connect_level_fs, ACCEL_UNITS[args.units])
+        session = runner(spec, out_dir=args.out, on_snapshot=meter if hold else None, **kwargs)
         _print_json(session.summary())
     else:
         console = dashboard.make_console()
@@ -317,6 +329,90 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if session.record_error is not None:
         sys.stderr.write(f"liveshape: {session.record_error}\n")
     return session.result.exit_status
+
+
+def _channel_overrides(args: argparse.Namespace) -> dict[str, Any]:
+    """``--drive-output``, ``--control-input``, ``--loopback-input`` as spec overrides."""
+    keys = ("drive_output", "control_input", "loopback_input")
+    return {f"rig.{k}": getattr(args, k) for k in keys if getattr(args, k, None) is not None}
+
+
+def _add_channel_options(parser: argparse.ArgumentParser) -> None:
+    """The channel map of an audio rig on the command line (counted from 1)."""
+    parser.add_argument("--drive-output", type=_channel, metavar="N",
+                        help="audio rigs: output channel of the drive, from 1 (default 1; "
+                        "rig.drive_output)")
+    parser.add_argument("--control-input", type=_channel, metavar="N",
+                        help="audio rigs: input channel of the control accelerometer, from 1 "
+                        "(default 1; rig.control_input)")
+    parser.add_argument("--loopback-input", type=_channel, metavar="N",
+                        help="audio rigs: input receiving a copy of the drive by a cable, from "
+                        "1 (default none; rig.loopback_input)")
+
+
+def _channel(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if value < 1 or str(value) != text.strip():
+        raise argparse.ArgumentTypeError(
+            f"{text!r} is not a channel number (whole number >= 1; channels count from 1)")
+    return value
+
+
+def _stdin_is_terminal() -> bool:
+    """True when stdin is an open terminal (someone can press Enter)."""
+    import os
+
+    try:
+        return sys.stdin is not None and os.isatty(sys.stdin.fileno())
+    except (AttributeError, ValueError, OSError):
+        return False
+
+
+def _enter_flag() -> Any:
+    """A :class:`threading.Event` that a daemon thread sets on every line read from stdin.
+
+    The controller polls it during the bring-up hold (it never waits on it); the reader thread
+    is the only thing that blocks, on stdin, and it is off every safety path.
+    """
+    import threading
+
+    flag = threading.Event()
+
+    def read() -> None:
+        try:
+            while sys.stdin.readline():
+                flag.set()
+        except (OSError, ValueError):
+            return
+
+    threading.Thread(target=read, name="liveshape-enter", daemon=True).start()
+    return flag
+
+
+class _MeterLines:
+    """``run --json``: the bring-up instruction and meter as plain lines on stderr (1 per s)."""
+
+    def __init__(self, level_fs: float, units: Any) -> None:
+        self.level_fs, self.units = level_fs, units
+        self._said_instruction = False
+        self._last_t = -1.0
+
+    def __call__(self, snapshot: Any) -> None:
+        from liveshape.views import bringuptext
+
+        if snapshot.stage != "bring_up":
+            return
+        lines = bringuptext.bring_up_lines(snapshot.bring_up, self.level_fs, self.units,
+                                           bringuptext.last_refusal(snapshot.recent_events))
+        if not self._said_instruction:
+            self._said_instruction = True
+            _say("\n".join(lines[:2]))
+        if snapshot.bring_up is not None and snapshot.bring_up.t_s >= self._last_t + 1.0:
+            self._last_t = snapshot.bring_up.t_s
+            _say("  " + "\n  ".join(lines[2:]))
 
 
 def _cmd_survey(args: argparse.Namespace) -> int:
@@ -351,6 +447,7 @@ def _cmd_survey(args: argparse.Namespace) -> int:
         overrides["rig.calibration"] = args.calibration
     if args.uncalibrated:
         overrides["rig.uncalibrated"] = True
+    overrides.update(_channel_overrides(args))
     spec = load_spec(args.spec, overrides)
     settings = survey_settings(spec, level_fs=args.level, duration_s=args.duration,
                                seed=args.seed)
@@ -359,11 +456,11 @@ def _cmd_survey(args: argparse.Namespace) -> int:
     check_fault_times(spec.faults, settings.duration_s, "the survey")
     _check_writable(args.out, "--out")
     if spec.rig.kind == "audio":
-        from liveshape.rigs.audio import check_settings
+        from liveshape.session import check_audio_map
 
-        check_settings(spec.rig.device, spec.control.fs_hz)  # a device must be named
+        check_audio_map(spec)  # a device must be named, and have the map's channels
     notice = dashboard.make_console(stderr=True)
-    notice.print(dashboard.safety_notice(spec.rig.kind, spec.rig.plant))
+    notice.print(dashboard.safety_notice(spec.rig.kind, spec.rig.plant, bring_up=None))
     result, folder = run_survey(spec, settings, out_dir=args.out,
                                 identity={"operator": args.operator,
                                           "test_item": args.test_item})
@@ -402,13 +499,13 @@ def _cmd_devices(args: argparse.Namespace) -> int:
     if args.json:
         _print_json({"devices": rows})
         return 0
-    head = (f"{'index':>5}  {'name':<32} {'host API':<12} {'in':>3} {'out':>3} "
+    head = (f"{'index':>5}  {'name':<32} {'host API':<12} {'inputs':>6} {'outputs':>7} "
             f"{'rate Hz':>8}  duplex")
     lines = [head]
     for d in rows:
         lines.append(
             f"{d['index']:>5}  {d['name'][:32]:<32} {d['host_api'][:12]:<12} "
-            f"{d['max_input_channels']:>3} {d['max_output_channels']:>3} "
+            f"{d['max_input_channels']:>6} {d['max_output_channels']:>7} "
             f"{d['default_fs_hz']:>8.0f}  {'yes' if d['full_duplex'] else '-'}"
         )
     if not rows:
@@ -422,17 +519,49 @@ def _cmd_virtual_rig(args: argparse.Namespace) -> int:
     from liveshape.rigs.plant import load_plant
 
     load_plant(args.plant)  # a bad plant is one line before JACK is asked for anything
+    if args.calibration_out is not None:
+        _check_writable(Path(args.calibration_out).parent, "--calibration-out",
+                        args.calibration_out)
 
     def ready(rig: Any) -> None:
+        cal_note = ""
+        if args.calibration_out is not None:
+            path = write_virtual_rig_calibration(rig, args.calibration_out)
+            cal_note = f" --calibration {path}"
         sys.stderr.write(
             f"liveshape: virtual rig {args.name!r} running plant {args.plant!r}; "
-            f"run with --rig audio:{args.name}; Ctrl-C ends it\n"
+            f"run with --rig audio:{args.name}{cal_note}; Ctrl-C ends it\n"
         )
         sys.stderr.flush()
 
     serve(args.plant, server_name=args.server, client_name=args.name, seed=args.seed,
           ready=ready)
     return 0
+
+
+def write_virtual_rig_calibration(rig: Any, path: str | Path) -> Path:
+    """Write the chain calibration file of the plant a running virtual rig simulates.
+
+    The simulated chain's truth in the format ``calibrate`` writes: the card's output and input
+    V/FS, the accelerometer's mV/g and the loop delay of a ``run`` through this server (one
+    JACK period, one 1024-frame stream block, the card's own delay; see
+    :func:`liveshape.rigs.jackrig.jack_loop_delay_samples`).
+    """
+    from datetime import datetime, timezone
+
+    from liveshape.rigs.calfile import write_calibration
+    from liveshape.rigs.jackrig import jack_loop_delay_samples
+    from liveshape.session import AUDIO_BLOCK
+
+    truth = rig.processor.calibration
+    delay = jack_loop_delay_samples(rig.period_frames, AUDIO_BLOCK,
+                                    plant_delay=int(truth.loop_delay_samples or 0))
+    cal = dataclasses.replace(truth, loop_delay_samples=delay, source=str(path))
+    write_calibration(path, cal, device=rig.client_name, fs_hz=rig.fs_hz,
+                      date=datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+                      notes=f"the truth of the virtual rig's plant {rig.processor.plant.name!r} "
+                      f"(JACK period {rig.period_frames}, stream blocks of {AUDIO_BLOCK})")
+    return Path(path)
 
 
 CAL_STEPS = ("output", "input", "delay", "corner", "sensor")
@@ -776,8 +905,11 @@ def build_parser() -> argparse.ArgumentParser:
                        "default; a real card is driven only with --rig audio:DEVICE. Ctrl-C "
                        "or SIGTERM ramps the drive down and stops.")
     r.add_argument("spec", metavar="SPEC", help="test definition (.yaml) or profile (.csv)")
-    r.add_argument("--rig", help="sim (default), sim:PRESET, sim:PLANT.yaml or audio:DEVICE")
+    r.add_argument("--rig", help="sim (default: the simulated plant the file names, the "
+                   "loudspeaker preset when it names none), sim:PRESET, sim:PLANT.yaml or "
+                   "audio:DEVICE")
     r.add_argument("--calibration", metavar="FILE", help="chain calibration file (audio rigs)")
+    _add_channel_options(r)
     r.add_argument("--uncalibrated", action="store_true",
                    help="run an audio rig without calibration (levels in full scale only; "
                    "the record says so)")
@@ -804,6 +936,14 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--accept-infeasible", action="store_true",
                    help="run a profile that check --rig calls infeasible on the simulated rig "
                    "(refused otherwise with exit status 3; run.json and events record it)")
+    hold = r.add_mutually_exclusive_group()
+    hold.add_argument("--unattended", action="store_true",
+                      help="audio rigs: skip the bring-up (no pause to raise the amplifier "
+                      "gain; it must be set already). Without it an audio run holds the drive "
+                      "at the connection level, shows a meter and waits for Enter, so stdin "
+                      "must be a terminal")
+    hold.add_argument("--bring-up", action="store_true",
+                      help="simulated rig: rehearse the bring-up hold (meter, Enter to go on)")
     r.add_argument("--record", choices=("full", "spectra"), default="full",
                    help="full (default): spectra, events and the drive and response WAVs "
                    "(about 1.3 GB per hour at 48 kHz); spectra: everything but the WAVs")
@@ -822,6 +962,7 @@ def build_parser() -> argparse.ArgumentParser:
                     help="compare two survey folders instead of running one")
     sv.add_argument("--rig", help="sim (default), sim:PRESET, sim:PLANT.yaml or audio:DEVICE")
     sv.add_argument("--calibration", metavar="FILE", help="chain calibration file (audio rigs)")
+    _add_channel_options(sv)
     sv.add_argument("--uncalibrated", action="store_true",
                     help="audio rig without calibration (FRF in FS per FS)")
     sv.add_argument("--level", type=_level_fs, default=0.02, metavar="FS",
@@ -900,6 +1041,10 @@ def build_parser() -> argparse.ArgumentParser:
     v.add_argument("--name", default="liveshape-plant", help="JACK client name")
     v.add_argument("--server", help="JACK server name (default: JACK_DEFAULT_SERVER)")
     v.add_argument("--seed", type=_seed, metavar="N", help="seed of the simulated noise")
+    v.add_argument("--calibration-out", metavar="FILE.yaml",
+                   help="write the chain calibration file of the simulated plant (its true "
+                   "V/FS, mV/g and the loop delay through this server, as calibrate writes it) "
+                   "for run --calibration FILE")
     v.set_defaults(func=_cmd_virtual_rig)
     return p
 

@@ -342,7 +342,7 @@ class RunLoop:
                 drive = ctrl.exchange(response)
                 response = rig.process(drive)
                 self.after_block(drive, response)
-                if not fast:
+                if not fast or ctrl.stage == "bring_up":  # the user's hold is real time
                     ahead = (ctrl.t_s - block_size / fs) - (self.clock() - t0)
                     if ahead > 0:
                         sleep(ahead)
@@ -364,6 +364,7 @@ def run_session(
     identity: dict[str, Any] | None = None,
     record_signals: bool = True,
     start_events: Sequence[tuple[str, str, dict[str, Any]]] = (),
+    bring_up: Any = None,
 ) -> SessionResult:
     """Run one test on the rig the spec selects and leave a record folder.
 
@@ -390,6 +391,10 @@ def run_session(
         Record drive and response as WAV files (False: spectra and events only).
     start_events : sequence of (kind, message, data)
         Events recorded at 0 s before the first block (e.g. ``infeasible_accepted``).
+    bring_up : threading.Event, optional
+        Hold the drive at the connection level after the connection check until this flag is
+        set by the user's confirmation (see :mod:`liveshape.control.bringup`); None: no hold.
+        The hold is paced in real time even with ``fast``.
     """
     if spec.rig.kind != "sim":
         raise ConfigError(
@@ -400,10 +405,11 @@ def run_session(
         raise ConfigError(f"--block-size = {block_size} must be at least 16 samples")
     seed = spec.seed if seed is None else seed
     rig, cal, rig_mapping = build_sim_rig(spec, seed)
-    controller = Controller(spec, cal, seed=seed)
+    controller = Controller(spec, cal, seed=seed, bring_up=bring_up)
     stop = stop or StopFlag()
     recorder = _open_record(spec, out_dir, rig_mapping, cal,
-                            {"seed": seed, "fast": fast, "block_size": block_size},
+                            {"seed": seed, "fast": fast, "block_size": block_size,
+                             "bring_up": bring_up is not None},
                             identity, record_signals)
     for kind, message, data in start_events:
         recorder.event(0.0, kind, message, data)
@@ -419,6 +425,25 @@ def run_session(
         )
         session = _close_record(recorder, session)
     return session
+
+
+def check_audio_map(spec: TestSpec) -> Any:
+    """The spec's audio device, checked: named, full duplex at the rate, and its channel map.
+
+    A channel beyond what the device has is one line naming the key (``rig.drive_output`` ...),
+    before anything is opened or made. Returns the device's
+    :class:`~liveshape.rigs.devices.DeviceInfo`.
+    """
+    from liveshape.rigs.audio import check_settings
+    from liveshape.rigs.devices import check_channel_map
+
+    fs = spec.control.fs_hz
+    info = check_settings(spec.rig.device, fs)  # first: no device named is the first error
+    cmap = spec.rig.channel_map()
+    check_channel_map(info, cmap)
+    ins = [c for c in (cmap["control_input"], cmap["loopback_input"]) if c is not None]
+    return check_settings(spec.rig.device, fs, input_channels=max(ins),
+                          output_channels=int(cmap["drive_output"]))
 
 
 #: Drive blocks the audio worker keeps ahead of the stream by default: the margin against a
@@ -438,6 +463,7 @@ def run_audio_session(
     stop: StopFlag | None = None,
     identity: dict[str, Any] | None = None,
     record_signals: bool = True,
+    bring_up: Any = None,
 ) -> SessionResult:
     """Run one test through a real audio interface (or the JACK virtual rig).
 
@@ -445,9 +471,13 @@ def run_audio_session(
     is one full-duplex :class:`liveshape.rigs.audio.AudioRig`. The calibration file is required
     unless the spec says the levels are uncalibrated (the record says so). The device and its
     settings are checked before the record folder is made, so a wrong device leaves nothing.
+    ``bring_up`` (a :class:`threading.Event` the shell sets on the user's Enter) holds the drive
+    at the connection level after the connection check until the user confirms (see
+    :mod:`liveshape.control.bringup`); None (``run --unattended``): no hold.
     """
-    from liveshape.rigs.audio import AudioRig, check_settings
+    from liveshape.rigs.audio import AudioRig
     from liveshape.rigs.calibration import resolve_calibration
+    from liveshape.rigs.devices import audio_channels
 
     if spec.rig.kind != "audio":
         raise ConfigError(f"rig.kind = {spec.rig.kind!r}: expected audio for an audio session")
@@ -455,11 +485,12 @@ def run_audio_session(
         raise ConfigError(f"--block-size = {block_size} must be at least 16 samples")
     seed = spec.seed if seed is None else seed
     fs = spec.control.fs_hz
-    info = check_settings(spec.rig.device, fs)  # first: no device named is the first error
+    info = check_audio_map(spec)  # first: no device named is the first error
     cal = resolve_calibration(spec.rig.calibration, spec.rig.uncalibrated)
     rig = AudioRig(info.index, fs, block_size=block_size, lead_blocks=lead_blocks,
-                   stop_fade_s=spec.safety.abort_ramp_s)
-    controller = Controller(spec, cal, seed=seed)
+                   stop_fade_s=spec.safety.abort_ramp_s,
+                   **audio_channels(spec.rig.channel_map()))
+    controller = Controller(spec, cal, seed=seed, bring_up=bring_up)
     stop = stop or StopFlag()
     rig_mapping = {
         "kind": "audio",
@@ -469,9 +500,11 @@ def run_audio_session(
         "fs_hz": fs,
         "block_size": block_size,
         "lead_blocks": lead_blocks,
+        **spec.rig.channel_map(),
     }
     recorder = _open_record(spec, out_dir, rig_mapping, cal,
-                            {"seed": seed, "block_size": block_size, "calibrated": cal.calibrated},
+                            {"seed": seed, "block_size": block_size, "calibrated": cal.calibrated,
+                             "bring_up": bring_up is not None},
                             identity, record_signals)
     with recorder, sigterm_stops(stop):
         loop = RunLoop(controller, recorder, on_snapshot=on_snapshot)
@@ -566,16 +599,18 @@ def run_survey(
                     stop.set("Ctrl-C")
         result = src.result()
     else:
-        from liveshape.rigs.audio import AudioRig, check_settings
+        from liveshape.rigs.audio import AudioRig
         from liveshape.rigs.calibration import resolve_calibration
+        from liveshape.rigs.devices import audio_channels
 
-        info = check_settings(spec.rig.device, fs)  # first: no device named is the first error
+        info = check_audio_map(spec)  # first: no device named is the first error
         cal = resolve_calibration(spec.rig.calibration, spec.rig.uncalibrated)
         b = block_size or AUDIO_BLOCK
-        audio = AudioRig(info.index, fs, block_size=b)
+        audio = AudioRig(info.index, fs, block_size=b, **audio_channels(spec.rig.channel_map()))
         src = SurveySource(settings, g_per_fs=cal.g_per_fs, block_size=b)
         rig_mapping = {"kind": "audio", "device": info.name, "device_index": info.index,
-                       "host_api": info.host_api, "fs_hz": fs, "block_size": b}
+                       "host_api": info.host_api, "fs_hz": fs, "block_size": b,
+                       **spec.rig.channel_map()}
         with sigterm_stops(stop):
             result = audio.run(src, should_stop=stop.is_set)
     folder = write_survey(out_dir, name=spec.name, result=result, settings=settings,

@@ -159,12 +159,18 @@ def test_run_through_the_stream_with_the_calibration(virtual_rig, calibration_fi
         "control: {fs_hz: 48000, frame_length: 4096}\n"
         "seed: 2\n"
     )
+    # --unattended: scripted, the gain "already set" (the virtual rig has none); no bring-up
     proc = call(env, "run", str(spec), "--rig", f"audio:{name}", "--calibration", str(path),
-                "--out", str(tmp_path / "runs"), "--json", timeout=600)
+                "--out", str(tmp_path / "runs"), "--json", "--unattended", timeout=600)
     assert proc.returncode == 0, proc.stderr
     summary = json.loads(proc.stdout)
     assert summary["status"] == "completed"
     assert summary["calibration"]["calibrated"] is True
+    kinds = [json.loads(x)["kind"] for x in
+             (Path(summary["run_dir"]) / "events.jsonl").read_text().splitlines()]
+    assert "bring_up_confirmed" not in kinds and "identify" in kinds
+    run_json = json.loads((Path(summary["run_dir"]) / "run.json").read_text())
+    assert run_json["extra"]["bring_up"] is False
     assert summary["rig"]["stream"]["dry_blocks"] == 0
     # The acceleration the plant really produced: response FS x the chain's true g per FS
     # (IN_V_PER_FS volts per FS over 0.1 V/g). Its rms over the last full-level second is the
@@ -211,3 +217,87 @@ def test_survey_through_the_stream_finds_the_plants_resonance(virtual_rig, calib
     df = 48000.0 / 32768
     for kind in ("peak", "dip"):
         assert abs(got[kind]["f_hz"] - truth[kind].f_hz) <= df + 3 * got[kind]["f_sigma_hz"]
+
+
+def test_run_without_a_terminal_stops_before_any_drive(virtual_rig, calibration_file, jack_server,
+                                                       tmp_path: Path) -> None:
+    name, env = virtual_rig
+    data = config.read_yaml_file(calibration_file[0])
+    data["accelerometer"] = {"mv_per_g": SENS_MV_PER_G}  # the datasheet value
+    path = tmp_path / "chain.yaml"
+    config.write_yaml_file(path, data)
+    # An independent tap, in its own process, on the plant's response: with no drive it carries
+    # only the simulated sensor and card noise (about 1e-5 FS rms). The connection level alone
+    # (0.01 FS through this chain's 2 V/FS out, 4 V/FS in and the loudspeaker's few g per volt
+    # at 100 mV/g) would give some 0.01-0.1 FS rms.
+    tap_file = tmp_path / "tap.npy"
+    tap = subprocess.Popen([sys.executable, str(REPO / "tests" / "tapprocess.py"),
+                            jack_server.name, f"{name}:response_out", str(tap_file)],
+                           env=env, cwd=REPO, stdin=subprocess.PIPE, stdout=subprocess.PIPE,
+                           text=True)
+    try:
+        assert tap.stdout.readline().strip() == "ready"
+        assert tap.stdout.readline().strip() == "connected"
+        tap.stdin.write("mark\n")
+        tap.stdin.flush()
+        start = int(tap.stdout.readline())
+        proc = subprocess.run(cli("run", "examples/handlebar-nav-unit.yaml", "--rig",
+                                  f"audio:{name}", "--calibration", str(path), "--out",
+                                  str(tmp_path / "runs")),
+                              stdin=subprocess.DEVNULL, capture_output=True, text=True,
+                              env=env, cwd=REPO, timeout=120)
+        import time
+
+        time.sleep(1.0)  # what would have played right after the refusal
+        tap.stdin.close()
+        tap.wait(timeout=30)
+    finally:
+        if tap.poll() is None:
+            tap.kill()
+            tap.wait()
+    assert proc.returncode == 2, proc.stderr
+    assert proc.stderr.count("\n") == 1 and "stdin is not a terminal" in proc.stderr
+    assert "nothing was driven" in proc.stderr and "--unattended" in proc.stderr
+    assert not (tmp_path / "runs").exists() or not any((tmp_path / "runs").iterdir())
+    y = np.load(tap_file)[start:, 0].astype(float)
+    assert y.size > 48000
+    block = 4800
+    rms = np.sqrt(np.mean(y[: y.size - y.size % block].reshape(-1, block) ** 2, axis=1))
+    assert rms.max() < 1e-3, rms.max()
+
+
+def test_channel_map_through_the_stream(virtual_rig, calibration_file, tmp_path: Path) -> None:
+    from liveshape.control.safety import EXIT_STATUS
+
+    name, env = virtual_rig
+    data = config.read_yaml_file(calibration_file[0])
+    data["accelerometer"] = {"mv_per_g": SENS_MV_PER_G}
+    path = tmp_path / "chain.yaml"
+    config.write_yaml_file(path, data)
+    proc = call(env, "devices")
+    head = proc.stdout.splitlines()[0]
+    assert "inputs" in head and "outputs" in head
+    row = next(line for line in proc.stdout.splitlines() if name in line)
+    assert row.split()[-4:-2] == ["2", "2"]  # the virtual rig: drive + loopback cable each way
+    # a map the device cannot satisfy: one line naming the key, nothing written
+    out = tmp_path / "runs"
+    proc = call(env, "run", "examples/handlebar-nav-unit.yaml", "--rig", f"audio:{name}",
+                "--calibration", str(path), "--control-input", "3", "--unattended",
+                "--out", str(out))
+    assert proc.returncode == 2 and proc.stderr.count("\n") == 1
+    assert f"rig.control_input = 3: audio device {name!r} has 2 input channel(s)" in proc.stderr
+    assert not out.exists() or not any(out.iterdir())
+    # the drive on output 2 reaches the loopback cable, not the shaker: the control input 1
+    # does not answer and the connection check stops the run at the connection level
+    spec = tmp_path / "short.yaml"
+    spec.write_text(
+        "name: jack-map\n"
+        "profile: {units: g2/Hz, breakpoints: [{f_hz: 20, asd: 0.001}, {f_hz: 1000, asd: 0.001}]}\n"
+        "control: {fs_hz: 48000, frame_length: 4096}\n"
+        "rig: {drive_output: 2}\n")
+    proc = call(env, "run", str(spec), "--rig", f"audio:{name}", "--calibration", str(path),
+                "--unattended", "--json", "--out", str(out), timeout=120)
+    summary = json.loads(proc.stdout)
+    assert summary["abort_rule"] == "connect_check", proc.stderr
+    assert proc.returncode == EXIT_STATUS["connect_check"]
+    assert summary["rig"]["drive_output"] == 2 and summary["rig"]["control_input"] == 1

@@ -84,6 +84,7 @@ def _start_run(tmp_path: Path, name: str, env: dict) -> tuple[subprocess.Popen, 
         "seed: 2\n", encoding="utf-8")
     out = tmp_path / "runs"
     proc = subprocess.Popen(cli("run", str(spec), "--rig", f"audio:{name}", "--uncalibrated",
+                                "--unattended",
                                 "--out", str(out), "--json"),
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env,
                             cwd=REPO)

@@ -11,11 +11,17 @@ Streams and alignment
     delay ``L`` (exchange latency plus the rig's own) is measured in the ``connect`` stage;
     :class:`~liveshape.control.drivestream.ResponseQueue` pairs them.
 
-Stages (``connect → identify → equalize → full_level → ramp_down → done``)
+Stages (``connect → [bring_up] → identify → equalize → full_level → ramp_down → done``)
     connect
         A silent look at the background, then flat noise at ``safety.connect_level_fs`` rms:
         loop delay, coherence and H1 (:mod:`liveshape.control.connect`). A silent or unresponsive
         control channel stops the run *before any real level*.
+    bring_up (real rigs, unless the user runs unattended)
+        The connection drive stays on, nothing louder, while the user raises the amplifier
+        gain and watches a live meter (:mod:`liveshape.control.bringup`). The controller only
+        polls the shell's confirmation flag on each response block (it never waits); a
+        confirmation is taken only while the meter passes the connection rule, and then a fresh
+        connection record at the gain now set replaces the first one.
     identify
         The drive fades out, then in again at 6 dB below the first schedule step with the
         spectrum ``target / |H_connect|²``. H1 and coherence (aligned) are estimated with
@@ -54,12 +60,14 @@ are in :class:`liveshape.control.loopstate.LoopState`, the base of :class:`Contr
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from typing import Any
 
 import numpy as np
 
 from liveshape.control import equalizer
+from liveshape.control.bringup import BringUpStage, MeterReading
 from liveshape.control.connect import (
     CONNECT_DROP_DB,
     ConfirmWatch,
@@ -99,6 +107,14 @@ class Controller(LoopState):
     max_delay_s : float
         Largest loop delay searched, s.
     """
+
+    def __init__(self, spec: Any, calibration: Any, *, bring_up: Any = None,
+                 **kwargs: Any) -> None:
+        super().__init__(spec, calibration, **kwargs)
+        #: The shell's confirmation flag (``is_set()``/``clear()``, e.g. threading.Event) for
+        #: the bring-up hold; None: no hold (the simulated rig, ``run --unattended``).
+        self._bring_up_flag = bring_up
+        self._bring: BringUpStage | None = None
 
     # ------------------------------------------------------------------ control from the shell
     def request_stop(self, reason: str = "stop requested") -> None:
@@ -170,10 +186,12 @@ class Controller(LoopState):
         x, y, i0 = got
         if self._status != "running":
             return  # ramping down: nothing more to learn from the response
-        if self._stage == "connect" and self._confirm is not None:
+        if self._confirm is not None and self._stage in ("connect", "bring_up"):
             self._confirm_connection(x, y, i0)
         elif self._stage == "connect":
             self._connect(x, y, i0)
+        elif self._stage == "bring_up":
+            self._hold(x, y)
         elif self._stage in ("identify", "equalize", "full_level"):
             # silence counts once the identification drive has faded in (the fades to and from
             # zero around the switch of spectrum are no dropout)
@@ -196,14 +214,69 @@ class Controller(LoopState):
 
     # ------------------------------------------------------------------ connect
     def _connect(self, x: np.ndarray, y: np.ndarray, i0: int) -> None:
-        chk = self._conn.feed(x, y, i0)
+        conn = self._conn
+        chk = conn.feed(x, y, i0)
         if chk is None:
             return
         self._connection, self._conn = chk, None
-        s = self.spec.safety
         self._emit("connect", connection_message(chk), {
             **connection_data(chk),
             "calibration_delay_samples": self.calibration.loop_delay_samples})
+        if self._bring_up_flag is not None:
+            self._start_hold(conn.recorder.records()[2])
+            return
+        self._connected(chk)
+
+    # ------------------------------------------------------------------ bring-up hold
+    def _start_hold(self, background: np.ndarray) -> None:
+        """Keep the connection drive on and meter the response until the user confirms."""
+        s, cal = self.spec.safety, self.calibration
+        self._bring = BringUpStage(
+            fs_hz=self.fs_hz, nperseg=self.frame_length, band=self._band, background=background,
+            max_lag=self._max_lag, g_per_fs=cal.g_per_fs,
+            out_v_per_fs=cal.out_v_per_fs if cal.calibrated else None,
+            silent_floor_fs=s.silent_floor_fs, coherence_min=s.connect_coherence_min)
+        self._bring_up_flag.clear()  # only an Enter pressed from now on counts
+        self._set_stage("bring_up", f"bring-up: drive held at {s.connect_level_fs:g} FS rms "
+                        "until the user confirms")
+
+    def _hold(self, x: np.ndarray, y: np.ndarray) -> None:
+        """One response chunk in the hold: meter, poll the flag (never wait), recheck."""
+        b = self._bring
+        chk = b.feed(x, y, self.t_s)
+        if chk is not None:  # the fresh record at the confirmed gain
+            self._bring, self._connection = None, chk
+            self._emit("connect", f"{connection_message(chk)} (at the confirmed gain)",
+                       {**connection_data(chk), "after_bring_up": True})
+            self._connected(chk)
+            return
+        if b.confirmed is None and self._bring_up_flag.is_set():
+            self._bring_up_flag.clear()
+            ok, why = b.confirm()
+            r = b.reading
+            data = {} if r is None else r.to_dict()
+            if ok:
+                self._emit("bring_up_confirmed",
+                           f"bring-up confirmed: response {r.response_rms_fs:.3g} FS rms "
+                           f"({r.response_rms_g:.3g} g), SNR {r.snr_db:.1f} dB, coherence "
+                           f"{r.coherence:.2f}", data)
+            else:
+                self._emit("bring_up_refused", f"Enter refused: {why}", data)
+
+    @property
+    def bring_up_reading(self) -> MeterReading | None:
+        """The bring-up meter's latest reading (None outside the hold)."""
+        return None if self._bring is None else self._bring.reading
+
+    def snapshot(self) -> Any:
+        """:meth:`LoopState.snapshot` with the bring-up meter's reading while it holds."""
+        snap = super().snapshot()
+        if self._stage != "bring_up":
+            return snap
+        return dataclasses.replace(snap, bring_up=self.bring_up_reading)
+
+    def _connected(self, chk: Any) -> None:
+        s = self.spec.safety
         trip = connection_trip(chk, s, self.t_s)
         if trip is not None:
             self._abort(trip)

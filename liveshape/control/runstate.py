@@ -134,6 +134,9 @@ class ControlSnapshot:
     trip: Trip | None
     recent_events: tuple[Event, ...]
     tolerance_state: str = ""
+    #: The bring-up meter's latest reading while the drive is held for the user
+    #: (:class:`liveshape.control.bringup.MeterReading`), else None.
+    bring_up: Any = None
 
 
 @dataclass(frozen=True)

@@ -158,6 +158,7 @@ class AudioRig:
     loopback : (int, int) or None, optional
         ``(out_ch, in_ch)``: a cable from a second output to a second input. The drive is copied
         to ``out_ch``; ``in_ch`` returns the true drive reference (and the loop delay).
+        ``(None, in_ch)``: ``in_ch`` receives the drive output itself (no copy is played).
     lead_blocks : int, optional
         Drive blocks produced ahead of the stream (default 4): the margin against late updates.
     stop_zero_blocks : int, optional
@@ -240,7 +241,9 @@ class AudioRig:
         # the worker's reaction and the callback period.
         self.stop_fade_frames = max(self.block_size,
                                     int(round(stop_fade_s * self.fs_hz)) - 2 * self.block_size)
-        outs = [self.drive_channel] + ([loopback[0]] if loopback else [])
+        # loopback (None, in): the drive reaches ``in`` by a cable from the drive output itself
+        outs = [self.drive_channel] + ([loopback[0]] if loopback and loopback[0] is not None
+                                       else [])
         ins = [self.control_channel] + ([loopback[1]] if loopback else [])
         if monitor_channel is not None:
             ins.append(int(monitor_channel))

@@ -168,3 +168,38 @@ def check_settings(
         except sd.PortAudioError as exc:
             raise device_error(str(exc), info, fs_hz) from None
     return info
+
+
+def check_channel_map(info: DeviceInfo, channel_map: dict[str, int | None],
+                      where: str = "rig") -> None:
+    """Refuse a channel map the device cannot satisfy, in one line naming the key.
+
+    ``channel_map`` holds ``drive_output``, ``control_input`` and ``loopback_input`` (None: no
+    loopback), counted from 1 as printed on the interface.
+
+    Raises
+    ------
+    DeviceError
+        A channel beyond the device's outputs or inputs.
+    """
+    limits = {"drive_output": ("output", info.max_output_channels),
+              "control_input": ("input", info.max_input_channels),
+              "loopback_input": ("input", info.max_input_channels)}
+    for key, (kind, have) in limits.items():
+        ch = channel_map.get(key)
+        if ch is not None and ch > have:
+            raise DeviceError(
+                f"{where}.{key} = {ch}: audio device {info.name!r} has {have} {kind} "
+                f"channel(s) (channels count from 1; see liveshape devices)")
+
+
+def audio_channels(channel_map: dict[str, int | None]) -> dict[str, Any]:
+    """:class:`liveshape.rigs.audio.AudioRig` channel arguments (from 0) for a map (from 1).
+
+    The loopback input receives a copy of the drive through a cable from the drive output, so
+    no second output carries it (``loopback=(None, input)``).
+    """
+    loop = channel_map.get("loopback_input")
+    return {"drive_channel": int(channel_map["drive_output"]) - 1,
+            "control_channel": int(channel_map["control_input"]) - 1,
+            "loopback": None if loop is None else (None, int(loop) - 1)}

@@ -115,6 +115,17 @@ class RigSelection:
     device: str | None = None
     calibration: str | None = None
     uncalibrated: bool = False
+    #: The channel map of an audio rig, channels counted from 1 as printed on the interface:
+    #: the output carrying the drive, the input of the control accelerometer and an optional
+    #: input that receives a copy of the drive (a loopback cable; None: none).
+    drive_output: int = 1
+    control_input: int = 1
+    loopback_input: int | None = None
+
+    def channel_map(self) -> dict[str, int | None]:
+        """The channel map (counted from 1) under its spec keys."""
+        return {"drive_output": self.drive_output, "control_input": self.control_input,
+                "loopback_input": self.loopback_input}
 
 
 @dataclass(frozen=True)
@@ -286,12 +297,25 @@ def _rig(data: Any, w: OverrideWhere, base_dir: Path | None) -> RigSelection:
     uncal = as_bool(d.get("uncalibrated", b.uncalibrated), w.key("uncalibrated"))
     if uncal and calibration is not None:
         raise w.key("uncalibrated").fail(uncal, "contradicts rig.calibration (give one of them)")
+    # channels count from 1, as printed on the interface
+    drive_out = as_int(d.get("drive_output", b.drive_output), w.key("drive_output"), ge=1)
+    control_in = as_int(d.get("control_input", b.control_input), w.key("control_input"), ge=1)
+    loop_in = d.get("loopback_input")
+    if loop_in is not None:
+        loop_in = as_int(loop_in, w.key("loopback_input"), ge=1)
+        if loop_in == control_in:
+            raise w.key("loopback_input").fail(
+                loop_in, f"is the control input (rig.control_input = {control_in}); the drive's "
+                "loopback needs an input of its own")
     return RigSelection(
         kind=as_choice(d.get("kind", b.kind), w.key("kind"), ("sim", "audio")),
         plant=plant,
         device=device,
         calibration=calibration,
         uncalibrated=uncal,
+        drive_output=drive_out,
+        control_input=control_in,
+        loopback_input=loop_in,
     )
 
 

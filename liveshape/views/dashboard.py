@@ -30,7 +30,7 @@ from rich.table import Table
 from rich.text import Text
 
 from liveshape.testdef.chain import G_UNIT, AccelUnit
-from liveshape.views import checktext, runtext
+from liveshape.views import bringuptext, checktext, runtext
 from liveshape.views.textformat import as_finite, mapping_rows
 from liveshape.views.textplot import ROLES, spectrum_grid
 
@@ -43,6 +43,7 @@ __all__ = [
     "print_error",
     "progress_bar",
     "run_summary",
+    "bring_up_panel",
     "safety_notice",
     "spectrum_plot",
     "synth_summary",
@@ -258,6 +259,27 @@ def dashboard(snapshot: Any, *, plot_width: int = 72, plot_height: int = 15,
     return Panel(body, border_style=PALETTE.border, padding=(0, 1))
 
 
+def bring_up_panel(snapshot: Any, units: AccelUnit = G_UNIT,
+                   level_fs: float | None = None) -> RenderableType:
+    """The bring-up hold: instruction, live meter and whether Enter is taken now.
+
+    ``level_fs`` is the held drive (default: the snapshot's drive rms); the meter is the
+    snapshot's ``bring_up`` reading (:mod:`liveshape.views.bringuptext`).
+    """
+    reading = getattr(snapshot, "bring_up", None)
+    level = snapshot.drive_rms_fs if level_fs is None else level_fs
+    lines = bringuptext.bring_up_lines(reading, level, units, bringuptext.last_refusal(
+        getattr(snapshot, "recent_events", ())))
+    text = Text()
+    for i, line in enumerate(lines):
+        if i == len(lines) - 1:
+            style = PALETTE.ok if reading is not None and reading.usable else PALETTE.alarm
+        else:
+            style = PALETTE.title if i < 2 else PALETTE.value
+        text.append(line + "\n", style=style)
+    return Panel(text, title="bring-up", border_style=PALETTE.border, padding=(0, 1))
+
+
 def _compact(snapshot: Any, inner: int | None, rows: int) -> RenderableType:
     """The compact live view: fits ``inner`` columns (80 - 4) and ``rows`` rows (24)."""
     inner = 76 if inner is None else inner
@@ -309,6 +331,10 @@ class LiveView:
         self._pending = None
         self._last_build = now
         console = self._live.console
+        if getattr(snapshot, "stage", None) == "bring_up":
+            self._live.update(bring_up_panel(snapshot, self.units), refresh=True)
+            self.builds += 1
+            return True
         shown = runtext.in_units(snapshot, self.units)
         self._live.update(dashboard(shown, width=console.width, height=console.height),
                           refresh=True)
@@ -348,8 +374,14 @@ def print_error(console: Console, message: str) -> None:
     console.print(line, soft_wrap=True)
 
 
-def safety_notice(rig_kind: str = "audio", plant: str | None = None) -> RenderableType:
+def safety_notice(rig_kind: str = "audio", plant: str | None = None, *,
+                  bring_up: bool | None = True) -> RenderableType:
     """Cautions shown before a run, in words that fit the rig in use (each fits 80 columns).
+
+    ``bring_up`` says whether the run holds a very low drive after the connection check and
+    waits for the user to raise the gain (the default on real rigs); False (``--unattended``)
+    says the gain must already be set, as no one is asked; None (``survey``, which has no
+    hold) says to set it before the start.
 
     ``rig_kind`` is ``sim`` for the simulated rig (nothing is driven: a first line says so and
     names the plant model; the cautions are for the real rig it rehearses) or anything else (a
@@ -365,7 +397,11 @@ def safety_notice(rig_kind: str = "audio", plant: str | None = None) -> Renderab
     items = (
         hearing,
         "Fasten the payload and the fixture; nothing loose on the moving part.",
-        "Turn the amplifier gain to minimum before the start; raise it when asked.",
+        ("Turn the amplifier gain to minimum; raise it when the meter asks you."
+         if bring_up else
+         "--unattended: no pause to set the amplifier gain; it must be set already."
+         if bring_up is False else
+         "Set the amplifier gain before the start: the survey does not pause for it."),
         "Keep hands, cables and tools clear of the moving parts while driving.",
         "To stop: press Ctrl-C once; the drive ramps down. Keep the amp in reach.",
         "Follow your lab's safety rules and work under qualified supervision.",
