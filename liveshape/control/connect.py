@@ -34,8 +34,10 @@ CONNECT_SEGMENTS = 16
 CONNECT_DROP_DB = 6.0
 #: The drop check's segments are this many times shorter than the control frame ...
 SUB_SEGMENT_DIVISOR = 8
-#: ... and at least this long, samples.
+#: ... and at least this long, samples ...
 SUB_SEGMENT_MIN = 256
+#: ... and long enough to hold this many lines of the band.
+PIECE_MIN_LINES = 32
 
 
 @dataclass(frozen=True)
@@ -100,7 +102,7 @@ def segment_gains_db(x: np.ndarray, y: np.ndarray, nperseg: int, band: np.ndarra
     before any fault), and the index one past each segment's last sample; a segment whose
     response is all zeros reads −300 dB.
     """
-    n = piece_length(nperseg)
+    n = piece_length(nperseg, band)
     hop = n // 2
     if x.size < n:
         return np.zeros(0), np.zeros(0, dtype=int)
@@ -110,15 +112,25 @@ def segment_gains_db(x: np.ndarray, y: np.ndarray, nperseg: int, band: np.ndarra
     return g - float(np.median(first)), ends
 
 
-def piece_length(nperseg: int) -> int:
-    """Length of the drop check's pieces, samples (see :func:`segment_gains_db`)."""
-    return max(SUB_SEGMENT_MIN, int(nperseg) // SUB_SEGMENT_DIVISOR)
+def piece_length(nperseg: int, band: np.ndarray) -> int:
+    """Length of the drop check's pieces, samples (see :func:`segment_gains_db`).
+
+    An eighth of the frame, at least :data:`SUB_SEGMENT_MIN`, and long enough that the band
+    holds :data:`PIECE_MIN_LINES` lines at the piece's resolution (a power of two, at most the
+    frame): the band power of K lines of Gaussian noise scatters as χ² with 2K DOF, 0.77 dB
+    (1σ) for K = 32 (Bendat & Piersol, Random Data, 4th ed., §8.5), so the 6 dB limit is
+    about 8σ of that scatter.
+    """
+    n_full = int(nperseg)
+    lines = max(int(np.count_nonzero(band)), 1)
+    need = int(2 ** math.ceil(math.log2(max(PIECE_MIN_LINES * n_full / lines, 1.0))))
+    return min(n_full, max(SUB_SEGMENT_MIN, n_full // SUB_SEGMENT_DIVISOR, need))
 
 
 def piece_gains_db(x: np.ndarray, y: np.ndarray, ends: np.ndarray, nperseg: int,
                    band: np.ndarray) -> np.ndarray:
     """Absolute band gain, dB, of the Hann pieces of :func:`piece_length` ending at ``ends``."""
-    n_full, n = int(nperseg), piece_length(nperseg)
+    n_full, n = int(nperseg), piece_length(nperseg, band)
     idx = np.asarray(ends)[:, None] - n + np.arange(n)[None, :]
     # the band at the short piece's resolution: lines whose frequency lies in the full band
     f_full = np.flatnonzero(band) / n_full
@@ -143,7 +155,7 @@ class ConfirmWatch:
         self.until = int(until)
         self.reference_db = float(reference_db)
         self.nperseg, self.band = int(nperseg), band
-        self.n = piece_length(nperseg)
+        self.n = piece_length(nperseg, band)
         self._x = np.zeros(0)
         self._y = np.zeros(0)
         self.covered = None  # response index (aligned drive index) looked at so far

@@ -1195,9 +1195,12 @@ def render_report(
     }
 
     def write_pdf(fh: Any) -> None:
-        with pdf_pages(fh, metadata=meta) as pdf:
-            for pg in pages:
-                pdf.savefig(pg.fig)
+        pdf = pdf_pages(fh, metadata=meta)
+        for pg in pages:
+            pdf.savefig(pg.fig)
+        # closed only when every page was written: after a failed write (a full disk) its
+        # close would fail again inside zlib; the temporary file is removed by atomic_write
+        pdf.close()
 
     pdf_path = out / PDF_NAME
     summary_path = out / "summary.txt"
