@@ -101,7 +101,12 @@ def reclaim_server_slot(name: str, timeout_s: float = 10.0) -> None:
         stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     env = dict(os.environ, JACK_DEFAULT_SERVER=name)
     subprocess.run(["jack_wait", "-w", "-t", str(int(timeout_s))], env=env, capture_output=True)
-    stop_pid(proc)
+    if proc.poll() is None:
+        os.kill(proc.pid, signal.SIGTERM)  # a clean exit unregisters it; no SIGKILL here
+        try:
+            proc.wait(timeout=timeout_s)
+        except subprocess.TimeoutExpired:
+            stop_pid(proc)
 
 
 def stop_pid(proc: subprocess.Popen) -> None:

@@ -66,10 +66,9 @@ def stack(tmp_path: Path):
                     pass
                 p.kill()
                 p.wait(timeout=10)
-        killed = server.proc.poll() == -signal.SIGKILL
         stop_pid(server.proc)
-        if killed:  # its registry slot stays taken until a server of its name starts again
-            reclaim_server_slot(server.name)
+        if server.proc.returncode == -signal.SIGKILL:  # killed here or by stop_pid's fallback:
+            reclaim_server_slot(server.name)  # its registry slot stays taken until reclaimed
 
 
 def _start_run(tmp_path: Path, name: str, env: dict) -> tuple[subprocess.Popen, Path]:
