@@ -352,21 +352,9 @@ def make_drive_file(
             psd_check=check[0],
             kurtosis_check=check[1],
         )
-        tmp_json = _temp_name(sidecar)
-        try:
-            with open(tmp_json, "w", encoding="utf-8") as fh:
-                json.dump(result.to_dict(), fh, indent=2, allow_nan=False)
-                fh.write("\n")
-            os.replace(tmp_wav, out)
-            os.replace(tmp_json, sidecar)
-        except BaseException:
-            _unlink(tmp_json)
-            raise
+        _publish(tmp_wav, out, sidecar, result)
     except BaseException as exc:
-        _unlink(tmp_wav)
-        if isinstance(exc, (OSError, getattr(sf, "LibsndfileError", OSError))):
-            raise ConfigError(f"--output = {str(out)!r} cannot be written ({exc})") from exc
-        raise
+        _write_failed(exc, sf, tmp_wav, out)
     report(1.0)
     return result
 
@@ -752,21 +740,9 @@ def make_run_drive_file(
             crest_factor=st.crest_factor,
             psd_check=check,
         )
-        tmp_json = _temp_name(sidecar)
-        try:
-            with open(tmp_json, "w", encoding="utf-8") as fh:
-                json.dump(result.to_dict(), fh, indent=2, allow_nan=False)
-                fh.write("\n")
-            os.replace(tmp_wav, out)
-            os.replace(tmp_json, sidecar)
-        except BaseException:
-            _unlink(tmp_json)
-            raise
+        _publish(tmp_wav, out, sidecar, result)
     except BaseException as exc:
-        _unlink(tmp_wav)
-        if isinstance(exc, (OSError, getattr(sf, "LibsndfileError", OSError))):
-            raise ConfigError(f"--output = {str(out)!r} cannot be written ({exc})") from exc
-        raise
+        _write_failed(exc, sf, tmp_wav, out)
     return result
 
 
@@ -811,3 +787,26 @@ def _check_out(out: Path) -> None:
         raise ConfigError(f"--output = {str(out)!r}: folder {str(folder)!r} does not exist")
     if out.is_dir():
         raise ConfigError(f"--output = {str(out)!r} is a folder, not a file")
+
+
+def _publish(tmp_wav: Path, out: Path, sidecar: Path, result: Any) -> None:
+    """Write the sidecar of the finished temporary WAV, then move both into place (the WAV
+    first: a sidecar never names a file that is not there)."""
+    tmp_json = _temp_name(sidecar)
+    try:
+        with open(tmp_json, "w", encoding="utf-8") as fh:
+            json.dump(result.to_dict(), fh, indent=2, allow_nan=False)
+            fh.write("\n")
+        os.replace(tmp_wav, out)
+        os.replace(tmp_json, sidecar)
+    except BaseException:
+        _unlink(tmp_json)
+        raise
+
+
+def _write_failed(exc: BaseException, sf: Any, tmp_wav: Path, out: Path) -> None:
+    """Remove the temporary WAV and re-raise ``exc``; a file error becomes one line."""
+    _unlink(tmp_wav)
+    if isinstance(exc, (OSError, getattr(sf, "LibsndfileError", OSError))):
+        raise ConfigError(f"--output = {str(out)!r} cannot be written ({exc})") from exc
+    raise exc
