@@ -29,7 +29,7 @@ import secrets
 from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, NoReturn
 
 import numpy as np
 
@@ -804,7 +804,7 @@ def _publish(tmp_wav: Path, out: Path, sidecar: Path, result: Any) -> None:
         raise
 
 
-def _write_failed(exc: BaseException, sf: Any, tmp_wav: Path, out: Path) -> None:
+def _write_failed(exc: BaseException, sf: Any, tmp_wav: Path, out: Path) -> NoReturn:
     """Remove the temporary WAV and re-raise ``exc``; a file error becomes one line."""
     _unlink(tmp_wav)
     if isinstance(exc, (OSError, getattr(sf, "LibsndfileError", OSError))):
