@@ -18,6 +18,13 @@
   its pre-fault rms, with the bound ``one update + abort_ramp_s`` beside it (rules that need
   ``abort_persist_updates`` consecutive updates, e.g. lines_abort, have their own bound).
 
+* ``example_*``: the figures of issue 10 on ``examples/handlebar-nav-unit.yaml`` (simulated
+  loudspeaker rig, full level extended to 60 s): median interval between drive updates,
+  start → full level, recovery after ``plant_gain`` −3 dB / +1 dB and ``resonance_shift``
+  ×1.05 at 70 s, inside full level (rms within ±0.5 dB and every line inside its alarm limit,
+  judged on the true control from the rig's analytic FRF and on the displayed control; time
+  resolution one update), time any line spends beyond its abort limit after the shift.
+
 Run with ``python -m tests.benchmarks control``.
 """
 
@@ -194,7 +201,86 @@ def _faults(report: Callable[[str, float, str], None]) -> None:
            f"s ({persist} whole updates after the one the fault fell into + abort ramp)")
 
 
+EXAMPLE = "examples/handlebar-nav-unit.yaml"
+FAULT_S = 70.0  # after full level is reached (≈ 52 s before this branch)
+
+
+def _example_run(fault: FaultSpec | None):
+    """Run the example spec on its simulated rig; per update (t_s, true, displayed, target, f)."""
+    import dataclasses
+    from pathlib import Path
+
+    from liveshape.testdef.spec import load_spec
+
+    path = Path(__file__).resolve().parents[2] / EXAMPLE
+    spec = load_spec(path)
+    spec = dataclasses.replace(spec, schedule=dataclasses.replace(spec.schedule,
+                                                                  full_level_s=60.0))
+    faults = (fault,) if fault is not None else ()
+    rig = SimRig(load_plant("loudspeaker"), spec.control.fs_hz, seed=2, faults=faults)
+    ctl = Controller(spec, rig.calibration)
+    n = spec.control.frame_length
+    recs = []
+
+    def on_update(rec, rig):
+        true = _expected_control_fs(rig, rec.f_hz, rec.drive_psd, n, spec.control.fs_hz)
+        recs.append((rec.t_s, rec.stage, rec.level_db, true, rec.control_psd, rec.target_psd,
+                     rec.f_hz))
+
+    _run(ctl, rig, BLOCK, on_update=on_update)
+    return spec, ctl, recs
+
+
+def _expected_control_fs(rig, f_hz, drive_psd, n, fs_hz):
+    global FS_HZ
+    saved, FS_HZ = FS_HZ, fs_hz
+    try:
+        return _expected_control(rig, f_hz, drive_psd, n)
+    finally:
+        FS_HZ = saved
+
+
+def _recovery_s(spec, recs, at_s: float, which: int) -> tuple[float, float]:
+    """(first time after ``at_s`` with rms within ±0.5 dB and all lines inside alarm, time any
+    line is beyond its abort limit), both from update times."""
+    ok_since = None
+    beyond = 0.0
+    prev_t = at_s
+    for t, _stage, _lvl, true, disp, target, f in recs:
+        if t <= at_s:
+            continue
+        c = true if which == 0 else disp
+        e = 10 * np.log10(c / target)
+        rms = 10 * np.log10(c.sum() / target.sum())
+        inside = abs(rms) <= 0.5 and np.all(np.abs(e) <= spec.tolerance.alarm_db_at(f))
+        if np.any(np.abs(e) > spec.tolerance.abort_db_at(f)):
+            beyond += t - prev_t
+        prev_t = t
+        if inside and ok_since is None:
+            ok_since = t
+    return (ok_since - at_s if ok_since is not None else float("nan")), beyond
+
+
+def _example(report: Callable[[str, float, str], None]) -> None:
+    spec, ctl, recs = _example_run(None)
+    t = np.array([r[0] for r in recs])
+    report("example_update_interval_median", float(np.median(np.diff(t))), "s")
+    full = [r[0] for r in recs if r[1] == "full_level" and r[2] == 0.0]
+    report("example_start_to_full_level", full[0] if full else float("nan"), "s")
+    for name, fault in (("gain_m3db", FaultSpec("plant_gain", FAULT_S, -3.0)),
+                        ("gain_p1db", FaultSpec("plant_gain", FAULT_S, 1.0)),
+                        ("shift_5pct", FaultSpec("resonance_shift", FAULT_S, 1.05))):
+        spec, ctl, recs = _example_run(fault)
+        for which, label in ((0, "true"), (1, "displayed")):
+            rec_s, beyond_s = _recovery_s(spec, recs, FAULT_S, which)
+            report(f"example_{name}_recovery_{label}", rec_s,
+                   "s (rms ±0.5 dB and all lines inside alarm)")
+            report(f"example_{name}_beyond_abort_{label}", beyond_s, "s")
+        report(f"example_{name}_status", ctl.result().status, "")
+
+
 def run(report: Callable[[str, float, str], None]) -> None:
+    _example(report)
     _convergence(report)
     _speed(report)
     _faults(report)
