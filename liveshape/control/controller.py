@@ -381,6 +381,7 @@ class Controller(FastLoop, LoopState):
         self._go_to_level(self.schedule.level_db)
 
     def _go_to_level(self, level_db: float) -> None:
+        deciding = self._decision if self.schedule.index > 0 else None
         g = 10.0 ** (level_db / 20.0)
         ramp = self._out.go_to(g)
         self._est_gain = g
@@ -392,7 +393,9 @@ class Controller(FastLoop, LoopState):
         self.schedule.start_step(self.t_s)
         self._emit("level", f"level {level_db:+.1f} dB (ramp {ramp / self.fs_hz:.2f} s)",
                    {"level_db": level_db, "step_index": self.schedule.index,
-                    "ramp_s": ramp / self.fs_hz})
+                    "ramp_s": ramp / self.fs_hz,
+                    # the DOF of the decision that took the step (None: the first level)
+                    "decision_dof": None if deciding is None else float(deciding.dof)})
 
     def _update(self, ctrl: np.ndarray) -> None:
         c = self.spec.control

@@ -37,6 +37,8 @@ from liveshape.dsp.spectral_stats import steady_exp_dof
 __all__ = ["PowerGainTracker", "log_bias_db", "n_avg_for_dof"]
 
 _DB = 10.0 / math.log(10.0)
+#: Newest segments a moved line's long average restarts from.
+RESTART_SEGMENTS = 3
 
 
 def n_avg_for_dof(dof: float, c2: np.ndarray) -> int:
@@ -118,6 +120,10 @@ class PowerGainTracker:
         self._pg = np.zeros(n_lines)  # band-sum average (kept per line, summed when read)
         self._dg = np.zeros(n_lines)
         self.restarts = 0  # line restarts so far
+        # the newest segments (P and D), from which a moved line's long average restarts
+        self._recent_p = np.zeros((RESTART_SEGMENTS, n_lines))
+        self._recent_d = np.zeros((RESTART_SEGMENTS, n_lines))
+        self._recent_i = 0
 
     @property
     def ready(self) -> bool:
@@ -146,6 +152,10 @@ class PowerGainTracker:
         a = self._sum.step()
         self._pg += a * (p - self._pg)
         self._dg += a * (d - self._dg)
+        i = self._recent_i % RESTART_SEGMENTS
+        self._recent_p[i] = p
+        self._recent_d[i] = d
+        self._recent_i += 1
 
     def _long_gain(self) -> np.ndarray:
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -174,13 +184,19 @@ class PowerGainTracker:
         return t, self._long.dof(), restarted
 
     def _restart(self, lines: np.ndarray) -> None:
-        """The long average of ``lines`` becomes the short one (its weights included)."""
+        """The long average of ``lines`` restarts from the newest ``RESTART_SEGMENTS`` segments.
+
+        The short average that saw the change still holds some of the time before it; the
+        newest few segments do not (a change is seen a few segments after it happened). The long
+        average then goes on as a stable start: weights 1/(r + 1), 1/(r + 2), ... up to 1/n_long.
+        """
         self.restarts += int(np.count_nonzero(lines))
+        r = min(RESTART_SEGMENTS, self._recent_i)
         rho = self.band_factor()
-        s, w = self._short, self._long
-        self._pl[lines] = self._ps[lines] / rho  # the band factor applies on top
-        self._dl[lines] = self._ds[lines]
-        w.k[lines] = s.k
-        w.s2[lines] = s.s2
-        w.s11[lines] = s.s11
-        w.last[lines] = s.last
+        w = self._long
+        self._pl[lines] = self._recent_p[:r, lines].mean(axis=0) / rho  # ρ applies on top
+        self._dl[lines] = self._recent_d[:r, lines].mean(axis=0)
+        w.k[lines] = r
+        w.s2[lines] = 1.0 / r
+        w.s11[lines] = (r - 1) / (r * r)
+        w.last[lines] = 1.0 / r
