@@ -78,6 +78,7 @@ from liveshape.control.connect import (
     flat_drive_psd,
     identification_drive,
 )
+from liveshape.control.fastloop import FastLoop
 from liveshape.control.loopstate import FADE_IN_S, IDENTIFY_BELOW_DB, LoopState
 from liveshape.control.runstate import RunResult
 from liveshape.control.safety import Trip
@@ -87,7 +88,7 @@ from liveshape.dsp.spectra import chi2_interval_db, welch_dof
 __all__ = ["FADE_IN_S", "IDENTIFY_BELOW_DB", "Controller", "run_offline"]
 
 
-class Controller(LoopState):
+class Controller(FastLoop, LoopState):
     """Closed-loop random-vibration controller, one block at a time.
 
     Parameters
@@ -204,13 +205,20 @@ class Controller(LoopState):
             if trip is not None:
                 self._abort(trip)
                 return
-            if self.supervisor.silent_in_last_block and self._est.active:
+            fast = self._fast and self._stage != "identify"
+            if self.supervisor.silent_in_last_block and (fast or self._est.active):
                 # a dropout shorter than the rule's window: its data must not enter an
                 # estimate (it would read as low control and pull the drive up)
-                self._restart_estimate(after=self._out.n_out)
+                if fast:
+                    self._fast_restart()
+                else:
+                    self._restart_estimate(after=self._out.n_out)
                 self._emit("dropout", "response silent: estimate restarted",
                            {"silent_samples": self.supervisor.silent_run_samples})
-            self._estimate(x, y, i0)
+            if fast:
+                self._fast_feed(y, i0)
+            else:
+                self._estimate(x, y, i0)
 
     # ------------------------------------------------------------------ connect
     def _connect(self, x: np.ndarray, y: np.ndarray, i0: int) -> None:
@@ -350,6 +358,7 @@ class Controller(LoopState):
         self._h1 = h1 * self.calibration.g_per_fs
         self._frozen = self._band & (self._coh < c.coherence_min)
         g1 = 10.0 ** (self.schedule.level_db / 20.0)
+        id_psd, id_gain, id_ctrl = self._out.psd.copy(), self._est_gain, self._est.control_psd()
         res = equalizer.initial_drive(self._target, self._h1, self._coh,
                                       max_boost_db=c.max_boost_db, coherence_min=c.coherence_min,
                                       band=self._band, ceiling_ms_fs2=self._out.ceiling_ms(g1),
@@ -363,24 +372,30 @@ class Controller(LoopState):
                     "lines_frozen": int(np.count_nonzero(self._frozen)),
                     "lines_boost_limited": res.n_step_limited, "dof": welch_dof(self._k_identify),
                     "ceiling_scale": res.ceiling_scale})
-        if c.law == "direct":
+        if self._fast:
+            self._fast_setup(id_psd, id_gain, id_ctrl, welch_dof(self._k_identify))
+        elif c.law == "direct":
             self._est = ControlEstimate(self.fs_hz, self.frame_length, self._band, self._gpf2,
                                         cross=False)
         self._set_stage("equalize", "equalize")
         self._go_to_level(self.schedule.level_db)
 
     def _go_to_level(self, level_db: float) -> None:
+        deciding = self._decision if self.schedule.index > 0 else None
         g = 10.0 ** (level_db / 20.0)
         ramp = self._out.go_to(g)
         self._est_gain = g
-        self._pool.reset()
-        self._decision = None  # decisions restart at the new level
         self.supervisor.reset_persistence()
-        self._restart_estimate(after=self._out.n_out + max(ramp, self.frame_length))
+        if not self._fast:  # the fast loop's window holds the control normalized to full level
+            self._pool.reset()
+            self._decision = None  # decisions restart at the new level
+            self._restart_estimate(after=self._out.n_out + max(ramp, self.frame_length))
         self.schedule.start_step(self.t_s)
         self._emit("level", f"level {level_db:+.1f} dB (ramp {ramp / self.fs_hz:.2f} s)",
                    {"level_db": level_db, "step_index": self.schedule.index,
-                    "ramp_s": ramp / self.fs_hz})
+                    "ramp_s": ramp / self.fs_hz,
+                    # the DOF of the decision that took the step (None: the first level)
+                    "decision_dof": None if deciding is None else float(deciding.dof)})
 
     def _update(self, ctrl: np.ndarray) -> None:
         c = self.spec.control
@@ -424,6 +439,7 @@ class Controller(LoopState):
                        f"{', '.join(verdict.pending)} is pending",
                        {"update": self._updates, "pending": list(verdict.pending)})
         self._out.set_psd(new, ceiling_hit=res.ceiling_hit)
+        self._drive_updates.append(t)
         self._restart_estimate(after=self._out.n_out + self.frame_length)
         decision = self._decide(t)
         self._record_update(t, ctrl, target_b, played, res, verdict.rms_error_db, decision,
@@ -437,6 +453,11 @@ class Controller(LoopState):
         d = judge(self._pool.psd, self._target[self._band] * g * g, alarm_db=self._alarm_db,
                   abort_db=self._abort_db, rms_alarm_db=self.spec.tolerance.rms_alarm_db,
                   dof=self._pool.dof, df_hz=self.df_hz)
+        return self._on_decision(d, t)
+
+    def _on_decision(self, d: Any, t: float) -> bool:
+        """Act on a tolerance decision ``d`` (a Judgement): alarm, full-level count, steps."""
+        g = self._est_gain
         self._decision = d
         in_tol, n_alarm, rms_err = d.in_tolerance, d.lines_outside_alarm, d.rms_error_db
         if self._stage == "full_level" and g == 1.0:

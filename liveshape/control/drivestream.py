@@ -18,6 +18,7 @@ loop needs on the drive side:
 from __future__ import annotations
 
 import math
+from collections import deque
 
 import numpy as np
 
@@ -64,6 +65,13 @@ class DriveStream:
         self.ceiling_hit = False  # the last PSD set was cut by the ceiling
         self.clipped = 0  # samples hard-limited since reset_counters
         self.peak_fs = 0.0  # largest |sample| since reset_counters
+        self._hop = frame_length // 2
+        # (first synthesis frame, full-level PSD) of every PSD set, newest last; frame j starts
+        # at drive sample j·hop (the frame before the first, j = −1, primes the overlap)
+        self._psd_log: deque[tuple[int, np.ndarray]] = deque([(-1, self.psd)], maxlen=64)
+        # (first sample, end sample, gain reached) of every gain ramp, newest last
+        self._ramp_log: deque[tuple[int, int, float]] = deque([(0, 0, 0.0)], maxlen=64)
+        self._weights: dict[int, np.ndarray] = {}
 
     # -- level ---------------------------------------------------------------------------
     @property
@@ -89,11 +97,17 @@ class DriveStream:
         n = 0 if g_now <= 0 else int(math.ceil(abs(20 * math.log10(gain / g_now))
                                                 * self.fs_hz / self.rate_db_s))
         self.synth.set_gain(gain, rate_db_s=self.rate_db_s)
+        self._log_ramp(gain)
         return n
 
     def fade(self, gain: float, duration_s: float) -> None:
         """Raised-cosine fade to ``gain`` (to or from zero) over ``duration_s``."""
         self.synth.set_gain(gain, duration_s=duration_s)
+        self._log_ramp(gain)
+
+    def _log_ramp(self, gain: float) -> None:
+        end = self.n_out + self.synth.ramp_remaining_samples
+        self._ramp_log.append((self.n_out, end, float(gain)))
 
     # -- spectrum ------------------------------------------------------------------------
     def ceiling_ms(self, gain: float) -> float:
@@ -105,6 +119,10 @@ class DriveStream:
         self.psd = np.array(psd, dtype=float)
         self.ceiling_hit = bool(ceiling_hit)
         self.synth.set_psd(self.psd)
+        first = -(-self.n_out // self._hop)  # the next frame made
+        if self._psd_log[-1][0] == first:
+            self._psd_log.pop()
+        self._psd_log.append((first, self.psd))
 
     def rescale_for(self, gain: float) -> float:
         """Scale the PSD down so that it fits the ceiling at ``gain``; returns the factor."""
@@ -120,6 +138,55 @@ class DriveStream:
         """The PSD on ``band`` as played at ``gain`` (default: the current gain), FS²/Hz."""
         g = self.synth.gain if gain is None else gain
         return self.psd[band] * g * g
+
+    # -- what a segment of the drive held ------------------------------------------------
+    def segment_psd(self, start: int, band: np.ndarray) -> np.ndarray:
+        """Expected full-level PSD on ``band`` of the drive samples ``start .. start + N − 1``.
+
+        A Hann-windowed segment of the overlap-added stream sees the (independent) synthesis
+        frames overlapping it, each in proportion to the product of the two windows' powers,
+        ``w_j = Σ_t h²(t − start) s²(t − j·hop) / Σ_t h²`` (the weights sum to 1 because the
+        sine window is power-complementary): the expected periodogram is ``Σ_j w_j D_j`` for
+        PSDs that are smooth over the window's kernel (Welch 1967). The level (gain) is not
+        included: see :meth:`segment_gain`.
+        """
+        hop = self._hop
+        q, o = divmod(int(start), hop)
+        w = self._weights.get(o)
+        if w is None:
+            w = self._weights[o] = self._frame_weights(o)
+        out = np.zeros(int(np.count_nonzero(band)))
+        for r in range(4):
+            if w[r] > 0.0:
+                out += w[r] * self._frame_psd(q - 1 + r)[band]
+        return out
+
+    def _frame_psd(self, j: int) -> np.ndarray:
+        for first, psd in reversed(self._psd_log):
+            if first <= j:
+                return psd
+        return self._psd_log[0][1]
+
+    def _frame_weights(self, o: int) -> np.ndarray:
+        n, hop = 2 * self._hop, self._hop
+        t = np.arange(n)
+        h2 = (0.5 - 0.5 * np.cos(2 * np.pi * t / n)) ** 2
+        s2 = self.synth.window ** 2
+        w = np.zeros(4)
+        for r in range(4):
+            k = t - ((r - 1) * hop - o)  # sample index inside frame q − 1 + r
+            ok = (k >= 0) & (k < n)
+            w[r] = float(np.dot(h2[ok], s2[k[ok]]))
+        return w / float(h2.sum())
+
+    def segment_gain(self, start: int, length: int) -> float | None:
+        """The gain over drive samples ``start .. start + length − 1``; None if it moved."""
+        end = start + length
+        for a, b, g in reversed(self._ramp_log):
+            if a >= end:
+                continue  # began after the span
+            return g if b <= start else None  # None: the gain moved inside the span
+        return None
 
     # -- samples -------------------------------------------------------------------------
     def reset_counters(self) -> None:

@@ -17,6 +17,7 @@ import numpy as np
 
 from liveshape.control.connect import ConnectionCheck, ConnectStage
 from liveshape.control.drivestream import DriveStream, ResponseQueue
+from liveshape.control.fastloop import fast_update_segments
 from liveshape.control.runplan import check_max_step, max_step_s
 from liveshape.control.runstate import ControlSnapshot, Event, RunResult, UpdateRecord, frozen_array
 from liveshape.control.safety import LevelSchedule, Supervisor, Trip, band_sum_dof
@@ -96,6 +97,13 @@ class LoopState:
         self._k_update = segments_for_dof(self._update_dof_target)
         self._k_identify = segments_for_dof(float(c.target_dof))
         self._nu_update = welch_dof(self._k_update)
+        #: the fast loop (control.loop = fast): a drive update every ``_m_update`` segments, and
+        #: an identification of update DOF only (the loop refines the plant estimate at once)
+        self._fast = getattr(c, "loop", "block") == "fast"
+        self._m_update = fast_update_segments(getattr(c, "update_interval_s", 0.35), fs, self._hop)
+        if self._fast:
+            self._k_identify = self._k_update
+        self._drive_updates: list[float] = []  # run time of every drive update, s
         self._pool = DecisionPool(float(c.target_dof), self._nu_update, c.averaging)
         self._settle = self._hop  # plant settling after a drive change, samples
         self._max_lag = max(1, int(round(max_delay_s * fs)))
@@ -191,7 +199,10 @@ class LoopState:
     @property
     def update_interval_s(self) -> float:
         """Run time between two equalizer updates, s: the drive change's transition (one
-        frame), plant settling (half a frame) and loop delay, then the update's segments."""
+        frame), plant settling (half a frame) and loop delay, then the update's segments (the
+        fast loop: ``control.update_interval_s`` rounded to whole segments)."""
+        if self._fast:
+            return self._m_update * self._hop / self.fs_hz
         n = self.frame_length + self._settle + (self._delay or 0) + (self._k_update + 1) * self._hop
         return n / self.fs_hz
 

@@ -313,6 +313,16 @@ class RandomPhaseSynth:
         return self._ramp.ramping
 
     @property
+    def ramp_remaining_samples(self) -> int:
+        """Samples until the gain reaches its target (0 when steady)."""
+        return self._ramp.remaining_samples()
+
+    @property
+    def window(self) -> np.ndarray:
+        """The synthesis window (sine, power-complementary at 50 % overlap), a copy."""
+        return self._window.copy()
+
+    @property
     def stats(self) -> SynthStats:
         """Statistics of every sample produced so far (after gain and clipping)."""
         m = self._moments

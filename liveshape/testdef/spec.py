@@ -81,6 +81,10 @@ class ControlSettings:
     max_boost_db: float = 20.0
     coherence_min: float = 0.5
     law: str = "direct"
+    #: ``fast``: a drive update every ``update_interval_s`` on running averages that follow the
+    #: drive (docs/methods.md, "Fast update loop"); ``block``: one update per fresh estimate.
+    loop: str = "block"
+    update_interval_s: float = 0.35
 
     @property
     def df_hz(self) -> float:
@@ -166,6 +170,8 @@ _RULES: dict[str, dict[str, tuple[str, Any]]] = {
         "max_boost_db": ("float", {"ge": 0}),
         "coherence_min": ("float", {"ge": 0, "le": 1}),
         "law": ("choice", ("direct", "blend")),
+        "loop": ("choice", ("fast", "block")),
+        "update_interval_s": ("float", {"gt": 0, "le": 10}),
     },
     "safety": {
         "drive_rms_max_fs": ("float", {"gt": 0, "le": 1}),

@@ -1,0 +1,248 @@
+"""The fast loop's transitions: every Welch segment tracked, a drive update every few segments.
+
+Pure. :class:`FastLoop` is a base of :class:`liveshape.control.controller.Controller`; it runs the
+``equalize`` and ``full_level`` stages when ``control.loop`` is ``fast`` (docs/methods.md,
+"Fast update loop"). Every new control segment (one hop, 85 ms at 8192 points and 48 kHz):
+
+1. is paired with the expected drive PSD and the level it was played at
+   (:meth:`~liveshape.control.drivestream.DriveStream.segment_psd`, ``segment_gain``); a segment
+   during a level ramp counts for the fast rms rule only;
+2. goes through the per-segment safety rules (rms above target, loop open against the identified
+   FRF);
+3. enters the plant estimate (:class:`~liveshape.control.tracking.PowerGainTracker`), the decision
+   window (a linear average of the last segments whose DOF reaches ``control.target_dof``, the
+   control normalized to full level) and the current safety block.
+
+Every ``update_interval_s`` the drive is updated from the plant estimate with the direct law,
+``D ← D (R / (T̂ D))^γ``, limited per line by ``max_step_db`` and by the ceiling. Then, once the
+window holds its DOF and the level is steady, the decision: tolerance, alarm and the level
+schedule (a step is taken after ``hold_s`` in tolerance at the new level; the drive is already
+pre-scaled, the level moves by the synthesizer's gain only).
+
+Safety blocks are independent: ``update_dof`` DOF of consecutive clean segments, a new block after
+each. Each goes through every rule of :class:`~liveshape.control.safety.Supervisor` (persistence
+counts blocks, as the block loop counts updates), is the run's update record, and at full level
+enters the full-level average of the verdict.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from liveshape.control import equalizer
+from liveshape.control.stages import judge, segments_for_dof
+from liveshape.control.tracking import PowerGainTracker, log_bias_db, n_avg_for_dof
+from liveshape.dsp.segments import SegmentPowers
+from liveshape.dsp.spectra import welch_dof
+from liveshape.dsp.spectral_stats import overlap_correlation_sq
+
+__all__ = ["CHANGE_DB", "SHORT_SEGMENTS", "SUM_SEGMENTS", "DecisionWindow", "FastLoop",
+           "fast_update_segments"]
+
+#: Averaging numbers (segments) of the short per-line and band-sum averages.
+SHORT_SEGMENTS = 6
+SUM_SEGMENTS = 3
+#: A line's short and long estimates this far apart (dB) restart its long average.
+CHANGE_DB = 4.0
+
+
+class DecisionWindow:
+    """Linear average of the last ``k`` rows pushed (a ring), with its Welch DOF."""
+
+    def __init__(self, k: int, n_lines: int) -> None:
+        self.k = int(k)
+        self._rows = np.zeros((self.k, n_lines))
+        self._sum = np.zeros(n_lines)
+        self._n = 0
+        self._i = 0
+        self.dof = welch_dof(self.k)
+
+    @property
+    def full(self) -> bool:
+        return self._n >= self.k
+
+    def push(self, row: np.ndarray) -> None:
+        old = self._rows[self._i]
+        self._sum -= old
+        old[:] = row
+        self._sum += row
+        self._i = (self._i + 1) % self.k
+        self._n += 1
+        if self._i == 0:  # refresh the running sum once per turn (no drift of round-off)
+            self._sum = self._rows.sum(axis=0)
+
+    @property
+    def psd(self) -> np.ndarray:
+        return self._sum / min(self._n, self.k)
+
+
+class FastLoop:
+    """Equalize and full level with the fast loop (mixed into the controller)."""
+
+    def _fast_setup(self, id_psd: np.ndarray, id_gain: float, id_control: np.ndarray,
+                    id_dof: float) -> None:
+        """Start the fast estimators after identification.
+
+        ``id_control`` (g²/Hz, band) was measured with the full-level drive ``id_psd`` played at
+        ``id_gain``: the plant estimate starts from it.
+        """
+        c = self.spec.control
+        band, n = self._band, self.frame_length
+        c2 = overlap_correlation_sq("hann", 0.5, n)
+        n_lines = int(np.count_nonzero(band))
+        self._tracker = PowerGainTracker(
+            n_lines, n_long=n_avg_for_dof(float(c.target_dof), c2), n_short=SHORT_SEGMENTS,
+            n_sum=SUM_SEGMENTS, c2=c2, change_db=CHANGE_DB)
+        self._tracker.seed(id_control, id_psd[band] * id_gain**2, id_dof)
+        self._segs = SegmentPowers(self.fs_hz, n, band)
+        self._seg_from = self._out.n_out + (self._delay or 0)  # response index of segment 0
+        self._window = DecisionWindow(segments_for_dof(float(c.target_dof)), n_lines)
+        self._h2_id = np.abs(self._h1[band]) ** 2  # identified |H|², g²/FS²
+        self._blk = np.zeros(n_lines)
+        self._blk_d = np.zeros(n_lines)
+        self._blk_n = 0
+        self._blk_full = True
+        self._since_update = 0
+        self._fast_res: equalizer.DriveResult | None = None
+        self._last_clean = False
+
+    def _fast_restart(self) -> None:
+        """Drop the partial segments (a dropout): segments count again from the next sample."""
+        self._segs.reset()
+        self._seg_from = self._resp.next
+        self._since_update = 0
+
+    def _fast_feed(self, y: np.ndarray, i0: int) -> None:
+        j = self._seg_from - i0
+        if j >= y.size:
+            return
+        self._segs.push(y[max(0, j):])
+        first, rows = self._segs.pop()
+        hop, n, delay = self._hop, self.frame_length, self._delay or 0
+        for r in range(rows.shape[0]):
+            start = self._seg_from + (first + r) * hop
+            self._fast_segment(rows[r] * self._gpf2, start - delay, (start + n) / self.fs_hz)
+            if self._status != "running":
+                return
+
+    def _fast_segment(self, p: np.ndarray, drive_start: int, t: float) -> None:
+        """One control segment ``p`` (g²/Hz) answering the drive from ``drive_start`` on."""
+        out, band = self._out, self._band
+        g = out.segment_gain(drive_start, self.frame_length)
+        self._last_clean = g is not None and g == out.gain_target
+        if g is None:  # a level ramp: only the rms rule, against the level it heads to
+            g_to = out.gain_target
+            trip = self.supervisor.check_segment(
+                t, control_sum=float(p.sum()), target_sum=self._target_sum * g_to**2,
+                band_dof=self._seg_band_dof)
+            if trip is not None:
+                self._abort(trip)
+            return
+        if g <= 0.0:
+            return
+        d_full = out.segment_psd(drive_start, band)
+        g2 = g * g
+        trip = self.supervisor.check_segment(
+            t, control_sum=float(p.sum()), target_sum=self._target_sum * g2,
+            band_dof=self._seg_band_dof, predicted_sum=float(np.dot(self._h2_id, d_full)) * g2)
+        if trip is not None:
+            self._abort(trip)
+            return
+        self._tracker.push(p, d_full * g2)
+        norm = p / g2
+        self._window.push(norm)
+        self._blk += norm
+        self._blk_d += d_full
+        self._blk_n += 1
+        self._blk_full &= self._stage == "full_level" and g == 1.0
+        if self._blk_n >= self._k_update:
+            self._fast_block(t)
+            if self._status != "running":
+                return
+        self._since_update += 1
+        if self._since_update >= self._m_update:
+            self._since_update = 0
+            self._fast_update(t)
+
+    def _fast_update(self, t: float) -> None:
+        """A drive update from the plant estimate, then a decision when one is due."""
+        c, band = self.spec.control, self._band
+        gain_t, dof, restarted = self._tracker.estimate()
+        if restarted.any():
+            self._emit("track", f"{int(np.count_nonzero(restarted))} lines moved: their "
+                       "estimate restarted", {"lines_restarted": int(np.count_nonzero(restarted)),
+                                              "f_hz": [float(f) for f in self.f_hz[restarted]]})
+        old = self._out.psd
+        pred = np.zeros(old.size)
+        # the control this drive gives at full level, with the mean dB bias of the estimate
+        # removed (its DOF per line)
+        pred[band] = gain_t * old[band] * 10.0 ** (-log_bias_db(dof) / 10.0)
+        if restarted.any():
+            # a line that moved is corrected in full at once (gain 1 instead of γ, still within
+            # max_step_db): R (C/R)^(1/γ) makes the law's step γ·log(R/·) equal to log(R/C)
+            lines = np.flatnonzero(band)[restarted]
+            r = self._target[lines]
+            pred[lines] = r * (pred[lines] / r) ** (1.0 / self._gamma)
+        g = self._est_gain
+        res = equalizer.update_drive(
+            old, self._target, pred, gain=self._gamma, max_step_db=c.max_step_db, band=band,
+            ceiling_ms_fs2=self._out.ceiling_ms(g), df_hz=self.df_hz, frozen=self._frozen,
+            law="direct")
+        new = res.drive_psd
+        if self._pending:
+            new = np.minimum(new, old)
+        self._out.set_psd(new, ceiling_hit=res.ceiling_hit)
+        self._fast_res = res
+        self._drive_updates.append(t)
+        if self._window.full and self._last_clean and not self._out.ramping:
+            d = judge(self._window.psd * g * g, self._target[band] * g * g,
+                      alarm_db=self._alarm_db, abort_db=self._abort_db,
+                      rms_alarm_db=self.spec.tolerance.rms_alarm_db, dof=self._window.dof,
+                      df_hz=self.df_hz)
+            self._on_decision(d, t)
+
+    def _fast_block(self, t: float) -> None:
+        """An independent safety block: every rule, the update record, the full-level average."""
+        band, g = self._band, self._est_gain
+        k = self._blk_n
+        ctrl_norm = self._blk / k
+        ctrl, target_b = ctrl_norm * g * g, self._target[band] * g * g
+        played = self._out.played_psd(band, g)
+        predicted = self._h2_id * (self._blk_d / k) * g * g  # identified FRF, drive the block saw
+        at_limit = self._out.ceiling_hit or self._out.clipped > 0
+        verdict = self.supervisor.check_update(
+            t, control_psd=ctrl, target_psd=target_b, dof=self._nu_update,
+            abort_db=self._abort_db, predicted_psd=predicted, drive_at_limit=at_limit)
+        self._updates += 1
+        full = self._blk_full
+        self._blk = np.zeros_like(self._blk)
+        self._blk_d = np.zeros_like(self._blk_d)
+        self._blk_n, self._blk_full = 0, True
+        self._out.reset_counters()
+        if verdict.trip is not None:
+            self._record_update(t, ctrl, target_b, played, None, verdict.rms_error_db, None,
+                                applied=False)
+            self._abort(verdict.trip)
+            return
+        if verdict.pending and not self._pending:
+            self._emit("hold", f"drive may only go down while {', '.join(verdict.pending)} is "
+                       "pending", {"update": self._updates, "pending": list(verdict.pending)})
+        self._pending = tuple(verdict.pending)
+        if full:
+            self._full.push(ctrl_norm, self._nu_update, t)
+        d = self._decision
+        self._record_update(t, ctrl, target_b, played, self._fast_res, verdict.rms_error_db,
+                            None if d is None else d.in_tolerance, applied=not verdict.pending)
+
+    @property
+    def drive_update_times_s(self) -> tuple[float, ...]:
+        """Run times of the drive updates so far, s (fast loop; the block loop: its updates)."""
+        return tuple(self._drive_updates)
+
+
+
+def fast_update_segments(update_interval_s: float, fs_hz: float, hop: int) -> int:
+    """Segments between two drive updates for a wanted interval (at least 1)."""
+    return max(1, int(round(update_interval_s * fs_hz / hop)))
+
+

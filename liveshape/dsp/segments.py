@@ -1,0 +1,96 @@
+"""Welch segment periodograms one by one, for estimators that weight each segment themselves.
+
+Pure numpy/scipy. :class:`SegmentPowers` cuts a stream into the same segments as
+:class:`liveshape.dsp.spectra.PsdAverager` (Hann by default, 50 % overlap, the mean of each
+segment removed, scaled to a one-sided density) and hands out each segment's periodogram on
+chosen lines instead of their average. The fast control loop weights them by the drive that
+produced them (:mod:`liveshape.control.tracking`).
+
+References
+----------
+.. [1] P. D. Welch, "The use of fast Fourier transform for the estimation of power spectra: a
+   method based on time averaging over short, modified periodograms", IEEE Trans. Audio
+   Electroacoust. AU-15(2), 70-73, 1967.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from liveshape.dsp.welch_stream import WelchStream
+
+__all__ = ["SegmentPowers"]
+
+
+class SegmentPowers(WelchStream):
+    """Periodogram of every complete segment of a stream on the lines ``lines`` (units²/Hz).
+
+    Segment ``i`` (counted from 0 since the last :meth:`reset`) covers samples
+    ``i·hop .. i·hop + nperseg − 1`` of the stream pushed since then. The linear average of the
+    periodograms :meth:`pop` returns equals :func:`scipy.signal.welch` of the same samples on
+    those lines (to rounding).
+
+    Parameters
+    ----------
+    fs_hz : float
+        Sampling rate in Hz.
+    nperseg : int
+        Segment length in samples (hop ``nperseg − nperseg // 2``).
+    lines : ndarray of bool
+        Mask over the ``nperseg // 2 + 1`` lines to return (DC and Nyquist are not scaled
+        specially: leave them out).
+    window : str or tuple, optional
+        Window for :func:`scipy.signal.get_window` (default ``"hann"``).
+    """
+
+    def __init__(self, fs_hz: float, nperseg: int, lines: np.ndarray, *,
+                 window: Any = "hann") -> None:
+        super().__init__(fs_hz, nperseg, (0,), averaging="linear", n_avg=None, window=window)
+        self._lines = np.flatnonzero(np.asarray(lines, dtype=bool))
+        if self._lines.size and (self._lines[0] == 0 or self._lines[-1] == self._n_lines - 1):
+            raise ValueError("SegmentPowers: DC and Nyquist are not supported lines")
+        self._done: list[np.ndarray] = []
+        self._first = 0  # index of the first segment not yet popped
+
+    @property
+    def hop(self) -> int:
+        """Samples between the starts of two segments."""
+        return self._hop
+
+    def reset(self) -> None:
+        """Forget every sample and segment; the next segment is number 0 again."""
+        self._reset_stream()
+        self._done.clear()
+        self._first = 0
+
+    def push(self, x: np.ndarray) -> None:
+        """Add a block of samples (1-D, any length); complete segments are transformed."""
+        x = np.asarray(x, dtype=float)
+        if x.ndim != 1:
+            raise ValueError(f"SegmentPowers: push needs a 1-D block, got shape {x.shape}")
+        if x.size:
+            self._feed((x,))
+            self._flush()
+
+    def pop(self) -> tuple[int, np.ndarray]:
+        """``(i, p)``: index of the first segment returned and their periodograms.
+
+        ``p`` has one row per segment completed since the last call (possibly none) and one
+        column per selected line, in units²/Hz.
+        """
+        i = self._first
+        if not self._done:
+            return i, np.empty((0, self._lines.size))
+        p = self._done[0] if len(self._done) == 1 else np.concatenate(self._done)
+        self._done.clear()
+        self._first += p.shape[0]
+        return i, p
+
+    def _accumulate(self, spectra: np.ndarray, coef: float | np.ndarray) -> None:
+        sel = spectra[0][:, self._lines]
+        p = sel.real * sel.real
+        p += sel.imag * sel.imag
+        p *= self._scale
+        self._done.append(p)
