@@ -12,7 +12,10 @@ least-squares line amplitude is ``μ̂ = Σ U_k y_k / Σ U_k²`` and
 
 With no line at ``f`` and a spectrum that is smooth over ``±W = ±NW·fs/n``, ``F`` follows the
 F distribution with (2, 2K − 2) degrees of freedom, so ``F > F_{2,2K−2}(1 − p)`` has false-alarm
-probability ``p`` per tested frequency (docs/methods.md, "Lines not caused by the drive").
+probability ``p`` per tested frequency in ``W ≤ f ≤ fs/2 − W`` (docs/methods.md, "Lines not
+caused by the drive"). :func:`find_extraneous_lines` searches a zero-padded grid (a line between
+Fourier frequencies loses its F on the plain grid) with the threshold set so that a block
+without lines gives at most ``false_per_block`` false findings on average.
 
 A line is *not caused by the drive* when the control block has a significant line at ``f`` and
 the drive block does not (a sine-on-random tone is in the drive, so it is not flagged).
@@ -22,6 +25,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 from scipy import signal, stats
@@ -52,8 +56,12 @@ def f_threshold(p: float, n_tapers: int) -> float:
     return float(stats.f.isf(p, 2, 2 * n_tapers - 2))
 
 
+@lru_cache(maxsize=8)
 def _tapers(n: int, nw: float, k: int) -> np.ndarray:
-    return np.atleast_2d(signal.windows.dpss(n, nw, Kmax=k, norm=2))
+    """The ``k`` unit-energy Slepian tapers, ``(k, n)``, read-only (cached: blocks repeat)."""
+    v = np.atleast_2d(signal.windows.dpss(n, nw, Kmax=k, norm=2))
+    v.flags.writeable = False
+    return v
 
 
 def _n_tapers(nw: float, n_tapers: int | None) -> int:
