@@ -148,8 +148,10 @@ def build_sim_rig(spec: TestSpec, seed: int | None) -> tuple[Any, ChainCalibrati
     from liveshape.rigs.sim import SimRig
 
     plant = load_plant(spec.rig.plant)
-    rig = SimRig(plant, spec.control.fs_hz, seed=seed, faults=spec.faults)
+    rig = SimRig(plant, spec.control.fs_hz, seed=seed, faults=spec.faults, hum=spec.rig.hum)
     mapping = {"kind": "sim", "plant": plant_to_mapping(plant)}
+    if spec.rig.hum is not None:
+        mapping["hum"] = spec.rig.hum.as_mapping()
     return rig, rig.calibration, mapping
 
 

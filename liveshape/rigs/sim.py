@@ -12,8 +12,13 @@ Signal path, per sample::
       -> shaker + payload (currents, excursion, acceleration at the control point)
       -> Xmax compression -> /g0 [sensor_detached: 0] -> [sensor_gain]
       -> accelerometer high-pass -> x mV/g / in_v_per_fs -> card in high-pass
-      -> + sensor noise [x sensor_gain] + card noise [+ noise_burst] -> clip ±1 FS
+      -> + sensor noise [x sensor_gain] + card noise [+ noise_burst] [+ hum] -> clip ±1 FS
       -> [dropout: 0]
+
+Hum (optional, :class:`liveshape.rigs.hum.HumSource`): mains hum is electrical pickup at the card
+input, so it is added there, after the sensor chain, in g converted to FS with the rig's
+calibration (``fs_per_g``); it stays on when the sensor is detached, goes with a dropout, and
+has random start phases from its own seeded stream.
 
 Noise: the sensor's and the card's white noise are added together at the card input as one
 seeded white Gaussian source (the couplings' effect on sensor noise below their few-hertz corners
@@ -81,6 +86,7 @@ from liveshape.rigs.faults import (
     fault_state,
     schedule_faults,
 )
+from liveshape.rigs.hum import HumSource, HumSpec
 from liveshape.rigs.modal import ModalSystem, highpass_sos, sos_freqz, sosfilt_inplace
 from liveshape.rigs.plant import IdealShaker, Plant
 from liveshape.rigs.plantmodel import (
@@ -160,6 +166,8 @@ class SimRig:
     monitors : iterable of str
         Names of payload resonances to read with a monitor accelerometer (see the module
         docstring); needs ``payload.control_point: table``.
+    hum : HumSpec or None
+        Mains hum added to the control response (see the module docstring); None: no hum.
 
     Raises
     ------
@@ -168,7 +176,8 @@ class SimRig:
     """
 
     def __init__(self, plant: Plant, fs_hz: float, *, seed: int | None = None,
-                 faults: Iterable[Any] = (), monitors: Iterable[str] = ()) -> None:
+                 faults: Iterable[Any] = (), monitors: Iterable[str] = (),
+                 hum: HumSpec | None = None) -> None:
         fs = float(fs_hz)
         if not (math.isfinite(fs) and fs > 0):
             raise ConfigError(f"sim: fs_hz = {fs_hz!r} must be a finite number > 0")
@@ -218,6 +227,9 @@ class SimRig:
         self._x_last = 0.0
         self._i_peak = 0.0
         self._setup_monitors(tuple(monitors), seed)
+        # Hum has a stream of its own: a hum-free rig draws exactly what it drew before.
+        self._hum = None if hum is None else HumSource(
+            hum, fs, np.random.SeedSequence(seed, spawn_key=(8,)))
 
     def _setup_monitors(self, names: tuple[str, ...], seed: int | None) -> None:
         res = self._plant.payload.resonances
@@ -561,6 +573,8 @@ class SimRig:
             self._add_noise(r, self._rng_noise, math.sqrt(noise_var), noise)
         if st.burst_var > 0:
             self._add_noise(r, self._rng_burst, math.sqrt(st.burst_var), noise)
+        if self._hum is not None:
+            r += self._hum.block(n) * self.calibration.fs_per_g
         r = self._clip(r, 1.0, "input")
         if st.dropout:
             r = np.zeros(n)

@@ -36,6 +36,7 @@ from liveshape.testdef.fault_spec import (  # re-exported: FAULT_KINDS, FaultSpe
     fault_from_mapping,
     parse_fault,
 )
+from liveshape.testdef.hum_spec import HumSpec, hum_from_mapping
 from liveshape.testdef.overrides import COMMAND_LINE, OverrideWhere, did_you_mean
 from liveshape.testdef.profilefile import profile_from_points, read_profile_csv
 from liveshape.testdef.tolerance import Tolerance, tolerance_from_mapping
@@ -125,6 +126,8 @@ class RigSelection:
     drive_output: int = 1
     control_input: int = 1
     loopback_input: int | None = None
+    #: Mains hum the simulated rig adds to the control input (None: none); sim only.
+    hum: HumSpec | None = None
 
     def channel_map(self) -> dict[str, int | None]:
         """The channel map (counted from 1) under its spec keys."""
@@ -313,8 +316,15 @@ def _rig(data: Any, w: OverrideWhere, base_dir: Path | None) -> RigSelection:
             raise w.key("loopback_input").fail(
                 loop_in, f"is the control input (rig.control_input = {control_in}); the drive's "
                 "loopback needs an input of its own")
+    kind = as_choice(d.get("kind", b.kind), w.key("kind"), ("sim", "audio"))
+    hum = d.get("hum")
+    if hum is not None:
+        hum = hum_from_mapping(hum, w.key("hum"))
+        if kind != "sim":
+            raise w.key("hum").fail(hum.as_mapping(), f"simulates mains hum on the simulated "
+                                    f"rig only (rig.kind = {kind})")
     return RigSelection(
-        kind=as_choice(d.get("kind", b.kind), w.key("kind"), ("sim", "audio")),
+        kind=kind,
         plant=plant,
         device=device,
         calibration=calibration,
@@ -322,6 +332,7 @@ def _rig(data: Any, w: OverrideWhere, base_dir: Path | None) -> RigSelection:
         drive_output=drive_out,
         control_input=control_in,
         loopback_input=loop_in,
+        hum=hum,
     )
 
 
@@ -515,7 +526,8 @@ def spec_to_mapping(spec: TestSpec) -> dict[str, Any]:
         "schedule": {**_plain(spec.schedule), "steps_db": list(spec.schedule.steps_db)},
         "control": _plain(spec.control),
         "safety": _plain(spec.safety),
-        "rig": _plain(spec.rig),
+        "rig": {**_plain(spec.rig),
+                "hum": None if spec.rig.hum is None else spec.rig.hum.as_mapping()},
         "faults": [_plain(x) for x in spec.faults],
         "seed": spec.seed,
     }
