@@ -367,6 +367,7 @@ def run_session(
     record_signals: bool = True,
     start_events: Sequence[tuple[str, str, dict[str, Any]]] = (),
     bring_up: Any = None,
+    view_hz: float = 4.0,
 ) -> SessionResult:
     """Run one test on the rig the spec selects and leave a record folder.
 
@@ -397,6 +398,8 @@ def run_session(
         Hold the drive at the connection level after the connection check until this flag is
         set by the user's confirmation (see :mod:`liveshape.control.bringup`); None: no hold.
         The hold is paced in real time even with ``fast``.
+    view_hz : float
+        Most ``on_snapshot`` calls per second of wall-clock time (a large value: every block).
     """
     if spec.rig.kind != "sim":
         raise ConfigError(
@@ -416,7 +419,7 @@ def run_session(
     for kind, message, data in start_events:
         recorder.event(0.0, kind, message, data)
     with recorder, sigterm_stops(stop):
-        loop = RunLoop(controller, recorder, on_snapshot=on_snapshot)
+        loop = RunLoop(controller, recorder, on_snapshot=on_snapshot, view_hz=view_hz)
         result = loop.run_sim(rig, block_size=block_size, fast=fast, stop=stop)
         rig_figures = {"kind": "sim", "plant": spec.rig.plant, **dataclasses.asdict(rig.status)}
         session = SessionResult(

@@ -518,9 +518,11 @@ class Controller(FastLoop, LoopState):
         if self._status == "running" and self._stage in ("equalize", "full_level"):
             if self._stage == "equalize" and self.schedule.at_last_step and settled_full:
                 self._set_stage("full_level", "full level: counting test time")
+                self._fast_stage_change(self.t_s, completed=False)
             if self._stage == "full_level":
                 self.schedule.count_full_level(n / self.fs_hz, settled=settled_full)
                 if self.schedule.complete:
+                    self._fast_stage_change(self.t_s, completed=True)
                     self._status = "completed"
                     self._begin_ramp_down(self._end_ramp_s)
         if self._stage == "ramp_down" and self._out.silent:
