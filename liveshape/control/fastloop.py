@@ -86,11 +86,14 @@ class FastLoop:
     """Equalize and full level with the fast loop (mixed into the controller)."""
 
     def _fast_setup(self, id_psd: np.ndarray, id_gain: float, id_control: np.ndarray,
-                    id_dof: float) -> None:
+                    id_dof: float, *, window_seed: int = 0) -> None:
         """Start the fast estimators after identification.
 
         ``id_control`` (g²/Hz, band) was measured with the full-level drive ``id_psd`` played at
-        ``id_gain``: the plant estimate starts from it.
+        ``id_gain``: the plant estimate starts from it. With ``window_seed`` > 0 (a confirmed warm
+        start: the identification played the drive the loop starts with) it also counts as that
+        many segments of the decision window (its linear average, so the window's mean is the
+        linear average of all the segments it then holds).
         """
         c = self.spec.control
         band, n = self._band, self.frame_length
@@ -103,6 +106,8 @@ class FastLoop:
         self._segs = SegmentPowers(self.fs_hz, n, band)
         self._seg_from = self._out.n_out + (self._delay or 0)  # response index of segment 0
         self._window = DecisionWindow(segments_for_dof(float(c.target_dof)), n_lines)
+        for _ in range(min(window_seed, self._window.k - 1)):
+            self._window.push(id_control / id_gain**2)
         self._h2_id = np.abs(self._h1[band]) ** 2  # identified |H|², g²/FS²
         self._blk = np.zeros(n_lines)
         self._blk_d = np.zeros(n_lines)
