@@ -314,6 +314,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
                                    "the profile is infeasible on this rig; run on the user's "
                                    "--accept-infeasible", accepted)]
     kwargs["record_signals"] = args.record == "full"
+    if args.warm_start is not None:
+        kwargs["warm_start"] = args.warm_start
     if hold:
         kwargs["bring_up"] = _enter_flag()
     if args.json:
@@ -944,6 +946,10 @@ def build_parser() -> argparse.ArgumentParser:
                       "must be a terminal")
     hold.add_argument("--bring-up", action="store_true",
                       help="simulated rig: rehearse the bring-up hold (meter, Enter to go on)")
+    r.add_argument("--warm-start", metavar="RUN_DIR",
+                   help="start from the equalized drive of an earlier completed run on the same "
+                   "rig and calibration (confirmed by a short identification; refused when the "
+                   "rig, calibration, sample rate or lines differ)")
     r.add_argument("--record", choices=("full", "spectra"), default="full",
                    help="full (default): spectra, events and the drive and response WAVs "
                    "(about 1.3 GB per hour at 48 kHz); spectra: everything but the WAVs")

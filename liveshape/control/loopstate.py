@@ -207,6 +207,14 @@ class LoopState:
         return n / self.fs_hz
 
     @property
+    def safety_estimate_s(self) -> float:
+        """Run time between two estimates of the persistent safety rules, s (block loop: one
+        update; fast loop: a block of update DOF)."""
+        if self._fast:
+            return self._k_update * self._hop / self.fs_hz
+        return self.update_interval_s
+
+    @property
     def drive_rms_limit_fs(self) -> float:
         """Effective drive rms ceiling, FS."""
         return self._out.rms_limit_fs

@@ -84,7 +84,7 @@ class ControlSettings:
     law: str = "direct"
     #: ``fast``: a drive update every ``update_interval_s`` on running averages that follow the
     #: drive (docs/methods.md, "Fast update loop"); ``block``: one update per fresh estimate.
-    loop: str = "block"
+    loop: str = "fast"
     update_interval_s: float = 0.35
 
     @property
