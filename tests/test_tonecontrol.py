@@ -183,11 +183,12 @@ def test_swept_line_mask_covers_the_range_of_the_block():
 def test_drive_cap_and_no_step_in_the_tones():
     loop = ToneLoop([ToneSpec(100.0, 1.0), ToneSpec(200.0, 1.0)], FS, [0.4, 0.4],
                     max_drive_fs=0.5)
-    assert loop.drive_fs.sum() == pytest.approx(0.5)
-    x1 = loop.read(1003)
-    loop.drive_fs = np.array([0.1, 0.1])
-    x2 = loop.read(1000)
-    # a ramped change: no sample-to-sample jump beyond that of the tones themselves
-    # (2π f / fs of the amplitude per sample, plus the ramp's own slope)
-    bound = sum(2 * np.pi * f / FS * 0.25 for f in (100, 200)) + 0.3 / 1000
+    assert loop.drive_fs.sum() == pytest.approx(0.5) and loop.peak_fs == pytest.approx(0.5)
+    loop = ToneLoop([ToneSpec(100.0, 1.0)], FS, [0.5])
+    x1 = loop.read(1001)
+    loop.drive_fs = np.array([0.1])
+    x2 = loop.read(1001)
+    # a ramped change: no sample-to-sample jump beyond that of the tone itself, 2π f / fs of
+    # the amplitude per sample, plus the ramp's own slope
+    bound = 2 * np.pi * 100 / FS * 0.5 + 0.4 / 1001
     assert np.max(np.abs(np.diff(np.concatenate([x1, x2])))) <= bound * 1.01
