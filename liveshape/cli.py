@@ -114,19 +114,42 @@ def _cmd_check(args: argparse.Namespace) -> int:
         overrides["control.fs_hz"] = args.fs
     spec = load_spec(args.spec, overrides)
     feas = None
+    tones_ok = True
     if args.rig is not None:
         feas = _feasibility(spec)
     report = check_report(spec, feas)
+    if feas is not None and spec.tones:
+        head = _tone_headroom(spec, feas)
+        report["rig"].update(head.to_dict())
+        tones_ok = head.ok
+        if not head.ok:
+            report["rig"]["feasible"] = False
     if args.json:
         _print_json(report)
     else:
         console = dashboard.make_console()
         console.print(dashboard.check_table(report))
-    if feas is not None and not feas.feasible:
+    if feas is not None and not (feas.feasible and tones_ok):
         from liveshape.control.safety import EXIT_INFEASIBLE
 
         return EXIT_INFEASIBLE
     return 0
+
+
+def _tone_headroom(spec: Any, feas: Any) -> Any:
+    """Drive peak of the random (clipped) plus the tones on the spec's simulated plant."""
+    import numpy as np
+
+    from liveshape.control.tonecheck import tone_drive_headroom
+    from liveshape.rigs.plant import load_plant
+    from liveshape.rigs.plantmodel import analytic_frf
+
+    plant = load_plant(spec.rig.plant)
+    fs = spec.control.fs_hz
+    return tone_drive_headroom(
+        spec.tones, feas.drive.rms, g_per_fs=1.0 / plant.fs_per_g,
+        limit_fs=spec.safety.drive_peak_max_fs, clip_sigma=spec.safety.clip_sigma,
+        h_abs=lambda f: np.abs(analytic_frf(plant, f, fs_hz=fs)))
 
 
 def _feasibility(spec: Any) -> Any:
