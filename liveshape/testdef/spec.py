@@ -40,11 +40,12 @@ from liveshape.testdef.hum_spec import HumSpec, hum_from_mapping
 from liveshape.testdef.overrides import COMMAND_LINE, OverrideWhere, did_you_mean
 from liveshape.testdef.profilefile import profile_from_points, read_profile_csv
 from liveshape.testdef.tolerance import Tolerance, tolerance_from_mapping
+from liveshape.testdef.tone_spec import ToneSpec, check_tones, tones_from_list
 
 __all__ = [
     "CLIP_SIGMA_FLOOR", "COMMAND_LINE", "FAULT_KINDS", "MAX_FRAME_LENGTH", "MIN_BAND_LINES",
     "MIN_FRAME_LENGTH", "SPEC_SUFFIXES", "ControlSettings", "FaultSpec", "RigSelection",
-    "SafetyLimits", "Schedule", "TestSpec", "check_spec", "load_spec", "parse_fault",
+    "SafetyLimits", "Schedule", "TestSpec", "ToneSpec", "check_spec", "load_spec", "parse_fault",
     "spec_from_mapping", "spec_to_mapping",
 ]
 
@@ -150,6 +151,8 @@ class TestSpec:
     rig: RigSelection = field(default_factory=RigSelection)
     faults: tuple[FaultSpec, ...] = ()
     seed: int | None = None
+    #: Sine tones on top of the random (sine-on-random); empty: random only.
+    tones: tuple[ToneSpec, ...] = ()
     source: str = ""
 
 
@@ -379,7 +382,7 @@ _VERBATIM_OVERRIDES = (
 
 
 def _apply_overrides(data: dict[str, Any], overrides: Mapping[str, Any]) -> frozenset[str]:
-    valid = ["name", "seed", "faults", "profile.file"]
+    valid = ["name", "seed", "faults", "tones", "profile.file"]
     for sec, keys in _SECTIONS.items():
         valid += [f"{sec}.{k}" for k in keys if k != "bands"]
     done = set()
@@ -390,7 +393,7 @@ def _apply_overrides(data: dict[str, Any], overrides: Mapping[str, Any]) -> froz
         value = raw
         if isinstance(raw, str) and key not in _VERBATIM_OVERRIDES:
             value = config.read_yaml_text(raw, f"{COMMAND_LINE}: {key}")
-        if key == "faults" and not isinstance(value, list):
+        if key in ("faults", "tones") and not isinstance(value, list):
             value = [value]
         if key == "profile.file":  # a new profile replaces the file's whole profile section
             data["profile"] = {"file": value}
@@ -410,7 +413,8 @@ def _apply_overrides(data: dict[str, Any], overrides: Mapping[str, Any]) -> froz
 
 
 def check_spec(spec: TestSpec, where: Where | None = None) -> None:
-    """Cross-field rules: profile below Nyquist, enough lines in the band, ramp-rate limit."""
+    """Cross-field rules: profile below Nyquist, enough lines in the band, ramp-rate limit,
+    tones inside the profile band and below Nyquist."""
     w = where if where is not None else Where(spec.source or "spec")
     c, p = spec.control, spec.profile
     if not p.f_max_hz < c.fs_hz / 2:
@@ -432,6 +436,7 @@ def check_spec(spec: TestSpec, where: Where | None = None) -> None:
     if clip is not None and clip < CLIP_SIGMA_FLOOR:
         at = w.key("safety").key("clip_sigma")
         raise at.fail(clip, "is below the drive crest-factor floor of 2.5 (IEC 60068-2-64)")
+    check_tones(spec.tones, p.f_min_hz, p.f_max_hz, c.fs_hz, w.key("tones"))
 
 
 def spec_from_mapping(
@@ -446,7 +451,8 @@ def spec_from_mapping(
     Parameters
     ----------
     data : mapping
-        Top-level keys: name, profile, tolerance, schedule, control, safety, rig, faults, seed.
+        Top-level keys: name, profile, tolerance, schedule, control, safety, rig, faults, seed,
+        tones.
     source : str
         Name of the document for error messages (usually its path); kept in ``TestSpec.source``.
     base_dir : str or Path, optional
@@ -482,6 +488,7 @@ def spec_from_mapping(
         rig=_rig(d.get("rig"), root.key("rig"), bdir),
         faults=faults,
         seed=seed,
+        tones=tones_from_list(d.get("tones"), root.key("tones")),
         source=source,
     )
     check_spec(spec, root)
@@ -530,4 +537,5 @@ def spec_to_mapping(spec: TestSpec) -> dict[str, Any]:
                 "hum": None if spec.rig.hum is None else spec.rig.hum.as_mapping()},
         "faults": [_plain(x) for x in spec.faults],
         "seed": spec.seed,
+        "tones": [t.as_mapping() for t in spec.tones],
     }
