@@ -68,6 +68,7 @@ class SessionResult:
             "dof": r.dof,
             "time_at_full_level_s": r.time_at_full_level_s,
             "updates": r.updates,
+            "control_kurtosis": r.kurtosis,
             "trip": None if trip is None else dataclasses.asdict(trip),
             **verdict_summary(r.verdict),
             "run_dir": str(self.run_dir),

@@ -114,6 +114,8 @@ class FastLoop:
         self._blk_n = 0
         self._blk_full = True
         self._since_update = 0
+        if self._kurt is not None:  # the non-Gaussian drive starts with equalize
+            self._out.synth.set_kurtosis(self._kurt.drive)
         self._fast_res: equalizer.DriveResult | None = None
         self._last_clean = False
 
@@ -127,6 +129,8 @@ class FastLoop:
         j = self._seg_from - i0
         if j >= y.size:
             return
+        if self._kurt is not None:
+            self._kurtosis_feed(y[max(0, j):], i0 + max(0, j))
         self._segs.push(y[max(0, j):])
         first, rows = self._segs.pop()
         hop, n, delay = self._hop, self.frame_length, self._delay or 0
@@ -136,34 +140,53 @@ class FastLoop:
             if self._status != "running":
                 return
 
+    def _kurtosis_feed(self, y: np.ndarray, i0: int) -> None:
+        """Control samples played at a steady level go to the kurtosis loop (normalized)."""
+        out = self._out
+        g = out.segment_gain(i0 - (self._delay or 0), y.size)
+        if g is None or g <= 0.0 or g != out.gain_target:
+            return
+        k = self._kurt
+        if k.push(y / g, full_level=self._stage == "full_level" and g == 1.0):
+            out.synth.set_kurtosis(k.drive)
+            self._emit("kurtosis", f"control kurtosis {k.measured:.2f} (averaged "
+                       f"{k.averaged:.2f}, target {k.target:g}): drive kurtosis {k.drive:.2f}"
+                       + (" (the clip level allows no more)" if k.limited else ""),
+                       {"control_kurtosis": k.measured, "control_kurtosis_avg": k.averaged,
+                        "target": k.target, "drive_kurtosis": k.drive,
+                        "drive_kurtosis_max": k.drive_max, "clip_limited": k.limited})
+
     def _fast_segment(self, p: np.ndarray, drive_start: int, t: float) -> None:
         """One control segment ``p`` (g²/Hz) answering the drive from ``drive_start`` on."""
         out, band = self._out, self._band
         g = out.segment_gain(drive_start, self.frame_length)
         self._last_clean = g is not None and g == out.gain_target
+        # a non-Gaussian drive plays bursts by design: each segment's expected control power
+        # is its known burst factor times the target's (1 for a Gaussian drive)
+        burst = out.segment_burst(drive_start)
         if g is None:  # a level ramp: only the rms rule, against the level it heads to
             g_to = out.gain_target
             trip = self.supervisor.check_segment(
-                t, control_sum=float(p.sum()), target_sum=self._target_sum * g_to**2,
+                t, control_sum=float(p.sum()), target_sum=self._target_sum * g_to**2 * burst,
                 band_dof=self._seg_band_dof)
             if trip is not None:
                 self._abort(trip)
             return
         if g <= 0.0:
             return
-        d_full = out.segment_psd(drive_start, band)
+        d_full = out.segment_psd(drive_start, band)  # bursts included
         g2 = g * g
         trip = self.supervisor.check_segment(
-            t, control_sum=float(p.sum()), target_sum=self._target_sum * g2,
+            t, control_sum=float(p.sum()), target_sum=self._target_sum * g2 * burst,
             band_dof=self._seg_band_dof, predicted_sum=float(np.dot(self._h2_id, d_full)) * g2)
         if trip is not None:
             self._abort(trip)
             return
         self._tracker.push(p, d_full * g2)
-        norm = p / g2
+        norm = p / (g2 * burst)  # the control per unit of the PSD the drive is made of
         self._window.push(norm)
         self._blk += norm
-        self._blk_d += d_full
+        self._blk_d += d_full / burst
         self._blk_n += 1
         self._blk_full &= self._stage == "full_level" and g == 1.0
         self._since_update += 1

@@ -18,6 +18,7 @@ import numpy as np
 from liveshape.control.connect import ConnectionCheck, ConnectStage
 from liveshape.control.drivestream import DriveStream, ResponseQueue
 from liveshape.control.fastloop import fast_update_segments
+from liveshape.control.kurtosisloop import KurtosisLoop
 from liveshape.control.runplan import check_max_step, max_step_s
 from liveshape.control.runstate import ControlSnapshot, Event, RunResult, UpdateRecord, frozen_array
 from liveshape.control.safety import LevelSchedule, Supervisor, Trip, band_sum_dof
@@ -113,6 +114,13 @@ class LoopState:
             fs, n, seed=spec.seed if seed is None else seed, clip_sigma=s.clip_sigma,
             rms_max_fs=s.drive_rms_max_fs, peak_max_fs=s.drive_peak_max_fs, rate_db_s=rate,
             fade_s=self._abort_ramp_s, history=self._max_lag + 8 * n)
+        # kurtosis control (control.kurtosis > 3): the drive stays Gaussian until equalize
+        k_target = getattr(c, "kurtosis", None)
+        self._kurt: KurtosisLoop | None = None
+        if k_target is not None and k_target > 3.0:
+            interval = KurtosisLoop.interval_for(self._hop)
+            self._kurt = KurtosisLoop(k_target, s.clip_sigma, interval_samples=interval,
+                                      block_samples=2 * interval)
 
         # streams
         self._resp = ResponseQueue()
@@ -367,4 +375,5 @@ class LoopState:
             target_grms_g=nan if d is None else d.target_grms_g,
             dof=0.0 if d is None else d.dof,
             time_at_full_level_s=self.schedule.time_at_full_level_s, updates=self._updates,
-            verdict=self.verdict())
+            verdict=self.verdict(),
+            kurtosis=None if self._kurt is None else self._kurt.full_level_result())

@@ -87,6 +87,9 @@ class ControlSettings:
     #: drive (docs/methods.md, "Fast update loop"); ``block``: one update per fresh estimate.
     loop: str = "fast"
     update_interval_s: float = 0.35
+    #: Kurtosis target of the control response (3: Gaussian; None: a Gaussian drive, no
+    #: kurtosis control). docs/methods.md, "Non-Gaussian drive" and "Kurtosis in the loop".
+    kurtosis: float | None = None
 
     @property
     def df_hz(self) -> float:
@@ -197,7 +200,7 @@ _SECTIONS: dict[str, tuple[str, ...]] = {
     "tolerance": ("alarm_db", "abort_db", "rms_alarm_db", "rms_abort_db", "bands",
                   "max_alarm_fraction"),
     "schedule": tuple(f.name for f in fields(Schedule)),
-    "control": ("fs_hz", *_RESOLUTION_KEYS, *_RULES["control"]),
+    "control": ("fs_hz", *_RESOLUTION_KEYS, *_RULES["control"], "kurtosis"),
     "safety": tuple(f.name for f in fields(SafetyLimits)),
     "rig": tuple(f.name for f in fields(RigSelection)),
 }
@@ -260,7 +263,12 @@ def _control(data: Any, w: OverrideWhere) -> ControlSettings:
             f"gives frame_length = {n}, which must be even and within "
             f"{MIN_FRAME_LENGTH}..{MAX_FRAME_LENGTH}",
         )
-    return ControlSettings(fs_hz=fs, frame_length=n, **_plain_fields("control", d, w, base))
+    plain = _plain_fields("control", d, w, base)
+    if d.get("kurtosis") is not None:
+        from liveshape.dsp.nongauss import KURTOSIS_MAX
+
+        plain["kurtosis"] = as_float(d["kurtosis"], w.key("kurtosis"), ge=3, le=KURTOSIS_MAX)
+    return ControlSettings(fs_hz=fs, frame_length=n, **plain)
 
 
 def _safety(data: Any, w: OverrideWhere) -> SafetyLimits:
@@ -437,6 +445,18 @@ def check_spec(spec: TestSpec, where: Where | None = None) -> None:
         at = w.key("safety").key("clip_sigma")
         raise at.fail(clip, "is below the drive crest-factor floor of 2.5 (IEC 60068-2-64)")
     check_tones(spec.tones, p.f_min_hz, p.f_max_hz, c.fs_hz, w.key("tones"))
+    if c.kurtosis is not None and c.kurtosis > 3.0 and clip is not None:
+        # clipping caps the bursts: the kurtosis target must survive the clip level
+        from liveshape.dsp.nongauss import clip_sigma_needed, clipped_kurtosis
+
+        need = clip_sigma_needed(c.kurtosis)
+        if clip < need:
+            at = w.key("safety").key("clip_sigma")
+            raise at.fail(clip, f"clips the bursts of control.kurtosis = {c.kurtosis:g} (only "
+                          f"{clipped_kurtosis(c.kurtosis, clip):.2f} is left); give at least "
+                          f"{math.ceil(need * 100) / 100:.2f} (the drive rms ceiling becomes "
+                          "drive_peak_max_fs / "
+                          "clip_sigma)")
 
 
 def spec_from_mapping(
