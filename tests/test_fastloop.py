@@ -287,6 +287,26 @@ def test_no_trip_from_scatter_alone_over_ten_minutes_at_full_level():
     assert res.verdict.verdict == "pass"
 
 
+def test_every_update_record_states_its_own_dof_and_none_is_a_scrap():
+    # Records are the independent safety blocks; one closed early (full level starting, the
+    # test ending) has fewer segments: its DOF is stated as it is (Welch 1967 for its count),
+    # and none has fewer than half the update DOF, so no record shows a few-DOF scatter as a
+    # line deviation
+    spec, rig, ctl = _example()
+    recs = []
+    resp = np.zeros(4096)
+    while not ctl.finished:
+        resp = rig.process(ctl.exchange(resp))
+        u = ctl.last_update
+        if u is not None and (not recs or recs[-1] is not u):
+            recs.append(u)
+    full = welch_dof(segments_for_dof(spec.control.target_dof / 2))
+    assert all(r.dof >= welch_dof(segments_for_dof(spec.control.target_dof / 2) // 2) - 1e-9
+               for r in recs)
+    assert any(r.dof < full for r in recs)  # a block closed early says so
+    assert recs[-1].decision_dof == pytest.approx(ctl.result().dof)
+
+
 def test_fast_loop_drive_is_bit_reproducible_for_a_seed():
     digests = []
     for _ in range(2):

@@ -263,7 +263,7 @@ class FastLoop:
         self._out.reset_counters()
         if verdict.trip is not None:
             self._record_update(t, ctrl, target_b, played, None, verdict.rms_error_db, None,
-                                applied=False)
+                                applied=False, dof=dof)
             self._abort(verdict.trip)
             return
         if verdict.pending and not self._pending:
@@ -273,17 +273,24 @@ class FastLoop:
         if full:
             self._full.push(ctrl_norm, dof, t)
         d = self._decision
+        self._recorded_decision = d  # the run's final figures are those of the last record
         self._record_update(t, ctrl, target_b, played, self._fast_res, verdict.rms_error_db,
-                            None if d is None else d.in_tolerance, applied=not verdict.pending)
+                            None if d is None else d.in_tolerance, applied=not verdict.pending,
+                            dof=dof)
 
     def _fast_stage_change(self, t: float, *, completed: bool) -> None:
-        """Close the current block at the start of full level, or with the end of the test."""
+        """Close the current block at the start of full level, or with the end of the test.
+
+        A block of at least half the usual segments becomes an update record (with the end
+        of the test: no rule is checked, the run is over). A shorter one at the end only joins
+        the full-level average: its few DOF would show as large line deviations in the record.
+        """
         if not self._fast or self._blk_n == 0:
             return
-        if completed:
-            self._fast_block(t, final=True)
-        elif self._blk_n >= MIN_BLOCK_SEGMENTS:
-            self._fast_block(t)
+        if self._blk_n >= max(MIN_BLOCK_SEGMENTS, self._k_update // 2):
+            self._fast_block(t, final=completed)
+        elif completed and self._blk_full:
+            self._full.push(self._blk / self._blk_n, welch_dof(self._blk_n), t)
 
     @property
     def drive_update_times_s(self) -> tuple[float, ...]:

@@ -238,14 +238,15 @@ class LoopState:
 
     # ------------------------------------------------------------------ events and views
     def _record_update(self, t, ctrl, target_b, played, res, rms_err, in_tol, *,
-                       applied: bool) -> None:
+                       applied: bool, dof: float | None = None) -> None:
         with np.errstate(divide="ignore"):
             dev = _DB * np.log(np.maximum(ctrl, 1e-300) / target_b)
         d = self._decision if in_tol is not None else None
         decision_psd = np.full(ctrl.size, np.nan) if d is None else d.control_psd
         rec = UpdateRecord(
             index=self._updates, t_s=t, stage=self._stage, level_db=self.schedule.level_db,
-            dof=self._nu_update, f_hz=self.f_hz, control_psd=frozen_array(ctrl),
+            dof=self._nu_update if dof is None else float(dof), f_hz=self.f_hz,
+            control_psd=frozen_array(ctrl),
             target_psd=frozen_array(target_b), drive_psd=frozen_array(played),
             new_drive_psd=frozen_array(self._out.psd[self._band]),
             h1=frozen_array(self._h1[self._band], complex),
@@ -360,8 +361,15 @@ class LoopState:
                 "last_t_s": f.last_t_s}
 
     def result(self) -> RunResult:
-        """Outcome so far (final once :attr:`finished`)."""
+        """Outcome so far (final once :attr:`finished`).
+
+        The fast loop decides every update but records every safety block: its final figures
+        are those of the decision stored with the last record (``decision_psd``), so that the
+        summary and the record agree.
+        """
         d = self._judgement()
+        if self._fast and getattr(self, "_recorded_decision", None) is not None:
+            d = self._recorded_decision
         reason = self._trip.message if self._trip is not None else self._stop_reason
         nan = math.nan
         return RunResult(
