@@ -116,6 +116,7 @@ class FastLoop:
         self._since_update = 0
         if self._kurt is not None:  # the non-Gaussian drive starts with equalize
             self._out.synth.set_kurtosis(self._kurt.drive)
+        self._tones_setup()
         self._fast_res: equalizer.DriveResult | None = None
         self._last_clean = False
 
@@ -125,7 +126,16 @@ class FastLoop:
         self._seg_from = self._resp.next
         self._since_update = 0
 
-    def _fast_feed(self, y: np.ndarray, i0: int) -> None:
+    def _fast_feed(self, x: np.ndarray, y: np.ndarray, i0: int) -> None:
+        if self._tones is None:
+            self._fast_feed_clean(y, i0)
+            return
+        for yc, ic in self._tones_feed(x, y, i0):  # the control less its tones
+            self._fast_feed_clean(yc, ic)
+            if self._status != "running":
+                return
+
+    def _fast_feed_clean(self, y: np.ndarray, i0: int) -> None:
         j = self._seg_from - i0
         if j >= y.size:
             return

@@ -183,6 +183,9 @@ class RunResult:
     #: ``kurtosis``, ``std_error`` (batch means; None below two blocks), ``samples``,
     #: ``samples_for_0_1`` (record length for ±0.1 at 90 %), ``drive_kurtosis``; else None.
     kurtosis: Any = None
+    #: Sine-on-random: each tone's ``f_hz``, ``target_g``, ``measured_g`` (peak, averaged),
+    #: ``error_db``, ``in_tolerance`` (:mod:`liveshape.control.tonestage`); else None.
+    tones: Any = None
 
     @property
     def abort_rule(self) -> str | None:
