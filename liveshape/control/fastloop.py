@@ -267,9 +267,7 @@ class FastLoop:
                 predicted_psd=predicted, drive_at_limit=at_limit)
         self._updates += 1
         full = self._blk_full
-        self._blk = np.zeros_like(self._blk)
-        self._blk_d = np.zeros_like(self._blk_d)
-        self._blk_n, self._blk_full = 0, True
+        self._blk_reset()
         self._out.reset_counters()
         if verdict.trip is not None:
             self._record_update(t, ctrl, target_b, played, None, verdict.rms_error_db, None,
@@ -288,6 +286,11 @@ class FastLoop:
                             None if d is None else d.in_tolerance, applied=not verdict.pending,
                             dof=dof)
 
+    def _blk_reset(self) -> None:
+        self._blk = np.zeros_like(self._blk)
+        self._blk_d = np.zeros_like(self._blk_d)
+        self._blk_n, self._blk_full = 0, True
+
     def _fast_stage_change(self, t: float, *, completed: bool) -> None:
         """Close the current block at the start of full level, or with the end of the test.
 
@@ -297,9 +300,16 @@ class FastLoop:
         """
         if not self._fast or self._blk_n == 0:
             return
+        if not completed:
+            # full level starts: its blocks must hold full-level data only
+            if self._blk_n >= MIN_BLOCK_SEGMENTS:
+                self._fast_block(t)
+            else:  # too few segments for a record (each was checked on its own already)
+                self._blk_reset()
+            return
         if self._blk_n >= max(MIN_BLOCK_SEGMENTS, self._k_update // 2):
-            self._fast_block(t, final=completed)
-        elif completed and self._blk_full:
+            self._fast_block(t, final=True)
+        elif self._blk_full:
             self._full.push(self._blk / self._blk_n, welch_dof(self._blk_n), t)
 
     @property
