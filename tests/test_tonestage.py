@@ -107,3 +107,35 @@ def test_added_samples_take_the_gain_like_the_random():
     x, y = a.read(1000, add=add), b.read(1000)
     assert np.all(np.abs(x - y) <= np.abs(add) * (1 + 1e-12))
     assert np.max(np.abs(x - y)) > 0.5 * np.max(np.abs(add))
+
+
+def test_the_dashboard_the_summary_and_the_report_show_tones_and_kurtosis(tmp_path):
+    import io
+
+    from liveshape.session import run_session
+    from liveshape.views import dashboard
+
+    spec = load_spec(EXAMPLE, {"tones": TONES, "control.kurtosis": 4.0,
+                               "safety.clip_sigma": 5.0, "schedule.full_level_s": 25.0})
+    snaps = []
+    session = run_session(spec, out_dir=tmp_path, fast=True, seed=2, view_hz=1e9,
+                          on_snapshot=lambda s: snaps.append(s) if s.stage == "full_level"
+                          else None)
+    assert session.result.status == "completed"
+    console = dashboard.make_console(file=io.StringIO(), width=140)
+    console.print(dashboard.dashboard(snaps[-1], width=140, height=45))
+    screen = console.file.getvalue()
+    assert "tone 120 Hz" in screen and "tone 600 Hz" in screen and "control kurtosis" in screen
+    console = dashboard.make_console(file=io.StringIO(), width=140)
+    console.print(dashboard.run_summary(session.summary()))
+    text = console.file.getvalue()
+    assert "tone 120 Hz" in text and "g peak" in text and "control kurtosis" in text
+    from liveshape.record.report import _figure_rows  # the report's page-1 figures
+    from liveshape.record.runfolder import load_run
+
+    run = load_run(session.run_dir)
+    summary = run.summary
+    assert summary["tones"][0]["f_hz"] == 120.0 and summary["control_kurtosis"]["target"] == 4.0
+    rows, colours = _figure_rows(run, None, spec.tolerance, {}, "")
+    labels = [r[0] for r in rows]
+    assert "tone 120 Hz" in labels and "control kurtosis" in labels

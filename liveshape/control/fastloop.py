@@ -300,14 +300,15 @@ class FastLoop:
         """
         if not self._fast or self._blk_n == 0:
             return
+        least = max(MIN_BLOCK_SEGMENTS, self._k_update // 2)
         if not completed:
             # full level starts: its blocks must hold full-level data only
-            if self._blk_n >= MIN_BLOCK_SEGMENTS:
+            if self._blk_n >= least:
                 self._fast_block(t)
             else:  # too few segments for a record (each was checked on its own already)
                 self._blk_reset()
             return
-        if self._blk_n >= max(MIN_BLOCK_SEGMENTS, self._k_update // 2):
+        if self._blk_n >= least:
             self._fast_block(t, final=True)
         elif self._blk_full:
             self._full.push(self._blk / self._blk_n, welch_dof(self._blk_n), t)

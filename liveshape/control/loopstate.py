@@ -328,7 +328,11 @@ class LoopState:
             rms_error_db=math.nan if d is None else d.rms_error_db,
             dof=float(dof), chi2_lo_db=float(lo), chi2_hi_db=float(hi), updates=self._updates,
             loop_delay_samples=self._delay, trip=self._trip, recent_events=tuple(self._log.recent),
-            tolerance_state=self._tolerance_state(d))
+            tolerance_state=self._tolerance_state(d),
+            tones=getattr(self, "tone_summary", lambda: None)(),
+            kurtosis=None if self._kurt is None else {
+                "control": self._kurt.averaged, "target": self._kurt.target,
+                "drive": self._kurt.drive})
 
     def _tolerance_state(self, d: Judgement | None) -> str:
         if self._pending:

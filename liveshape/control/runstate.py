@@ -137,6 +137,11 @@ class ControlSnapshot:
     #: The bring-up meter's latest reading while the drive is held for the user
     #: (:class:`liveshape.control.bringup.MeterReading`), else None.
     bring_up: Any = None
+    #: Sine-on-random: each tone's target, measured amplitude and error (see
+    #: :meth:`liveshape.control.tonestage.ToneStage.tone_summary`); None without tones.
+    tones: Any = None
+    #: ``control.kurtosis``: ``{"control": averaged measured, "target", "drive"}``; else None.
+    kurtosis: Any = None
 
 
 @dataclass(frozen=True)
