@@ -69,6 +69,7 @@ class SessionResult:
             "time_at_full_level_s": r.time_at_full_level_s,
             "updates": r.updates,
             "control_kurtosis": r.kurtosis,
+            "tones": r.tones,
             "trip": None if trip is None else dataclasses.asdict(trip),
             **verdict_summary(r.verdict),
             "run_dir": str(self.run_dir),

@@ -83,13 +83,14 @@ from liveshape.control.loopstate import FADE_IN_S, IDENTIFY_BELOW_DB, LoopState
 from liveshape.control.runstate import RunResult
 from liveshape.control.safety import Trip
 from liveshape.control.stages import ControlEstimate, judge
+from liveshape.control.tonestage import ToneStage
 from liveshape.control.warmstart import CONFIRM_DB, WarmStart, confirm
 from liveshape.dsp.spectra import chi2_interval_db, welch_dof
 
 __all__ = ["FADE_IN_S", "IDENTIFY_BELOW_DB", "Controller", "run_offline"]
 
 
-class Controller(FastLoop, LoopState):
+class Controller(ToneStage, FastLoop, LoopState):
     """Closed-loop random-vibration controller, one block at a time.
 
     Parameters
@@ -219,7 +220,7 @@ class Controller(FastLoop, LoopState):
                 self._emit("dropout", "response silent: estimate restarted",
                            {"silent_samples": self.supervisor.silent_run_samples})
             if fast:
-                self._fast_feed(y, i0)
+                self._fast_feed(x, y, i0)
             else:
                 self._estimate(x, y, i0)
 

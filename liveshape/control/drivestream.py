@@ -74,6 +74,11 @@ class DriveStream:
         # (first sample, end sample, gain reached) of every gain ramp, newest last
         self._ramp_log: deque[tuple[int, int, float]] = deque([(0, 0, 0.0)], maxlen=64)
         self._weights: dict[int, np.ndarray] = {}
+        #: Sine tones on the random (``read(n)`` → full-level samples, FS), or None.
+        self.tones = None
+        self._rms_max_fs = float(rms_max_fs)
+        self._peak_max_fs = float(peak_max_fs)
+        self._clip_sigma = clip_sigma
 
     # -- level ---------------------------------------------------------------------------
     @property
@@ -125,6 +130,15 @@ class DriveStream:
         if self._psd_log[-1][0] == first:
             self._psd_log.pop()
         self._psd_log.append((first, self.psd))
+
+    def reserve_peak(self, peak_fs: float) -> None:
+        """Leave ``peak_fs`` of the peak limit to tones: the random's rms ceiling becomes
+        ``(drive_peak_max_fs − peak_fs) / clip_sigma`` (with clipping) and at most its limit."""
+        room = max(self._peak_max_fs - float(peak_fs), 0.0)
+        rms = self._rms_max_fs
+        if self._clip_sigma is not None:
+            rms = min(rms, room / self._clip_sigma)
+        self.rms_limit_fs = rms
 
     def rescale_for(self, gain: float) -> float:
         """Scale the PSD down so that it fits the ceiling at ``gain``; returns the factor."""
@@ -213,7 +227,8 @@ class DriveStream:
 
     def read(self, n: int) -> np.ndarray:
         """The next ``n`` drive samples, hard-limited to ``±peak_limit_fs``."""
-        out = self.synth.read(n)
+        add = None if self.tones is None else self.tones.read(n)
+        out = self.synth.read(n, add=add)
         peak = float(np.max(np.abs(out))) if n else 0.0
         lim = self.peak_limit_fs
         if peak >= lim:

@@ -116,6 +116,7 @@ class FastLoop:
         self._since_update = 0
         if self._kurt is not None:  # the non-Gaussian drive starts with equalize
             self._out.synth.set_kurtosis(self._kurt.drive)
+        self._tones_setup()
         self._fast_res: equalizer.DriveResult | None = None
         self._last_clean = False
 
@@ -125,7 +126,16 @@ class FastLoop:
         self._seg_from = self._resp.next
         self._since_update = 0
 
-    def _fast_feed(self, y: np.ndarray, i0: int) -> None:
+    def _fast_feed(self, x: np.ndarray, y: np.ndarray, i0: int) -> None:
+        if self._tones is None:
+            self._fast_feed_clean(y, i0)
+            return
+        for yc, ic in self._tones_feed(x, y, i0):  # the control less its tones
+            self._fast_feed_clean(yc, ic)
+            if self._status != "running":
+                return
+
+    def _fast_feed_clean(self, y: np.ndarray, i0: int) -> None:
         j = self._seg_from - i0
         if j >= y.size:
             return
@@ -257,9 +267,7 @@ class FastLoop:
                 predicted_psd=predicted, drive_at_limit=at_limit)
         self._updates += 1
         full = self._blk_full
-        self._blk = np.zeros_like(self._blk)
-        self._blk_d = np.zeros_like(self._blk_d)
-        self._blk_n, self._blk_full = 0, True
+        self._blk_reset()
         self._out.reset_counters()
         if verdict.trip is not None:
             self._record_update(t, ctrl, target_b, played, None, verdict.rms_error_db, None,
@@ -278,6 +286,11 @@ class FastLoop:
                             None if d is None else d.in_tolerance, applied=not verdict.pending,
                             dof=dof)
 
+    def _blk_reset(self) -> None:
+        self._blk = np.zeros_like(self._blk)
+        self._blk_d = np.zeros_like(self._blk_d)
+        self._blk_n, self._blk_full = 0, True
+
     def _fast_stage_change(self, t: float, *, completed: bool) -> None:
         """Close the current block at the start of full level, or with the end of the test.
 
@@ -287,9 +300,17 @@ class FastLoop:
         """
         if not self._fast or self._blk_n == 0:
             return
-        if self._blk_n >= max(MIN_BLOCK_SEGMENTS, self._k_update // 2):
-            self._fast_block(t, final=completed)
-        elif completed and self._blk_full:
+        least = max(MIN_BLOCK_SEGMENTS, self._k_update // 2)
+        if not completed:
+            # full level starts: its blocks must hold full-level data only
+            if self._blk_n >= least:
+                self._fast_block(t)
+            else:  # too few segments for a record (each was checked on its own already)
+                self._blk_reset()
+            return
+        if self._blk_n >= least:
+            self._fast_block(t, final=True)
+        elif self._blk_full:
             self._full.push(self._blk / self._blk_n, welch_dof(self._blk_n), t)
 
     @property

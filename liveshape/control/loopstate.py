@@ -104,6 +104,11 @@ class LoopState:
         self._m_update = fast_update_segments(getattr(c, "update_interval_s", 0.35), fs, self._hop)
         if self._fast:
             self._k_identify = self._k_update
+        elif getattr(spec, "tones", ()):
+            from liveshape.errors import ConfigError
+
+            raise ConfigError(f"{spec.source or spec.name}: tones need control.loop = fast "
+                              "(the block loop has no tone control)")
         self._drive_updates: list[float] = []  # run time of every drive update, s
         self._pool = DecisionPool(float(c.target_dof), self._nu_update, c.averaging)
         self._settle = self._hop  # plant settling after a drive change, samples
@@ -323,7 +328,11 @@ class LoopState:
             rms_error_db=math.nan if d is None else d.rms_error_db,
             dof=float(dof), chi2_lo_db=float(lo), chi2_hi_db=float(hi), updates=self._updates,
             loop_delay_samples=self._delay, trip=self._trip, recent_events=tuple(self._log.recent),
-            tolerance_state=self._tolerance_state(d))
+            tolerance_state=self._tolerance_state(d),
+            tones=getattr(self, "tone_summary", lambda: None)(),
+            kurtosis=None if self._kurt is None else {
+                "control": self._kurt.averaged, "target": self._kurt.target,
+                "drive": self._kurt.drive})
 
     def _tolerance_state(self, d: Judgement | None) -> str:
         if self._pending:
@@ -384,4 +393,5 @@ class LoopState:
             dof=0.0 if d is None else d.dof,
             time_at_full_level_s=self.schedule.time_at_full_level_s, updates=self._updates,
             verdict=self.verdict(),
-            kurtosis=None if self._kurt is None else self._kurt.full_level_result())
+            kurtosis=None if self._kurt is None else self._kurt.full_level_result(),
+            tones=getattr(self, "tone_summary", lambda: None)())

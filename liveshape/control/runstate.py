@@ -137,6 +137,11 @@ class ControlSnapshot:
     #: The bring-up meter's latest reading while the drive is held for the user
     #: (:class:`liveshape.control.bringup.MeterReading`), else None.
     bring_up: Any = None
+    #: Sine-on-random: each tone's target, measured amplitude and error (see
+    #: :meth:`liveshape.control.tonestage.ToneStage.tone_summary`); None without tones.
+    tones: Any = None
+    #: ``control.kurtosis``: ``{"control": averaged measured, "target", "drive"}``; else None.
+    kurtosis: Any = None
 
 
 @dataclass(frozen=True)
@@ -183,6 +188,9 @@ class RunResult:
     #: ``kurtosis``, ``std_error`` (batch means; None below two blocks), ``samples``,
     #: ``samples_for_0_1`` (record length for ±0.1 at 90 %), ``drive_kurtosis``; else None.
     kurtosis: Any = None
+    #: Sine-on-random: each tone's ``f_hz``, ``target_g``, ``measured_g`` (peak, averaged),
+    #: ``error_db``, ``in_tolerance`` (:mod:`liveshape.control.tonestage`); else None.
+    tones: Any = None
 
     @property
     def abort_rule(self) -> str | None:

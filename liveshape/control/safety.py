@@ -73,6 +73,7 @@ EXIT_STATUS: dict[str, int] = {
     "audio_stall": 19,  # the audio stream stopped delivering input (device or server gone)
     "level_unreachable": 20,  # a step below full level lasted longer than schedule.max_step_s
     "disk_space": 21,  # free space for the record ran low, or the record could not be written
+    "tone_abort": 22,  # a sine-on-random tone left its abort band (liveshape.control.tonestage)
 }
 RULES: tuple[str, ...] = tuple(EXIT_STATUS)
 #: Exit status of ``check --rig`` when the profile is infeasible on the rig, and of ``run`` when

@@ -373,7 +373,8 @@ class RandomPhaseSynth:
         self._n_clipped = 0
 
     # ----------------------------------------------------------------------- output
-    def read(self, n: int, out: np.ndarray | None = None) -> np.ndarray:
+    def read(self, n: int, out: np.ndarray | None = None,
+             add: np.ndarray | None = None) -> np.ndarray:
         """Return the next ``n`` samples (float64), after clipping and gain.
 
         Parameters
@@ -382,6 +383,9 @@ class RandomPhaseSynth:
             Number of samples, >= 0.
         out : ndarray, optional
             float64 array of length ``n`` to fill (avoids an allocation per call).
+        add : ndarray, optional
+            ``n`` samples added to the random before the gain (not clipped with it): sine tones
+            that follow the level like the random does.
         """
         if out is None:
             out = np.empty(int(n), dtype=np.float64)
@@ -391,6 +395,8 @@ class RandomPhaseSynth:
             self._prime()
         ramp = self._ramp
         g = None if ramp.ramping else ramp.gain_target  # a steady gain is applied in the copy
+        if add is not None:
+            g = None  # the gain comes after the tones are added
         block, hop, clip = self._block, self._hop, self._clip_sigma is not None
         pos = self._pos
         done = 0
@@ -408,7 +414,13 @@ class RandomPhaseSynth:
             pos += k
             done += k
         self._pos = pos
-        if g is None:
+        if add is not None:
+            out += add
+            if ramp.ramping:
+                ramp.apply(out)
+            elif ramp.gain_target != 1.0:
+                out *= ramp.gain_target
+        elif g is None:
             ramp.apply(out)
         self._moments.update(out)
         return out

@@ -1009,6 +1009,23 @@ def _figure_rows(run: RunData, d: DecisionSpectrum | None, tol: Tolerance,
     if tol_note:
         rows.append(("tolerance", f"the spec's could not be read: {tol_note}"))
         colours[len(rows) - 1] = red
+    for t in s.get("tones") or ():
+        err = t.get("error_db")
+        rows.append((f"tone {t['f_hz']:g} Hz", f"{_fmt(t.get('measured_g'), '.3f')} of "
+                     f"{_fmt(t.get('target_g'), '.3f')} g peak ({_fmt(err, '+.2f', 'dB')}, "
+                     f"tolerance ±{_fmt(t.get('tolerance_db'), 'g')} dB)"))
+        if t.get("in_tolerance") is False:
+            colours[len(rows) - 1] = red
+    k = s.get("control_kurtosis")
+    if isinstance(k, dict):
+        se = k.get("std_error")
+        more = f" ± {se:.2f} (batch means)" if se is not None else " (too short for an error)"
+        need = k.get("samples_for_0_1")
+        fs = run.fs_hz
+        if need and math.isfinite(fs):
+            more += f"; ±0.1 needs {need / fs:.0f} s"
+        rows.append(("control kurtosis", f"{_fmt(k.get('kurtosis'), '.2f')}{more}; target "
+                     f"{_fmt(k.get('target'), 'g')}, drive {_fmt(k.get('drive_kurtosis'), '.2f')}"))
     rows.append(("updates", f"{run.updates.n}   to tolerance: "
                  f"{_fmt(s.get('updates_to_tolerance'), '.0f')}"))
     return rows, colours

@@ -71,7 +71,7 @@ _RESULT_SHOWN = frozenset({
     "verdict", "verdict_reasons", "verdict_rule", "full_level_dof", "full_level_rms_error_db",
     "full_level_max_dev_db", "full_level_min_dev_db", "full_level_lines_outside_alarm",
     "full_level_lines_outside_abort", "full_level_control_grms_g", "alarm_fraction",
-    "max_alarm_fraction", "accel_unit", "asd_unit",
+    "max_alarm_fraction", "accel_unit", "asd_unit", "tones", "control_kurtosis",
 })
 _VERDICT_ROLE = {"pass": "ok", "fail": "abort", "incomplete": "alarm"}
 
@@ -290,7 +290,32 @@ def control_rows(snapshot: Any) -> list[Row]:
         _row("DOF", f"{fmt(dof, '.0f')}   90 % χ² band {fmt(lo, '+.2f')} / "
              f"{fmt(hi, '+.2f')} dB"),
         _row("updates", fmt_value(field(snapshot, "updates", "n_updates"))),
+        *variant_rows(snapshot),
     ]
+
+
+def variant_rows(obj: Any) -> list[Row]:
+    """Tones (measured against target peak, error) and the control's kurtosis, when the test
+    has them (``tones`` / ``kurtosis`` of a snapshot, ``tones`` / ``control_kurtosis`` of a
+    summary)."""
+    rows = []
+    for t in field(obj, "tones", default=None) or ():
+        err = t.get("error_db")
+        ok = t.get("in_tolerance")
+        rows.append(_row(f"tone {t['f_hz']:g} Hz", f"{fmt(t.get('measured_g'), '.3f')} of "
+                         f"{fmt(t.get('target_g'), '.3f')} g peak  ({fmt_db(err)})",
+                         "value" if ok or ok is None else "alarm"))
+    k = field(obj, "kurtosis", "control_kurtosis", default=None)
+    if isinstance(k, Mapping):
+        measured = k.get("control", k.get("kurtosis"))
+        se = k.get("std_error")
+        text = f"{fmt(measured, '.2f')}"
+        if se is not None:
+            text += f" ± {fmt(se, '.2f')}"
+        drive = k.get("drive", k.get("drive_kurtosis"))
+        text += f" of {fmt(k.get('target'), '.2f')}  (drive {fmt(drive, '.2f')})"
+        rows.append(_row("control kurtosis", text))
+    return rows
 
 
 def compact_control_rows(snapshot: Any) -> list[Row]:
@@ -429,6 +454,7 @@ def result_rows(result: Mapping[str, Any]) -> list[Row]:
         _row("updates to tolerance", fmt_value(result.get("updates_to_tolerance"))),
         _row("DOF", fmt(result.get("dof"), ".0f")),
         _row("time at full level", fmt(result.get("time_at_full_level_s"), ".1f", "s")),
+        *variant_rows(result),
     ]
     rows += [_row(label, text) for label, text in mapping_rows(result, skip=_RESULT_SHOWN)]
     return rows

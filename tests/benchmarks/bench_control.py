@@ -362,7 +362,36 @@ def _warm_and_false_trips(report: Callable[[str, float, str], None]) -> None:
     report("example_fast_false_trips_10min_5seeds", trips, "trips")
 
 
+def _tones(report: Callable[[str, float, str], None]) -> None:
+    """Sine-on-random on the example: each tone's error at full level from a least-squares fit
+    of the last 10 s of control (IEEE 1057 three-parameter fit, numpy.linalg.lstsq)."""
+    from pathlib import Path
+
+    from liveshape.testdef.spec import load_spec
+
+    tones = [{"f_hz": 120.0, "amplitude_g": 1.0}, {"f_hz": 600.0, "amplitude_g": 0.5}]
+    path = Path(__file__).resolve().parents[2] / EXAMPLE
+    spec = load_spec(path, {"tones": tones, "schedule.full_level_s": 30.0})
+    rig = SimRig(load_plant("loudspeaker"), spec.control.fs_hz, seed=2)
+    ctl = Controller(spec, rig.calibration)
+    resp, kept = np.zeros(BLOCK), []
+    while not ctl.finished:
+        resp = rig.process(ctl.exchange(resp))
+        if ctl.stage == "full_level" and ctl.schedule.remaining_s < 10.0:
+            kept.append(resp)
+    y = np.concatenate(kept) * rig.calibration.g_per_fs
+    t = np.arange(y.size) / spec.control.fs_hz
+    for tone in spec.tones:
+        a = np.column_stack((np.cos(2 * np.pi * tone.f_hz * t),
+                             np.sin(2 * np.pi * tone.f_hz * t), np.ones_like(t)))
+        c, *_ = np.linalg.lstsq(a, y, rcond=None)
+        err = 20 * math.log10(math.hypot(c[0], c[1]) / tone.amplitude_g)
+        report(f"tones_error_{tone.f_hz:g}hz", err, "dB (last 10 s of full level)")
+    report("tones_run_status", ctl.result().status, "")
+
+
 def run(report: Callable[[str, float, str], None]) -> None:
+    _tones(report)
     _warm_and_false_trips(report)
     _example(report)
     _convergence(report)
