@@ -70,7 +70,9 @@ def test_warm_start_on_the_same_rig_uses_the_stored_drive_and_reaches_full_level
     stored = load_run(earlier).updates.arrays["new_drive_psd"][-1]
     np.testing.assert_allclose(first_drive[0], stored, rtol=1e-6)
     # and the first level step comes sooner than a cold start's
-    assert _full_level_at(warm.run_dir) < _full_level_at(cold.run_dir) - 2.0
+    # the confirming identification counts towards the first decision: the cold start waits
+    # for a window filled after its (shorter) identification
+    assert _full_level_at(warm.run_dir) < _full_level_at(cold.run_dir) - 1.0
 
 
 def test_warm_start_is_refused_on_another_rig_before_anything_runs(earlier, tmp_path):

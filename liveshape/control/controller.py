@@ -116,6 +116,10 @@ class Controller(ToneStage, FastLoop, LoopState):
         super().__init__(spec, calibration, **kwargs)
         #: An earlier run's equalized drive to start from (:mod:`liveshape.control.warmstart`).
         self._warm = warm
+        if warm is not None and self._fast:
+            # the confirming identification plays the stored drive: all of it counts towards
+            # the first decision, so it runs for the update DOF
+            self._k_identify = self._k_update
         #: The shell's confirmation flag (``is_set()``/``clear()``, e.g. threading.Event) for
         #: the bring-up hold; None: no hold (the simulated rig, ``run --unattended``).
         self._bring_up_flag = bring_up

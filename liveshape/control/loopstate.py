@@ -99,11 +99,12 @@ class LoopState:
         self._k_identify = segments_for_dof(float(c.target_dof))
         self._nu_update = welch_dof(self._k_update)
         #: the fast loop (control.loop = fast): a drive update every ``_m_update`` segments, and
-        #: an identification of update DOF only (the loop refines the plant estimate at once)
+        #: an identification of half the update DOF only (the loop's plant estimate goes on
+        #: from it at once; coherent lines need few segments for H1)
         self._fast = getattr(c, "loop", "block") == "fast"
         self._m_update = fast_update_segments(getattr(c, "update_interval_s", 0.35), fs, self._hop)
         if self._fast:
-            self._k_identify = self._k_update
+            self._k_identify = segments_for_dof(max(16.0, self._update_dof_target / 2))
         elif getattr(spec, "tones", ()):
             from liveshape.errors import ConfigError
 
