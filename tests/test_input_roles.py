@@ -1,0 +1,148 @@
+"""Input roles of a test definition (rig.inputs), the control strategy, and per-input
+calibration.
+
+Outside references: the rules are the definition's own; the limit is read by the profile code,
+checked against the log-log interpolation of a breakpoint spectrum (straight lines on log-log
+axes between breakpoints, the form of MIL-STD-810H Method 514.8 and IEC 60068-2-64 test
+profiles [common practice]).
+"""
+
+from __future__ import annotations
+
+import math
+
+import pytest
+
+from liveshape.errors import ConfigError
+from liveshape.testdef.inputs import InputRole
+from liveshape.testdef.spec import spec_from_mapping, spec_to_mapping
+
+PROFILE = {"breakpoints": [{"f_hz": 20, "asd": 0.01}, {"f_hz": 2000, "asd": 0.01}]}
+LIMIT = [{"f_hz": 20, "asd": 0.04}, {"f_hz": 2000, "asd": 0.01}]
+
+
+def make(rig=None, control=None):
+    data = {"name": "t", "profile": PROFILE}
+    if rig is not None:
+        data["rig"] = rig
+    if control is not None:
+        data["control"] = control
+    return spec_from_mapping(data, source="t.yaml")
+
+
+FOUR = [
+    {"channel": 1, "role": "control", "name": "table"},
+    {"channel": 2, "role": "control", "name": "tip", "weight": 0.5},
+    {"channel": 3, "role": "monitor", "name": "bracket", "limit": LIMIT},
+    {"channel": 4, "role": "reference"},
+]
+
+
+def test_a_list_of_inputs_gives_their_roles():
+    spec = make({"inputs": FOUR})
+    roles = spec.rig.input_roles()
+    assert isinstance(roles, tuple)
+    assert [(r.channel, r.role, r.name) for r in roles] == [
+        (1, "control", "table"), (2, "control", "tip"), (3, "monitor", "bracket"),
+        (4, "reference", "reference4")]
+    assert roles[1].weight == 0.5 and roles[0].weight == 1.0
+    with pytest.raises(AttributeError):  # frozen
+        roles[0].channel = 5
+    # the limit is the profile code's reading: log-log straight line between the breakpoints
+    # (0.04 at 20 Hz to 0.01 at 2000 Hz: at the geometric mean 200 Hz, sqrt(0.04·0.01) = 0.02)
+    lim = roles[2].limit
+    assert lim.f_hz == (20.0, 2000.0) and lim.asd_g2_hz == (0.04, 0.01)
+    assert float(lim.asd_at(200.0)) == pytest.approx(math.sqrt(0.04 * 0.01), rel=1e-12)
+    # the one-control fields follow the list: its first control and its reference
+    assert spec.rig.control_input == 1 and spec.rig.loopback_input == 4
+
+
+def test_the_shorthand_gives_the_same_kind_of_roles():
+    roles = make({"control_input": 3, "loopback_input": 2}).rig.input_roles()
+    assert roles == (InputRole(3, "control", "control3"), InputRole(2, "reference", "reference2"))
+    assert make().rig.input_roles() == (InputRole(1, "control", "control1"),)
+
+
+def test_a_limit_in_other_units_is_converted_like_the_profile():
+    # (m/s²)²/Hz -> g²/Hz divides by g0² (g0 = 9.80665 m/s², 3rd CGPM, 1901)
+    inputs = [{"channel": 1, "role": "control"},
+              {"channel": 2, "role": "monitor", "limit": {
+                  "units": "(m/s2)2/Hz", "breakpoints": [{"f_hz": 10, "asd": 9.80665 ** 2},
+                                                         {"f_hz": 100, "asd": 9.80665 ** 2}]}}]
+    lim = make({"inputs": inputs}).rig.input_roles()[1].limit
+    assert lim.asd_g2_hz == pytest.approx((1.0, 1.0), rel=1e-12)
+
+
+def test_roles_survive_the_round_trip_through_plain_data():
+    spec = make({"inputs": FOUR}, {"strategy": "maximum"})
+    back = spec_from_mapping(spec_to_mapping(spec), source="again")
+    assert back.rig == spec.rig and back.control.strategy == "maximum"
+    plain = make()
+    assert spec_from_mapping(spec_to_mapping(plain), source="again").rig == plain.rig
+
+
+@pytest.mark.parametrize("rig, words", [
+    ({"inputs": [{"channel": 1, "role": "monitor"}]},
+     "rig.inputs = '1 input(s) with roles monitor' has no control input"),
+    ({"inputs": [{"channel": 1, "role": "control"}, {"channel": 2, "role": "reference"},
+                 {"channel": 3, "role": "reference"}]},
+     "rig.inputs[2].role = 'reference' is a second reference (inputs[1] is one already"),
+    ({"inputs": [{"channel": 1, "role": "control"}, {"channel": 1, "role": "monitor"}]},
+     "rig.inputs[1].channel = 1 is already the control input 'control1'"),
+    ({"inputs": [{"channel": 1, "role": "control", "limit": LIMIT}]},
+     "rig.inputs[0].limit = '...' is given on a control input; a limit is only for a monitor"),
+    ({"inputs": [{"channel": 1, "role": "control"}, {"channel": 2, "role": "reference",
+                                                      "limit": LIMIT}]},
+     "rig.inputs[1].limit = '...' is given on a reference input"),
+    ({"inputs": [{"channel": 1, "role": "control"}, {"channel": 2, "role": "monitor",
+                                                      "weight": 2}]},
+     "rig.inputs[1].weight = 2 is given on a monitor input; a weight is only for a control"),
+    ({"inputs": [{"channel": 1, "role": "control", "weight": 0}]},
+     "rig.inputs[0].weight = 0"),
+    ({"inputs": [{"channel": 0, "role": "control"}]}, "rig.inputs[0].channel = 0"),
+    ({"inputs": [{"channel": 1, "role": "controller"}]},
+     "rig.inputs[0].role = 'controller' is not one of control, monitor, reference"),
+    ({"inputs": [{"channel": 1, "role": "control", "name": "a"},
+                 {"channel": 2, "role": "monitor", "name": "a"}]},
+     "rig.inputs[1].name = 'a' is already the name of another input"),
+    ({"inputs": [{"channel": 1, "role": "control", "gain": 2}]}, "rig.inputs[0]"),
+    ({"inputs": [{"role": "control"}]}, "rig.inputs[0]"),
+    ({"inputs": []}, "rig.inputs"),
+    ({"inputs": [{"channel": 1, "role": "control"}], "control_input": 2},
+     "rig.control_input = 2 is the one-control shorthand; with rig.inputs give every input"),
+    ({"inputs": [{"channel": 1, "role": "control"}], "loopback_input": 2},
+     "rig.loopback_input = 2 is the one-control shorthand"),
+    ({"inputs": [{"channel": 1, "role": "control"},
+                 {"channel": 2, "role": "monitor", "limit": [{"f_hz": 20, "asd": -1},
+                                                             {"f_hz": 30, "asd": 1}]}]},
+     "rig.inputs[1].limit[0]"),
+])
+def test_each_rule_of_the_input_list_is_one_line(rig, words):
+    with pytest.raises(ConfigError) as exc:
+        make(rig)
+    msg = str(exc.value)
+    assert msg.startswith("t.yaml: ") and words in msg, msg
+    assert "\n" not in msg
+
+
+def test_control_strategy_is_one_of_the_combinations():
+    assert make().control.strategy == "average"
+    for s in ("average", "maximum", "minimum"):
+        assert make(control={"strategy": s}).control.strategy == s
+    with pytest.raises(ConfigError) as exc:
+        make(control={"strategy": "median"})
+    assert "t.yaml: control.strategy = 'median' is not one of average, maximum, minimum" \
+        in str(exc.value)
+
+
+def test_the_strategy_and_inputs_can_be_given_on_the_command_line():
+    data = {"name": "t", "profile": PROFILE}
+    spec = spec_from_mapping(data, source="t.yaml", overrides={
+        "control.strategy": "minimum",
+        "rig.inputs": "[{channel: 2, role: control}, {channel: 5, role: monitor}]"})
+    assert spec.control.strategy == "minimum"
+    assert [r.channel for r in spec.rig.input_roles()] == [2, 5]
+    with pytest.raises(ConfigError) as exc:
+        spec_from_mapping(data, source="t.yaml", overrides={"rig.inputs": "[{channel: 2, "
+                                                            "role: monitor}]"})
+    assert str(exc.value).startswith("command line: rig.inputs")
