@@ -146,3 +146,68 @@ def test_the_strategy_and_inputs_can_be_given_on_the_command_line():
         spec_from_mapping(data, source="t.yaml", overrides={"rig.inputs": "[{channel: 2, "
                                                             "role: monitor}]"})
     assert str(exc.value).startswith("command line: rig.inputs")
+
+
+# -- per-input calibration --------------------------------------------------------------------
+
+OLD_FILE = """liveshape_calibration: 1
+output: {v_per_fs: 2.0}
+input: {v_per_fs: 4.0}
+accelerometer: {mv_per_g: 100.0}
+"""
+
+
+def test_an_old_calibration_file_still_loads_and_serves_every_input(tmp_path):
+    from liveshape.rigs.calfile import load_calibration
+
+    p = tmp_path / "old.yaml"
+    p.write_text(OLD_FILE)
+    cal = load_calibration(p)
+    assert cal.inputs == ()
+    # g/FS = (V/FS) / (V/g): 4 V/FS over 0.1 V/g is 40 g per FS (definition of the units)
+    assert cal.g_per_fs_at(1) == pytest.approx(40.0) == cal.g_per_fs_at(7)
+    assert cal.for_input(3) == cal
+
+
+def test_per_input_factors_are_read_written_and_used(tmp_path):
+    from liveshape.rigs.calfile import load_calibration, write_calibration
+
+    p = tmp_path / "multi.yaml"
+    p.write_text(OLD_FILE + """inputs:
+  - {channel: 2, v_per_fs: 1.0, mv_per_g: 10.0}
+  - {channel: 4, v_per_fs: 2.5, mv_per_g: null}
+""")
+    cal = load_calibration(p)
+    # input 2: 1 V/FS over 0.010 V/g = 100 g/FS; input 1 keeps the chain's 4 V/FS / 0.1 V/g
+    assert cal.g_per_fs_at(2) == pytest.approx(100.0)
+    assert cal.g_per_fs_at(1) == pytest.approx(40.0)
+    assert cal.for_input(2).g_per_fs == pytest.approx(100.0)
+    assert cal.for_input(2).out_v_per_fs == 2.0
+    # a loopback passes volts: 1 FS at input 4 is 2.5 V, which the 2 V/FS output makes from
+    # 1.25 FS of drive
+    assert cal.drive_fs_per_input_fs(4) == pytest.approx(1.25)
+    assert cal.volts_per_fs_at(4) == 2.5
+    with pytest.raises(ValueError, match="input 4 has no accelerometer"):
+        cal.g_per_fs_at(4)
+    q = tmp_path / "again.yaml"
+    write_calibration(q, cal)
+    assert load_calibration(q).inputs == cal.inputs
+
+
+@pytest.mark.parametrize("extra, words", [
+    ("inputs:\n  - {channel: 2, v_per_fs: 1.0}\n  - {channel: 2, v_per_fs: 3.0}\n",
+     "inputs[1].channel = 2 is listed twice"),
+    ("inputs:\n  - {channel: 0, v_per_fs: 1.0}\n", "inputs[0].channel = 0"),
+    ("inputs:\n  - {channel: 2, v_per_fs: -1.0}\n", "inputs[0].v_per_fs = -1.0"),
+    ("inputs:\n  - {channel: 2}\n", "inputs[0]"),
+    ("inputs:\n  - {channel: 2, v_per_fs: 1, mv_per_gg: 3}\n", "inputs[0]"),
+])
+def test_bad_per_input_entries_are_one_line(tmp_path, extra, words):
+    from liveshape.rigs.calfile import load_calibration
+
+    p = tmp_path / "bad.yaml"
+    p.write_text(OLD_FILE + extra)
+    with pytest.raises(ConfigError) as exc:
+        load_calibration(p)
+    assert words in str(exc.value) and str(p) in str(exc.value)
+    assert "\n" not in str(exc.value)
