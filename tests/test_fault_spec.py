@@ -25,7 +25,7 @@ def test_parse_fault(text, expected):
 @pytest.mark.parametrize(
     "text, match",
     [
-        ("sensor_gain", r"is not KIND@SECONDS"),
+        ("sensor_gain", r"is not KIND\[:INPUT\]@SECONDS"),
         ("sensor_gian@3", r"did you mean 'sensor_gain'"),
         ("amp_trip@-1", r"seconds '-1', which must be >= 0"),
         ("amp_trip@x", r"seconds 'x', which is not a number"),
@@ -48,4 +48,5 @@ def test_fault_kinds_are_the_agreed_ones():
         "plant_gain",
         "noise_burst",
         "dropout",
+        "dac_gain",
     )
