@@ -50,3 +50,17 @@ def test_fault_kinds_are_the_agreed_ones():
         "dropout",
         "dac_gain",
     )
+
+
+def test_a_fault_can_name_one_input():
+    from liveshape.schema import Where
+    from liveshape.testdef.fault_spec import fault_from_mapping
+
+    assert parse_fault("sensor_detached:2@30") == FaultSpec("sensor_detached", 30.0, input=2)
+    assert parse_fault("dac_gain@1=-3/10").input is None
+    assert fault_from_mapping({"kind": "dropout", "at_s": 1, "input": 3}, Where("t.yaml", "f")
+                              ).input == 3
+    with pytest.raises(ConfigError, match=r"has input 'x', which must be an input channel >= 1"):
+        parse_fault("sensor_detached:x@30")
+    with pytest.raises(ConfigError, match=r"t.yaml: f.input = 0"):
+        fault_from_mapping({"kind": "dropout", "at_s": 1, "input": 0}, Where("t.yaml", "f"))

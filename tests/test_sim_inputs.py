@@ -243,3 +243,27 @@ def test_inputs_from_a_test_definition():
     bad = dataclasses.replace(spec.rig.input_roles()[2], name="shelf")
     with pytest.raises(ConfigError, match="monitor input 3 .'shelf'. names no point"):
         sim_inputs([spec.rig.input_roles()[0], bad], plant)
+
+
+def test_fixture_points_in_a_plant_file_read_back_and_are_checked():
+    from liveshape.rigs.plant import plant_from_mapping, plant_to_mapping
+    from liveshape.schema import Where
+
+    data = plant_to_mapping(plant_with_tip())
+    assert data["payload"]["fixture_points"] == [
+        {"name": "tip", "f_hz": 700.0, "q": 8.0, "coupling": -0.6}]
+    assert plant_from_mapping(data, Where("p.yaml")) == plant_with_tip()
+    data["payload"]["fixture_points"].append({"name": "bracket", "f_hz": 9, "q": 1,
+                                              "coupling": 0})
+    with pytest.raises(ConfigError, match=r"p.yaml: payload.fixture_points\[1\].name = "
+                       "'bracket' must be unique"):
+        plant_from_mapping(data, Where("p.yaml"))
+    data["payload"]["fixture_points"][1] = {"name": "x", "f_hz": 9, "q": 1}
+    with pytest.raises(ConfigError, match=r"fixture_points\[1\]"):
+        plant_from_mapping(data, Where("p.yaml"))
+    fast = dataclasses.replace(TIP, f_hz=30000.0)
+    p = plant_with_tip()
+    p = dataclasses.replace(p, payload=dataclasses.replace(p.payload, fixture_points=(fast,)))
+    with pytest.raises(ConfigError, match=r"payload.fixture_points\[0\].f_hz = 30000 must be "
+                       "below 0.45"):
+        SimRig(p, FS)
