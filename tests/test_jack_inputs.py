@@ -153,3 +153,30 @@ def test_virtual_rig_command_refuses_bad_inputs_before_jack(value, words, tmp_pa
                        env={"PYTHONPATH": root, "PATH": "/usr/bin:/bin"})
     assert r.returncode == 2
     assert r.stdout == "" and r.stderr.count("\n") == 1 and words in r.stderr, r.stderr
+
+
+def test_plant_processor_fills_every_input_and_never_raises() -> None:
+    from liveshape.rigs.jackrig import PlantProcessor
+
+    proc = PlantProcessor("loudspeaker", 48000.0, seed=1, inputs=INPUTS, loopback=False)
+    assert proc.inputs == (1, 2, 3)
+    drive = 0.05 * np.random.default_rng(1).standard_normal(1024)
+    outs = [np.full(1024, np.nan, np.float32) for _ in INPUTS]
+    proc.run_inputs(drive, outs)
+    assert all(np.all(np.isfinite(o)) for o in outs) and proc.errors == 0
+    proc.run_inputs(np.zeros(7), outs)  # a wrong-length period: silenced and counted
+    assert proc.errors == 1 and all(np.all(o == 0.0) for o in outs)
+
+
+@pytest.mark.jack
+def test_a_subprocess_virtual_rig_registers_one_port_per_input(jack_server) -> None:
+    name = f"plant-{uuid.uuid4().hex[:6]}"
+    with VirtualRig("loudspeaker", server_name=jack_server.name, client_name=name,
+                    inputs=INPUTS, in_process=False):
+        jack = import_jack()
+        probe = jack.Client(f"probe-{uuid.uuid4().hex[:6]}", no_start_server=True,
+                            servername=jack_server.name)
+        ports = sorted(p.name for p in probe.get_ports(f"{name}:", is_output=True))
+        probe.close()
+    assert ports == sorted([f"{name}:loop_out"] + [f"{name}:{input_port_name(c)}"
+                                                   for c, _ in INPUTS])
