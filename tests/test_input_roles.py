@@ -90,10 +90,11 @@ def test_roles_survive_the_round_trip_through_plain_data():
     ({"inputs": [{"channel": 1, "role": "control"}, {"channel": 1, "role": "monitor"}]},
      "rig.inputs[1].channel = 1 is already the control input 'control1'"),
     ({"inputs": [{"channel": 1, "role": "control", "limit": LIMIT}]},
-     "rig.inputs[0].limit = '...' is given on a control input; a limit is only for a monitor"),
+     "rig.inputs[0].limit = '<2 breakpoints>' is given on a control input; a limit is only "
+     "for a monitor"),
     ({"inputs": [{"channel": 1, "role": "control"}, {"channel": 2, "role": "reference",
                                                       "limit": LIMIT}]},
-     "rig.inputs[1].limit = '...' is given on a reference input"),
+     "rig.inputs[1].limit = '<2 breakpoints>' is given on a reference input"),
     ({"inputs": [{"channel": 1, "role": "control"}, {"channel": 2, "role": "monitor",
                                                       "weight": 2}]},
      "rig.inputs[1].weight = 2 is given on a monitor input; a weight is only for a control"),

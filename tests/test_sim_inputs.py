@@ -267,3 +267,29 @@ def test_fixture_points_in_a_plant_file_read_back_and_are_checked():
     with pytest.raises(ConfigError, match=r"payload.fixture_points\[0\].f_hz = 30000 must be "
                        "below 0.45"):
         SimRig(p, FS)
+
+
+def test_a_fault_naming_the_control_channel_of_a_one_input_rig_acts_on_the_control():
+    plant = plant_with_tip()
+    d = 0.05 * np.random.default_rng(2).standard_normal(FS)
+    a = SimRig(plant, FS, seed=1, faults=[parse_fault("dropout@0.5")]).process(d)
+    b = SimRig(plant, FS, seed=1, faults=[parse_fault("dropout:1@0.5")]).process(d)
+    assert np.array_equal(a, b) and np.all(a[FS // 2:] == 0.0)
+
+
+def test_the_virtual_rig_calibration_file_lists_every_input(tmp_path):
+    # the file the virtual-rig command writes: the sim's own truth per input (1 V/FS, 100 mV/g
+    # for accelerometer inputs; none for the reference)
+    from types import SimpleNamespace
+
+    from liveshape.cli import write_virtual_rig_calibration
+    from liveshape.rigs.calfile import load_calibration
+    from liveshape.rigs.jackrig import PlantProcessor
+
+    proc = PlantProcessor("loudspeaker", 48000.0, inputs=((1, "control"), (2, "mode:bracket"),
+                                                          (3, "reference")))
+    rig = SimpleNamespace(processor=proc, period_frames=1024, fs_hz=48000.0, client_name="vr")
+    cal = load_calibration(write_virtual_rig_calibration(rig, tmp_path / "cal.yaml"))
+    assert [(c.channel, c.v_per_fs, c.mv_per_g) for c in cal.inputs] == [
+        (1, 1.0, 100.0), (2, 1.0, 100.0), (3, 1.0, None)]
+    assert cal.g_per_fs_at(2) == pytest.approx(10.0)  # 1 V/FS over 0.1 V/g

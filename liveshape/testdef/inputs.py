@@ -85,6 +85,13 @@ def _limit(value: Any, w: Where, name: str) -> Profile:
     return profile_from_points(value, w, units="g2/Hz", name=name, units_where=w)
 
 
+def _short(value: Any) -> str:
+    """A short stand-in for a limit in a message (its breakpoints are not repeated)."""
+    points = value.get("breakpoints") if isinstance(value, dict) else value
+    n = len(points) if isinstance(points, list) else 0
+    return f"<{n} breakpoints>" if n else "<limit>"
+
+
 def inputs_from_list(data: Any, w: Where) -> tuple[InputRole, ...]:
     """Read ``rig.inputs`` strictly (see the module docstring for the rules).
 
@@ -120,8 +127,9 @@ def inputs_from_list(data: Any, w: Where) -> tuple[InputRole, ...]:
         limit = None
         if d.get("limit") is not None:
             if role != "monitor":
-                raise wi.key("limit").fail("...", f"is given on a {role} input; a limit is only "
-                                           "for a monitor (a control follows the profile)")
+                raise wi.key("limit").fail(_short(d["limit"]), f"is given on a {role} input; a "
+                                           "limit is only for a monitor (a control follows the "
+                                           "profile)")
             limit = _limit(d["limit"], wi.key("limit"), name)
         weight = 1.0
         if d.get("weight") is not None:
