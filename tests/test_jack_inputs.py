@@ -180,3 +180,38 @@ def test_a_subprocess_virtual_rig_registers_one_port_per_input(jack_server) -> N
         probe.close()
     assert ports == sorted([f"{name}:loop_out"] + [f"{name}:{input_port_name(c)}"
                                                    for c, _ in INPUTS])
+
+
+@pytest.mark.jack
+def test_the_stream_reads_the_inputs_in_port_order(jack_server) -> None:
+    # PortAudio numbers a JACK client's ports in the order they were registered: input_1 is
+    # stream input 0, and so on; the audio rig reads the control, a monitor and the reference
+    # (as its loopback) through the real stream
+    from jackserver import virtual_rig
+
+    from liveshape.rigs import audio
+
+    fs = int(jack_server.fs_hz)
+    with virtual_rig("loudspeaker", seed=5, inputs=INPUTS, loopback=False):
+        rig = audio.AudioRig("liveshape-plant", fs, control_channel=0, monitor_channel=1,
+                             loopback=(None, 2))
+        drive = 0.05 * np.random.default_rng(8).standard_normal(2 * fs)
+        rec = rig.play_record(drive, tail_s=0.3)
+    d = rec.drive_fs.astype(float)
+    ref, ctrl, mon = (x.astype(float) for x in (rec.loopback_fs, rec.response_fs,
+                                                   rec.monitor_fs))
+    # the path: one JACK period, one 1024-frame stream block, the card's 1536 samples
+    lag = lag_of(d, ref)
+    assert lag == jack_loop_delay_samples(jack_server.period_frames, 1024, plant_delay=1536)
+    sos = np.vstack([scipy.signal.butter(1, fc, "highpass", fs=fs, output="sos")
+                     for fc in (7.0, 5.0)])
+    expect = scipy.signal.sosfilt(sos, np.concatenate([np.zeros(lag), d[:-lag]]))
+    # the whole drive arrives (the stream starts on silence): float32 stream samples and the
+    # card's -100 dBFS noise are all that differ
+    assert np.std(ref - expect) < 3e-5
+    f, gcc = scipy.signal.welch(ctrl[lag:], fs, nperseg=8192)
+    _, gcm = scipy.signal.csd(ctrl[lag:], mon[lag:], fs, nperseg=8192)
+    sel = (f > 100) & (f < 1000)
+    assert abs(f[sel][np.argmax(np.abs(gcm[sel] / gcc[sel]))] - 350.0) < 3 * (f[1] - f[0])
+    _, coh = scipy.signal.coherence(d[:-lag], ctrl[lag:], fs, nperseg=4096)
+    assert np.median(coh[(f[:coh.size] > 50) & (f[:coh.size] < 5000)]) > 0.99
