@@ -6,7 +6,8 @@ Outside references: the loop delay through a JACK cycle is one server period (a 
 JACK clients includes the JACK period length, jack_iodelay(1) manual page; the tester -> plant ->
 tester cycle is broken by one period), plus the plant card's ``delay_samples``; the loopback's
 first-order AC couplings evaluated with scipy.signal.butter/sosfilt; the coherence of a noisy
-linear path, 1/(1 + N/S) (Bendat & Piersol, *Random Data*, 4th ed., §6.1.3); the base-excitation
+linear path, 1/(1 + N/S) (Bendat & Piersol, *Random Data*, 4th ed., §6.1.3 [section from memory]);
+the base-excitation
 transmissibility peak near f_n (Rao, *Mechanical Vibrations*, 5th ed., §3.6).
 """
 

@@ -124,7 +124,8 @@ def test_the_reference_is_the_drive_through_the_card_and_cable():
 
 def test_reference_coherence_with_the_drive_is_one_with_card_noise():
     # with -100 dBFS of card noise on a 0.05 FS drive (SNR ≈ 74 dB) the coherence is
-    # 1/(1 + N/S) ≥ 0.9999 (Bendat & Piersol §6.1.3: coherence of a noisy output)
+    # 1/(1 + N/S) ≥ 0.9999 (Bendat & Piersol, Random Data, 4th ed., coherence of a noisy
+    # output; section number [from memory]: §6.1.3)
     rig = SimRig(plant_with_tip(), FS, seed=1, inputs=INPUTS)
     d, rows = run(rig, blocks=12)
     delayed = np.concatenate([np.zeros(1536), d[:-1536]])
