@@ -114,19 +114,42 @@ def _cmd_check(args: argparse.Namespace) -> int:
         overrides["control.fs_hz"] = args.fs
     spec = load_spec(args.spec, overrides)
     feas = None
+    tones_ok = True
     if args.rig is not None:
         feas = _feasibility(spec)
     report = check_report(spec, feas)
+    if feas is not None and spec.tones:
+        head = _tone_headroom(spec, feas)
+        report["rig"].update(head.to_dict())
+        tones_ok = head.ok
+        if not head.ok:
+            report["rig"]["feasible"] = False
     if args.json:
         _print_json(report)
     else:
         console = dashboard.make_console()
         console.print(dashboard.check_table(report))
-    if feas is not None and not feas.feasible:
+    if feas is not None and not (feas.feasible and tones_ok):
         from liveshape.control.safety import EXIT_INFEASIBLE
 
         return EXIT_INFEASIBLE
     return 0
+
+
+def _tone_headroom(spec: Any, feas: Any) -> Any:
+    """Drive peak of the random (clipped) plus the tones on the spec's simulated plant."""
+    import numpy as np
+
+    from liveshape.control.tonecheck import tone_drive_headroom
+    from liveshape.rigs.plant import load_plant
+    from liveshape.rigs.plantmodel import analytic_frf
+
+    plant = load_plant(spec.rig.plant)
+    fs = spec.control.fs_hz
+    return tone_drive_headroom(
+        spec.tones, feas.drive.rms, g_per_fs=1.0 / plant.fs_per_g,
+        limit_fs=spec.safety.drive_peak_max_fs, clip_sigma=spec.safety.clip_sigma,
+        h_abs=lambda f: np.abs(analytic_frf(plant, f, fs_hz=fs)))
 
 
 def _feasibility(spec: Any) -> Any:
@@ -184,6 +207,7 @@ def _cmd_synth(args: argparse.Namespace) -> int:
         crest_max=args.crest_max,
         max_tries=args.max_tries,
         kurtosis=args.kurtosis,
+        tones=_synth_tones(spec, args.tone or [], args.fs),
     )
     if args.json:
         with _sigterm_unwinds():
@@ -197,12 +221,46 @@ def _cmd_synth(args: argparse.Namespace) -> int:
     return 0
 
 
+def _synth_tones(spec: Any, options: list[tuple[str, float, float]], fs: float | None) -> list:
+    """The spec's tones (g) and the ``--tone F_HZ:AMPLITUDE`` options (fixed, g), each inside
+    the profile band and below Nyquist."""
+    fs_hz = spec.control.fs_hz if fs is None else fs
+    tones = [t.tone() for t in spec.tones]
+    p = spec.profile
+    for text, f, a in options:
+        if not p.f_min_hz <= f <= p.f_max_hz:
+            raise ConfigError(f"--tone = {text!r}: {f:g} Hz must lie in the profile band "
+                              f"{p.f_min_hz:g}-{p.f_max_hz:g} Hz")
+        if not f < fs_hz / 2:
+            raise ConfigError(f"--tone = {text!r}: {f:g} Hz must be below Nyquist "
+                              f"({fs_hz / 2:g} Hz)")
+        from liveshape.dsp.tones import Tone
+
+        tones.append(Tone(a, f))
+    return tones
+
+
+def _tone_option(text: str) -> tuple[str, float, float]:
+    """``F_HZ:AMPLITUDE``: a fixed tone, frequency in Hz and peak amplitude in the drive's unit."""
+    parts = text.split(":")
+    try:
+        if len(parts) != 2:
+            raise ValueError
+        f, a = float(parts[0]), float(parts[1])
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"{text!r} must be F_HZ:AMPLITUDE (two numbers, e.g. 120:0.5)") from None
+    if not (math.isfinite(f) and f > 0 and math.isfinite(a) and a > 0):
+        raise argparse.ArgumentTypeError(f"{text!r}: frequency and amplitude must be > 0")
+    return text, f, a
+
+
 def _synth_from_run(args: argparse.Namespace) -> int:
     from liveshape.record.drivefile import make_run_drive_file
 
     if args.spec is not None:
         raise ConfigError(f"synth: SPEC = {args.spec!r} and --from-run are exclusive")
-    for name in ("fs", "clip_sigma", "crest_min", "crest_max", "kurtosis"):
+    for name in ("fs", "clip_sigma", "crest_min", "crest_max", "kurtosis", "tone"):
         if getattr(args, name) is not None:
             opt = "--" + name.replace("_", "-")
             raise ConfigError(f"synth: {opt} does not apply with --from-run (the run fixes it)")
@@ -314,6 +372,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
                                    "the profile is infeasible on this rig; run on the user's "
                                    "--accept-infeasible", accepted)]
     kwargs["record_signals"] = args.record == "full"
+    if args.warm_start is not None:
+        kwargs["warm_start"] = args.warm_start
     if hold:
         kwargs["bring_up"] = _enter_flag()
     if args.json:
@@ -902,6 +962,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="realizations to try for the crest-factor criterion (default 10)")
     s.add_argument("--kurtosis", type=_positive_float, metavar="K",
                    help="kurtosis target >= 3 (3: Gaussian); the PSD is kept")
+    s.add_argument("--tone", type=_tone_option, action="append", metavar="F_HZ:AMPLITUDE",
+                   help="add a fixed sine tone (Hz : peak g) to the random; repeatable; adds to "
+                   "the spec's tones")
     s.add_argument("--json", action="store_true", help="print the sidecar as one JSON object")
     s.set_defaults(func=_cmd_synth)
 
@@ -949,6 +1012,10 @@ def build_parser() -> argparse.ArgumentParser:
                       "must be a terminal")
     hold.add_argument("--bring-up", action="store_true",
                       help="simulated rig: rehearse the bring-up hold (meter, Enter to go on)")
+    r.add_argument("--warm-start", metavar="RUN_DIR",
+                   help="start from the equalized drive of an earlier completed run on the same "
+                   "rig and calibration (confirmed by a short identification; refused when the "
+                   "rig, calibration, sample rate or lines differ)")
     r.add_argument("--record", choices=("full", "spectra"), default="full",
                    help="full (default): spectra, events and the drive and response WAVs "
                    "(about 1.3 GB per hour at 48 kHz); spectra: everything but the WAVs")

@@ -68,6 +68,7 @@ class SessionResult:
             "dof": r.dof,
             "time_at_full_level_s": r.time_at_full_level_s,
             "updates": r.updates,
+            "control_kurtosis": r.kurtosis,
             "trip": None if trip is None else dataclasses.asdict(trip),
             **verdict_summary(r.verdict),
             "run_dir": str(self.run_dir),
@@ -153,6 +154,16 @@ def build_sim_rig(spec: TestSpec, seed: int | None) -> tuple[Any, ChainCalibrati
     if spec.rig.hum is not None:
         mapping["hum"] = spec.rig.hum.as_mapping()
     return rig, rig.calibration, mapping
+
+
+def _warm_start(run_dir: str | Path | None, spec: TestSpec, rig_mapping: dict,
+                cal: ChainCalibration) -> Any:
+    """The warm start from ``run_dir`` (None: a cold start); ConfigError when it does not fit."""
+    if run_dir is None:
+        return None
+    from liveshape.record.warmstart import load_warm_start
+
+    return load_warm_start(run_dir, spec, rig=rig_mapping, calibration=_calibration_mapping(cal))
 
 
 def _calibration_mapping(cal: ChainCalibration) -> dict[str, Any]:
@@ -367,6 +378,8 @@ def run_session(
     record_signals: bool = True,
     start_events: Sequence[tuple[str, str, dict[str, Any]]] = (),
     bring_up: Any = None,
+    view_hz: float = 4.0,
+    warm_start: str | Path | None = None,
 ) -> SessionResult:
     """Run one test on the rig the spec selects and leave a record folder.
 
@@ -397,6 +410,11 @@ def run_session(
         Hold the drive at the connection level after the connection check until this flag is
         set by the user's confirmation (see :mod:`liveshape.control.bringup`); None: no hold.
         The hold is paced in real time even with ``fast``.
+    view_hz : float
+        Most ``on_snapshot`` calls per second of wall-clock time (a large value: every block).
+    warm_start : path, optional
+        An earlier completed run on the same rig and calibration: start from its equalized drive
+        (:mod:`liveshape.control.warmstart`); refused in one line when they differ.
     """
     if spec.rig.kind != "sim":
         raise ConfigError(
@@ -407,16 +425,19 @@ def run_session(
         raise ConfigError(f"--block-size = {block_size} must be at least 16 samples")
     seed = spec.seed if seed is None else seed
     rig, cal, rig_mapping = build_sim_rig(spec, seed)
-    controller = Controller(spec, cal, seed=seed, bring_up=bring_up)
+    warm = _warm_start(warm_start, spec, rig_mapping, cal)
+    controller = Controller(spec, cal, seed=seed, bring_up=bring_up, warm=warm)
     stop = stop or StopFlag()
     recorder = _open_record(spec, out_dir, rig_mapping, cal,
                             {"seed": seed, "fast": fast, "block_size": block_size,
-                             "bring_up": bring_up is not None},
+                             "bring_up": bring_up is not None,
+                             "warm_start": None if warm is None else
+                             {"from_run": warm.source, "update": warm.update}},
                             identity, record_signals)
     for kind, message, data in start_events:
         recorder.event(0.0, kind, message, data)
     with recorder, sigterm_stops(stop):
-        loop = RunLoop(controller, recorder, on_snapshot=on_snapshot)
+        loop = RunLoop(controller, recorder, on_snapshot=on_snapshot, view_hz=view_hz)
         result = loop.run_sim(rig, block_size=block_size, fast=fast, stop=stop)
         rig_figures = {"kind": "sim", "plant": spec.rig.plant, **dataclasses.asdict(rig.status)}
         session = SessionResult(
@@ -466,6 +487,7 @@ def run_audio_session(
     identity: dict[str, Any] | None = None,
     record_signals: bool = True,
     bring_up: Any = None,
+    warm_start: str | Path | None = None,
 ) -> SessionResult:
     """Run one test through a real audio interface (or the JACK virtual rig).
 
@@ -492,7 +514,6 @@ def run_audio_session(
     rig = AudioRig(info.index, fs, block_size=block_size, lead_blocks=lead_blocks,
                    stop_fade_s=spec.safety.abort_ramp_s,
                    **audio_channels(spec.rig.channel_map()))
-    controller = Controller(spec, cal, seed=seed, bring_up=bring_up)
     stop = stop or StopFlag()
     rig_mapping = {
         "kind": "audio",
@@ -504,9 +525,13 @@ def run_audio_session(
         "lead_blocks": lead_blocks,
         **spec.rig.channel_map(),
     }
+    warm = _warm_start(warm_start, spec, rig_mapping, cal)
+    controller = Controller(spec, cal, seed=seed, bring_up=bring_up, warm=warm)
     recorder = _open_record(spec, out_dir, rig_mapping, cal,
                             {"seed": seed, "block_size": block_size, "calibrated": cal.calibrated,
-                             "bring_up": bring_up is not None},
+                             "bring_up": bring_up is not None,
+                             "warm_start": None if warm is None else
+                             {"from_run": warm.source, "update": warm.update}},
                             identity, record_signals)
     with recorder, sigterm_stops(stop):
         loop = RunLoop(controller, recorder, on_snapshot=on_snapshot)

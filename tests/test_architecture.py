@@ -49,7 +49,7 @@ PURE_PACKAGES = ("dsp", "control")
 PURE_MODULES = [
     "errors.py", "schema.py", "atomic.py", "testdef/chain.py", "testdef/tolerance.py",
     "testdef/overrides.py", "testdef/fault_spec.py", "testdef/profilefile.py",
-    "testdef/hum_spec.py", "rigs/hum.py",
+    "testdef/hum_spec.py", "testdef/tone_spec.py", "rigs/hum.py",
     "views/textplot.py", "views/textformat.py", "views/runtext.py", "views/checktext.py",
     "views/surveytext.py",
     "rigs/plantmodel.py", "rigs/calmath.py", "rigs/modal.py", "rigs/cascade.py",

@@ -33,7 +33,9 @@ PERSISTENT = ("lines_abort", "drive_limit", "loop_open")
 
 def make_spec(*, grms=1.0, steps=(-6.0, 0.0), hold_s=1.0, full_s=4.0, seed=1,
               tolerance=None, safety=None, **control):
-    # flat 20-1000 Hz, grms² = ASD·980 Hz
+    # flat 20-1000 Hz, grms² = ASD·980 Hz. These tests pin the block loop unless they ask for
+    # the fast one (tests/test_fastloop.py covers the fast loop's own promises).
+    control.setdefault("loop", "block")
     prof = Profile((20.0, 1000.0), (grms**2 / 980.0, grms**2 / 980.0), "flat")
     return TestSpec(
         name="t", profile=prof, tolerance=tolerance or Tolerance(),
@@ -221,7 +223,7 @@ def _check_ramp_down(ctl, drive, t_fault_s, spec):
     # fast rules trip within one update; persistent ones need abort_persist_updates whole
     # updates after the one the fault fell into
     n_upd = 1 if trip.rule not in PERSISTENT else spec.safety.abort_persist_updates + 1
-    assert t_quiet - t_fault_s <= spec.safety.abort_ramp_s + n_upd * ctl.update_interval_s
+    assert t_quiet - t_fault_s <= spec.safety.abort_ramp_s + n_upd * ctl.safety_estimate_s
     # no step during the fade: |Δx| stays below 6 standard deviations of the pre-trip |Δx|
     # (Gaussian drive: P = 2e−9 per sample) plus the raised-cosine slope π/(2M)·peak
     i_trip = int(round(trip.t_s * FS))
@@ -234,22 +236,28 @@ def _check_ramp_down(ctl, drive, t_fault_s, spec):
     return trip
 
 
+_FAULTS = [
+    (FaultSpec("sensor_detached", 24.0), "loop_open", 1.0),
+    (FaultSpec("amp_trip", 24.0), "loop_open", 1.0),
+    (FaultSpec("sensor_gain", 24.0, 4.0), "rms_abort", 0.25),
+    # at 0.25 grms the +10 dB jump leaves the input far from overload (0.08 FS rms)
+    (FaultSpec("plant_gain", 24.0, 10.0), "rms_abort", 0.25),
+    (FaultSpec("noise_burst", 24.0, 0.5, 0.5), "input_overload", 1.0),
+    (FaultSpec("dropout", 24.0, None, 1.0), "response_silent", 1.0),
+]
+# A 25 % resonance shift: the block loop sees lines beyond abort on two updates in a row and
+# trips; the fast loop follows it (test_fast_loop_follows_a_resonance_shift_the_block_loop_aborts)
+_BLOCK_ONLY = [(FaultSpec("resonance_shift", 24.0, 1.25), "lines_abort", 1.0)]
+
+
 @pytest.mark.parametrize(
-    ("fault", "rule", "grms"),
-    [
-        (FaultSpec("sensor_detached", 24.0), "loop_open", 1.0),
-        (FaultSpec("amp_trip", 24.0), "loop_open", 1.0),
-        (FaultSpec("sensor_gain", 24.0, 4.0), "rms_abort", 0.25),
-        # at 0.25 grms the +10 dB jump leaves the input far from overload (0.08 FS rms)
-        (FaultSpec("plant_gain", 24.0, 10.0), "rms_abort", 0.25),
-        (FaultSpec("noise_burst", 24.0, 0.5, 0.5), "input_overload", 1.0),
-        (FaultSpec("dropout", 24.0, None, 1.0), "response_silent", 1.0),
-        (FaultSpec("resonance_shift", 24.0, 1.25), "lines_abort", 1.0),
-    ],
+    ("fault", "rule", "grms", "loop"),
+    [(*f, loop) for loop in ("block", "fast") for f in _FAULTS]
+    + [(*f, "block") for f in _BLOCK_ONLY],
     ids=lambda v: str(getattr(v, "kind", v)),
 )
-def test_fault_trips_its_rule_and_ramps_the_drive_down(fault, rule, grms):
-    spec = make_spec(grms=grms, full_s=15.0)
+def test_fault_trips_its_rule_and_ramps_the_drive_down(fault, rule, grms, loop):
+    spec = make_spec(grms=grms, full_s=15.0, loop=loop)
     rig = SimRig(load_plant("loudspeaker"), FS, seed=2, faults=(fault,))
     ctl, drive, events = run(spec, rig)
     trip = _check_ramp_down(ctl, drive, fault.at_s, spec)
@@ -258,6 +266,29 @@ def test_fault_trips_its_rule_and_ramps_the_drive_down(fault, rule, grms):
     assert any(e.kind == "trip" and e.data["rule"] == rule for e in events)
     assert all(k.endswith(("_db", "_fs", "_s", "dof", "updates", "samples", "_bad", "abort"))
                or k in ("lines_beyond_abort",) for k in trip.detail)
+
+
+def test_fast_loop_follows_a_resonance_shift_the_block_loop_aborts():
+    # The same 25 % shift as the block loop's lines_abort case: the fast loop sees the moved
+    # lines within a second, restarts their estimates and re-equalizes; the run completes in
+    # tolerance (the true control, from the rig's analytic FRF, is back inside the alarm band).
+    spec = make_spec(full_s=25.0, loop="fast")  # the run ends 15 s after the shift
+    rig = SimRig(load_plant("loudspeaker"), FS, seed=2,
+                 faults=(FaultSpec("resonance_shift", 24.0, 1.25),))
+    ctl, _, events = run(spec, rig)
+    res = ctl.result()
+    assert res.status == "completed", res.abort_reason
+    assert any(e.kind == "track" and e.t_s > 24.0 for e in events)
+    assert res.final_lines_outside_alarm == 0
+    from tests.benchmarks.bench_control import _expected_control_fs
+
+    # the true control of the final drive (the expected Welch estimate through the rig's
+    # analytic FRF, windows included): every line within the alarm band, where the shift had
+    # put lines more than 6 dB off before the loop followed it
+    rec = ctl.last_update
+    true = _expected_control_fs(rig, rec.f_hz, rec.new_drive_psd, N, FS)
+    true_db = 10 * np.log10(true / rec.target_psd)
+    assert np.max(np.abs(true_db)) <= spec.tolerance.alarm_db
 
 
 def test_short_dropout_does_not_trip_and_does_not_enter_an_estimate():
@@ -298,9 +329,10 @@ def test_underflow_report_trips_controller_late():
     assert _check_ramp_down(ctl, drive, 20.0, spec).rule == "controller_late"
 
 
-def test_drive_limit_trips_when_the_plant_is_too_weak():
+@pytest.mark.parametrize("loop", ["block", "fast"])
+def test_drive_limit_trips_when_the_plant_is_too_weak(loop):
     # 0.05 FS/FS: 1 grms needs 0.1 FS rms of response, i.e. 2 FS rms of drive > 0.25 FS ceiling
-    spec = make_spec(steps=(-20.0, -10.0, 0.0), full_s=5.0)
+    spec = make_spec(steps=(-20.0, -10.0, 0.0), full_s=5.0, loop=loop)
     rig = Wire(0.05)
     ctl, drive, events = run(spec, rig)
     assert ctl.trip is not None and ctl.trip.rule == "drive_limit", ctl.trip
@@ -314,14 +346,15 @@ def test_drive_limit_trips_when_the_plant_is_too_weak():
     assert rms.max() <= ctl.drive_rms_limit_fs * (1 + 5 * math.sqrt(FS / (N * 980.0)))
 
 
-def test_runaway_after_a_sensor_loss_never_exceeds_the_drive_limit():
+@pytest.mark.parametrize("loop", ["block", "fast"])
+def test_runaway_after_a_sensor_loss_never_exceeds_the_drive_limit(loop):
     # The sensor loses 4.4 dB (gain 0.6): inside the abort and loop-open limits, so the
     # equalizer pushes the drive up to make up for it, into a 0.1 FS rms ceiling (1 grms needs
     # ≈ 0.08 FS before the fault, 0.13 FS after). The drive must stop at the ceiling and the
     # run end on drive_limit. Where the fault falls between updates decides whether a few
     # lines go beyond the abort band first (then lines_abort trips and, while pending, keeps
     # the drive from rising: also safe); 25 s is a phase at which the push reaches the ceiling.
-    spec = make_spec(full_s=30.0, safety=SafetyLimits(drive_rms_max_fs=0.1))
+    spec = make_spec(full_s=30.0, safety=SafetyLimits(drive_rms_max_fs=0.1), loop=loop)
     rig = SimRig(load_plant("loudspeaker"), FS, seed=2,
                  faults=(FaultSpec("sensor_gain", 25.0, 0.6),))
     ctl, drive, events = run(spec, rig)

@@ -224,7 +224,7 @@ def test_level_steps_wait_for_the_dof_and_hold_and_no_sooner():
     assert all(e.data["decision_dof"] >= spec.control.target_dof for e in levels[1:])
     assert ctl.snapshot().dof >= spec.control.target_dof
     full = next(e.t_s for e in ev if e.kind == "stage" and e.data["stage"] == "full_level")
-    assert full <= 30.0  # the block loop needed 49 s for this schedule
+    assert full <= 25.0  # README: "reaches full level in 24 s" (the block loop: 49 s)
 
 
 def _true_rms_db(ctl, rig):
@@ -285,6 +285,26 @@ def test_no_trip_from_scatter_alone_over_ten_minutes_at_full_level():
     res = ctl.result()
     assert res.status == "completed", res.abort_reason
     assert res.verdict.verdict == "pass"
+
+
+def test_every_update_record_states_its_own_dof_and_none_is_a_scrap():
+    # Records are the independent safety blocks; one closed early (full level starting, the
+    # test ending) has fewer segments: its DOF is stated as it is (Welch 1967 for its count),
+    # and none has fewer than half the update DOF, so no record shows a few-DOF scatter as a
+    # line deviation
+    spec, rig, ctl = _example()
+    recs = []
+    resp = np.zeros(4096)
+    while not ctl.finished:
+        resp = rig.process(ctl.exchange(resp))
+        u = ctl.last_update
+        if u is not None and (not recs or recs[-1] is not u):
+            recs.append(u)
+    full = welch_dof(segments_for_dof(spec.control.target_dof / 2))
+    assert all(r.dof >= welch_dof(segments_for_dof(spec.control.target_dof / 2) // 2) - 1e-9
+               for r in recs)
+    assert any(r.dof < full for r in recs)  # a block closed early says so
+    assert recs[-1].decision_dof == pytest.approx(ctl.result().dof)
 
 
 def test_fast_loop_drive_is_bit_reproducible_for_a_seed():

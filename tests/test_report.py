@@ -536,7 +536,7 @@ def test_report_command_writes_pdf_and_pngs_when_asked(tmp_path, capsys):
 # Real simulated runs: completed, aborted, stopped
 
 
-def _sim_run(tmp_path, fault: str | None = None, stop_after_s: float | None = None):
+def _sim_run(tmp_path, fault: str | None = None, stop_at_stage: str | None = None):
     from pathlib import Path
 
     from liveshape.session import StopFlag, run_session
@@ -551,11 +551,11 @@ def _sim_run(tmp_path, fault: str | None = None, stop_after_s: float | None = No
     flag = StopFlag()
 
     def snap(s):
-        if stop_after_s is not None and s.t_s > stop_after_s:
+        if stop_at_stage is not None and s.stage == stop_at_stage:
             flag.set("operator asked to stop")
 
     session = run_session(spec, out_dir=tmp_path, fast=True, block_size=512, stop=flag,
-                          on_snapshot=snap)
+                          on_snapshot=snap, view_hz=1e9)  # a snapshot after every block
     return session
 
 
@@ -569,7 +569,7 @@ def test_report_of_real_completed_aborted_and_stopped_runs(tmp_path):
 
     done = _sim_run(tmp_path / "done")
     aborted = _sim_run(tmp_path / "aborted", fault="sensor_detached@5")
-    stopped = _sim_run(tmp_path / "stopped", stop_after_s=12.0)
+    stopped = _sim_run(tmp_path / "stopped", stop_at_stage="full_level")
     assert (done.result.status, aborted.result.status, stopped.result.status) == (
         "completed", "aborted", "stopped")
 

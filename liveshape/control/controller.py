@@ -83,6 +83,7 @@ from liveshape.control.loopstate import FADE_IN_S, IDENTIFY_BELOW_DB, LoopState
 from liveshape.control.runstate import RunResult
 from liveshape.control.safety import Trip
 from liveshape.control.stages import ControlEstimate, judge
+from liveshape.control.warmstart import CONFIRM_DB, WarmStart, confirm
 from liveshape.dsp.spectra import chi2_interval_db, welch_dof
 
 __all__ = ["FADE_IN_S", "IDENTIFY_BELOW_DB", "Controller", "run_offline"]
@@ -110,8 +111,10 @@ class Controller(FastLoop, LoopState):
     """
 
     def __init__(self, spec: Any, calibration: Any, *, bring_up: Any = None,
-                 **kwargs: Any) -> None:
+                 warm: WarmStart | None = None, **kwargs: Any) -> None:
         super().__init__(spec, calibration, **kwargs)
+        #: An earlier run's equalized drive to start from (:mod:`liveshape.control.warmstart`).
+        self._warm = warm
         #: The shell's confirmation flag (``is_set()``/``clear()``, e.g. threading.Event) for
         #: the bring-up hold; None: no hold (the simulated rig, ``run --unattended``).
         self._bring_up_flag = bring_up
@@ -317,8 +320,12 @@ class Controller(FastLoop, LoopState):
             chk, self._target, g_per_fs=self.calibration.g_per_fs, max_boost_db=c.max_boost_db,
             coherence_min=s.connect_coherence_min, band=self._band,
             ceiling_ms_fs2=self._out.ceiling_ms(g_id), df_hz=self.df_hz)
+        how = ""
+        if self._warm is not None:  # the stored drive's shape: the plant is confirmed with it
+            psd = np.array(self._warm.drive_psd, dtype=float)
+            how = f" with the drive of {self._warm.source} (update {self._warm.update})"
         self._switch_to = (psd, g_id)
-        self._set_stage("identify", f"identify: H1 at {20 * math.log10(g_id):.1f} dB")
+        self._set_stage("identify", f"identify: H1 at {20 * math.log10(g_id):.1f} dB{how}")
         self._out.fade(0.0, FADE_IN_S)
 
     # ------------------------------------------------------------------ estimation
@@ -363,7 +370,12 @@ class Controller(FastLoop, LoopState):
                                       max_boost_db=c.max_boost_db, coherence_min=c.coherence_min,
                                       band=self._band, ceiling_ms_fs2=self._out.ceiling_ms(g1),
                                       df_hz=self.df_hz)
-        self._out.set_psd(res.drive_psd, ceiling_hit=res.ceiling_hit)
+        warm_ok = self._warm is not None and self._confirm_warm()
+        if warm_ok:
+            self._out.set_psd(self._warm.drive_psd)
+            self._out.rescale_for(g1)
+        else:
+            self._out.set_psd(res.drive_psd, ceiling_hit=res.ceiling_hit)
         coh_b = self._coh[self._band]
         self._emit("identify", f"identified: mean coherence {float(np.mean(coh_b)):.3f}, "
                    f"{int(np.count_nonzero(self._frozen))} lines frozen, "
@@ -373,12 +385,32 @@ class Controller(FastLoop, LoopState):
                     "lines_boost_limited": res.n_step_limited, "dof": welch_dof(self._k_identify),
                     "ceiling_scale": res.ceiling_scale})
         if self._fast:
-            self._fast_setup(id_psd, id_gain, id_ctrl, welch_dof(self._k_identify))
+            # a confirmed warm start identified with the drive it now plays: that control is
+            # already evidence for the first decision (normalized to full level)
+            self._fast_setup(id_psd, id_gain, id_ctrl, welch_dof(self._k_identify),
+                             window_seed=self._k_identify if warm_ok else 0)
         elif c.law == "direct":
             self._est = ControlEstimate(self.fs_hz, self.frame_length, self._band, self._gpf2,
                                         cross=False)
         self._set_stage("equalize", "equalize")
         self._go_to_level(self.schedule.level_db)
+
+    def _confirm_warm(self) -> bool:
+        """Compare the FRF just identified with the stored one; emit the outcome."""
+        w, band = self._warm, self._band
+        ok, med, n = confirm(self._h1[band], self._coh[band], w,
+                             coherence_min=self.spec.control.coherence_min)
+        data = {"from_run": w.source, "update": w.update, "h_change_p95_db": med,
+                "lines_compared": n, "limit_db": CONFIRM_DB}
+        if ok:
+            self._emit("warm_start", f"warm start: the plant matches {w.source} (95 % of "
+                       f"{n} lines within {med:.2f} dB of its |H|); its drive is the first drive",
+                       data)
+        else:
+            self._emit("warm_start_rejected", f"warm start not used: the plant changed since "
+                       f"{w.source} (95 % of {n} lines within {med:.2f} dB of its |H|, limit "
+                       f"{CONFIRM_DB:g} dB); equalizing from the identified FRF", data)
+        return ok
 
     def _go_to_level(self, level_db: float) -> None:
         deciding = self._decision if self.schedule.index > 0 else None
@@ -518,9 +550,11 @@ class Controller(FastLoop, LoopState):
         if self._status == "running" and self._stage in ("equalize", "full_level"):
             if self._stage == "equalize" and self.schedule.at_last_step and settled_full:
                 self._set_stage("full_level", "full level: counting test time")
+                self._fast_stage_change(self.t_s, completed=False)
             if self._stage == "full_level":
                 self.schedule.count_full_level(n / self.fs_hz, settled=settled_full)
                 if self.schedule.complete:
+                    self._fast_stage_change(self.t_s, completed=True)
                     self._status = "completed"
                     self._begin_ramp_down(self._end_ramp_s)
         if self._stage == "ramp_down" and self._out.silent:

@@ -49,7 +49,8 @@ class DriveStream:
 
     def __init__(self, fs_hz: float, frame_length: int, *, seed: int | None,
                  clip_sigma: float | None, rms_max_fs: float, peak_max_fs: float,
-                 rate_db_s: float, fade_s: float, history: int) -> None:
+                 rate_db_s: float, fade_s: float, history: int,
+                 kurtosis: float | None = None) -> None:
         self.fs_hz = float(fs_hz)
         self.df_hz = self.fs_hz / frame_length
         self.rms_limit_fs = float(rms_max_fs)
@@ -58,7 +59,8 @@ class DriveStream:
         self.peak_limit_fs = float(peak_max_fs)
         self.rate_db_s = float(rate_db_s)
         self.synth = RandomPhaseSynth(self.fs_hz, frame_length, seed=seed, clip_sigma=clip_sigma,
-                                      gain=0.0, rate_db_s=rate_db_s, fade_s=fade_s)
+                                      gain=0.0, rate_db_s=rate_db_s, fade_s=fade_s,
+                                      kurtosis=kurtosis)
         self.psd = np.zeros(frame_length // 2 + 1)  # full-level drive PSD, FS²/Hz
         self.history = DriveHistory(history)
         self.n_out = 0  # samples produced
@@ -158,8 +160,24 @@ class DriveStream:
         out = np.zeros(int(np.count_nonzero(band)))
         for r in range(4):
             if w[r] > 0.0:
-                out += w[r] * self._frame_psd(q - 1 + r)[band]
+                j = q - 1 + r
+                # a non-Gaussian drive scales each frame by its gain a (E[a²] = 1): that frame's
+                # power is a² times its PSD, known to the synthesizer
+                out += (w[r] * self.synth.frame_gain2(j)) * self._frame_psd(j)[band]
         return out
+
+    def segment_burst(self, start: int) -> float:
+        """``Σ_j w_j a_j²``: the drive power of the segment from ``start`` relative to its PSD.
+
+        1.0 for a Gaussian drive; for the frame-gain (non-Gaussian) drive the known burst factor
+        of that segment, by which its expected control power is scaled.
+        """
+        hop = self._hop
+        q, o = divmod(int(start), hop)
+        w = self._weights.get(o)
+        if w is None:
+            w = self._weights[o] = self._frame_weights(o)
+        return float(sum(w[r] * self.synth.frame_gain2(q - 1 + r) for r in range(4) if w[r] > 0))
 
     def _frame_psd(self, j: int) -> np.ndarray:
         for first, psd in reversed(self._psd_log):

@@ -27,9 +27,12 @@ enters the full-level average of the verdict.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 from liveshape.control import equalizer
+from liveshape.control.safety import UpdateVerdict
 from liveshape.control.stages import judge, segments_for_dof
 from liveshape.control.tracking import PowerGainTracker, log_bias_db, n_avg_for_dof
 from liveshape.dsp.segments import SegmentPowers
@@ -42,6 +45,9 @@ __all__ = ["CHANGE_DB", "SHORT_SEGMENTS", "SUM_SEGMENTS", "DecisionWindow", "Fas
 #: Averaging numbers (segments) of the short per-line and band-sum averages.
 SHORT_SEGMENTS = 6
 SUM_SEGMENTS = 3
+#: A block closed early (at the start of full level) needs at least this many segments; a
+#: shorter one goes on into the next block.
+MIN_BLOCK_SEGMENTS = 8
 #: A line's short and long estimates this far apart (dB) restart its long average.
 CHANGE_DB = 4.0
 
@@ -80,11 +86,14 @@ class FastLoop:
     """Equalize and full level with the fast loop (mixed into the controller)."""
 
     def _fast_setup(self, id_psd: np.ndarray, id_gain: float, id_control: np.ndarray,
-                    id_dof: float) -> None:
+                    id_dof: float, *, window_seed: int = 0) -> None:
         """Start the fast estimators after identification.
 
         ``id_control`` (g²/Hz, band) was measured with the full-level drive ``id_psd`` played at
-        ``id_gain``: the plant estimate starts from it.
+        ``id_gain``: the plant estimate starts from it. With ``window_seed`` > 0 (a confirmed warm
+        start: the identification played the drive the loop starts with) it also counts as that
+        many segments of the decision window (its linear average, so the window's mean is the
+        linear average of all the segments it then holds).
         """
         c = self.spec.control
         band, n = self._band, self.frame_length
@@ -97,12 +106,16 @@ class FastLoop:
         self._segs = SegmentPowers(self.fs_hz, n, band)
         self._seg_from = self._out.n_out + (self._delay or 0)  # response index of segment 0
         self._window = DecisionWindow(segments_for_dof(float(c.target_dof)), n_lines)
+        for _ in range(min(window_seed, self._window.k - 1)):
+            self._window.push(id_control / id_gain**2)
         self._h2_id = np.abs(self._h1[band]) ** 2  # identified |H|², g²/FS²
         self._blk = np.zeros(n_lines)
         self._blk_d = np.zeros(n_lines)
         self._blk_n = 0
         self._blk_full = True
         self._since_update = 0
+        if self._kurt is not None:  # the non-Gaussian drive starts with equalize
+            self._out.synth.set_kurtosis(self._kurt.drive)
         self._fast_res: equalizer.DriveResult | None = None
         self._last_clean = False
 
@@ -116,6 +129,8 @@ class FastLoop:
         j = self._seg_from - i0
         if j >= y.size:
             return
+        if self._kurt is not None:
+            self._kurtosis_feed(y[max(0, j):], i0 + max(0, j))
         self._segs.push(y[max(0, j):])
         first, rows = self._segs.pop()
         hop, n, delay = self._hop, self.frame_length, self._delay or 0
@@ -125,44 +140,61 @@ class FastLoop:
             if self._status != "running":
                 return
 
+    def _kurtosis_feed(self, y: np.ndarray, i0: int) -> None:
+        """Control samples played at a steady level go to the kurtosis loop (normalized)."""
+        out = self._out
+        g = out.segment_gain(i0 - (self._delay or 0), y.size)
+        if g is None or g <= 0.0 or g != out.gain_target:
+            return
+        k = self._kurt
+        if k.push(y / g, full_level=self._stage == "full_level" and g == 1.0):
+            out.synth.set_kurtosis(k.drive)
+            self._emit("kurtosis", f"control kurtosis {k.measured:.2f} (averaged "
+                       f"{k.averaged:.2f}, target {k.target:g}): drive kurtosis {k.drive:.2f}"
+                       + (" (the clip level allows no more)" if k.limited else ""),
+                       {"control_kurtosis": k.measured, "control_kurtosis_avg": k.averaged,
+                        "target": k.target, "drive_kurtosis": k.drive,
+                        "drive_kurtosis_max": k.drive_max, "clip_limited": k.limited})
+
     def _fast_segment(self, p: np.ndarray, drive_start: int, t: float) -> None:
         """One control segment ``p`` (g²/Hz) answering the drive from ``drive_start`` on."""
         out, band = self._out, self._band
         g = out.segment_gain(drive_start, self.frame_length)
         self._last_clean = g is not None and g == out.gain_target
+        # a non-Gaussian drive plays bursts by design: each segment's expected control power
+        # is its known burst factor times the target's (1 for a Gaussian drive)
+        burst = out.segment_burst(drive_start)
         if g is None:  # a level ramp: only the rms rule, against the level it heads to
             g_to = out.gain_target
             trip = self.supervisor.check_segment(
-                t, control_sum=float(p.sum()), target_sum=self._target_sum * g_to**2,
+                t, control_sum=float(p.sum()), target_sum=self._target_sum * g_to**2 * burst,
                 band_dof=self._seg_band_dof)
             if trip is not None:
                 self._abort(trip)
             return
         if g <= 0.0:
             return
-        d_full = out.segment_psd(drive_start, band)
+        d_full = out.segment_psd(drive_start, band)  # bursts included
         g2 = g * g
         trip = self.supervisor.check_segment(
-            t, control_sum=float(p.sum()), target_sum=self._target_sum * g2,
+            t, control_sum=float(p.sum()), target_sum=self._target_sum * g2 * burst,
             band_dof=self._seg_band_dof, predicted_sum=float(np.dot(self._h2_id, d_full)) * g2)
         if trip is not None:
             self._abort(trip)
             return
         self._tracker.push(p, d_full * g2)
-        norm = p / g2
+        norm = p / (g2 * burst)  # the control per unit of the PSD the drive is made of
         self._window.push(norm)
         self._blk += norm
-        self._blk_d += d_full
+        self._blk_d += d_full / burst
         self._blk_n += 1
         self._blk_full &= self._stage == "full_level" and g == 1.0
-        if self._blk_n >= self._k_update:
-            self._fast_block(t)
-            if self._status != "running":
-                return
         self._since_update += 1
         if self._since_update >= self._m_update:
             self._since_update = 0
             self._fast_update(t)
+        if self._blk_n >= self._k_update and self._status == "running":
+            self._fast_block(t)  # after the update: the record carries the newest decision
 
     def _fast_update(self, t: float) -> None:
         """A drive update from the plant estimate, then a decision when one is due."""
@@ -201,18 +233,28 @@ class FastLoop:
                       df_hz=self.df_hz)
             self._on_decision(d, t)
 
-    def _fast_block(self, t: float) -> None:
-        """An independent safety block: every rule, the update record, the full-level average."""
+    def _fast_block(self, t: float, *, final: bool = False) -> None:
+        """An independent safety block: every rule, the update record, the full-level average.
+
+        A block is normally ``update_dof`` DOF of segments; a shorter one is closed when full
+        level starts (so that full-level blocks hold full-level data only) and, with
+        ``final``, when the test time is complete (no rule is checked then: the run is over).
+        """
         band, g = self._band, self._est_gain
         k = self._blk_n
+        dof = self._nu_update if k == self._k_update else welch_dof(k)
         ctrl_norm = self._blk / k
         ctrl, target_b = ctrl_norm * g * g, self._target[band] * g * g
         played = self._out.played_psd(band, g)
         predicted = self._h2_id * (self._blk_d / k) * g * g  # identified FRF, drive the block saw
         at_limit = self._out.ceiling_hit or self._out.clipped > 0
-        verdict = self.supervisor.check_update(
-            t, control_psd=ctrl, target_psd=target_b, dof=self._nu_update,
-            abort_db=self._abort_db, predicted_psd=predicted, drive_at_limit=at_limit)
+        if final:
+            verdict = UpdateVerdict(None, (), _rms_db(ctrl, target_b), 0, math.nan, math.nan,
+                                    math.nan)
+        else:
+            verdict = self.supervisor.check_update(
+                t, control_psd=ctrl, target_psd=target_b, dof=dof, abort_db=self._abort_db,
+                predicted_psd=predicted, drive_at_limit=at_limit)
         self._updates += 1
         full = self._blk_full
         self._blk = np.zeros_like(self._blk)
@@ -221,7 +263,7 @@ class FastLoop:
         self._out.reset_counters()
         if verdict.trip is not None:
             self._record_update(t, ctrl, target_b, played, None, verdict.rms_error_db, None,
-                                applied=False)
+                                applied=False, dof=dof)
             self._abort(verdict.trip)
             return
         if verdict.pending and not self._pending:
@@ -229,16 +271,37 @@ class FastLoop:
                        "pending", {"update": self._updates, "pending": list(verdict.pending)})
         self._pending = tuple(verdict.pending)
         if full:
-            self._full.push(ctrl_norm, self._nu_update, t)
+            self._full.push(ctrl_norm, dof, t)
         d = self._decision
+        self._recorded_decision = d  # the run's final figures are those of the last record
         self._record_update(t, ctrl, target_b, played, self._fast_res, verdict.rms_error_db,
-                            None if d is None else d.in_tolerance, applied=not verdict.pending)
+                            None if d is None else d.in_tolerance, applied=not verdict.pending,
+                            dof=dof)
+
+    def _fast_stage_change(self, t: float, *, completed: bool) -> None:
+        """Close the current block at the start of full level, or with the end of the test.
+
+        A block of at least half the usual segments becomes an update record (with the end
+        of the test: no rule is checked, the run is over). A shorter one at the end only joins
+        the full-level average: its few DOF would show as large line deviations in the record.
+        """
+        if not self._fast or self._blk_n == 0:
+            return
+        if self._blk_n >= max(MIN_BLOCK_SEGMENTS, self._k_update // 2):
+            self._fast_block(t, final=completed)
+        elif completed and self._blk_full:
+            self._full.push(self._blk / self._blk_n, welch_dof(self._blk_n), t)
 
     @property
     def drive_update_times_s(self) -> tuple[float, ...]:
         """Run times of the drive updates so far, s (fast loop; the block loop: its updates)."""
         return tuple(self._drive_updates)
 
+
+
+def _rms_db(ctrl: np.ndarray, target: np.ndarray) -> float:
+    c, r = float(ctrl.sum()), float(target.sum())
+    return 10.0 * math.log10(c / r) if c > 0 and r > 0 else -math.inf
 
 
 def fast_update_segments(update_interval_s: float, fs_hz: float, hop: int) -> int:

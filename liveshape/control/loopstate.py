@@ -18,6 +18,7 @@ import numpy as np
 from liveshape.control.connect import ConnectionCheck, ConnectStage
 from liveshape.control.drivestream import DriveStream, ResponseQueue
 from liveshape.control.fastloop import fast_update_segments
+from liveshape.control.kurtosisloop import KurtosisLoop
 from liveshape.control.runplan import check_max_step, max_step_s
 from liveshape.control.runstate import ControlSnapshot, Event, RunResult, UpdateRecord, frozen_array
 from liveshape.control.safety import LevelSchedule, Supervisor, Trip, band_sum_dof
@@ -113,6 +114,13 @@ class LoopState:
             fs, n, seed=spec.seed if seed is None else seed, clip_sigma=s.clip_sigma,
             rms_max_fs=s.drive_rms_max_fs, peak_max_fs=s.drive_peak_max_fs, rate_db_s=rate,
             fade_s=self._abort_ramp_s, history=self._max_lag + 8 * n)
+        # kurtosis control (control.kurtosis > 3): the drive stays Gaussian until equalize
+        k_target = getattr(c, "kurtosis", None)
+        self._kurt: KurtosisLoop | None = None
+        if k_target is not None and k_target > 3.0:
+            interval = KurtosisLoop.interval_for(self._hop)
+            self._kurt = KurtosisLoop(k_target, s.clip_sigma, interval_samples=interval,
+                                      block_samples=2 * interval)
 
         # streams
         self._resp = ResponseQueue()
@@ -207,6 +215,14 @@ class LoopState:
         return n / self.fs_hz
 
     @property
+    def safety_estimate_s(self) -> float:
+        """Run time between two estimates of the persistent safety rules, s (block loop: one
+        update; fast loop: a block of update DOF)."""
+        if self._fast:
+            return self._k_update * self._hop / self.fs_hz
+        return self.update_interval_s
+
+    @property
     def drive_rms_limit_fs(self) -> float:
         """Effective drive rms ceiling, FS."""
         return self._out.rms_limit_fs
@@ -222,14 +238,15 @@ class LoopState:
 
     # ------------------------------------------------------------------ events and views
     def _record_update(self, t, ctrl, target_b, played, res, rms_err, in_tol, *,
-                       applied: bool) -> None:
+                       applied: bool, dof: float | None = None) -> None:
         with np.errstate(divide="ignore"):
             dev = _DB * np.log(np.maximum(ctrl, 1e-300) / target_b)
         d = self._decision if in_tol is not None else None
         decision_psd = np.full(ctrl.size, np.nan) if d is None else d.control_psd
         rec = UpdateRecord(
             index=self._updates, t_s=t, stage=self._stage, level_db=self.schedule.level_db,
-            dof=self._nu_update, f_hz=self.f_hz, control_psd=frozen_array(ctrl),
+            dof=self._nu_update if dof is None else float(dof), f_hz=self.f_hz,
+            control_psd=frozen_array(ctrl),
             target_psd=frozen_array(target_b), drive_psd=frozen_array(played),
             new_drive_psd=frozen_array(self._out.psd[self._band]),
             h1=frozen_array(self._h1[self._band], complex),
@@ -344,8 +361,15 @@ class LoopState:
                 "last_t_s": f.last_t_s}
 
     def result(self) -> RunResult:
-        """Outcome so far (final once :attr:`finished`)."""
+        """Outcome so far (final once :attr:`finished`).
+
+        The fast loop decides every update but records every safety block: its final figures
+        are those of the decision stored with the last record (``decision_psd``), so that the
+        summary and the record agree.
+        """
         d = self._judgement()
+        if self._fast and getattr(self, "_recorded_decision", None) is not None:
+            d = self._recorded_decision
         reason = self._trip.message if self._trip is not None else self._stop_reason
         nan = math.nan
         return RunResult(
@@ -359,4 +383,5 @@ class LoopState:
             target_grms_g=nan if d is None else d.target_grms_g,
             dof=0.0 if d is None else d.dof,
             time_at_full_level_s=self.schedule.time_at_full_level_s, updates=self._updates,
-            verdict=self.verdict())
+            verdict=self.verdict(),
+            kurtosis=None if self._kurt is None else self._kurt.full_level_result())

@@ -13,6 +13,7 @@ from __future__ import annotations
 import math
 from typing import Any
 
+from liveshape.control.fastloop import fast_update_segments
 from liveshape.control.stages import segments_for_dof, update_dof_for
 from liveshape.errors import ConfigError
 
@@ -32,10 +33,19 @@ def _estimate_s(dof: float, frame_length: int, fs_hz: float) -> float:
     return (k + 1) * 0.5 * frame_length / fs_hz
 
 
+def _fast(spec: Any) -> bool:
+    return getattr(spec.control, "loop", "block") == "fast"
+
+
 def update_period_s(spec: Any) -> float:
-    """Run time between two control updates of ``spec``, s (one update estimate)."""
+    """Run time between two control updates of ``spec``, s (block loop: one update estimate;
+    fast loop: ``control.update_interval_s`` in whole segments)."""
     c = spec.control
-    return _estimate_s(update_dof_for(float(c.target_dof)), int(c.frame_length), float(c.fs_hz))
+    n, fs = int(c.frame_length), float(c.fs_hz)
+    if _fast(spec):
+        hop = n // 2
+        return fast_update_segments(float(c.update_interval_s), fs, hop) * hop / fs
+    return _estimate_s(update_dof_for(float(c.target_dof)), n, fs)
 
 
 def nominal_run_s(spec: Any) -> float:
@@ -49,14 +59,22 @@ def nominal_run_s(spec: Any) -> float:
     Returns
     -------
     float
-        Seconds of run time; the identification needs ``target_dof`` and each step one decision
-        from two update estimates of :func:`~liveshape.control.stages.update_dof_for` DOF each.
+        Seconds of run time. Block loop: the identification needs ``target_dof`` and each step
+        one decision from two update estimates of
+        :func:`~liveshape.control.stages.update_dof_for` DOF each. Fast loop: the
+        identification needs the update DOF, the first step a decision window of ``target_dof``,
+        each step its ramp, ``hold_s`` and one update period.
     """
     c, sch = spec.control, spec.schedule
     fs, n = float(c.fs_hz), int(c.frame_length)
-    identify_s = _estimate_s(float(c.target_dof), n, fs)
-    decision_s = 2.0 * _estimate_s(update_dof_for(float(c.target_dof)), n, fs)
-    total = START_S + identify_s
+    fast = _fast(spec)
+    update_dof = update_dof_for(float(c.target_dof))
+    identify_s = _estimate_s(update_dof if fast else float(c.target_dof), n, fs)
+    if fast:
+        first_s, decision_s = _estimate_s(float(c.target_dof), n, fs), update_period_s(spec)
+    else:
+        first_s, decision_s = 0.0, 2.0 * _estimate_s(update_dof, n, fs)
+    total = START_S + identify_s + first_s
     level = float(sch.steps_db[0]) if sch.steps_db else 0.0
     rate = float(sch.rate_db_s)
     for step in sch.steps_db:
@@ -79,17 +97,21 @@ def least_step_s(spec: Any) -> float:
     """The least run time a reduced-level step can last at ``spec``'s settings, s.
 
     The largest ramp between steps, one frame for the estimate to start after it, one tolerance
-    decision (two update estimates), then ``hold_s`` rounded up to whole update periods (a step
-    up happens at a decision).
+    decision (block loop: two update estimates; fast loop: the first step's decision window of
+    ``target_dof``), then ``hold_s`` rounded up to whole update periods (a step up happens at a
+    decision).
     """
     c, sch = spec.control, spec.schedule
     period = update_period_s(spec)
+    decision_s = 2.0 * period
+    if _fast(spec):
+        decision_s = _estimate_s(float(c.target_dof), int(c.frame_length), float(c.fs_hz)) + period
     steps = [float(s) for s in sch.steps_db]
     rate = float(sch.rate_db_s)
     ramp = max((abs(b - a) / rate for a, b in zip(steps[:-1], steps[1:], strict=True)),
                default=0.0)
     hold = math.ceil(float(sch.hold_s) / period - 1e-9) * period
-    return ramp + int(c.frame_length) / float(c.fs_hz) + 2.0 * period + hold
+    return ramp + int(c.frame_length) / float(c.fs_hz) + decision_s + hold
 
 
 def max_step_s(spec: Any) -> float:
@@ -118,8 +140,8 @@ def check_max_step(spec: Any) -> None:
         raise ConfigError(
             f"{spec.source or spec.name}: schedule.max_step_s = {float(given):g} s is shorter "
             f"than {MIN_STEP_FACTOR:g} × the least time a step takes at these settings "
-            f"({least:.1f} s: ramp, two update estimates of {update_period_s(spec):.1f} s, "
-            f"hold_s rounded up to updates); give at least {MIN_STEP_FACTOR * least:.0f} s")
+            f"({least:.1f} s: ramp, a tolerance decision, hold_s rounded up to updates of "
+            f"{update_period_s(spec):.2f} s); give at least {MIN_STEP_FACTOR * least:.0f} s")
 
 
 def check_fault_times(faults: Any, run_s: float, what: str = "the run") -> None:

@@ -179,6 +179,10 @@ class RunResult:
     time_at_full_level_s: float
     updates: int
     verdict: Any = None
+    #: The control's kurtosis at full level with ``control.kurtosis``: ``target``,
+    #: ``kurtosis``, ``std_error`` (batch means; None below two blocks), ``samples``,
+    #: ``samples_for_0_1`` (record length for ±0.1 at 90 %), ``drive_kurtosis``; else None.
+    kurtosis: Any = None
 
     @property
     def abort_rule(self) -> str | None:

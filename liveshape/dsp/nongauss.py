@@ -122,17 +122,23 @@ class FrameGains:
         frame_kurtosis: float = 3.0,
         group: int = GROUP_FRAMES,
     ) -> None:
+        self._frame_kurtosis = float(frame_kurtosis)
+        self._group = int(group)
+        self.retarget(kurtosis)
+        self._rng = rng
+        self._gains = np.ones(self._group)
+        self._i = self._group
+
+    def retarget(self, kurtosis: float) -> None:
+        """A new kurtosis target, used from the next group of frames on."""
         k = check_kurtosis(kurtosis)
-        m = float(group)
-        self._m4 = gain_fourth_moment(k, frame_kurtosis)
+        m = float(self._group)
+        self.kurtosis = k
+        self._m4 = gain_fourth_moment(k, self._frame_kurtosis)
         if not 1.0 < self._m4 < m:  # E[a^4] = M (s + 1) / (M s + 1) lies in (1, M)
             self._shape = math.inf
         else:
             self._shape = (m - self._m4) / (m * (self._m4 - 1.0))
-        self._rng = rng
-        self._group = int(group)
-        self._gains = np.ones(self._group)
-        self._i = self._group
 
     @property
     def shape(self) -> float:

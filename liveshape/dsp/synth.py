@@ -55,6 +55,7 @@ coherent normal stationary time domain signals", Shock and Vibration 1(1), 1993.
 from __future__ import annotations
 
 import math
+from collections import deque
 from dataclasses import dataclass
 
 import numpy as np
@@ -213,6 +214,8 @@ class RandomPhaseSynth:
         self._gains: FrameGains | None = None
         if kurtosis is not None and check_kurtosis(kurtosis, "synth: kurtosis") > 3.0:
             self._gains = FrameGains(kurtosis, self._rng)
+        self._frame_index = -2  # the priming frame is number -1, the first block's frame 0
+        self._gain2_log: deque[tuple[int, float]] = deque(maxlen=64)  # (frame, a²) when ≠ 1
         self._ramp = GainRamp(self._fs_hz, gain=gain, rate_db_s=rate_db_s, fade_s=fade_s)
         self._moments = RunningMoments()
         self._n_clipped = 0
@@ -479,9 +482,40 @@ class RandomPhaseSynth:
 
     def _modulated_frame(self) -> np.ndarray:
         frame = self._frame()
+        self._frame_index += 1
         if self._gains is not None:
-            frame *= self._gains.next()
+            a = self._gains.next()
+            frame *= a
+            self._gain2_log.append((self._frame_index, a * a))
         return frame
+
+    def set_kurtosis(self, kurtosis: float) -> None:
+        """A new kurtosis target of the stream (3: Gaussian), from the next group of frames.
+
+        The frame gains keep ``E[a²] = 1`` (the PSD is kept); switching from Gaussian starts the
+        gains with the next frame.
+        """
+        k = check_kurtosis(kurtosis, "synth: kurtosis")
+        if self._gains is None:
+            if k > 3.0:
+                self._gains = FrameGains(k, self._rng)
+        else:
+            self._gains.retarget(k)
+
+    @property
+    def kurtosis_target(self) -> float:
+        """The stream's kurtosis target (3.0 without frame gains)."""
+        return 3.0 if self._gains is None else self._gains.kurtosis
+
+    def frame_gain2(self, frame: int) -> float:
+        """``a²`` of synthesis frame ``frame`` (frame ``j`` starts at sample ``j·hop``); 1.0 for
+        a Gaussian frame or one no longer kept (the newest 64 are)."""
+        for j, g2 in reversed(self._gain2_log):
+            if j == frame:
+                return g2
+            if j < frame:
+                break
+        return 1.0
 
     def _prime(self) -> None:
         frame = self._modulated_frame()

@@ -15,7 +15,14 @@ Scaling: no written sample exceeds ±1. With clipping (``clip_sigma``), full sca
 level, ``clip_sigma`` times the target's rms, known before synthesis, so each realization is
 written in one pass (over a long record the peak is the clip level anyway). Without clipping,
 full scale is the realization's peak, found by a statistics pass; the writing pass then
-regenerates the same realization from its seed. Realization ``k`` (0, 1, ...) draws from
+regenerates the same realization from its seed.
+
+Sine tones (sine-on-random) are added phase-continuously to the random after its clipping
+(:class:`~liveshape.dsp.tones.ToneBank`, amplitudes in g, peak). With clipping, full scale is then
+the clip level plus the sum of the tones' amplitudes (the worst case of peaks that add); the
+statistics are those of the written sum; the PSD check leaves out the lines within
+``TONE_LINES`` lines of each tone (of a swept tone's whole range), and the sidecar lists the
+tones. Realization ``k`` (0, 1, ...) draws from
 ``numpy.random.default_rng(numpy.random.SeedSequence([seed, k]))``; with crest-factor limits,
 realizations are tried in turn until one meets them.
 """
@@ -33,6 +40,7 @@ from typing import Any, NoReturn
 
 import numpy as np
 
+from liveshape.dsp.moments import RunningMoments
 from liveshape.dsp.nongauss import (
     GROUP_FRAMES,
     BlockKurtosis,
@@ -42,6 +50,7 @@ from liveshape.dsp.nongauss import (
 )
 from liveshape.dsp.spectra import PsdAverager, chi2_interval_db, welch_dof
 from liveshape.dsp.synth import CLIP_SIGMA_MIN, RandomPhaseSynth, SynthStats
+from liveshape.dsp.tones import Tone, ToneBank, tone_line_mask
 from liveshape.errors import ConfigError
 from liveshape.record.diskspace import check_file_space
 
@@ -49,6 +58,9 @@ from liveshape.record.diskspace import check_file_space
 #: window (about 3 lines wide) and the Hann estimate round the edge, the edge line reads about
 #: 1.1 dB low and the next one 0.1 dB low.
 EDGE_LINES = 2
+#: Lines either side of a tone left out of the random's PSD check (a Hann-windowed tone holds
+#: ±2 lines, Harris 1978; one more for margin).
+TONE_LINES = 3
 #: Samples per block streamed to disk (512 kB of float64).
 BLOCK = 1 << 16
 #: Largest data chunk of a RIFF WAV; longer records are written as RF64.
@@ -199,6 +211,7 @@ def make_drive_file(
     crest_max: float | None = None,
     max_tries: int = 10,
     kurtosis: float | None = None,
+    tones: Any = (),
     progress: Callable[[float], None] | None = None,
 ) -> DriveFileResult:
     """Write a drive file of the spec's profile: float32 mono WAV plus a JSON sidecar.
@@ -234,6 +247,9 @@ def make_drive_file(
         than 2 % (:func:`~liveshape.dsp.nongauss.clip_sigma_needed`). The sidecar's
         ``kurtosis_check`` gives the kurtosis with its standard error from the scatter of
         independent blocks and the record length a +-0.1 accuracy (90 %) needs.
+    tones : sequence of liveshape.dsp.tones.Tone, optional
+        Sine tones added to the random (amplitude in g, peak; fixed or swept; each below
+        Nyquist). Recorded in the sidecar's ``settings.tones``.
     progress : callable, optional
         Called with the fraction of the planned work done (0 .. 1, never decreasing; it jumps
         ahead when a realization is accepted before ``max_tries``).
@@ -256,6 +272,8 @@ def make_drive_file(
     opts = _resolve(spec, out, duration_s, fs_hz, seed, clip_sigma, crest_min, crest_max, max_tries)
     fs, n_frame, n_samples, base_seed, clip = opts
     kurt = _resolve_kurtosis(spec, kurtosis, clip, n_samples)
+    tones = tuple(tones)
+    ToneBank(tones, fs)  # every tone below Nyquist (one-line error otherwise)
     lines = spec.profile.lines(fs, n_frame)
     if not np.any(lines > 0):
         raise ConfigError(
@@ -277,6 +295,7 @@ def make_drive_file(
         f_min_hz=spec.profile.f_min_hz,
         f_max_hz=spec.profile.f_max_hz,
         kurtosis=kurt,
+        tones=tones,
     )
     limits = crest_min is not None or crest_max is not None
     n_tries = max_tries if limits else 1
@@ -284,7 +303,9 @@ def make_drive_file(
     # written while its statistics are gathered (one pass). Without clipping a statistics pass
     # finds the peak, then the writing pass regenerates the same realization.
     one_pass = clip is not None
-    full_scale_g = clip * math.sqrt(float(np.sum(lines)) * fs / n_frame) if one_pass else 0.0
+    tone_peak_g = float(sum(t.amplitude for t in tones))
+    full_scale_g = (clip * math.sqrt(float(np.sum(lines)) * fs / n_frame) + tone_peak_g
+                    if one_pass else 0.0)
     sidecar = out.with_suffix(".json")
     tmp_wav = _temp_name(out)
     try:
@@ -348,6 +369,8 @@ def make_drive_file(
                 "max_tries": max_tries,
                 "wav_format": f"{job.wav_format} float32 mono",
                 "realization_seed": f"numpy SeedSequence([{base_seed}, {k}])",
+                "tones": [_tone_mapping(t) for t in tones],
+                "tone_lines_excluded": TONE_LINES if tones else 0,
             },
             psd_check=check[0],
             kurtosis_check=check[1],
@@ -373,6 +396,28 @@ class _Job:
     f_min_hz: float
     f_max_hz: float
     kurtosis: float = 3.0
+    tones: tuple[Tone, ...] = ()
+
+
+def _tone_mapping(t: Tone) -> dict[str, Any]:
+    d: dict[str, Any] = {"f_hz": t.f_hz, "amplitude_g": t.amplitude, "phase_rad": t.phase_rad}
+    if t.swept:
+        d.update(f_hi_hz=t.f_hi_hz, rate_oct_min=t.rate_oct_min)
+    return d
+
+
+def _check_lines(job: _Job) -> np.ndarray:
+    """The target lines with those near a tone (or a sweep's range) set to 0 (not checked)."""
+    lines = np.array(job.lines, dtype=float)
+    if not job.tones:
+        return lines
+    df = job.fs_hz / job.frame_length
+    f = np.arange(lines.size) * df
+    for t in job.tones:
+        top = t.f_hi_hz if t.swept else t.f_hz
+        near = tone_line_mask(f, [t.f_hz, top], df, TONE_LINES) | ((f >= t.f_hz) & (f <= top))
+        lines[near] = 0.0
+    return lines
 
 
 def _realization(job: _Job, k: int, report, span, sink) -> SynthStats:
@@ -390,17 +435,29 @@ def _realization(job: _Job, k: int, report, span, sink) -> SynthStats:
     else:
         synth = RandomPhaseSynth(job.fs_hz, job.frame_length, seed=rng, clip_sigma=job.clip_sigma)
     synth.set_psd(job.lines)
+    bank = ToneBank(job.tones, job.fs_hz) if job.tones else None
+    moments = RunningMoments() if bank is not None else None
     buf = np.empty(BLOCK)
     n = job.n_samples
     done = 0
     while done < n:
         m = min(BLOCK, n - done)
         x = synth.read(m, out=buf[:m])
+        if bank is not None:
+            x += bank.read(m)
+            moments.update(x)
         if sink is not None:
             sink(x)
         done += m
         report(span[0] + (span[1] - span[0]) * done / n)
-    return synth.stats
+    st = synth.stats
+    if moments is None:
+        return st
+    # the statistics of the written sum (random after clipping, plus the tones)
+    rms, peak = moments.rms, moments.peak
+    return SynthStats(n_samples=st.n_samples, rms=rms, peak=peak,
+                      crest_factor=peak / rms if rms > 0 else math.nan,
+                      kurtosis=moments.kurtosis, clipped_fraction=st.clipped_fraction)
 
 
 def _write_realization(sf, path, job: _Job, k: int, full_scale_g: float, report, span):
@@ -425,7 +482,7 @@ def _write_realization(sf, path, job: _Job, k: int, full_scale_g: float, report,
     check = check_psd(
         averager.f_hz,
         averager.psd,
-        job.lines,
+        _check_lines(job),
         welch_dof(averager.n_segments),
         job.f_min_hz,
         job.f_max_hz,

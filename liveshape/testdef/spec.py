@@ -42,12 +42,13 @@ from liveshape.testdef.inputs import InputRole, inputs_from_list, inputs_to_list
 from liveshape.testdef.overrides import COMMAND_LINE, OverrideWhere, did_you_mean
 from liveshape.testdef.profilefile import profile_from_points, read_profile_csv
 from liveshape.testdef.tolerance import Tolerance, tolerance_from_mapping
+from liveshape.testdef.tone_spec import ToneSpec, check_tones, tones_from_list
 
 __all__ = [
     "CLIP_SIGMA_FLOOR", "COMMAND_LINE", "FAULT_KINDS", "MAX_FRAME_LENGTH", "MIN_BAND_LINES",
     "MIN_FRAME_LENGTH", "SPEC_SUFFIXES", "ControlSettings", "FaultSpec", "InputRole",
-    "RigSelection",
-    "SafetyLimits", "Schedule", "TestSpec", "check_spec", "load_spec", "parse_fault",
+    "RigSelection", "SafetyLimits", "Schedule", "TestSpec", "ToneSpec", "check_spec",
+    "load_spec", "parse_fault",
     "spec_from_mapping", "spec_to_mapping",
 ]
 
@@ -87,8 +88,11 @@ class ControlSettings:
     law: str = "direct"
     #: ``fast``: a drive update every ``update_interval_s`` on running averages that follow the
     #: drive (docs/methods.md, "Fast update loop"); ``block``: one update per fresh estimate.
-    loop: str = "block"
+    loop: str = "fast"
     update_interval_s: float = 0.35
+    #: Kurtosis target of the control response (3: Gaussian; None: a Gaussian drive, no
+    #: kurtosis control). docs/methods.md, "Non-Gaussian drive" and "Kurtosis in the loop".
+    kurtosis: float | None = None
     #: How several control inputs make one control spectrum: ``average`` (weighted by each
     #: input's ``weight``), ``maximum`` or ``minimum`` line by line
     #: (:func:`liveshape.dsp.multichannel.combine_control`); one control input ignores it.
@@ -168,6 +172,8 @@ class TestSpec:
     rig: RigSelection = field(default_factory=RigSelection)
     faults: tuple[FaultSpec, ...] = ()
     seed: int | None = None
+    #: Sine tones on top of the random (sine-on-random); empty: random only.
+    tones: tuple[ToneSpec, ...] = ()
     source: str = ""
 
 
@@ -213,7 +219,7 @@ _SECTIONS: dict[str, tuple[str, ...]] = {
     "tolerance": ("alarm_db", "abort_db", "rms_alarm_db", "rms_abort_db", "bands",
                   "max_alarm_fraction"),
     "schedule": tuple(f.name for f in fields(Schedule)),
-    "control": ("fs_hz", *_RESOLUTION_KEYS, *_RULES["control"]),
+    "control": ("fs_hz", *_RESOLUTION_KEYS, *_RULES["control"], "kurtosis"),
     "safety": tuple(f.name for f in fields(SafetyLimits)),
     "rig": tuple(f.name for f in fields(RigSelection)),
 }
@@ -276,7 +282,12 @@ def _control(data: Any, w: OverrideWhere) -> ControlSettings:
             f"gives frame_length = {n}, which must be even and within "
             f"{MIN_FRAME_LENGTH}..{MAX_FRAME_LENGTH}",
         )
-    return ControlSettings(fs_hz=fs, frame_length=n, **_plain_fields("control", d, w, base))
+    plain = _plain_fields("control", d, w, base)
+    if d.get("kurtosis") is not None:
+        from liveshape.dsp.nongauss import KURTOSIS_MAX
+
+        plain["kurtosis"] = as_float(d["kurtosis"], w.key("kurtosis"), ge=3, le=KURTOSIS_MAX)
+    return ControlSettings(fs_hz=fs, frame_length=n, **plain)
 
 
 def _safety(data: Any, w: OverrideWhere) -> SafetyLimits:
@@ -408,7 +419,7 @@ _VERBATIM_OVERRIDES = (
 
 
 def _apply_overrides(data: dict[str, Any], overrides: Mapping[str, Any]) -> frozenset[str]:
-    valid = ["name", "seed", "faults", "profile.file"]
+    valid = ["name", "seed", "faults", "tones", "profile.file"]
     for sec, keys in _SECTIONS.items():
         valid += [f"{sec}.{k}" for k in keys if k != "bands"]
     done = set()
@@ -419,7 +430,7 @@ def _apply_overrides(data: dict[str, Any], overrides: Mapping[str, Any]) -> froz
         value = raw
         if isinstance(raw, str) and key not in _VERBATIM_OVERRIDES:
             value = config.read_yaml_text(raw, f"{COMMAND_LINE}: {key}")
-        if key == "faults" and not isinstance(value, list):
+        if key in ("faults", "tones") and not isinstance(value, list):
             value = [value]
         if key == "profile.file":  # a new profile replaces the file's whole profile section
             data["profile"] = {"file": value}
@@ -439,7 +450,8 @@ def _apply_overrides(data: dict[str, Any], overrides: Mapping[str, Any]) -> froz
 
 
 def check_spec(spec: TestSpec, where: Where | None = None) -> None:
-    """Cross-field rules: profile below Nyquist, enough lines in the band, ramp-rate limit."""
+    """Cross-field rules: profile below Nyquist, enough lines in the band, ramp-rate limit,
+    tones inside the profile band and below Nyquist."""
     w = where if where is not None else Where(spec.source or "spec")
     c, p = spec.control, spec.profile
     if not p.f_max_hz < c.fs_hz / 2:
@@ -461,6 +473,19 @@ def check_spec(spec: TestSpec, where: Where | None = None) -> None:
     if clip is not None and clip < CLIP_SIGMA_FLOOR:
         at = w.key("safety").key("clip_sigma")
         raise at.fail(clip, "is below the drive crest-factor floor of 2.5 (IEC 60068-2-64)")
+    check_tones(spec.tones, p.f_min_hz, p.f_max_hz, c.fs_hz, w.key("tones"))
+    if c.kurtosis is not None and c.kurtosis > 3.0 and clip is not None:
+        # clipping caps the bursts: the kurtosis target must survive the clip level
+        from liveshape.dsp.nongauss import clip_sigma_needed, clipped_kurtosis
+
+        need = clip_sigma_needed(c.kurtosis)
+        if clip < need:
+            at = w.key("safety").key("clip_sigma")
+            raise at.fail(clip, f"clips the bursts of control.kurtosis = {c.kurtosis:g} (only "
+                          f"{clipped_kurtosis(c.kurtosis, clip):.2f} is left); give at least "
+                          f"{math.ceil(need * 100) / 100:.2f} (the drive rms ceiling becomes "
+                          "drive_peak_max_fs / "
+                          "clip_sigma)")
 
 
 def spec_from_mapping(
@@ -475,7 +500,8 @@ def spec_from_mapping(
     Parameters
     ----------
     data : mapping
-        Top-level keys: name, profile, tolerance, schedule, control, safety, rig, faults, seed.
+        Top-level keys: name, profile, tolerance, schedule, control, safety, rig, faults, seed,
+        tones.
     source : str
         Name of the document for error messages (usually its path); kept in ``TestSpec.source``.
     base_dir : str or Path, optional
@@ -511,6 +537,7 @@ def spec_from_mapping(
         rig=_rig(d.get("rig"), root.key("rig"), bdir),
         faults=faults,
         seed=seed,
+        tones=tones_from_list(d.get("tones"), root.key("tones")),
         source=source,
     )
     check_spec(spec, root)
@@ -569,4 +596,5 @@ def spec_to_mapping(spec: TestSpec) -> dict[str, Any]:
         "rig": _rig_mapping(spec.rig),
         "faults": [_plain(x) for x in spec.faults],
         "seed": spec.seed,
+        "tones": [t.as_mapping() for t in spec.tones],
     }

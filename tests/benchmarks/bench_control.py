@@ -324,7 +324,46 @@ def _example(report: Callable[[str, float, str], None]) -> None:
             report(f"example_{loop}_{name}_status", ctl.result().status, "")
 
 
+def _warm_and_false_trips(report: Callable[[str, float, str], None]) -> None:
+    """Warm start → full level on the example, and trips over 10 min at full level, 5 seeds."""
+    import tempfile
+    from pathlib import Path
+
+    from liveshape.session import run_session
+    from liveshape.testdef.spec import load_spec
+
+    path = Path(__file__).resolve().parents[2] / EXAMPLE
+    spec = load_spec(path)
+
+    def full_at(run_dir: Path) -> float:
+        import json
+
+        for line in (run_dir / "events.jsonl").read_text().splitlines():
+            e = json.loads(line)
+            if e["kind"] == "stage" and e["data"]["stage"] == "full_level":
+                return float(e["t_s"])
+        return float("nan")
+
+    with tempfile.TemporaryDirectory() as tmp:
+        first = run_session(spec, out_dir=tmp, fast=True, seed=1, record_signals=False)
+        warm = run_session(spec, out_dir=tmp, fast=True, seed=3, record_signals=False,
+                           warm_start=first.run_dir)
+        report("example_fast_warm_start_to_full_level", full_at(warm.run_dir), "s")
+        report("example_fast_cold_start_to_full_level", full_at(first.run_dir), "s")
+    trips = 0
+    for seed in range(1, 6):
+        spec10 = load_spec(path, {"schedule.full_level_s": 600.0, "seed": seed})
+        rig = SimRig(load_plant("loudspeaker"), spec10.control.fs_hz, seed=seed)
+        ctl = Controller(spec10, rig.calibration)
+        resp = np.zeros(BLOCK)
+        while not ctl.finished:  # no drive kept: 10 min of it would be 230 MB
+            resp = rig.process(ctl.exchange(resp))
+        trips += ctl.trip is not None
+    report("example_fast_false_trips_10min_5seeds", trips, "trips")
+
+
 def run(report: Callable[[str, float, str], None]) -> None:
+    _warm_and_false_trips(report)
     _example(report)
     _convergence(report)
     _speed(report)
