@@ -575,10 +575,15 @@ def _cmd_devices(args: argparse.Namespace) -> int:
 
 
 def _cmd_virtual_rig(args: argparse.Namespace) -> int:
-    from liveshape.rigs.jackrig import serve
+    from liveshape.rigs.jackrig import parse_inputs, serve
     from liveshape.rigs.plant import load_plant
+    from liveshape.rigs.sim import SimRig
 
-    load_plant(args.plant)  # a bad plant is one line before JACK is asked for anything
+    plant = load_plant(args.plant)  # a bad plant is one line before JACK is asked for anything
+    inputs = None
+    if args.inputs is not None:  # and so are inputs the plant cannot give
+        inputs = parse_inputs(args.inputs)
+        SimRig(plant, 48000.0, inputs=inputs)
     if args.calibration_out is not None:
         _check_writable(Path(args.calibration_out).parent, "--calibration-out",
                         args.calibration_out)
@@ -595,7 +600,7 @@ def _cmd_virtual_rig(args: argparse.Namespace) -> int:
         sys.stderr.flush()
 
     serve(args.plant, server_name=args.server, client_name=args.name, seed=args.seed,
-          ready=ready)
+          ready=ready, inputs=inputs)
     return 0
 
 
@@ -1108,6 +1113,10 @@ def build_parser() -> argparse.ArgumentParser:
     v.add_argument("--name", default="liveshape-plant", help="JACK client name")
     v.add_argument("--server", help="JACK server name (default: JACK_DEFAULT_SERVER)")
     v.add_argument("--seed", type=_seed, metavar="N", help="seed of the simulated noise")
+    v.add_argument("--inputs", metavar="CH=SOURCE,...",
+                   help="one capture port input_CH per input, e.g. "
+                   "1=control,2=mode:bracket,3=reference (sources: control, reference, "
+                   "mode:RESONANCE, fixture:POINT of the plant); default: response_out only")
     v.add_argument("--calibration-out", metavar="FILE.yaml",
                    help="write the chain calibration file of the simulated plant (its true "
                    "V/FS, mV/g and the loop delay through this server, as calibrate writes it) "

@@ -25,7 +25,7 @@ def test_parse_fault(text, expected):
 @pytest.mark.parametrize(
     "text, match",
     [
-        ("sensor_gain", r"is not KIND@SECONDS"),
+        ("sensor_gain", r"is not KIND\[:INPUT\]@SECONDS"),
         ("sensor_gian@3", r"did you mean 'sensor_gain'"),
         ("amp_trip@-1", r"seconds '-1', which must be >= 0"),
         ("amp_trip@x", r"seconds 'x', which is not a number"),
@@ -48,4 +48,19 @@ def test_fault_kinds_are_the_agreed_ones():
         "plant_gain",
         "noise_burst",
         "dropout",
+        "dac_gain",
     )
+
+
+def test_a_fault_can_name_one_input():
+    from liveshape.schema import Where
+    from liveshape.testdef.fault_spec import fault_from_mapping
+
+    assert parse_fault("sensor_detached:2@30") == FaultSpec("sensor_detached", 30.0, input=2)
+    assert parse_fault("dac_gain@1=-3/10").input is None
+    assert fault_from_mapping({"kind": "dropout", "at_s": 1, "input": 3}, Where("t.yaml", "f")
+                              ).input == 3
+    with pytest.raises(ConfigError, match=r"has input 'x', which must be an input channel >= 1"):
+        parse_fault("sensor_detached:x@30")
+    with pytest.raises(ConfigError, match=r"t.yaml: f.input = 0"):
+        fault_from_mapping({"kind": "dropout", "at_s": 1, "input": 0}, Where("t.yaml", "f"))

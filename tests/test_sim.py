@@ -260,9 +260,9 @@ def pair(p: Plant, faults, x, seed=7):
     return base, run(rig, x), rig
 
 
-def test_fault_kinds_are_the_agreed_seven():
+def test_fault_kinds_are_the_agreed_eight():
     assert FAULT_KINDS == ("sensor_detached", "sensor_gain", "amp_trip", "resonance_shift",
-                           "plant_gain", "noise_burst", "dropout")
+                           "plant_gain", "noise_burst", "dropout", "dac_gain")
     assert FAULT_KINDS == spec.FAULT_KINDS
     assert FAULT_KINDS is faults.FAULT_KINDS  # defined in rigs.faults, re-exported by rigs.sim
 

@@ -13,14 +13,14 @@ from typing import Any
 
 from liveshape.errors import ConfigError
 from liveshape.rigs.calmath import HighpassFit, LoopDelay
-from liveshape.schema import Where, as_float, as_int, as_str, check_keys
-from liveshape.testdef.chain import ChainCalibration
+from liveshape.schema import Where, as_float, as_int, as_list, as_str, check_keys
+from liveshape.testdef.chain import ChainCalibration, InputChannelCal
 
 #: The calibration file format version (the value of its `liveshape_calibration` key).
 SCHEMA_VERSION = 1
 
 _TOP = ("liveshape_calibration", "device", "fs_hz", "date", "output", "input",
-        "accelerometer", "loop_delay", "lowfreq_corner", "notes")
+        "accelerometer", "loop_delay", "lowfreq_corner", "notes", "inputs")
 
 
 def calibration_mapping(
@@ -48,6 +48,10 @@ def calibration_mapping(
     if datasheet_mv_per_g is not None:
         acc["datasheet_mv_per_g"] = float(datasheet_mv_per_g)
     d["accelerometer"] = acc
+    if cal.inputs:  # per-input factors of a rig with several inputs (optional key)
+        d["inputs"] = [{"channel": c.channel, "v_per_fs": float(c.v_per_fs),
+                        "mv_per_g": None if c.mv_per_g is None else float(c.mv_per_g)}
+                       for c in cal.inputs]
     ld: dict[str, Any] = {"samples": cal.loop_delay_samples}
     if loop_delay is not None:
         ld["spread_samples"] = loop_delay.spread_samples
@@ -104,7 +108,9 @@ def calibration_from_mapping(data: Any, where: Where) -> ChainCalibration:
         for key in ("corner_hz", "q", "f_3db_hz"):
             if lc.get(key) is not None:
                 as_float(lc[key], wc.key(key), gt=0.0)
+    inputs = () if d.get("inputs") is None else _inputs(d["inputs"], where.key("inputs"))
     return ChainCalibration(
+        inputs=inputs,
         out_v_per_fs=as_float(out["v_per_fs"], wo.key("v_per_fs"), gt=0.0),
         in_v_per_fs=as_float(inp["v_per_fs"], wi.key("v_per_fs"), gt=0.0),
         accel_mv_per_g=as_float(acc["mv_per_g"], wa.key("mv_per_g"), gt=0.0),
@@ -112,6 +118,23 @@ def calibration_from_mapping(data: Any, where: Where) -> ChainCalibration:
         calibrated=True,
         source=where.source,
     )
+
+
+def _inputs(data: Any, w: Where) -> tuple[InputChannelCal, ...]:
+    """The optional per-input list ``[{channel, v_per_fs, mv_per_g}, ...]``; channels unique."""
+    out: list[InputChannelCal] = []
+    for i, item in enumerate(as_list(data, w, min_len=1)):
+        wi = w.index(i)
+        c = check_keys(item, ("channel", "v_per_fs", "mv_per_g"), wi,
+                       required=("channel", "v_per_fs"))
+        ch = as_int(c["channel"], wi.key("channel"), ge=1)  # counted from 1
+        if any(x.channel == ch for x in out):
+            raise wi.key("channel").fail(ch, "is listed twice (one entry per input channel)")
+        mv = c.get("mv_per_g")
+        out.append(InputChannelCal(
+            ch, as_float(c["v_per_fs"], wi.key("v_per_fs"), gt=0.0),
+            None if mv is None else as_float(mv, wi.key("mv_per_g"), gt=0.0)))
+    return tuple(out)
 
 
 def load_calibration(path: Any) -> ChainCalibration:

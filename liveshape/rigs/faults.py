@@ -30,10 +30,16 @@ FAULT_RULES: dict[str, str] = {
     "plant_gain": "the amplifier gain changes by value dB",
     "noise_burst": "white noise of value FS rms is added to the response",
     "dropout": "the response is zeros",
+    "dac_gain": "the reference input's gain (the drive's loopback) changes by value dB: a step, "
+                "or with duration_s a drift that reaches value dB over duration_s and stays",
 }
+#: Kinds that act on the whole rig; the others act on one input (``input``: a channel counted
+#: from 1; None: the control input).
+RIG_WIDE_KINDS = ("amp_trip", "resonance_shift", "plant_gain")
 FAULT_KINDS = tuple(FAULT_RULES)
 # Kinds that need a value, with its lower bound (None: checked by kind).
-_NEEDS_VALUE = {"sensor_gain": 0.0, "resonance_shift": None, "plant_gain": None, "noise_burst": 0.0}
+_NEEDS_VALUE = {"sensor_gain": 0.0, "resonance_shift": None, "plant_gain": None, "noise_burst": 0.0,
+                "dac_gain": None}
 
 
 @dataclass(frozen=True)
@@ -44,6 +50,7 @@ class ScheduledFault:
     start: int
     end: float  # sample index (math.inf: to the end)
     value: float
+    input: int | None = None  # the input channel it acts on (None: the control input)
 
 
 @dataclass(frozen=True)
@@ -85,14 +92,22 @@ def _check_fault(i: int, f: Any, plant: Plant, fs: float) -> ScheduledFault:
     if kind == "resonance_shift":
         if not plant.payload.resonances:
             raise ConfigError(f"{label}: plant {plant.name!r} has no payload resonances")
-        top = max(r.f_hz for r in plant.payload.resonances) * value
+        top = max(r.f_hz for r in (*plant.payload.resonances,
+                                    *plant.payload.fixture_points)) * value
         if top >= 0.45 * fs:
             raise ConfigError(f"{label}: shifted resonance {top:g} Hz is above 0.45 fs")
     if dur is not None and not (math.isfinite(dur) and dur > 0):
         raise ConfigError(f"{label}: duration_s = {dur!r} must be > 0")
+    channel = getattr(f, "input", None)
+    if channel is not None:
+        if isinstance(channel, bool) or not isinstance(channel, int) or channel < 1:
+            raise ConfigError(f"{label}: input = {channel!r} must be an input channel >= 1")
+        if kind in RIG_WIDE_KINDS:
+            raise ConfigError(f"{label}: input = {channel} is given, but {kind} acts on the "
+                              "whole rig (give no input)")
     start = int(round(at_s * fs))
     end = math.inf if dur is None or kind == "amp_trip" else start + int(round(dur * fs))
-    return ScheduledFault(kind, start, end, 1.0 if value is None else float(value))
+    return ScheduledFault(kind, start, end, 1.0 if value is None else float(value), channel)
 
 
 def schedule_faults(faults: Iterable[Any], plant: Plant, fs_hz: float
@@ -118,10 +133,12 @@ def active_faults(faults: Sequence[ScheduledFault], n: int) -> list[ScheduledFau
     return [f for f in faults if f.start <= n < f.end]
 
 
-def fault_state(faults: Sequence[ScheduledFault], n: int) -> FaultState:
+def fault_state(faults: Sequence[ScheduledFault], n: int,
+                inputs: tuple[int | None, ...] = (None,)) -> FaultState:
     """The combined effect of the faults in effect at sample ``n`` (gains multiply, noise
-    variances add)."""
-    active = active_faults(faults, n)
+    variances add) whose ``input`` is one of ``inputs`` (default: the rig-wide faults and those
+    on the control input)."""
+    active = [f for f in active_faults(faults, n) if f.input in inputs]
     if not active:
         return _NO_FAULT
     sensor_gain = plant_gain = f_factor = 1.0

@@ -6,7 +6,11 @@ name ``liveshape-plant``) has the ports
 * ``drive_in`` -> plant -> ``response_out``: :meth:`liveshape.rigs.sim.SimRig.process` on every
   period (the same plant model and presets as the simulated rig);
 * ``loop_in`` -> ``loop_out``: a loopback cable between a second card output and a second card
-  input, with the card's scales, AC-coupling corners and delay (:class:`CableModel`).
+  input, with the card's scales, AC-coupling corners and delay (:class:`CableModel`);
+* with ``inputs`` (``(channel, source)`` pairs, :class:`liveshape.rigs.sim.SimRig`): one capture
+  port ``input_<channel>`` per input instead of ``response_out`` — the control, monitors,
+  fixture points and the reference (the drive through the card, read back) — all from one
+  :meth:`liveshape.rigs.sim.SimRig.process_inputs` per period.
 
 Every JACK client with ports appears to PortAudio as a device of that name, so
 ``AudioRig("liveshape-plant", 48000)`` drives the plant through the real stream (PortAudio
@@ -25,6 +29,7 @@ Command line (until the main CLI has it)::
 
     python -m liveshape.rigs.jackrig --plant loudspeaker [--name liveshape-plant]
                                      [--server NAME] [--seed N] [--no-loopback]
+                                     [--inputs 1=control,2=mode:bracket,3=reference]
 """
 
 from __future__ import annotations
@@ -48,6 +53,31 @@ from liveshape.testdef.chain import ChainCalibration
 DEFAULT_CLIENT = "liveshape-plant"
 PORTS_IN = ("drive_in", "loop_in")
 PORTS_OUT = ("response_out", "loop_out")
+
+
+def input_port_name(channel: int) -> str:
+    """The capture port of input ``channel`` (counted from 1) of a virtual rig with inputs."""
+    return f"input_{int(channel)}"
+
+
+def parse_inputs(text: str, where: str = "--inputs") -> tuple[tuple[int, str], ...]:
+    """Read ``CHANNEL=SOURCE[,CHANNEL=SOURCE...]`` (e.g. ``1=control,2=mode:bracket,
+    3=reference``) into the ``inputs`` of :class:`liveshape.rigs.sim.SimRig`; the sources are
+    checked against the plant when the rig is built.
+
+    Raises
+    ------
+    ConfigError
+        One line naming the option, the item and the rule.
+    """
+    out = []
+    for item in str(text).split(","):
+        ch, eq, src = item.strip().partition("=")
+        if not (eq and ch.strip().isdigit() and int(ch) >= 1 and src.strip()):
+            raise ConfigError(f"{where} = {text!r}: item {item.strip()!r} is not CHANNEL=SOURCE "
+                              "with a channel >= 1 (e.g. 1=control,2=mode:bracket,3=reference)")
+        out.append((int(ch), src.strip()))
+    return tuple(out)
 
 
 def import_jack() -> Any:
@@ -126,6 +156,9 @@ class PlantProcessor:
         As for :class:`liveshape.rigs.sim.SimRig`.
     loopback : bool
         Also run the loopback cable.
+    inputs : sequence of (int, str), optional
+        The plant's inputs (``inputs`` of :class:`liveshape.rigs.sim.SimRig`), filled by
+        :meth:`run_inputs`; None: the one control response of :meth:`run`.
     """
 
     def __init__(
@@ -136,6 +169,7 @@ class PlantProcessor:
         seed: int | None = None,
         faults: Iterable[Any] = (),
         loopback: bool = True,
+        inputs: Sequence[tuple[int, str]] | None = None,
     ) -> None:
         from liveshape.rigs.plant import load_plant
         from liveshape.rigs.sim import SimRig
@@ -144,7 +178,8 @@ class PlantProcessor:
         self.fs_hz = float(fs_hz)
         seeds = np.random.SeedSequence(seed).spawn(2)
         self.sim = SimRig(self.plant, self.fs_hz, seed=int(seeds[0].generate_state(1)[0]),
-                          faults=faults)
+                          faults=faults, inputs=inputs)
+        self.inputs = None if inputs is None else self.sim.input_channels
         self.cable = (
             CableModel(self.plant.card, self.fs_hz, seed=int(seeds[1].generate_state(1)[0]))
             if loopback
@@ -175,6 +210,32 @@ class PlantProcessor:
             response_out[:] = self.sim.process(drive)
         except Exception as exc:  # noqa: BLE001 - a realtime callback must not raise
             response_out[:] = 0.0
+            self._fail(exc)
+        if loop_out is not None:
+            try:
+                loop_out[:] = 0.0 if self.cable is None else self.cable.process(loop_in)
+            except Exception as exc:  # noqa: BLE001
+                loop_out[:] = 0.0
+                self._fail(exc)
+        self.periods += 1
+
+    def run_inputs(
+        self,
+        drive: np.ndarray,
+        input_outs: Sequence[np.ndarray],
+        loop_in: np.ndarray | None = None,
+        loop_out: np.ndarray | None = None,
+    ) -> None:
+        """Fill every input's port buffer (rows of
+        :meth:`liveshape.rigs.sim.SimRig.process_inputs`, in :attr:`inputs` order) for one
+        period, and ``loop_out``; never raises (an error silences them and is counted)."""
+        try:
+            rows = self.sim.process_inputs(drive)
+            for out, row in zip(input_outs, rows, strict=True):
+                out[:] = row
+        except Exception as exc:  # noqa: BLE001 - a realtime callback must not raise
+            for out in input_outs:
+                out[:] = 0.0
             self._fail(exc)
         if loop_out is not None:
             try:
@@ -219,6 +280,7 @@ class VirtualRig:
         faults: Sequence[Any] = (),
         loopback: bool = True,
         in_process: bool = True,
+        inputs: Sequence[tuple[int, str]] | None = None,
     ) -> None:
         if not in_process and not isinstance(plant, (str, Path)):
             raise ValueError("a subprocess virtual rig needs a preset name or plant file path")
@@ -231,6 +293,7 @@ class VirtualRig:
         self.faults = tuple(faults)
         self.loopback = loopback
         self.in_process = in_process
+        self.inputs = None if inputs is None else tuple((int(c), str(s)) for c, s in inputs)
         self.processor: PlantProcessor | None = None
         self.xruns = 0
         self.period_frames: int | None = None
@@ -258,13 +321,28 @@ class VirtualRig:
 
     def _start_in_process(self, jack: Any) -> None:
         client = _open_client(jack, self.client_name, self.server_name)
-        proc = PlantProcessor(self.plant_arg, client.samplerate, seed=self.seed,
-                              faults=self.faults, loopback=self.loopback)
+        try:
+            proc = PlantProcessor(self.plant_arg, client.samplerate, seed=self.seed,
+                                  faults=self.faults, loopback=self.loopback, inputs=self.inputs)
+        except Exception:
+            client.close()
+            raise
         ins = [client.inports.register(n) for n in PORTS_IN[: 1 + self.loopback]]
-        outs = [client.outports.register(n) for n in PORTS_OUT[: 1 + self.loopback]]
+        if self.inputs is not None:
+            outs = [client.outports.register(input_port_name(c)) for c in proc.inputs]
+            loop_outs = ([client.outports.register(PORTS_OUT[1])] if self.loopback else [])
+        else:
+            outs = [client.outports.register(n) for n in PORTS_OUT[: 1 + self.loopback]]
 
         def process(frames: int) -> None:
-            if self.loopback:
+            if self.inputs is not None:
+                bufs = [p.get_array() for p in outs]
+                if loop_outs:
+                    proc.run_inputs(ins[0].get_array(), bufs, ins[1].get_array(),
+                                    loop_outs[0].get_array())
+                else:
+                    proc.run_inputs(ins[0].get_array(), bufs)
+            elif self.loopback:
                 proc.run(ins[0].get_array(), outs[0].get_array(), ins[1].get_array(),
                          outs[1].get_array())
             else:
@@ -288,6 +366,8 @@ class VirtualRig:
             cmd += ["--seed", str(self.seed)]
         if not self.loopback:
             cmd.append("--no-loopback")
+        if self.inputs is not None:
+            cmd += ["--inputs", ",".join(f"{c}={s}" for c, s in self.inputs)]
         root = str(Path(__file__).resolve().parents[2])
         env = dict(os.environ)
         env["PYTHONPATH"] = root + os.pathsep + env.get("PYTHONPATH", "")
@@ -345,6 +425,7 @@ def serve(
     seed: int | None = None,
     loopback: bool = True,
     ready: Any = None,
+    inputs: Sequence[tuple[int, str]] | None = None,
 ) -> None:
     """Run the virtual rig until SIGINT/SIGTERM or until the JACK server shuts down.
 
@@ -352,7 +433,7 @@ def serve(
     """
     done = threading.Event()
     rig = VirtualRig(plant_name_or_path, server_name=server_name, client_name=client_name,
-                     seed=seed, loopback=loopback, in_process=True)
+                     seed=seed, loopback=loopback, in_process=True, inputs=inputs)
     old = {s: signal.signal(s, lambda *_: done.set()) for s in (signal.SIGINT, signal.SIGTERM)}
     try:
         rig.start()
@@ -443,8 +524,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     """``python -m liveshape.rigs.jackrig``: serve a plant; prints ``ready NAME`` when active."""
     args = list(sys.argv[1:] if argv is None else argv)
     opts: dict[str, Any] = {"plant": "loudspeaker", "name": DEFAULT_CLIENT, "server": None,
-                            "seed": None, "loopback": True}
-    valid = ("--plant", "--name", "--server", "--seed")
+                            "seed": None, "loopback": True, "inputs": None}
+    valid = ("--plant", "--name", "--server", "--seed", "--inputs")
     while args:
         a = args.pop(0)
         if a == "--no-loopback":
@@ -455,13 +536,14 @@ def main(argv: Sequence[str] | None = None) -> int:
             raise ConfigError(f"jackrig: option {a!r} is unknown or lacks a value "
                               f"(valid: {', '.join(valid)}, --no-loopback)")
     seed = None if opts["seed"] is None else int(opts["seed"])
+    inputs = None if opts["inputs"] is None else parse_inputs(opts["inputs"])
 
     def ready(rig: VirtualRig) -> None:
         sys.stdout.write(f"ready {rig.client_name} {rig.fs_hz:g} {rig.period_frames}\n")
         sys.stdout.flush()
 
     serve(opts["plant"], server_name=opts["server"], client_name=opts["name"], seed=seed,
-          loopback=opts["loopback"], ready=ready)
+          loopback=opts["loopback"], ready=ready, inputs=inputs)
     return 0
 
 

@@ -37,7 +37,8 @@ from liveshape.schema import (
 __all__ = [
     # the description
     "COPPER_TEMPCO_PER_K", "PRESETS_DIR", "SoundCard", "Amplifier", "CoilHeating",
-    "ThieleSmallShaker", "IdealShaker", "Resonance", "Payload", "Accelerometer", "Plant",
+    "ThieleSmallShaker", "IdealShaker", "Resonance", "FixturePoint", "Payload", "Accelerometer",
+    "Plant",
     # reading and writing
     "plant_from_mapping", "preset_names", "load_plant", "plant_to_mapping",
 ]
@@ -146,15 +147,42 @@ class Resonance:
 
 
 @dataclass(frozen=True)
+class FixturePoint:
+    """A second measuring point on a fixture that rocks on the table (a massless-reaction model:
+    the fixture's rocking does not load the shaker).
+
+    The point's acceleration is the table's times
+    ``((1 - coupling) s² + 2ζω s + ω²)/(s² + 2ζω s + ω²)``, ``ω = 2π f_hz``, ``ζ = 1/(2q)``:
+    a rocking mode of frequency ``f_hz`` excited by the table through the fixture's off-centre
+    mass, read at a lever arm (``coupling = m e L / J``; derivation in docs/methods.md, "Several
+    inputs"). ``coupling`` 0 is a rigid point (the table's motion); 1 gives the base-excitation
+    transmissibility of a single mode; negative values are points on the other side of the pivot
+    from the centre of mass.
+    """
+
+    name: str
+    f_hz: float
+    q: float
+    coupling: float
+
+    def scaled(self, f_factor: float) -> FixturePoint:
+        """The same point with its rocking frequency multiplied by ``f_factor``."""
+        return dataclasses.replace(self, f_hz=self.f_hz * f_factor)
+
+
+@dataclass(frozen=True)
 class Payload:
     """Rigid mass added to the moving mass, modal masses, and where the control sensor sits.
 
-    ``control_point`` is ``"table"`` or the ``name`` of one resonance.
+    ``control_point`` is ``"table"`` or the ``name`` of one resonance. ``fixture_points`` are
+    further measuring points on a rocking fixture (:class:`FixturePoint`), for a second control
+    input of the simulated rig.
     """
 
     mass_kg: float = 0.0
     resonances: tuple[Resonance, ...] = ()
     control_point: str = "table"
+    fixture_points: tuple[FixturePoint, ...] = ()
 
     def control_index(self) -> int | None:
         """Index of the resonance carrying the sensor, None for the table."""
@@ -219,6 +247,8 @@ _RULES: dict[type, dict[str, tuple[str, dict]]] = {
     IdealShaker: {"model": ("model", {}), "g_per_v": ("float", _G0)},
     Resonance: {"name": ("str", {}), "f_hz": ("float", _G0), "q": ("float", _G0),
                 "mass_kg": ("float", _G0)},
+    FixturePoint: {"name": ("str", {}), "f_hz": ("float", _G0), "q": ("float", _G0),
+                   "coupling": ("float", {"gt": -10.0, "lt": 10.0})},
     Accelerometer: {"sens_mv_per_g": ("float", _G0), "noise_g_rms": ("float", _GE0),
                     "highpass_hz": ("corner", {})},
 }
@@ -226,6 +256,7 @@ _REQUIRED: dict[type, tuple[str, ...]] = {
     CoilHeating: ("thermal_resistance_k_per_w", "time_constant_s"),
     ThieleSmallShaker: ("re_ohm", "bl_tm", "mms_kg", "cms_m_per_n", "rms_kg_s"),
     Resonance: ("f_hz", "q", "mass_kg"),
+    FixturePoint: ("name", "f_hz", "q", "coupling"),
 }
 
 
@@ -261,7 +292,7 @@ def _shaker(data: Any, where: Where) -> ThieleSmallShaker | IdealShaker:
 
 
 def _payload(data: Any, where: Where) -> Payload:
-    d = check_keys(data, ("mass_kg", "resonances", "control_point"), where)
+    d = check_keys(data, ("mass_kg", "resonances", "control_point", "fixture_points"), where)
     res: list[Resonance] = []
     items = d.get("resonances") or []
     for j, item in enumerate(as_list(items, where.key("resonances"))):
@@ -273,11 +304,20 @@ def _payload(data: Any, where: Where) -> Payload:
         res.append(r)
     point = as_choice(as_str(d.get("control_point", "table"), where.key("control_point")),
                       where.key("control_point"), ["table"] + [r.name for r in res])
+    points: list[FixturePoint] = []
+    for j, item in enumerate(as_list(d.get("fixture_points") or [], where.key("fixture_points"))):
+        w = where.key("fixture_points").index(j)
+        fp = _section(FixturePoint, item, w)
+        if fp.name == "table" or any(x.name == fp.name for x in [*res, *points]):
+            raise w.key("name").fail(fp.name, "must be unique among resonances and fixture "
+                                     "points and not 'table'")
+        points.append(fp)
     mass = d.get("mass_kg")
     return Payload(
         mass_kg=0.0 if mass is None else as_float(mass, where.key("mass_kg"), ge=0.0),
         resonances=tuple(res),
         control_point=point,
+        fixture_points=tuple(points),
     )
 
 
@@ -382,6 +422,7 @@ def plant_to_mapping(plant: Plant) -> dict[str, Any]:
             "mass_kg": pl.mass_kg,
             "resonances": [dataclasses.asdict(r) for r in pl.resonances],
             "control_point": pl.control_point,
+            "fixture_points": [dataclasses.asdict(p) for p in pl.fixture_points],
         },
         "accelerometer": dataclasses.asdict(plant.accelerometer),
     }

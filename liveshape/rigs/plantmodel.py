@@ -139,6 +139,25 @@ def mode_transmissibility_tf(plant: Plant, index: int, *, f_factor: float = 1.0)
     return np.array([c, k]), np.array([m, c, k])
 
 
+def fixture_point_tf(plant: Plant, index: int, *, f_factor: float = 1.0) -> Poly:
+    """Table acceleration -> acceleration of fixture point ``index`` (a rocking fixture).
+
+    ``((1 - μ) s² + 2ζω s + ω²)/(s² + 2ζω s + ω²)`` with ``ω = 2π f_hz f_factor``,
+    ``ζ = 1/(2 q)`` and ``μ`` the point's ``coupling``. From the rocking equation of a rigid
+    fixture about a pivot on the table, ``J θ'' + c θ' + k θ = -m e a_table`` (the table's
+    inertial force on the off-centre mass), and the point's acceleration ``a_table + L θ''``;
+    ``μ = m e L / J`` (docs/methods.md, "Several inputs"). Unity at 0 Hz, ``1 - μ`` far above
+    the mode; ``μ = 1`` is the base-excitation transmissibility of :func:`mode_transmissibility_tf`.
+    """
+    pts = plant.payload.fixture_points
+    if not 0 <= index < len(pts):
+        raise IndexError(f"fixture point index {index} is outside 0-{len(pts) - 1}")
+    p = pts[index]
+    w = 2.0 * math.pi * p.f_hz * f_factor
+    c = w / p.q  # 2ζω with ζ = 1/(2q)
+    return np.array([1.0 - p.coupling, c, w * w]), np.array([1.0, c, w * w])
+
+
 def drive_to_volts_tf(plant: Plant) -> Poly:
     """Card output FS -> amplifier output volts: scale, card AC coupling, subsonic filter."""
     k = plant.card.out_v_per_fs * plant.amplifier.gain_v_per_v

@@ -66,7 +66,7 @@ Faults (objects with ``kind, at_s, value, duration_s``, as
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -92,11 +92,13 @@ from liveshape.rigs.plant import IdealShaker, Plant
 from liveshape.rigs.plantmodel import (
     electromechanical_ss,
     electromechanical_tf,
+    fixture_point_tf,
     mode_transmissibility_tf,
 )
-from liveshape.testdef.chain import ChainCalibration
+from liveshape.testdef.chain import ChainCalibration, InputChannelCal
 
-__all__ = ["FAULT_KINDS", "FAULT_RULES", "RE_STEP", "THERMAL_STEP_MAX_S", "SimRig", "SimStatus"]
+__all__ = ["FAULT_KINDS", "FAULT_RULES", "RE_STEP", "THERMAL_STEP_MAX_S", "SimRig", "SimStatus",
+           "sim_inputs"]
 
 #: Longest period of the coil-temperature update, seconds of rig time (the step is a twentieth of
 #: the thermal time constant, at most this).
@@ -139,7 +141,9 @@ def _check_rate(plant: Plant, fs: float) -> None:
         ("card.in_highpass_hz", plant.card.in_highpass_hz),
         ("amplifier.highpass_hz", plant.amplifier.highpass_hz),
         ("accelerometer.highpass_hz", plant.accelerometer.highpass_hz),
-    ] + [(f"payload.resonances[{j}].f_hz", r.f_hz) for j, r in enumerate(plant.payload.resonances)]
+    ] + [(f"payload.resonances[{j}].f_hz", r.f_hz) for j, r in enumerate(plant.payload.resonances)
+         ] + [(f"payload.fixture_points[{j}].f_hz", p.f_hz)
+              for j, p in enumerate(plant.payload.fixture_points)]
     for key, v in named:
         if v is not None and v >= top:
             raise ConfigError(
@@ -168,6 +172,14 @@ class SimRig:
         docstring); needs ``payload.control_point: table``.
     hum : HumSpec or None
         Mains hum added to the control response (see the module docstring); None: no hum.
+    inputs : sequence of (int, str), optional
+        The rig's inputs for :meth:`process_inputs`: ``(channel, source)`` pairs, channels
+        counted from 1 and unique, sources ``"control"`` (exactly one: the signal of
+        :meth:`process`), ``"mode:NAME"`` (a monitor on payload resonance NAME),
+        ``"fixture:NAME"`` (fixture point NAME, e.g. a second control point) and
+        ``"reference"`` (at most one: the drive through the card, a loopback cable).
+        :func:`sim_inputs` makes them from a test definition's input roles. None: one input,
+        channel 1, the control.
 
     Raises
     ------
@@ -177,7 +189,8 @@ class SimRig:
 
     def __init__(self, plant: Plant, fs_hz: float, *, seed: int | None = None,
                  faults: Iterable[Any] = (), monitors: Iterable[str] = (),
-                 hum: HumSpec | None = None) -> None:
+                 hum: HumSpec | None = None,
+                 inputs: Sequence[tuple[int, str]] | None = None) -> None:
         fs = float(fs_hz)
         if not (math.isfinite(fs) and fs > 0):
             raise ConfigError(f"sim: fs_hz = {fs_hz!r} must be a finite number > 0")
@@ -226,36 +239,101 @@ class SimRig:
         self._x_peak = 0.0
         self._x_last = 0.0
         self._i_peak = 0.0
-        self._setup_monitors(tuple(monitors), seed)
+        self._setup_monitors(tuple(monitors), inputs, seed)
+        self._setup_reference(seed)
         # Hum has a stream of its own: a hum-free rig draws exactly what it drew before.
         self._hum = None if hum is None else HumSource(
             hum, fs, np.random.SeedSequence(seed, spawn_key=(8,)))
 
-    def _setup_monitors(self, names: tuple[str, ...], seed: int | None) -> None:
-        res = self._plant.payload.resonances
-        by_name = {r.name: j for j, r in enumerate(res)}
+    def _setup_monitors(self, names: tuple[str, ...], inputs: Sequence[tuple[int, str]] | None,
+                        seed: int | None) -> None:
+        """The taps on the table's acceleration: the ``monitors`` first, then the mode and
+        fixture inputs of ``inputs``; and the layout of :meth:`process_inputs`."""
+        pl = self._plant.payload
+        by_name = {r.name: j for j, r in enumerate(pl.resonances)}
+        points = {p.name: j for j, p in enumerate(pl.fixture_points)}
         for name in names:
             if name not in by_name:
                 known = ", ".join(sorted(by_name)) or "none"
                 raise ConfigError(f"monitors: {name!r} names no payload resonance of plant "
                                   f"{self._plant.name!r} (resonances: {known})")
-        if names and self._plant.payload.control_point != "table":
-            raise ConfigError(f"monitors: {', '.join(names)} need payload.control_point: table "
-                              f"(it is {self._plant.payload.control_point!r})")
-        self._mon_idx = [by_name[n] for n in names]
+        # taps: (kind, index into resonances or fixture points, input channel or None)
+        self._taps: list[tuple[str, int, int | None]] = [("mode", by_name[n], None)
+                                                         for n in names]
+        self._layout: list[tuple[int, str, int]] = []  # (channel, source, tap row or -1)
+        layout = [(1, "control")] if inputs is None else list(inputs)
+        for channel, source in layout:
+            where = f"inputs: channel {channel!r} ({source!r})"
+            if isinstance(channel, bool) or not isinstance(channel, int) or channel < 1:
+                raise ConfigError(f"{where}: the channel must be an integer >= 1")
+            if any(c == channel for c, _, _ in self._layout):
+                raise ConfigError(f"{where}: channel {channel} is given twice")
+            kind, _, name = str(source).partition(":")
+            row = -1
+            if source in ("control", "reference"):
+                if any(src == source for _, src, _ in self._layout):
+                    raise ConfigError(f"{where}: a second {source} input (one only)")
+            elif kind == "mode" and name in by_name:
+                row = len(self._taps)
+                self._taps.append(("mode", by_name[name], channel))
+            elif kind == "fixture" and name in points:
+                row = len(self._taps)
+                self._taps.append(("fixture", points[name], channel))
+            else:
+                known = ", ".join([f"mode:{n}" for n in by_name] + [f"fixture:{n}" for n in points])
+                raise ConfigError(f"{where}: names no source of plant {self._plant.name!r} "
+                                  f"(control, reference, {known or 'no payload points'})")
+            self._layout.append((channel, source, row))
+        if not any(src == "control" for _, src, _ in self._layout):
+            raise ConfigError("inputs: no 'control' input (exactly one reads the control point)")
+        self._ctrl_channel = next(c for c, src, _ in self._layout if src == "control")
+        self._ref_channel = next((c for c, src, _ in self._layout if src == "reference"), None)
+        if self._taps and pl.control_point != "table":
+            what = ", ".join(names) if names else "the monitor and fixture inputs"
+            raise ConfigError(f"monitors: {what} need payload.control_point: table "
+                              f"(it is {pl.control_point!r})")
+        channels = [c for c, _, _ in self._layout]
+        for i, f in enumerate(self._faults):
+            if f.input is not None and f.input not in channels:
+                raise ConfigError(f"faults[{i}] {f.kind}: input = {f.input} is not an input of "
+                                  f"the simulated rig (inputs: {', '.join(map(str, channels))})")
+            if f.kind == "dac_gain" and (self._ref_channel is None
+                                         or f.input not in (None, self._ref_channel)):
+                raise ConfigError(f"faults[{i}] dac_gain: acts on the reference input, and the "
+                                  "simulated rig has "
+                                  + ("none" if self._ref_channel is None else
+                                     f"it on channel {self._ref_channel}"))
+        self._mon_idx = self._taps  # truthy when the table acceleration is tapped
         self.monitor_names = names
-        self._mon_sos = [self._monitor_sos(j, 1.0) for j in self._mon_idx]
+        self._n_monitors = len(names)
+        self._mon_sos = [self._monitor_sos(t, 1.0) for t in self._taps]
         self._mon_zi = [np.zeros((1, sos.shape[0], 2)) for sos in self._mon_sos]
         self._mon_f_factor = 1.0
-        streams = np.random.SeedSequence(seed, spawn_key=(7,)).spawn(max(len(names), 1))
-        self._mon_rng = [np.random.default_rng(st) for st in streams[:len(names)]]
-        self._mon_buf = np.empty((len(names), 0))
+        streams = np.random.SeedSequence(seed, spawn_key=(7,)).spawn(max(len(self._taps), 1))
+        self._mon_rng = [np.random.default_rng(st) for st in streams[:len(self._taps)]]
+        bursts = np.random.SeedSequence(seed, spawn_key=(9,)).spawn(len(self._layout))
+        self._row_burst_rng = {c: np.random.default_rng(st)
+                               for (c, _, _), st in zip(self._layout, bursts, strict=True)}
+        self._tap_fs = np.empty((len(self._taps), 0))
         #: Monitor signals (FS), one row per name of ``monitors``, of the last ``process`` call.
         self.last_monitor_fs = np.empty((len(names), 0))
 
-    def _monitor_sos(self, j: int, f_factor: float) -> np.ndarray:
-        """Table m/s² -> monitor FS: the mode's transmissibility, then the sensor chain."""
-        b, a = mode_transmissibility_tf(self._plant, j, f_factor=f_factor)
+    def _setup_reference(self, seed: int | None) -> None:
+        """The loopback of the drive to the reference input: card out -> cable -> card in."""
+        card = self._plant.card
+        self._ref_gain = card.out_v_per_fs / card.in_v_per_fs
+        self._ref_sos = highpass_sos([(card.out_highpass_hz, 1), (card.in_highpass_hz, 1)],
+                                     1.0, self._fs)
+        self._ref_zi = None if self._ref_sos is None else np.zeros((1, self._ref_sos.shape[0], 2))
+        self._ref_rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(10,)))
+        self._ref_fs = np.empty(0)
+
+    def _monitor_sos(self, tap: tuple[str, int, int | None], f_factor: float) -> np.ndarray:
+        """Table m/s² -> tap FS: the mode's transmissibility (or the fixture point's factor),
+        then the sensor chain."""
+        kind, j, _ = tap
+        tf = mode_transmissibility_tf if kind == "mode" else fixture_point_tf
+        b, a = tf(self._plant, j, f_factor=f_factor)
         bz, az = signal.bilinear(b, a, self._fs)
         sections = [signal.tf2sos(bz, az)]
         gain = self._down_gain / G0_M_S2
@@ -265,16 +343,79 @@ class SimRig:
         sos[0, :3] = sos[0, :3] * (gain / self._down_gain)  # m/s² in: the chain expects g
         return np.ascontiguousarray(sos)
 
-    def _monitor_piece(self, acc: np.ndarray, f_factor: float) -> None:
-        """Monitor signals (before noise) for table acceleration ``acc`` (m/s²)."""
+    def _input_state(self, channel: int | None, a: int) -> FaultState:
+        """The faults on one input other than the control (None: a plain monitor, none)."""
+        return _NEUTRAL if channel is None else fault_state(self._faults, a, (channel,))
+
+    def _monitor_piece(self, acc: np.ndarray, f_factor: float, a: int) -> None:
+        """Tap signals (before noise) for table acceleration ``acc`` (m/s²) from sample ``a``;
+        a tap's own ``sensor_detached`` feeds it zeros, its ``sensor_gain`` scales it."""
         if f_factor != self._mon_f_factor:  # resonance_shift: the modes move, states stay
-            self._mon_sos = [self._monitor_sos(j, f_factor) for j in self._mon_idx]
+            self._mon_sos = [self._monitor_sos(t, f_factor) for t in self._taps]
             self._mon_f_factor = f_factor
-        piece = np.empty((len(self._mon_idx), acc.size))
+        piece = np.empty((len(self._taps), acc.size))
         for k, (sos, zi) in enumerate(zip(self._mon_sos, self._mon_zi, strict=True)):
-            piece[k] = acc
+            st = self._input_state(self._taps[k][2], a)
+            piece[k] = 0.0 if st.detached else acc
             sosfilt_inplace(sos, piece[k:k + 1], zi)
+            if st.sensor_gain != 1.0:
+                piece[k] *= st.sensor_gain
         self._mon_pieces.append(piece)
+
+    def _row_faults(self, row: np.ndarray, channel: int | None, a0: int) -> None:
+        """Noise bursts and dropouts of one input other than the control, in place."""
+        if channel is None or not self._faults:
+            return
+        pos, end = a0, a0 + row.size
+        while pos < end:
+            stop = min(end, self._next_boundary(pos))
+            st = fault_state(self._faults, pos, (channel,))
+            seg = row[pos - a0:stop - a0]
+            if st.burst_var > 0:
+                seg += math.sqrt(st.burst_var) * self._row_burst_rng[channel].standard_normal(
+                    seg.size)
+            if st.dropout:
+                seg[:] = 0.0
+            pos = stop
+
+    def _dac_gain_db(self, a0: int, n: int) -> np.ndarray | None:
+        """The ``dac_gain`` faults' gain of the reference, dB per sample (None: none)."""
+        faults = [f for f in self._faults if f.kind == "dac_gain"]
+        if not faults:
+            return None
+        t = np.arange(a0, a0 + n, dtype=float)
+        db = np.zeros(n)
+        for f in faults:
+            if f.end == math.inf:
+                db += f.value * (t >= f.start)
+            else:  # a drift: linear in dB from 0 at the start to value at the end, then held
+                db += f.value * np.clip((t - f.start) / (f.end - f.start), 0.0, 1.0)
+        return db
+
+    def _reference_block(self, d: np.ndarray, a0: int) -> np.ndarray:
+        """The reference input (FS) for the drive ``d`` (FS, clipped and delayed like the
+        control path): ``d out_v_per_fs / in_v_per_fs`` through the card's output and input
+        high-passes, with the ``dac_gain`` faults, the card's input noise, clipped at ±1 FS."""
+        x = np.empty((1, d.size))
+        x[0] = d * self._ref_gain
+        db = self._dac_gain_db(a0, d.size)
+        if db is not None:
+            x[0] *= 10.0 ** (db / 20.0)
+        if self._ref_sos is not None:
+            sosfilt_inplace(self._ref_sos, x, self._ref_zi)
+        r = x[0]
+        ch = self._ref_channel
+        pos, end = a0, a0 + d.size
+        while self._faults and pos < end:  # the reference's own detached/gain faults
+            stop = min(end, self._next_boundary(pos))
+            st = fault_state(self._faults, pos, (ch,))
+            if st.detached or st.sensor_gain != 1.0:
+                r[pos - a0:stop - a0] *= 0.0 if st.detached else st.sensor_gain
+            pos = stop
+        if self._card_noise_fs > 0:
+            r += self._card_noise_fs * self._ref_rng.standard_normal(d.size)
+        self._row_faults(r, ch, a0)
+        return self._clip(r, 1.0, "input")
 
     # -- properties ---------------------------------------------------------------------------
     @property
@@ -298,6 +439,9 @@ class SimRig:
             loop_delay_samples=p.card.delay_samples,
             calibrated=True,
             source=f"sim:{p.name}",
+            inputs=tuple(InputChannelCal(c, p.card.in_v_per_fs, None if src == "reference"
+                                         else p.accelerometer.sens_mv_per_g)
+                         for c, src, _ in self._layout) if len(self._layout) > 1 else (),
         )
 
     @property
@@ -372,14 +516,45 @@ class SimRig:
                 out[pos:stop - self._n] = self._segment(d[pos:stop - self._n], start)
                 pos = stop - self._n
         self._n += n
-        if self._mon_idx:
+        if self._taps:
             mon = np.concatenate(self._mon_pieces, axis=1)
             for k, rng in enumerate(self._mon_rng):  # each monitor's sensor and card noise
                 noise_rms = math.hypot(self._sensor_noise_fs, self._card_noise_fs)
                 if noise_rms > 0:
                     mon[k] += noise_rms * rng.standard_normal(n)
-            self.last_monitor_fs = np.clip(mon, -1.0, 1.0)
+                self._row_faults(mon[k], self._taps[k][2], self._n - n)
+            self._tap_fs = np.clip(mon, -1.0, 1.0)
+            self.last_monitor_fs = self._tap_fs[:self._n_monitors]
+        if self._ref_channel is not None:
+            self._ref_fs = self._reference_block(d, self._n - n)
         return out
+
+    def process_inputs(self, drive_fs: Any) -> np.ndarray:
+        """Every input (FS) for one drive block (FS): ``(n_inputs, n)``, rows in the order of
+        :attr:`input_channels` (see ``inputs`` of the constructor); the control row is what
+        :meth:`process` returns."""
+        out = self.process(drive_fs)
+        rows = np.empty((len(self._layout), out.size))
+        for k, (_, source, row) in enumerate(self._layout):
+            if out.size == 0:
+                break
+            if source == "control":
+                rows[k] = out
+            elif source == "reference":
+                rows[k] = self._ref_fs
+            else:
+                rows[k] = self._tap_fs[row]
+        return rows
+
+    @property
+    def input_channels(self) -> tuple[int, ...]:
+        """The input channels (counted from 1) of the rows of :meth:`process_inputs`."""
+        return tuple(c for c, _, _ in self._layout)
+
+    @property
+    def input_sources(self) -> tuple[str, ...]:
+        """What each row of :meth:`process_inputs` reads (``control``, ``mode:NAME``, ...)."""
+        return tuple(src for _, src, _ in self._layout)
 
     def _clip(self, x: np.ndarray, limit: float, counter: str) -> np.ndarray:
         """``x`` clipped to ±limit, counting the samples beyond."""
@@ -400,7 +575,7 @@ class SimRig:
         return active_faults(self._faults, a)
 
     def _state(self, a: int) -> FaultState:
-        return fault_state(self._faults, a)
+        return fault_state(self._faults, a, (None, self._ctrl_channel))
 
     def _update_heat(self, a: int) -> None:
         """At a thermal step boundary: mean coil power over the last step -> temperature, Re."""
@@ -510,7 +685,7 @@ class SimRig:
             self._counts["xmax"] += int(np.count_nonzero(beyond))
             np.multiply(acc, xmax / np.where(beyond, ax, xmax), out=acc)
         if self._mon_idx:
-            self._monitor_piece(acc, st.f_factor)
+            self._monitor_piece(acc, st.f_factor, a)
         if st.detached:
             acc[:] = 0.0
         self._run(2, acc, outs[3:4], slice(self._n_acc, None))
@@ -579,6 +754,45 @@ class SimRig:
         if st.dropout:
             r = np.zeros(n)
         return r
+
+_NEUTRAL = FaultState()
+
+
+def sim_inputs(roles: Iterable[Any], plant: Plant) -> tuple[tuple[int, str], ...]:
+    """The ``inputs`` of a :class:`SimRig` for a test definition's input roles
+    (:meth:`liveshape.testdef.spec.RigSelection.input_roles`).
+
+    The first control input is the plant's control point; every other control or monitor input
+    is the payload point its ``name`` names (a fixture point, else a resonance); the reference is
+    the drive's loopback.
+
+    Raises
+    ------
+    ConfigError
+        An input's name is no point of the plant (one line naming the input and the points).
+    """
+    pl = plant.payload
+    points = {p.name for p in pl.fixture_points}
+    modes = {r.name for r in pl.resonances}
+    out: list[tuple[int, str]] = []
+    first = True
+    for r in roles:
+        if r.role == "reference":
+            out.append((r.channel, "reference"))
+        elif r.role == "control" and first:
+            out.append((r.channel, "control"))
+            first = False
+        elif r.name in points:
+            out.append((r.channel, f"fixture:{r.name}"))
+        elif r.name in modes:
+            out.append((r.channel, f"mode:{r.name}"))
+        else:
+            known = ", ".join(sorted(points | modes)) or "none"
+            raise ConfigError(f"rig.inputs: {r.role} input {r.channel} ({r.name!r}) names no "
+                              f"point of the simulated plant {plant.name!r} (fixture points "
+                              f"and resonances: {known})")
+    return tuple(out)
+
 
 def _peak(x: np.ndarray) -> float:
     """``max |x|`` without an array of magnitudes."""

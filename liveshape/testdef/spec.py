@@ -17,6 +17,7 @@ from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any
 
+from liveshape.dsp.multichannel import STRATEGIES
 from liveshape.dsp.profile import Profile
 from liveshape.errors import ConfigError
 from liveshape.schema import (
@@ -37,6 +38,7 @@ from liveshape.testdef.fault_spec import (  # re-exported: FAULT_KINDS, FaultSpe
     parse_fault,
 )
 from liveshape.testdef.hum_spec import HumSpec, hum_from_mapping
+from liveshape.testdef.inputs import InputRole, inputs_from_list, inputs_to_list, shorthand_roles
 from liveshape.testdef.overrides import COMMAND_LINE, OverrideWhere, did_you_mean
 from liveshape.testdef.profilefile import profile_from_points, read_profile_csv
 from liveshape.testdef.tolerance import Tolerance, tolerance_from_mapping
@@ -44,8 +46,9 @@ from liveshape.testdef.tone_spec import ToneSpec, check_tones, tones_from_list
 
 __all__ = [
     "CLIP_SIGMA_FLOOR", "COMMAND_LINE", "FAULT_KINDS", "MAX_FRAME_LENGTH", "MIN_BAND_LINES",
-    "MIN_FRAME_LENGTH", "SPEC_SUFFIXES", "ControlSettings", "FaultSpec", "RigSelection",
-    "SafetyLimits", "Schedule", "TestSpec", "ToneSpec", "check_spec", "load_spec", "parse_fault",
+    "MIN_FRAME_LENGTH", "SPEC_SUFFIXES", "ControlSettings", "FaultSpec", "InputRole",
+    "RigSelection", "SafetyLimits", "Schedule", "TestSpec", "ToneSpec", "check_spec",
+    "load_spec", "parse_fault",
     "spec_from_mapping", "spec_to_mapping",
 ]
 
@@ -90,6 +93,10 @@ class ControlSettings:
     #: Kurtosis target of the control response (3: Gaussian; None: a Gaussian drive, no
     #: kurtosis control). docs/methods.md, "Non-Gaussian drive" and "Kurtosis in the loop".
     kurtosis: float | None = None
+    #: How several control inputs make one control spectrum: ``average`` (weighted by each
+    #: input's ``weight``), ``maximum`` or ``minimum`` line by line
+    #: (:func:`liveshape.dsp.multichannel.combine_control`); one control input ignores it.
+    strategy: str = "average"
 
     @property
     def df_hz(self) -> float:
@@ -132,11 +139,22 @@ class RigSelection:
     loopback_input: int | None = None
     #: Mains hum the simulated rig adds to the control input (None: none); sim only.
     hum: HumSpec | None = None
+    #: The roles of several inputs (``rig.inputs``; :mod:`liveshape.testdef.inputs`); None: the
+    #: shorthand above. With a list, ``control_input`` is its first control and
+    #: ``loopback_input`` its reference, so one-control code reads the list's first control.
+    inputs: tuple[InputRole, ...] | None = None
 
     def channel_map(self) -> dict[str, int | None]:
         """The channel map (counted from 1) under its spec keys."""
         return {"drive_output": self.drive_output, "control_input": self.control_input,
                 "loopback_input": self.loopback_input}
+
+    def input_roles(self) -> tuple[InputRole, ...]:
+        """Every input with its role, for either form (the list, or the shorthand's control
+        and optional loopback as the reference)."""
+        if self.inputs is not None:
+            return self.inputs
+        return shorthand_roles(self.control_input, self.loopback_input)
 
 
 @dataclass(frozen=True)
@@ -181,6 +199,7 @@ _RULES: dict[str, dict[str, tuple[str, Any]]] = {
         "law": ("choice", ("direct", "blend")),
         "loop": ("choice", ("fast", "block")),
         "update_interval_s": ("float", {"gt": 0, "le": 10}),
+        "strategy": ("choice", STRATEGIES),
     },
     "safety": {
         "drive_rms_max_fs": ("float", {"gt": 0, "le": 1}),
@@ -327,6 +346,15 @@ def _rig(data: Any, w: OverrideWhere, base_dir: Path | None) -> RigSelection:
             raise w.key("loopback_input").fail(
                 loop_in, f"is the control input (rig.control_input = {control_in}); the drive's "
                 "loopback needs an input of its own")
+    inputs = None
+    if d.get("inputs") is not None:
+        short = [k for k in ("control_input", "loopback_input") if k in d]
+        if short:
+            raise w.key(short[0]).fail(d[short[0]], "is the one-control shorthand; with "
+                                       "rig.inputs give every input in the list instead")
+        inputs = inputs_from_list(d["inputs"], w.key("inputs"))
+        control_in = next(r.channel for r in inputs if r.role == "control")
+        loop_in = next((r.channel for r in inputs if r.role == "reference"), None)
     kind = as_choice(d.get("kind", b.kind), w.key("kind"), ("sim", "audio"))
     hum = d.get("hum")
     if hum is not None:
@@ -344,6 +372,7 @@ def _rig(data: Any, w: OverrideWhere, base_dir: Path | None) -> RigSelection:
         control_input=control_in,
         loopback_input=loop_in,
         hum=hum,
+        inputs=inputs,
     )
 
 
@@ -539,6 +568,17 @@ def _plain(obj: Any) -> dict[str, Any]:
     return {f.name: getattr(obj, f.name) for f in fields(obj)}
 
 
+def _rig_mapping(rig: RigSelection) -> dict[str, Any]:
+    d = {**_plain(rig), "hum": None if rig.hum is None else rig.hum.as_mapping()}
+    if rig.inputs is None:
+        d.pop("inputs")
+    else:  # the list replaces the shorthand (the two are exclusive)
+        d.pop("control_input")
+        d.pop("loopback_input")
+        d["inputs"] = inputs_to_list(rig.inputs)
+    return d
+
+
 def spec_to_mapping(spec: TestSpec) -> dict[str, Any]:
     """Plain data of a resolved spec; ``spec_from_mapping`` of it gives the same spec back."""
     p = spec.profile
@@ -553,8 +593,7 @@ def spec_to_mapping(spec: TestSpec) -> dict[str, Any]:
         "schedule": {**_plain(spec.schedule), "steps_db": list(spec.schedule.steps_db)},
         "control": _plain(spec.control),
         "safety": _plain(spec.safety),
-        "rig": {**_plain(spec.rig),
-                "hum": None if spec.rig.hum is None else spec.rig.hum.as_mapping()},
+        "rig": _rig_mapping(spec.rig),
         "faults": [_plain(x) for x in spec.faults],
         "seed": spec.seed,
         "tones": [t.as_mapping() for t in spec.tones],
