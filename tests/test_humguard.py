@@ -123,3 +123,27 @@ def test_the_loop_holds_its_drive_and_verdict_through_hum_20_db_above_the_contro
     held = hummed._hum_mask()
     assert np.max(np.abs(d[held])) <= 2.0
     assert np.median(np.abs(d[~held])) <= 0.1
+
+
+def test_the_summary_the_screen_and_the_report_name_the_lines(tmp_path):
+    import io
+
+    from liveshape.record.report import _figure_rows
+    from liveshape.record.runfolder import load_run
+    from liveshape.session import run_session
+    from liveshape.views import dashboard
+
+    spec = load_spec(EXAMPLE, {"schedule.full_level_s": 6.0,
+                               "rig.hum": {"mains_hz": 60, "harmonics": 2, "level_g": 1.0}})
+    session = run_session(spec, out_dir=tmp_path, fast=True, seed=2)
+    summary = session.summary()
+    lines = summary["lines_not_caused_by_drive"]
+    assert sorted(round(ln["f_hz"]) for ln in lines) == [60, 120]
+    assert all(ln["cause"] == "not caused by the drive" for ln in lines)
+    console = dashboard.make_console(file=io.StringIO(), width=140)
+    console.print(dashboard.run_summary(summary))
+    assert "lines not from the drive" in console.file.getvalue()
+    run = load_run(session.run_dir)
+    rows, _ = _figure_rows(run, None, spec.tolerance, {}, "")
+    assert any(r[0] == "lines not from the drive" and "g rms" in r[1]
+               and ("59." in r[1] or "60." in r[1]) for r in rows)

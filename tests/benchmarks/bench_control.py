@@ -422,6 +422,17 @@ def _hum(report: Callable[[str, float, str], None]) -> None:
     held = ctl._hum_mask()
     report("hum_drive_change_on_held_lines_max", float(np.max(np.abs(d[held]))),
            "dB against the hum-free run, same seed")
+    report("hum_drive_change_on_held_lines_rms", float(np.sqrt(np.mean(d[held] ** 2))),
+           "dB against the hum-free run, same seed")
+    spec5 = load_spec(path, {"schedule.full_level_s": 30.0})
+    rig5, cal5, _ = build_sim_rig(spec5, 5)
+    other = Controller(spec5, cal5, seed=5)
+    resp = np.zeros(BLOCK)
+    while not other.finished:
+        resp = rig5.process(other.exchange(resp))
+    d2 = 10 * np.log10(other._out.psd[band] / clean._out.psd[band])
+    report("hum_free_drive_seed_to_seed_rms_same_lines", float(np.sqrt(np.mean(d2[held] ** 2))),
+           "dB (two hum-free runs, seeds 2 and 5: the loop's own line scatter)")
     report("hum_drive_change_elsewhere_median", float(np.median(np.abs(d[~held]))), "dB")
     report("hum_guard_cpu_share", (cpu_hum - cpu_clean) / ctl.t_s,
            "CPU s per s of run (controller and rig, hum run minus clean run)")
