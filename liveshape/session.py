@@ -70,6 +70,7 @@ class SessionResult:
             "updates": r.updates,
             "control_kurtosis": r.kurtosis,
             "tones": r.tones,
+            "lines_not_caused_by_drive": r.lines,
             "trip": None if trip is None else dataclasses.asdict(trip),
             **verdict_summary(r.verdict),
             "run_dir": str(self.run_dir),

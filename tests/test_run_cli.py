@@ -229,7 +229,7 @@ def test_infeasible_profile_runs_when_accepted_and_the_record_says_so(tmp_path: 
 def test_units_option_shows_si_and_keeps_the_record_in_g(tmp_path: Path) -> None:
     # g0 = 9.80665 m/s² (3rd CGPM, 1901). The screen shows m/s²; summary.json stays in g.
     proc = subprocess.run(
-        cli("run", str(SPEC), "--fast", "--duration", "2", "--seed", "3", "--units", "m/s2",
+        cli("run", str(SPEC), "--fast", "--duration", "6", "--seed", "3", "--units", "m/s2",
             "--out", str(tmp_path)),
         capture_output=True, text=True, cwd=REPO, timeout=600,
         env={**os.environ, "COLUMNS": "140", "LINES": "45"},

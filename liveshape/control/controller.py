@@ -213,6 +213,9 @@ class Controller(ToneStage, FastLoop, LoopState):
             if trip is not None:
                 self._abort(trip)
                 return
+            if self._hum is not None:  # lines the drive does not cause leave the control here
+                y = self._hum.push(x, y, i0 - (self._delay or 0), self.t_s)
+                self._hum_events()
             fast = self._fast and self._stage != "identify"
             if self.supervisor.silent_in_last_block and (fast or self._est.active):
                 # a dropout shorter than the rule's window: its data must not enter an
@@ -235,6 +238,9 @@ class Controller(ToneStage, FastLoop, LoopState):
         if chk is None:
             return
         self._connection, self._conn = chk, None
+        if self._hum is not None:  # the silent background: every line there is not the drive's
+            self._hum.background(conn.recorder.records()[2], self.t_s)
+            self._hum_events()
         self._emit("connect", connection_message(chk), {
             **connection_data(chk),
             "calibration_delay_samples": self.calibration.loop_delay_samples})
@@ -399,6 +405,15 @@ class Controller(ToneStage, FastLoop, LoopState):
                                         cross=False)
         self._set_stage("equalize", "equalize")
         self._go_to_level(self.schedule.level_db)
+
+    def _hum_events(self) -> None:
+        for kind, line in self._hum.drain():
+            d = line.as_dict()
+            if kind == "found":
+                self._emit("line_found", f"line at {d['f_hz']:.2f} Hz not caused by the drive: "
+                           "taken out of the control", d)
+            else:
+                self._emit("line_gone", f"line at {d['f_hz']:.2f} Hz gone", d)
 
     def _confirm_warm(self) -> bool:
         """Compare the FRF just identified with the stored one; emit the outcome."""

@@ -226,11 +226,18 @@ class FastLoop:
             r = self._target[lines]
             pred[lines] = r * (pred[lines] / r) ** (1.0 / self._gamma)
         g = self._est_gain
+        hum = self._hum_mask()
+        frozen = self._frozen
+        if hum is not None:  # the drive holds on lines the drive does not cause
+            frozen = frozen.copy()
+            frozen[np.flatnonzero(band)[hum]] = True
         res = equalizer.update_drive(
             old, self._target, pred, gain=self._gamma, max_step_db=c.max_step_db, band=band,
-            ceiling_ms_fs2=self._out.ceiling_ms(g), df_hz=self.df_hz, frozen=self._frozen,
+            ceiling_ms_fs2=self._out.ceiling_ms(g), df_hz=self.df_hz, frozen=frozen,
             law="direct")
         new = res.drive_psd
+        if hum is not None:
+            new = self._hum_drive(new, hum)
         if self._pending:
             new = np.minimum(new, old)
         self._out.set_psd(new, ceiling_hit=res.ceiling_hit)
@@ -240,8 +247,28 @@ class FastLoop:
             d = judge(self._window.psd * g * g, self._target[band] * g * g,
                       alarm_db=self._alarm_db, abort_db=self._abort_db,
                       rms_alarm_db=self.spec.tolerance.rms_alarm_db, dof=self._window.dof,
-                      df_hz=self.df_hz)
+                      df_hz=self.df_hz, exclude=hum)
             self._on_decision(d, t)
+
+    def _hum_drive(self, drive: np.ndarray, hum: np.ndarray) -> np.ndarray:
+        """The drive on lines the drive does not cause: the identified FRF's drive for the
+        target times the equalizer's correction interpolated from the neighbouring lines (in dB
+        over line index), so those lines follow the loop without their hum."""
+        band = self._band
+        full = np.zeros(band.size, dtype=bool)
+        full[np.flatnonzero(band)[hum]] = True
+        h2 = np.abs(self._h1) ** 2
+        ok = band & (h2 > 0) & (self._target > 0) & (drive > 0)
+        if not np.any(ok & ~full):
+            return drive
+        with np.errstate(divide="ignore", invalid="ignore"):
+            corr = np.where(ok, 10.0 * np.log10(drive * h2 / np.where(ok, self._target, 1.0)),
+                            0.0)
+        corr = equalizer.fill_low_coherence(corr, ok & ~full, band)
+        out = np.array(drive, dtype=float)
+        lines = full & (h2 > 0)
+        out[lines] = self._target[lines] / h2[lines] * 10.0 ** (corr[lines] / 10.0)
+        return out
 
     def _fast_block(self, t: float, *, final: bool = False) -> None:
         """An independent safety block: every rule, the update record, the full-level average.
@@ -258,13 +285,16 @@ class FastLoop:
         played = self._out.played_psd(band, g)
         predicted = self._h2_id * (self._blk_d / k) * g * g  # identified FRF, drive the block saw
         at_limit = self._out.ceiling_hit or self._out.clipped > 0
+        keep = self._hum_mask()
+        keep = slice(None) if keep is None else ~keep  # lines the drive does not cause: out
         if final:
-            verdict = UpdateVerdict(None, (), _rms_db(ctrl, target_b), 0, math.nan, math.nan,
-                                    math.nan)
+            verdict = UpdateVerdict(None, (), _rms_db(ctrl[keep], target_b[keep]), 0, math.nan,
+                                    math.nan, math.nan)
         else:
             verdict = self.supervisor.check_update(
-                t, control_psd=ctrl, target_psd=target_b, dof=dof, abort_db=self._abort_db,
-                predicted_psd=predicted, drive_at_limit=at_limit)
+                t, control_psd=ctrl[keep], target_psd=target_b[keep], dof=dof,
+                abort_db=self._abort_db[keep], predicted_psd=predicted[keep],
+                drive_at_limit=at_limit)
         self._updates += 1
         full = self._blk_full
         self._blk_reset()

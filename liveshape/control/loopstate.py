@@ -18,6 +18,7 @@ import numpy as np
 from liveshape.control.connect import ConnectionCheck, ConnectStage
 from liveshape.control.drivestream import DriveStream, ResponseQueue
 from liveshape.control.fastloop import fast_update_segments
+from liveshape.control.humguard import HumGuard
 from liveshape.control.kurtosisloop import KurtosisLoop
 from liveshape.control.runplan import check_max_step, max_step_s
 from liveshape.control.runstate import ControlSnapshot, Event, RunResult, UpdateRecord, frozen_array
@@ -111,6 +112,12 @@ class LoopState:
             raise ConfigError(f"{spec.source or spec.name}: tones need control.loop = fast "
                               "(the block loop has no tone control)")
         self._drive_updates: list[float] = []  # run time of every drive update, s
+        #: lines the drive does not cause (mains hum), found and taken out of the control
+        #: (fast loop; :mod:`liveshape.control.humguard`)
+        self._hum: HumGuard | None = None
+        if self._fast:
+            self._hum = HumGuard(fs, (float(self.f_hz[0]), float(self.f_hz[-1])),
+                                 g_per_fs=calibration.g_per_fs)
         self._pool = DecisionPool(float(c.target_dof), self._nu_update, c.averaging)
         self._settle = self._hop  # plant settling after a drive change, samples
         self._max_lag = max(1, int(round(max_delay_s * fs)))
@@ -287,7 +294,7 @@ class LoopState:
         u = self._last_update
         return judge(u.control_psd, u.target_psd, alarm_db=self._alarm_db,
                      abort_db=self._abort_db, rms_alarm_db=self.spec.tolerance.rms_alarm_db,
-                     dof=u.dof, df_hz=self.df_hz)
+                     dof=u.dof, df_hz=self.df_hz, exclude=self._hum_mask())
 
     def snapshot(self) -> ControlSnapshot:
         """A frozen view of the loop now."""
@@ -333,7 +340,8 @@ class LoopState:
             tones=getattr(self, "tone_summary", lambda: None)(),
             kurtosis=None if self._kurt is None else {
                 "control": self._kurt.averaged, "target": self._kurt.target,
-                "drive": self._kurt.drive})
+                "drive": self._kurt.drive},
+            lines=None if self._hum is None or not self._hum.held else self._hum.summary())
 
     def _tolerance_state(self, d: Judgement | None) -> str:
         if self._pending:
@@ -349,7 +357,12 @@ class LoopState:
             self._status, self._full, self._target[self._band], alarm_db=self._alarm_db,
             abort_db=self._abort_db, rms_alarm_db=tol.rms_alarm_db,
             max_alarm_fraction=tol.max_alarm_fraction, df_hz=self.df_hz,
-            status_reason=self._trip.message if self._trip is not None else self._stop_reason)
+            status_reason=self._trip.message if self._trip is not None else self._stop_reason,
+            exclude=self._hum_mask())
+
+    def _hum_mask(self) -> np.ndarray | None:
+        """Band lines held as not caused by the drive (None: none)."""
+        return None if self._hum is None else self._hum.mask(self.f_hz, self.df_hz)
 
     def full_level_arrays(self) -> dict[str, Any] | None:
         """The full-level average as arrays with units in their names, or None without one.
@@ -386,7 +399,7 @@ class LoopState:
             status=self._status, abort_reason=reason, trip=self._trip,
             updates_to_tolerance=self._updates_to_tol,
             final_rms_error_db=nan if d is None else d.rms_error_db,
-            final_max_dev_db=nan if d is None else float(np.max(np.abs(d.dev_db))),
+            final_max_dev_db=nan if d is None else float(np.nanmax(np.abs(d.dev_db))),
             final_lines_outside_alarm=-1 if d is None else d.lines_outside_alarm,
             final_lines_outside_abort=-1 if d is None else d.lines_outside_abort,
             control_grms_g=nan if d is None else d.control_grms_g,
@@ -395,4 +408,5 @@ class LoopState:
             time_at_full_level_s=self.schedule.time_at_full_level_s, updates=self._updates,
             verdict=self.verdict(),
             kurtosis=None if self._kurt is None else self._kurt.full_level_result(),
-            tones=getattr(self, "tone_summary", lambda: None)())
+            tones=getattr(self, "tone_summary", lambda: None)(),
+            lines=None if self._hum is None else self._hum.summary())

@@ -142,6 +142,8 @@ class ControlSnapshot:
     tones: Any = None
     #: ``control.kurtosis``: ``{"control": averaged measured, "target", "drive"}``; else None.
     kurtosis: Any = None
+    #: Lines held as not caused by the drive (mains hum): ``f_hz``, ``rms_g``...; else None.
+    lines: Any = None
 
 
 @dataclass(frozen=True)
@@ -191,6 +193,9 @@ class RunResult:
     #: Sine-on-random: each tone's ``f_hz``, ``target_g``, ``measured_g`` (peak, averaged),
     #: ``error_db``, ``in_tolerance`` (:mod:`liveshape.control.tonestage`); else None.
     tones: Any = None
+    #: Lines in the control not caused by the drive (mains hum) held at the end, each with
+    #: ``f_hz``, ``rms_g``, ``first_t_s``: taken out of the control; None: not searched.
+    lines: Any = None
 
     @property
     def abort_rule(self) -> str | None:

@@ -131,23 +131,37 @@ class Judgement:
 
     @property
     def max_dev_db(self) -> float:
-        return float(np.max(self.dev_db))
+        return float(np.nanmax(self.dev_db))
 
     @property
     def min_dev_db(self) -> float:
-        return float(np.min(self.dev_db))
+        return float(np.nanmin(self.dev_db))
+
+    @property
+    def lines_judged(self) -> int:
+        """Lines the judgement counts (NaN in ``dev_db``: left out, e.g. a hum line)."""
+        return int(np.count_nonzero(np.isfinite(self.dev_db)))
 
 
 def judge(control_psd: np.ndarray, target_psd: np.ndarray, *, alarm_db: np.ndarray,
-          abort_db: np.ndarray, rms_alarm_db: float, dof: float, df_hz: float) -> Judgement:
-    """Hold a control PSD (g²/Hz) against the target with per-line limits (± dB)."""
+          abort_db: np.ndarray, rms_alarm_db: float, dof: float, df_hz: float,
+          exclude: np.ndarray | None = None) -> Judgement:
+    """Hold a control PSD (g²/Hz) against the target with per-line limits (± dB).
+
+    ``exclude`` (bool per line): lines left out of every figure (their ``dev_db`` is NaN), e.g.
+    lines the drive does not cause (:mod:`liveshape.control.humguard`).
+    """
     ctrl = np.asarray(control_psd, dtype=float)
     tgt = np.asarray(target_psd, dtype=float)
     dev = 10.0 * np.log10(np.maximum(ctrl, 1e-300) / tgt)
-    c, r = float(ctrl.sum()), float(tgt.sum())
+    keep = np.ones(dev.size, dtype=bool) if exclude is None else ~np.asarray(exclude, bool)
+    if exclude is not None:
+        dev = np.where(keep, dev, np.nan)
+    c, r = float(ctrl[keep].sum()), float(tgt[keep].sum())
     rms_err = 10.0 * math.log10(c / r) if c > 0 else -math.inf
-    n_alarm = int(np.count_nonzero(np.abs(dev) > alarm_db))
-    n_abort = int(np.count_nonzero(np.abs(dev) > abort_db))
+    with np.errstate(invalid="ignore"):
+        n_alarm = int(np.count_nonzero(np.abs(dev) > alarm_db))
+        n_abort = int(np.count_nonzero(np.abs(dev) > abort_db))
     return Judgement(
         control_psd=ctrl, target_psd=tgt, dev_db=dev, rms_error_db=rms_err,
         lines_outside_alarm=n_alarm, lines_outside_abort=n_abort,

@@ -141,6 +141,7 @@ def decide_verdict(
     max_alarm_fraction: float,
     df_hz: float,
     status_reason: str | None = None,
+    exclude: np.ndarray | None = None,
 ) -> Verdict:
     """The verdict of a run that ended with ``status`` (``completed``, ``aborted``, ``stopped``).
 
@@ -162,13 +163,15 @@ def decide_verdict(
         Line spacing, Hz.
     status_reason : str, optional
         Why the run ended early (the trip's or the stop's message).
+    exclude : ndarray of bool, optional
+        Band lines left out of the verdict (lines the drive does not cause).
     """
     rule = verdict_rule_text(max_alarm_fraction)
     psd = average.psd
     j = None
     if psd is not None:
         j = judge(psd, target_psd, alarm_db=alarm_db, abort_db=abort_db,
-                  rms_alarm_db=rms_alarm_db, dof=average.dof, df_hz=df_hz)
+                  rms_alarm_db=rms_alarm_db, dof=average.dof, df_hz=df_hz, exclude=exclude)
     frac = average.alarm_fraction
     if status != "completed":
         why = f"run {status}" + (f": {status_reason}" if status_reason else "")
@@ -180,7 +183,7 @@ def decide_verdict(
     if j.lines_outside_alarm:
         worst = j.max_dev_db if abs(j.max_dev_db) >= abs(j.min_dev_db) else j.min_dev_db
         reasons.append(
-            f"{j.lines_outside_alarm} of {j.dev_db.size} lines of the full-level average "
+            f"{j.lines_outside_alarm} of {j.lines_judged} lines of the full-level average "
             f"outside the alarm limit (worst {worst:.2f} dB)")
     if not abs(j.rms_error_db) <= rms_alarm_db:
         reasons.append(f"rms error of the full-level average {j.rms_error_db:.2f} dB is outside "

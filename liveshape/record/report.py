@@ -1016,6 +1016,12 @@ def _figure_rows(run: RunData, d: DecisionSpectrum | None, tol: Tolerance,
                      f"tolerance ±{_fmt(t.get('tolerance_db'), 'g')} dB)"))
         if t.get("in_tolerance") is False:
             colours[len(rows) - 1] = red
+    lines = s.get("lines_not_caused_by_drive") or ()
+    if lines:
+        rows.append(("lines not from the drive", ", ".join(
+            f"{ln['f_hz']:.1f} Hz ({_fmt(ln.get('rms_g'), '.3g')} g rms)" for ln in lines)
+            + ": subtracted from the control, left out of the verdict"))
+        colours[len(rows) - 1] = amber
     k = s.get("control_kurtosis")
     if isinstance(k, dict):
         se = k.get("std_error")

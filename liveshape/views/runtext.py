@@ -72,6 +72,7 @@ _RESULT_SHOWN = frozenset({
     "full_level_max_dev_db", "full_level_min_dev_db", "full_level_lines_outside_alarm",
     "full_level_lines_outside_abort", "full_level_control_grms_g", "alarm_fraction",
     "max_alarm_fraction", "accel_unit", "asd_unit", "tones", "control_kurtosis",
+    "lines_not_caused_by_drive",
 })
 _VERDICT_ROLE = {"pass": "ok", "fail": "abort", "incomplete": "alarm"}
 
@@ -305,6 +306,11 @@ def variant_rows(obj: Any) -> list[Row]:
         rows.append(_row(f"tone {t['f_hz']:g} Hz", f"{fmt(t.get('measured_g'), '.3f')} of "
                          f"{fmt(t.get('target_g'), '.3f')} g peak  ({fmt_db(err)})",
                          "value" if ok or ok is None else "alarm"))
+    lines = field(obj, "lines", "lines_not_caused_by_drive", default=None)
+    if lines:
+        rows.append(_row("lines not from the drive", ", ".join(
+            f"{ln['f_hz']:.1f} Hz ({fmt(ln.get('rms_g'), '.3g')} g rms)" for ln in lines)
+            + "  taken out of the control", "alarm"))
     k = field(obj, "kurtosis", "control_kurtosis", default=None)
     if isinstance(k, Mapping):
         measured = k.get("control", k.get("kurtosis"))
