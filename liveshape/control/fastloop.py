@@ -251,23 +251,21 @@ class FastLoop:
             self._on_decision(d, t)
 
     def _hum_drive(self, drive: np.ndarray, hum: np.ndarray) -> np.ndarray:
-        """The drive on lines the drive does not cause: the identified FRF's drive for the
-        target times the equalizer's correction interpolated from the neighbouring lines (in dB
-        over line index), so those lines follow the loop without their hum."""
+        """The drive on lines the drive does not cause: interpolated in dB over line index from
+        the neighbouring lines' drive. The equalized drive is smooth where the plant is, and
+        neither the control nor the FRF is trustworthy on those lines (the hum, or what is left
+        of it, swamps a low-level identification there)."""
         band = self._band
         full = np.zeros(band.size, dtype=bool)
         full[np.flatnonzero(band)[hum]] = True
-        h2 = np.abs(self._h1) ** 2
-        ok = band & (h2 > 0) & (self._target > 0) & (drive > 0)
-        if not np.any(ok & ~full):
+        ok = band & (drive > 0) & ~full
+        if not np.any(ok):
             return drive
-        with np.errstate(divide="ignore", invalid="ignore"):
-            corr = np.where(ok, 10.0 * np.log10(drive * h2 / np.where(ok, self._target, 1.0)),
-                            0.0)
-        corr = equalizer.fill_low_coherence(corr, ok & ~full, band)
+        with np.errstate(divide="ignore"):
+            d_db = np.where(drive > 0, 10.0 * np.log10(np.where(drive > 0, drive, 1.0)), 0.0)
+        d_db = equalizer.fill_low_coherence(d_db, ok, band)
         out = np.array(drive, dtype=float)
-        lines = full & (h2 > 0)
-        out[lines] = self._target[lines] / h2[lines] * 10.0 ** (corr[lines] / 10.0)
+        out[full] = 10.0 ** (d_db[full] / 10.0)
         return out
 
     def _fast_block(self, t: float, *, final: bool = False) -> None:
