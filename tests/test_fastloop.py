@@ -203,6 +203,11 @@ def test_the_example_runs_the_fast_loop_with_updates_every_update_interval():
     assert ctl.update_interval_s == pytest.approx(m * hop_s)
     assert np.median(np.diff(times)) == pytest.approx(m * hop_s)
     assert np.median(np.diff(times)) <= 0.5  # the bound for the update interval
+    # the full-level average holds (nearly) all of the full-level time: Welch (1967) DOF of
+    # the segments in spec.schedule.full_level_s, less a frame and the loop delay at each end
+    full = ctl.full_level_arrays()
+    segs = int(spec.schedule.full_level_s / hop_s) - 4
+    assert full["dof"] >= welch_dof(segs) * 0.9
 
 
 def test_level_steps_wait_for_the_dof_and_hold_and_no_sooner():

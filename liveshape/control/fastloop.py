@@ -189,10 +189,14 @@ class FastLoop:
         self._tracker.push(p, d_full * g2)
         norm = p / (g2 * burst)  # the control per unit of the PSD the drive is made of
         self._window.push(norm)
+        steady_full = self._stage == "full_level" and g is not None and g == 1.0
+        if steady_full and self._blk_n and not self._blk_full:
+            # the first segment all at full level: full-level blocks hold full-level data only
+            self._fast_stage_change(t, completed=False)
         self._blk += norm
         self._blk_d += d_full / burst
         self._blk_n += 1
-        self._blk_full &= self._stage == "full_level" and g is not None and g == 1.0
+        self._blk_full &= steady_full
         self._since_update += 1
         if self._since_update >= self._m_update:
             self._since_update = 0
