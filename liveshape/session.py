@@ -180,12 +180,12 @@ def record_estimate(spec: TestSpec, record_signals: bool = True) -> diskspace.Re
     See :func:`liveshape.control.runplan.nominal_run_s` and
     :func:`liveshape.record.diskspace.estimate_record`.
     """
-    from liveshape.control.runplan import nominal_run_s, update_period_s
+    from liveshape.control.runplan import nominal_run_s, record_period_s
 
     c = spec.control
     n_lines = int(np.count_nonzero(spec.profile.lines(c.fs_hz, c.frame_length) > 0))
     return diskspace.estimate_record(nominal_run_s(spec), c.fs_hz, signals=record_signals,
-                                     n_lines=n_lines, update_period_s=update_period_s(spec))
+                                     n_lines=n_lines, update_period_s=record_period_s(spec))
 
 
 def _close_record(recorder: RunRecorder, session: SessionResult) -> SessionResult:

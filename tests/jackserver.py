@@ -83,6 +83,8 @@ def start_jack_server(
     )
     if wait.returncode != 0 or proc.poll() is not None:
         stop_pid(proc)
+        if proc.returncode == -signal.SIGKILL:
+            reclaim_server_slot(name)
         raise RuntimeError(f"jackd {name} did not start: {wait.stdout.strip()} {wait.stderr}")
     return JackServer(name=name, pid=proc.pid, fs_hz=float(fs_hz),
                       period_frames=period_frames, proc=proc)
@@ -120,6 +122,15 @@ def stop_pid(proc: subprocess.Popen) -> None:
             proc.wait(timeout=5)
 
 
+def stop_server(server: JackServer) -> None:
+    """Stop a server we started; if it had to be killed (SIGKILL, e.g. on a loaded machine that
+    kept it from exiting within the grace time), free its registry slot, or the 8-slot registry
+    fills up over a test session and later servers cannot start."""
+    stop_pid(server.proc)
+    if server.proc.returncode == -signal.SIGKILL:
+        reclaim_server_slot(server.name)
+
+
 @contextlib.contextmanager
 def jack_session(**kwargs: Any) -> Iterator[JackServer]:
     """A private server for the duration of the block; ``JACK_DEFAULT_SERVER`` points at it."""
@@ -137,7 +148,7 @@ def jack_session(**kwargs: Any) -> Iterator[JackServer]:
         else:
             os.environ["JACK_DEFAULT_SERVER"] = old
         # PortAudio must let go of the server before it dies (its JACK host asserts otherwise)
-        audio.rescan_devices(between=lambda: stop_pid(server.proc))
+        audio.rescan_devices(between=lambda: stop_server(server))
 
 
 @contextlib.contextmanager

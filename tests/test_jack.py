@@ -355,7 +355,7 @@ def test_serve_announces_itself_and_returns_when_the_server_stops(jack_server) -
     import sys
     from pathlib import Path
 
-    from jackserver import start_jack_server, stop_pid
+    from jackserver import start_jack_server, stop_server
 
     other = start_jack_server()  # a second private server, never seen by PortAudio
     root = str(Path(__file__).resolve().parents[1])
@@ -367,7 +367,7 @@ def test_serve_announces_itself_and_returns_when_the_server_stops(jack_server) -
     try:
         assert proc.stdout.readline().split() == ["ready", "plant-x", "48000", "1024"]
     finally:
-        stop_pid(other.proc)
+        stop_server(other)
     assert proc.wait(timeout=10) == 0
     proc.stdout.close()
     proc.stderr.close()

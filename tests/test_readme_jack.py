@@ -52,8 +52,9 @@ def _own(line: str, server: str) -> str:
                                                              f"JACK_DEFAULT_SERVER={server} ")
 
 
-def _end(proc: subprocess.Popen) -> None:
-    """End a process group this test started (SIGTERM, then SIGKILL), by its id."""
+def _end(proc: subprocess.Popen) -> bool:
+    """End a process group this test started (SIGTERM, then SIGKILL), by its id; True when it
+    had to be killed."""
     if proc.poll() is None:
         os.killpg(proc.pid, signal.SIGTERM)
         try:
@@ -61,6 +62,8 @@ def _end(proc: subprocess.Popen) -> None:
         except subprocess.TimeoutExpired:
             os.killpg(proc.pid, signal.SIGKILL)
             proc.wait(timeout=10)
+            return True
+    return False
 
 
 def test_readme_jack_example_completes_with_the_bring_up(tmp_path: Path) -> None:
@@ -109,8 +112,11 @@ def test_readme_jack_example_completes_with_the_bring_up(tmp_path: Path) -> None
         tap.stdin.close()
         tap.wait(timeout=30)
     finally:
-        for proc in reversed(owned):
-            _end(proc)
+        killed = [_end(proc) for proc in reversed(owned)]
+        if killed and killed[-1]:  # the server (owned[0]) was killed: free its registry slot
+            from jackserver import reclaim_server_slot
+
+            reclaim_server_slot(server)
     assert rc == 0, screen[-3000:]
     assert "Raise the amplifier gain slowly" in screen and "usable: press Enter" in screen
     runs = list((tmp_path / "runs").iterdir())

@@ -63,6 +63,8 @@ class DriveStream:
                                       kurtosis=kurtosis)
         self.psd = np.zeros(frame_length // 2 + 1)  # full-level drive PSD, FS²/Hz
         self.history = DriveHistory(history)
+        self.gain2_history = DriveHistory(history)  # the squared gain of every sample
+        self.gain2_margin = 4 * frame_length  # kept behind the drive history's horizon
         self.n_out = 0  # samples produced
         self.ceiling_hit = False  # the last PSD set was cut by the ceiling
         self.clipped = 0  # samples hard-limited since reset_counters
@@ -74,6 +76,7 @@ class DriveStream:
         # (first sample, end sample, gain reached) of every gain ramp, newest last
         self._ramp_log: deque[tuple[int, int, float]] = deque([(0, 0, 0.0)], maxlen=64)
         self._weights: dict[int, np.ndarray] = {}
+        self._h2: np.ndarray | None = None
         #: Sine tones on the random (``read(n)`` → full-level samples, FS), or None.
         self.tones = None
         self._rms_max_fs = float(rms_max_fs)
@@ -236,13 +239,27 @@ class DriveStream:
             self.clipped += int(np.count_nonzero(np.abs(out) >= lim))
             peak = lim
         self.peak_fs = max(self.peak_fs, peak)
-        self.push(out)
+        g = self.synth.last_gains
+        self.gain2_history.append(np.full(n, self.synth.gain ** 2) if g is None else g * g)
+        self.push(out, gains_pushed=True)
         return out
 
-    def push(self, out: np.ndarray) -> None:
+    def push(self, out: np.ndarray, *, gains_pushed: bool = False) -> None:
         """Record samples sent without the synthesizer (zeros after the end)."""
         self.history.append(out)
+        if not gains_pushed:
+            self.gain2_history.append(np.zeros(out.size))
         self.n_out += out.size
+
+    def segment_gain2(self, start: int, length: int) -> float:
+        """Mean square of the level gain over drive samples ``start .. start + length − 1``,
+        weighted by the Hann window's power (the weight each sample has in the segment's
+        periodogram), so a segment during a level ramp is normalized by what it played."""
+        if self._h2 is None or self._h2.size != length:
+            t = np.arange(length)
+            self._h2 = (0.5 - 0.5 * np.cos(2 * np.pi * t / length)) ** 2
+            self._h2 /= self._h2.sum()
+        return float(np.dot(self._h2, self.gain2_history.get(start, start + length)))
 
 
 class ResponseQueue:
@@ -281,4 +298,6 @@ class ResponseQueue:
         x = drive.history.get(i0 - lag, end - lag)
         self.next = end
         drive.history.forget_before(end - keep)
+        # a segment looks a frame and more behind the newest response sample
+        drive.gain2_history.forget_before(end - keep - drive.gain2_margin)
         return x, y, i0

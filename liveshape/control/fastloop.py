@@ -171,21 +171,15 @@ class FastLoop:
         out, band = self._out, self._band
         g = out.segment_gain(drive_start, self.frame_length)
         self._last_clean = g is not None and g == out.gain_target
+        # the level the segment played: steady, or the Hann-weighted mean square of a ramp's
+        # per-sample gains (its expected power scales with exactly that)
+        g2 = g * g if g is not None else out.segment_gain2(drive_start, self.frame_length)
+        if g2 <= 1e-12:
+            return
         # a non-Gaussian drive plays bursts by design: each segment's expected control power
         # is its known burst factor times the target's (1 for a Gaussian drive)
         burst = out.segment_burst(drive_start)
-        if g is None:  # a level ramp: only the rms rule, against the level it heads to
-            g_to = out.gain_target
-            trip = self.supervisor.check_segment(
-                t, control_sum=float(p.sum()), target_sum=self._target_sum * g_to**2 * burst,
-                band_dof=self._seg_band_dof)
-            if trip is not None:
-                self._abort(trip)
-            return
-        if g <= 0.0:
-            return
         d_full = out.segment_psd(drive_start, band)  # bursts included
-        g2 = g * g
         trip = self.supervisor.check_segment(
             t, control_sum=float(p.sum()), target_sum=self._target_sum * g2 * burst,
             band_dof=self._seg_band_dof, predicted_sum=float(np.dot(self._h2_id, d_full)) * g2)
@@ -195,14 +189,20 @@ class FastLoop:
         self._tracker.push(p, d_full * g2)
         norm = p / (g2 * burst)  # the control per unit of the PSD the drive is made of
         self._window.push(norm)
+        steady_full = self._stage == "full_level" and g is not None and g == 1.0
+        if steady_full and self._blk_n and not self._blk_full:
+            # the first segment all at full level: full-level blocks hold full-level data only
+            self._fast_stage_change(t, completed=False)
         self._blk += norm
         self._blk_d += d_full / burst
         self._blk_n += 1
-        self._blk_full &= self._stage == "full_level" and g == 1.0
+        self._blk_full &= steady_full
         self._since_update += 1
         if self._since_update >= self._m_update:
             self._since_update = 0
             self._fast_update(t)
+        if self._status == "running":
+            self._fast_decide(t)
         if self._blk_n >= self._k_update and self._status == "running":
             self._fast_block(t)  # after the update: the record carries the newest decision
 
@@ -243,12 +243,17 @@ class FastLoop:
         self._out.set_psd(new, ceiling_hit=res.ceiling_hit)
         self._fast_res = res
         self._drive_updates.append(t)
-        if self._window.full and self._last_clean and not self._out.ramping:
-            d = judge(self._window.psd * g * g, self._target[band] * g * g,
-                      alarm_db=self._alarm_db, abort_db=self._abort_db,
-                      rms_alarm_db=self.spec.tolerance.rms_alarm_db, dof=self._window.dof,
-                      df_hz=self.df_hz, exclude=hum)
-            self._on_decision(d, t)
+
+    def _fast_decide(self, t: float) -> None:
+        """A tolerance decision on the window (every clean segment at a steady level)."""
+        if not (self._window.full and self._last_clean and not self._out.ramping):
+            return
+        g, band = self._est_gain, self._band
+        d = judge(self._window.psd * g * g, self._target[band] * g * g,
+                  alarm_db=self._alarm_db, abort_db=self._abort_db,
+                  rms_alarm_db=self.spec.tolerance.rms_alarm_db, dof=self._window.dof,
+                  df_hz=self.df_hz, exclude=self._hum_mask())
+        self._on_decision(d, t)
 
     def _hum_drive(self, drive: np.ndarray, hum: np.ndarray) -> np.ndarray:
         """The drive on lines the drive does not cause: interpolated in dB over line index from

@@ -18,7 +18,7 @@ from liveshape.control.stages import segments_for_dof, update_dof_for
 from liveshape.errors import ConfigError
 
 __all__ = ["DEFAULT_MAX_STEP_S", "START_S", "check_fault_times", "check_max_step",
-           "least_step_s", "max_step_s", "nominal_run_s", "update_period_s"]
+           "least_step_s", "max_step_s", "nominal_run_s", "record_period_s", "update_period_s"]
 
 #: Silent look at the start plus the connection check, s (about 0.5 s + 2.7 s; [from the
 #: controller's defaults], a generous round figure).
@@ -46,6 +46,17 @@ def update_period_s(spec: Any) -> float:
         hop = n // 2
         return fast_update_segments(float(c.update_interval_s), fs, hop) * hop / fs
     return _estimate_s(update_dof_for(float(c.target_dof)), n, fs)
+
+
+def record_period_s(spec: Any) -> float:
+    """Run time between two update records, s: the block loop records every update; the fast
+    loop every safety block of update DOF."""
+    c = spec.control
+    if _fast(spec):
+        n = int(c.frame_length)
+        k = segments_for_dof(update_dof_for(float(c.target_dof)))
+        return k * (n // 2) / float(c.fs_hz)
+    return update_period_s(spec)
 
 
 def nominal_run_s(spec: Any) -> float:

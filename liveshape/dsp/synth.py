@@ -215,6 +215,9 @@ class RandomPhaseSynth:
         if kurtosis is not None and check_kurtosis(kurtosis, "synth: kurtosis") > 3.0:
             self._gains = FrameGains(kurtosis, self._rng)
         self._frame_index = -2  # the priming frame is number -1, the first block's frame 0
+        #: The per-sample gains of the last :meth:`read` while the gain ramped (None: steady,
+        #: at :attr:`gain`).
+        self.last_gains: np.ndarray | None = None
         self._gain2_log: deque[tuple[int, float]] = deque(maxlen=64)  # (frame, a²) when ≠ 1
         self._ramp = GainRamp(self._fs_hz, gain=gain, rate_db_s=rate_db_s, fade_s=fade_s)
         self._moments = RunningMoments()
@@ -416,12 +419,18 @@ class RandomPhaseSynth:
         self._pos = pos
         if add is not None:
             out += add
+        if add is not None or g is None:
             if ramp.ramping:
-                ramp.apply(out)
-            elif ramp.gain_target != 1.0:
-                out *= ramp.gain_target
-        elif g is None:
-            ramp.apply(out)
+                gains = np.empty(out.size)
+                ramp.fill(gains)  # the per-sample gains of this block, kept for the caller
+                out *= gains
+                self.last_gains = gains
+            else:
+                if ramp.gain_target != 1.0:
+                    out *= ramp.gain_target
+                self.last_gains = None
+        else:
+            self.last_gains = None
         self._moments.update(out)
         return out
 
