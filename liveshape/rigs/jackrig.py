@@ -211,13 +211,7 @@ class PlantProcessor:
         except Exception as exc:  # noqa: BLE001 - a realtime callback must not raise
             response_out[:] = 0.0
             self._fail(exc)
-        if loop_out is not None:
-            try:
-                loop_out[:] = 0.0 if self.cable is None else self.cable.process(loop_in)
-            except Exception as exc:  # noqa: BLE001
-                loop_out[:] = 0.0
-                self._fail(exc)
-        self.periods += 1
+        self._loop_and_count(loop_in, loop_out)
 
     def run_inputs(
         self,
@@ -237,10 +231,14 @@ class PlantProcessor:
             for out in input_outs:
                 out[:] = 0.0
             self._fail(exc)
+        self._loop_and_count(loop_in, loop_out)
+
+    def _loop_and_count(self, loop_in: np.ndarray | None, loop_out: np.ndarray | None) -> None:
+        """The loopback cable's period (silenced on an error) and the period count."""
         if loop_out is not None:
             try:
                 loop_out[:] = 0.0 if self.cable is None else self.cable.process(loop_in)
-            except Exception as exc:  # noqa: BLE001
+            except Exception as exc:  # noqa: BLE001 - a realtime callback must not raise
                 loop_out[:] = 0.0
                 self._fail(exc)
         self.periods += 1
