@@ -28,7 +28,7 @@ from liveshape.control.controller import Controller
 from liveshape.control.runstate import ControlSnapshot, RunResult
 from liveshape.errors import ConfigError
 from liveshape.record import diskspace
-from liveshape.record.exports import SPECTRA_CSV, spectra_csv_text
+from liveshape.record.exports import INPUTS_CSV, SPECTRA_CSV, inputs_csv_text, spectra_csv_text
 from liveshape.record.writer import RunRecorder
 from liveshape.testdef.chain import ChainCalibration
 from liveshape.testdef.spec import TestSpec, spec_to_mapping
@@ -71,6 +71,7 @@ class SessionResult:
             "control_kurtosis": r.kurtosis,
             "tones": r.tones,
             "lines_not_caused_by_drive": r.lines,
+            "inputs": r.inputs,
             "trip": None if trip is None else dataclasses.asdict(trip),
             **verdict_summary(r.verdict),
             "run_dir": str(self.run_dir),
@@ -151,8 +152,18 @@ def build_sim_rig(spec: TestSpec, seed: int | None) -> tuple[Any, ChainCalibrati
     from liveshape.rigs.sim import SimRig
 
     plant = load_plant(spec.rig.plant)
-    rig = SimRig(plant, spec.control.fs_hz, seed=seed, faults=spec.faults, hum=spec.rig.hum)
+    inputs = None
+    if spec.rig.inputs is not None and len(spec.rig.inputs) > 1:
+        from liveshape.rigs.sim import sim_inputs
+
+        inputs = sim_inputs(spec.rig.input_roles(), plant)
+    rig = SimRig(plant, spec.control.fs_hz, seed=seed, faults=spec.faults, hum=spec.rig.hum,
+                 inputs=inputs)
     mapping = {"kind": "sim", "plant": plant_to_mapping(plant)}
+    if inputs is not None:
+        from liveshape.testdef.inputs import inputs_to_list
+
+        mapping["inputs"] = inputs_to_list(spec.rig.input_roles())
     if spec.rig.hum is not None:
         mapping["hum"] = spec.rig.hum.as_mapping()
     return rig, rig.calibration, mapping
@@ -319,6 +330,9 @@ class RunLoop:
         full = ctrl.full_level_arrays()
         if full is not None:
             self.recorder.full_level(full)
+            table = inputs_csv_text(full)
+            if table is not None:
+                self.recorder.text_file(INPUTS_CSV, table)
         u = ctrl.last_update
         if u is None:
             return
@@ -346,7 +360,8 @@ class RunLoop:
         """
         ctrl = self.controller
         fs = ctrl.spec.control.fs_hz
-        response = np.zeros(block_size)
+        n_in = len(getattr(rig, "input_channels", ())) or 1
+        response = np.zeros(block_size) if n_in == 1 else np.zeros((block_size, n_in))
         t0 = self.clock()
         asked = False
         while not ctrl.finished:
@@ -355,7 +370,7 @@ class RunLoop:
                     ctrl.request_stop(stop.reason)
                     asked = True
                 drive = ctrl.exchange(response)
-                response = rig.process(drive)
+                response = rig.process(drive) if n_in == 1 else rig.process_inputs(drive).T
                 self.after_block(drive, response)
                 if not fast or ctrl.stage == "bring_up":  # the user's hold is real time
                     ahead = (ctrl.t_s - block_size / fs) - (self.clock() - t0)

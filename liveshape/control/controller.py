@@ -173,18 +173,48 @@ class Controller(ToneStage, FastLoop, LoopState):
         ndarray
             Drive block of the same length, FS, within ``±drive_peak_max_fs``.
         """
-        y = np.array(response_fs, dtype=float).reshape(-1)
-        n = y.size
+        raw = np.array(response_fs, dtype=float)
         t0 = self.t_s
+        if self._rows is None:
+            y = raw.reshape(-1)
+            rows = None
+        else:
+            k = len(self._roles)
+            if raw.ndim != 2 or raw.shape[1] != k:
+                raise ValueError(f"exchange: a rig with {k} inputs gives (samples, {k}) blocks, "
+                                 f"got shape {raw.shape}")
+            rows = np.ascontiguousarray(raw.T)
+            y = rows[self._inputs.primary]  # a view: zeroing rows zeroes it too
+        n = y.size
         if self._stage != "done" and self._status != "aborted":
-            trip = self.supervisor.check_block(t0, y, drive_up=None)
+            trip = self._check_inputs(t0, y, rows)
             if trip is not None:
                 self._abort(trip)
         if self._trip is not None and self._trip.rule == "non_finite":
-            y[~np.isfinite(y)] = 0.0  # keep the estimators finite while ramping down
+            # keep the estimators finite while ramping down
+            (y if rows is None else rows)[~np.isfinite(y if rows is None else rows)] = 0.0
         self._resp.push(y)
+        if rows is not None:
+            self._rows.push(rows)
         self._process()
         return self._make_drive(n)
+
+    def _check_inputs(self, t0: float, y: np.ndarray, rows: np.ndarray | None) -> Trip | None:
+        """Sample-level rules (non-finite, overload) on the control and on every other input
+        (a trip on another input names it)."""
+        trip = self.supervisor.check_block(t0, y, drive_up=None)
+        if trip is not None or rows is None:
+            return trip
+        for i, r in enumerate(self._roles):
+            if i == self._inputs.primary:
+                continue
+            trip = self.supervisor.check_block(t0, rows[i], drive_up=None)
+            if trip is not None:
+                msg = trip.message.replace("control input ", "")
+                return dataclasses.replace(
+                    trip, message=f"{r.role} input {r.channel} ({r.name}): {msg}",
+                    detail={**trip.detail, "input": r.channel, "name": r.name})
+        return None
 
     # ------------------------------------------------------------------ processing
     def _process(self) -> None:
@@ -193,6 +223,8 @@ class Controller(ToneStage, FastLoop, LoopState):
         if got is None:
             return
         x, y, i0 = got
+        if self._rows is not None:  # the other inputs' same samples
+            self._rows_now = (self._rows.take(y.size), x, i0)
         if self._status != "running":
             return  # ramping down: nothing more to learn from the response
         if self._confirm is not None and self._stage in ("connect", "bring_up"):
@@ -649,11 +681,12 @@ def run_offline(controller: Controller, rig: Any, block_size: int, *,
     if max_s is None:
         sch = controller.spec.schedule
         max_s = 120.0 + 4.0 * sch.full_level_s + 60.0 * len(sch.steps_db)
-    response = np.zeros(int(block_size))
+    n_in = len(getattr(rig, "input_channels", ())) or 1
+    response = np.zeros(int(block_size)) if n_in == 1 else np.zeros((int(block_size), n_in))
     stopped = False
     while not controller.finished:
         drive = controller.exchange(response)
-        response = rig.process(drive)
+        response = rig.process(drive) if n_in == 1 else rig.process_inputs(drive).T
         if not stopped and controller.t_s >= max_s:
             controller.request_stop(f"run_offline time limit of {max_s:g} s")
             stopped = True

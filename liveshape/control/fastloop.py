@@ -123,6 +123,8 @@ class FastLoop:
     def _fast_restart(self) -> None:
         """Drop the partial segments (a dropout): segments count again from the next sample."""
         self._segs.reset()
+        if self._inputs is not None:
+            self._inputs.reset()
         self._seg_from = self._resp.next
         self._since_update = 0
 
@@ -143,10 +145,18 @@ class FastLoop:
             self._kurtosis_feed(y[max(0, j):], i0 + max(0, j))
         self._segs.push(y[max(0, j):])
         first, rows = self._segs.pop()
+        xin = None
+        if self._inputs is not None:  # the other inputs, on the same samples and segments
+            all_rows, x, r0 = self._rows_now
+            off = i0 + max(0, j) - r0
+            sl = slice(off, off + y.size - max(0, j))
+            self._inputs.push(all_rows[:, sl], x[sl])
+            xin = self._inputs.pop()
         hop, n, delay = self._hop, self.frame_length, self._delay or 0
         for r in range(rows.shape[0]):
             start = self._seg_from + (first + r) * hop
-            self._fast_segment(rows[r] * self._gpf2, start - delay, (start + n) / self.fs_hz)
+            self._fast_segment(rows[r] * self._gpf2, start - delay, (start + n) / self.fs_hz,
+                               None if xin is None else xin[r])
             if self._status != "running":
                 return
 
@@ -166,8 +176,10 @@ class FastLoop:
                         "target": k.target, "drive_kurtosis": k.drive,
                         "drive_kurtosis_max": k.drive_max, "clip_limited": k.limited})
 
-    def _fast_segment(self, p: np.ndarray, drive_start: int, t: float) -> None:
-        """One control segment ``p`` (g²/Hz) answering the drive from ``drive_start`` on."""
+    def _fast_segment(self, p: np.ndarray, drive_start: int, t: float,
+                      xin: np.ndarray | None = None) -> None:
+        """One control segment ``p`` (g²/Hz) answering the drive from ``drive_start`` on;
+        ``xin``: every input's coefficients of the same segment (several inputs)."""
         out, band = self._out, self._band
         g = out.segment_gain(drive_start, self.frame_length)
         self._last_clean = g is not None and g == out.gain_target
@@ -180,16 +192,24 @@ class FastLoop:
         # is its known burst factor times the target's (1 for a Gaussian drive)
         burst = out.segment_burst(drive_start)
         d_full = out.segment_psd(drive_start, band)  # bursts included
+        steady_full = self._stage == "full_level" and g is not None and g == 1.0
+        primary = p
+        if xin is not None:  # the control inputs combined; monitors, limits, reference
+            p, trip = self._inputs.segment(xin, p, g2 * burst, steady_full=steady_full, t_s=t)
+            if trip is not None:
+                self._abort(trip)
+                return
+        # the rms rule on the control held on target; loop open on the input identified
         trip = self.supervisor.check_segment(
-            t, control_sum=float(p.sum()), target_sum=self._target_sum * g2 * burst,
-            band_dof=self._seg_band_dof, predicted_sum=float(np.dot(self._h2_id, d_full)) * g2)
+            t, control_sum=float(primary.sum()), target_sum=self._target_sum * g2 * burst,
+            band_dof=self._seg_band_dof, predicted_sum=float(np.dot(self._h2_id, d_full)) * g2,
+            rms_sum=None if xin is None else float(p.sum()))
         if trip is not None:
             self._abort(trip)
             return
         self._tracker.push(p, d_full * g2)
         norm = p / (g2 * burst)  # the control per unit of the PSD the drive is made of
         self._window.push(norm)
-        steady_full = self._stage == "full_level" and g is not None and g == 1.0
         if steady_full and self._blk_n and not self._blk_full:
             # the first segment all at full level: full-level blocks hold full-level data only
             self._fast_stage_change(t, completed=False)
@@ -215,6 +235,14 @@ class FastLoop:
                        "estimate restarted", {"lines_restarted": int(np.count_nonzero(restarted)),
                                               "f_hz": [float(f) for f in self.f_hz[restarted]]})
         old = self._out.psd
+        target = self._target
+        if self._inputs is not None and self._inputs.limits:
+            notch = self._inputs.on_update()  # monitors at their limits: the reference notched
+            if np.any(notch < 0.0):
+                target = target.copy()
+                target[band] *= 10.0 ** (notch / 10.0)
+        elif self._inputs is not None:
+            self._inputs.on_update()
         pred = np.zeros(old.size)
         # the control this drive gives at full level, with the mean dB bias of the estimate
         # removed (its DOF per line)
@@ -223,7 +251,7 @@ class FastLoop:
             # a line that moved is corrected in full at once (gain 1 instead of γ, still within
             # max_step_db): R (C/R)^(1/γ) makes the law's step γ·log(R/·) equal to log(R/C)
             lines = np.flatnonzero(band)[restarted]
-            r = self._target[lines]
+            r = target[lines]
             pred[lines] = r * (pred[lines] / r) ** (1.0 / self._gamma)
         g = self._est_gain
         hum = self._hum_mask()
@@ -232,7 +260,7 @@ class FastLoop:
             frozen = frozen.copy()
             frozen[np.flatnonzero(band)[hum]] = True
         res = equalizer.update_drive(
-            old, self._target, pred, gain=self._gamma, max_step_db=c.max_step_db, band=band,
+            old, target, pred, gain=self._gamma, max_step_db=c.max_step_db, band=band,
             ceiling_ms_fs2=self._out.ceiling_ms(g), df_hz=self.df_hz, frozen=frozen,
             law="direct")
         new = res.drive_psd
@@ -252,7 +280,7 @@ class FastLoop:
         d = judge(self._window.psd * g * g, self._target[band] * g * g,
                   alarm_db=self._alarm_db, abort_db=self._abort_db,
                   rms_alarm_db=self.spec.tolerance.rms_alarm_db, dof=self._window.dof,
-                  df_hz=self.df_hz, exclude=self._hum_mask())
+                  df_hz=self.df_hz, exclude=self._excluded())
         self._on_decision(d, t)
 
     def _hum_drive(self, drive: np.ndarray, hum: np.ndarray) -> np.ndarray:
@@ -288,8 +316,8 @@ class FastLoop:
         played = self._out.played_psd(band, g)
         predicted = self._h2_id * (self._blk_d / k) * g * g  # identified FRF, drive the block saw
         at_limit = self._out.ceiling_hit or self._out.clipped > 0
-        keep = self._hum_mask()
-        keep = slice(None) if keep is None else ~keep  # lines the drive does not cause: out
+        keep = self._excluded()  # lines the drive does not cause, notched lines: out
+        keep = slice(None) if keep is None else ~keep
         if final:
             verdict = UpdateVerdict(None, (), _rms_db(ctrl[keep], target_b[keep]), 0, math.nan,
                                     math.nan, math.nan)

@@ -9,6 +9,7 @@ is the controller's.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections import deque
 from typing import Any
@@ -19,6 +20,7 @@ from liveshape.control.connect import ConnectionCheck, ConnectStage
 from liveshape.control.drivestream import DriveStream, ResponseQueue
 from liveshape.control.fastloop import fast_update_segments
 from liveshape.control.humguard import HumGuard
+from liveshape.control.inputset import InputRows, InputSet, primary_column
 from liveshape.control.kurtosisloop import KurtosisLoop
 from liveshape.control.runplan import check_max_step, max_step_s
 from liveshape.control.runstate import ControlSnapshot, Event, RunResult, UpdateRecord, frozen_array
@@ -78,6 +80,13 @@ class LoopState:
                  background_s: float = 0.5, max_delay_s: float = 0.5) -> None:
         c, s = spec.control, spec.safety
         self.spec = spec
+        # several inputs (rig.inputs): the loop's one-channel work reads the first control
+        # input, with its own calibration (liveshape.control.inputset)
+        roles = spec.rig.input_roles() if getattr(spec.rig, "inputs", None) is not None \
+            else None
+        self._roles = roles if roles is not None and len(roles) > 1 else None
+        if self._roles is not None:
+            calibration = calibration.for_input(self._roles[primary_column(self._roles)].channel)
         self.calibration = calibration
         self.fs_hz = fs = float(c.fs_hz)
         self.frame_length = n = int(c.frame_length)
@@ -111,6 +120,31 @@ class LoopState:
 
             raise ConfigError(f"{spec.source or spec.name}: tones need control.loop = fast "
                               "(the block loop has no tone control)")
+        if self._roles is not None:
+            from liveshape.errors import ConfigError
+
+            where = spec.source or spec.name
+            if not self._fast:
+                raise ConfigError(f"{where}: rig.inputs with {len(self._roles)} inputs need "
+                                  "control.loop = fast (the block loop reads one input)")
+            if getattr(spec, "tones", ()):
+                raise ConfigError(f"{where}: tones and rig.inputs with {len(self._roles)} "
+                                  "inputs cannot be combined yet (tones need one input)")
+        #: the other inputs (None: one input): combined control, monitors, limits, reference
+        self._inputs: InputSet | None = None
+        self._rows: InputRows | None = None
+        self._rows_now: tuple[np.ndarray, np.ndarray, int] | None = None
+        if self._roles is not None:
+            from liveshape.control.tracking import n_avg_for_dof
+            from liveshape.dsp.spectral_stats import overlap_correlation_sq
+
+            c2 = overlap_correlation_sq("hann", 0.5, n)
+            self._inputs = InputSet(
+                self._roles, calibration, fs_hz=fs, nperseg=n, band=band,
+                f_hz=self.f_hz, target_psd=target[band], strategy=c.strategy,
+                window_segments=segments_for_dof(float(c.target_dof)),
+                long_segments=n_avg_for_dof(float(c.target_dof), c2))
+            self._rows = InputRows(len(self._roles))
         self._drive_updates: list[float] = []  # run time of every drive update, s
         #: lines the drive does not cause (mains hum), found and taken out of the control
         #: (fast loop; :mod:`liveshape.control.humguard`)
@@ -269,7 +303,8 @@ class LoopState:
             lines_held=0 if res is None else res.n_held,
             ceiling_scale=1.0 if res is None else res.ceiling_scale,
             decision_psd=frozen_array(decision_psd),
-            decision_dof=0.0 if d is None else float(d.dof))
+            decision_dof=0.0 if d is None else float(d.dof),
+            inputs=None if self._inputs is None else self._inputs.block_arrays())
         self._last_update = rec
         self._emit("update", f"update {rec.index}: rms {rec.rms_error_db:+.2f} dB, lines "
                    f"{rec.min_dev_db:+.1f}..{rec.max_dev_db:+.1f} dB",
@@ -294,7 +329,7 @@ class LoopState:
         u = self._last_update
         return judge(u.control_psd, u.target_psd, alarm_db=self._alarm_db,
                      abort_db=self._abort_db, rms_alarm_db=self.spec.tolerance.rms_alarm_db,
-                     dof=u.dof, df_hz=self.df_hz, exclude=self._hum_mask())
+                     dof=u.dof, df_hz=self.df_hz, exclude=self._excluded())
 
     def snapshot(self) -> ControlSnapshot:
         """A frozen view of the loop now."""
@@ -341,7 +376,9 @@ class LoopState:
             kurtosis=None if self._kurt is None else {
                 "control": self._kurt.averaged, "target": self._kurt.target,
                 "drive": self._kurt.drive},
-            lines=None if self._hum is None or not self._hum.held else self._hum.summary())
+            lines=None if self._hum is None or not self._hum.held else self._hum.summary(),
+            inputs=None if self._inputs is None else
+            self._inputs.summary(dof=float(dof), level_gain=g) or None)
 
     def _tolerance_state(self, d: Judgement | None) -> str:
         if self._pending:
@@ -351,18 +388,45 @@ class LoopState:
         return "in tolerance" if d.in_tolerance else "alarm"
 
     def verdict(self) -> Verdict:
-        """The test's verdict so far (final once :attr:`finished`)."""
+        """The test's verdict so far (final once :attr:`finished`).
+
+        Lines a monitor's limit notched are left out of the tolerance figures; with
+        ``control.notches: fail`` a pass with notched lines becomes a fail that says so.
+        """
         tol = self.spec.tolerance
+        v = self._verdict_lines(tol)
+        inp = self._inputs
+        if inp is None or not inp.limits or not np.any(inp.notched_full):
+            return v
+        f = self.f_hz[inp.notched_full]
+        line = (f"{int(np.count_nonzero(inp.notched_full))} lines notched by monitor limits "
+                f"({f.min():.1f}-{f.max():.1f} Hz, deepest {inp.notch_deepest_db.min():.1f} dB)")
+        if getattr(self.spec.control, "notches", "allowed") == "fail" and v.verdict == "pass":
+            return dataclasses.replace(v, verdict="fail",
+                                       reasons=(f"{line}; control.notches = fail",))
+        return dataclasses.replace(v, rule=f"{v.rule}; {line}, left out (control.notches = "
+                                   f"{getattr(self.spec.control, 'notches', 'allowed')})")
+
+    def _verdict_lines(self, tol: Any) -> Verdict:
         return decide_verdict(
             self._status, self._full, self._target[self._band], alarm_db=self._alarm_db,
             abort_db=self._abort_db, rms_alarm_db=tol.rms_alarm_db,
             max_alarm_fraction=tol.max_alarm_fraction, df_hz=self.df_hz,
             status_reason=self._trip.message if self._trip is not None else self._stop_reason,
-            exclude=self._hum_mask())
+            exclude=self._excluded(full=True))
 
     def _hum_mask(self) -> np.ndarray | None:
         """Band lines held as not caused by the drive (None: none)."""
         return None if self._hum is None else self._hum.mask(self.f_hz, self.df_hz)
+
+    def _excluded(self, *, full: bool = False) -> np.ndarray | None:
+        """Band lines out of the tolerance statistics: hum lines, and lines a monitor's limit
+        notches (deliberately low; ``full``: notched at any time at full level)."""
+        hum = self._hum_mask()
+        if self._inputs is None or not self._inputs.limits:
+            return hum
+        notched = self._inputs.notched_full if full else self._inputs.notched
+        return notched if hum is None else hum | notched
 
     def full_level_arrays(self) -> dict[str, Any] | None:
         """The full-level average as arrays with units in their names, or None without one.
@@ -381,7 +445,8 @@ class LoopState:
                 "alarm_db": np.asarray(self._alarm_db), "abort_db": np.asarray(self._abort_db),
                 "dof": f.dof, "estimates": f.n_estimates, "decisions": f.n_decisions,
                 "decisions_in_alarm": f.n_alarm, "first_t_s": f.first_t_s,
-                "last_t_s": f.last_t_s}
+                "last_t_s": f.last_t_s,
+                **({} if self._inputs is None else self._inputs.full_arrays())}
 
     def result(self) -> RunResult:
         """Outcome so far (final once :attr:`finished`).
@@ -409,4 +474,6 @@ class LoopState:
             verdict=self.verdict(),
             kurtosis=None if self._kurt is None else self._kurt.full_level_result(),
             tones=getattr(self, "tone_summary", lambda: None)(),
-            lines=None if self._hum is None else self._hum.summary())
+            lines=None if self._hum is None else self._hum.summary(),
+            inputs=None if self._inputs is None else
+            self._inputs.summary(dof=0.0 if d is None else d.dof, full=True) or None)

@@ -82,6 +82,10 @@ class UpdateRecord:
     ceiling_scale: float
     decision_psd: np.ndarray
     decision_dof: float
+    #: Several inputs: per-line arrays of the block (each input's PSD, each monitor's
+    #: transmissibility, the reference FRF, the notch; names in
+    #: :meth:`liveshape.control.inputset.InputSet.block_arrays`); None with one input.
+    inputs: dict[str, np.ndarray] | None = None
 
 
 @dataclass(frozen=True)
@@ -144,6 +148,9 @@ class ControlSnapshot:
     kurtosis: Any = None
     #: Lines held as not caused by the drive (mains hum): ``f_hz``, ``rms_g``...; else None.
     lines: Any = None
+    #: Several inputs: per-input figures and notches (see
+    #: :meth:`liveshape.control.inputset.InputSet.summary`); None with one input.
+    inputs: Any = None
 
 
 @dataclass(frozen=True)
@@ -196,6 +203,9 @@ class RunResult:
     #: Lines in the control not caused by the drive (mains hum) held at the end, each with
     #: ``f_hz``, ``rms_g``, ``first_t_s``: taken out of the control; None: not searched.
     lines: Any = None
+    #: Several inputs: per-input figures and notches (see
+    #: :meth:`liveshape.control.inputset.InputSet.summary`); None with one input.
+    inputs: Any = None
 
     @property
     def abort_rule(self) -> str | None:

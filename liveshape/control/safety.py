@@ -74,6 +74,7 @@ EXIT_STATUS: dict[str, int] = {
     "level_unreachable": 20,  # a step below full level lasted longer than schedule.max_step_s
     "disk_space": 21,  # free space for the record ran low, or the record could not be written
     "tone_abort": 22,  # a sine-on-random tone left its abort band (liveshape.control.tonestage)
+    "input_lost": 23,  # one of several control inputs fell far below the others (inputset)
 }
 RULES: tuple[str, ...] = tuple(EXIT_STATUS)
 #: Exit status of ``check --rig`` when the profile is infeasible on the rig, and of ``run`` when
@@ -373,8 +374,12 @@ class Supervisor:
         target_sum: float,
         band_dof: float,
         predicted_sum: float | None = None,
+        rms_sum: float | None = None,
     ) -> Trip | None:
         """Fast rules on the newest Welch segment alone: ``rms_abort`` and ``loop_open``.
+
+        ``rms_sum`` (several control inputs): the combined control's band sum, for the rms rule;
+        ``control_sum`` is then the input whose FRF ``predicted_sum`` was identified on.
 
         ``control_sum``, ``target_sum`` and ``predicted_sum`` are band sums of PSD lines (g²/Hz)
         of the newest segment, the target at the level played and the FRF prediction for the
@@ -388,7 +393,8 @@ class Supervisor:
         allow = self._allow.get(band_dof)
         if allow is None:  # the band DOF takes a few values only: keep their allowances
             allow = self._allow[band_dof] = FAST_RMS_Z * db_std(band_dof)
-        err = _DB * math.log(control_sum / target_sum) if control_sum > 0 else -math.inf
+        ctrl = control_sum if rms_sum is None else rms_sum
+        err = _DB * math.log(ctrl / target_sum) if ctrl > 0 else -math.inf
         limit = float(self.tolerance.rms_abort_db)
         if err > limit + allow:
             return Trip(

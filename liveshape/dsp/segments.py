@@ -21,7 +21,7 @@ import numpy as np
 
 from liveshape.dsp.welch_stream import WelchStream
 
-__all__ = ["SegmentPowers"]
+__all__ = ["SegmentPowers", "SegmentSpectra"]
 
 
 class SegmentPowers(WelchStream):
@@ -94,3 +94,69 @@ class SegmentPowers(WelchStream):
         p += sel.imag * sel.imag
         p *= self._scale
         self._done.append(p)
+
+
+class SegmentSpectra(WelchStream):
+    """Fourier coefficients of every complete segment of several streams on chosen lines.
+
+    The segments are those of :class:`SegmentPowers` (the same window, overlap and mean
+    removal). The coefficients are scaled so that ``|X|²`` is the one-sided density of the
+    segment (units²/Hz) and ``conj(X_a)·X_b`` its cross density: their linear averages equal
+    :func:`scipy.signal.welch` and :func:`scipy.signal.csd` of the same samples on those lines
+    (to rounding).
+
+    Parameters
+    ----------
+    fs_hz : float
+        Sampling rate in Hz.
+    nperseg : int
+        Segment length in samples.
+    lines : ndarray of bool
+        Mask over the ``nperseg // 2 + 1`` lines to return (not DC nor Nyquist).
+    n_channels : int
+        Number of streams pushed side by side.
+    window : str or tuple, optional
+        Window for :func:`scipy.signal.get_window` (default ``"hann"``).
+    """
+
+    def __init__(self, fs_hz: float, nperseg: int, lines: np.ndarray, n_channels: int, *,
+                 window: Any = "hann") -> None:
+        super().__init__(fs_hz, nperseg, (0,) * int(n_channels), averaging="linear",
+                         n_avg=None, window=window)
+        self._lines = np.flatnonzero(np.asarray(lines, dtype=bool))
+        if self._lines.size and (self._lines[0] == 0 or self._lines[-1] == self._n_lines - 1):
+            raise ValueError("SegmentSpectra: DC and Nyquist are not supported lines")
+        self._root = np.sqrt(self._scale)
+        self._done: list[np.ndarray] = []
+        self._first = 0
+
+    def reset(self) -> None:
+        """Forget every sample and segment; the next segment is number 0 again."""
+        self._reset_stream()
+        self._done.clear()
+        self._first = 0
+
+    def push(self, rows: np.ndarray) -> None:
+        """Add one block per stream: ``rows`` of shape ``(n_channels, n)``."""
+        x = np.asarray(rows, dtype=float)
+        if x.ndim != 2 or x.shape[0] != len(self._leads):
+            raise ValueError(f"SegmentSpectra: push needs ({len(self._leads)}, n) rows, got "
+                             f"shape {x.shape}")
+        if x.shape[1]:
+            self._feed(tuple(x))
+            self._flush()
+
+    def pop(self) -> tuple[int, np.ndarray]:
+        """``(i, X)``: index of the first segment returned and the coefficients, complex, of
+        shape ``(segments, n_channels, lines)``, scaled as in the class docstring."""
+        i = self._first
+        if not self._done:
+            return i, np.empty((0, len(self._leads), self._lines.size), dtype=complex)
+        x = self._done[0] if len(self._done) == 1 else np.concatenate(self._done)
+        self._done.clear()
+        self._first += x.shape[0]
+        return i, x
+
+    def _accumulate(self, spectra: np.ndarray, coef: float | np.ndarray) -> None:
+        sel = spectra[:, :, self._lines] * self._root  # channels x m x lines
+        self._done.append(np.ascontiguousarray(sel.transpose(1, 0, 2)))

@@ -18,8 +18,8 @@ import numpy as np
 
 from liveshape.atomic import atomic_write_text
 
-__all__ = ["SPECTRA_CSV", "SPECTRA_COLUMNS", "spectra_csv_text", "spectra_from_run",
-           "write_spectra_csv"]
+__all__ = ["INPUTS_CSV", "SPECTRA_COLUMNS", "SPECTRA_CSV", "inputs_csv_text", "spectra_csv_text",
+           "spectra_from_run", "write_spectra_csv"]
 
 #: File name of the spectra table in a run folder.
 SPECTRA_CSV = "spectra.csv"
@@ -73,6 +73,39 @@ def spectra_csv_text(*, f_hz: Any, target_g2_hz: Any, alarm_db: Any, abort_db: A
         lines.append(",".join([*(_num(float(v)) for v in row), _num(float(control_dof)),
                                control_source, _num(float(drive[i])), _num(float(mag[i])),
                                _num(float(ph[i])), _num(float(coh[i]))]))
+    return "\n".join(lines) + "\n"
+
+
+#: The per-input table of a run with several inputs (full-level average).
+INPUTS_CSV = "inputs.csv"
+
+
+def inputs_csv_text(full: dict[str, Any]) -> str | None:
+    """The full-level per-input arrays as CSV text (None when the run had one input).
+
+    Columns: ``f_hz``, then every per-line array of ``full`` whose name starts with ``input_``
+    (each input's PSD in g²/Hz; each monitor's transmissibility over the first control input:
+    magnitude, phase in degrees, coherence), the reference's FRF (magnitude g/FS and phase) and
+    output gain (dB), and the notch (dB, 0 where none), in that order.
+    """
+    f = np.asarray(full["f_hz"], dtype=float)
+    names = [k for k in full if k.startswith("input_")]
+    for k in ("reference_h1_g_per_fs", "reference_coherence", "output_gain_db", "notch_db",
+              "notch_deepest_db"):
+        if k in full:
+            names.append(k)
+    if not names:
+        return None
+    cols: list[tuple[str, np.ndarray]] = []
+    for k in names:
+        a = np.asarray(full[k])
+        if np.iscomplexobj(a):
+            cols += [(f"{k}_mag", np.abs(a)), (f"{k}_phase_deg", np.degrees(np.angle(a)))]
+        else:
+            cols.append((k, a.astype(float)))
+    lines = [",".join(["f_hz", *(c for c, _ in cols)])]
+    for i in range(f.size):
+        lines.append(",".join([_num(float(f[i])), *(_num(float(a[i])) for _, a in cols)]))
     return "\n".join(lines) + "\n"
 
 

@@ -1032,6 +1032,22 @@ def _figure_rows(run: RunData, d: DecisionSpectrum | None, tol: Tolerance,
             more += f"; ±0.1 needs {need / fs:.0f} s"
         rows.append(("control kurtosis", f"{_fmt(k.get('kurtosis'), '.2f')}{more}; target "
                      f"{_fmt(k.get('target'), 'g')}, drive {_fmt(k.get('drive_kurtosis'), '.2f')}"))
+    inputs = s.get("inputs")
+    if isinstance(inputs, dict):
+        for r in inputs.get("inputs") or ():
+            text = f"{_fmt(r.get('grms_g'), '.3f')} grms at full level"
+            if r.get("limit_margin_db") is not None:
+                text += (f"; limit {_fmt(r['limit_margin_db'], '+.2f', 'dB')} at its closest "
+                         f"({_fmt(r.get('limit_f_hz'), '.0f')} Hz)")
+            rows.append((f"{r.get('role')} input {r.get('channel')} ({r.get('name')})", text))
+            if (r.get("limit_margin_db") or -1.0) > 0:
+                colours[len(rows) - 1] = amber
+        if inputs.get("notched_lines"):
+            lo, hi = inputs.get("notch_f_hz") or (math.nan, math.nan)
+            rows.append(("notched by limits", f"{inputs['notched_lines']} lines, "
+                         f"{_fmt(lo, '.0f')}-{_fmt(hi, '.0f')} Hz, deepest "
+                         f"{_fmt(inputs.get('notch_deepest_db'), '+.1f', 'dB')} (deliberate: "
+                         "left out of the tolerance figures; inputs.csv has each line)"))
     rows.append(("updates", f"{run.updates.n}   to tolerance: "
                  f"{_fmt(s.get('updates_to_tolerance'), '.0f')}"))
     return rows, colours

@@ -86,6 +86,8 @@ class WavStream:
     def write(self, block: Any) -> bool:
         """Append a block; False when it was dropped because the file is full."""
         data = np.asarray(block, dtype=np.float32)
+        if data.size == 0:
+            return True  # nothing to write (a closing call), whatever its shape
         if data.ndim == 1:
             data = data[:, None]
         if data.ndim != 2:

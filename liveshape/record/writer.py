@@ -347,6 +347,9 @@ class RunRecorder:
                 figures[key] = value
             elif isinstance(value, np.ndarray) and value.shape == (n,):
                 extra[key] = value
+            elif isinstance(value, dict):  # named per-line arrays (several inputs)
+                extra.update({k: np.asarray(v) for k, v in value.items()
+                              if np.shape(v) == (n,)})
         figures.update(numbers)
         return self.update(
             base["index"], base["t_s"], base["f_hz"], base["control_psd"], base["target_psd"],

@@ -30,12 +30,13 @@ FAULT_RULES: dict[str, str] = {
     "plant_gain": "the amplifier gain changes by value dB",
     "noise_burst": "white noise of value FS rms is added to the response",
     "dropout": "the response is zeros",
-    "dac_gain": "the reference input's gain (the drive's loopback) changes by value dB: a step, "
-                "or with duration_s a drift that reaches value dB over duration_s and stays",
+    "dac_gain": "the card's output gain changes by value dB (the drive to the amplifier and its "
+                "loopback alike): a step, or with duration_s a drift that reaches value dB over "
+                "duration_s and stays",
 }
 #: Kinds that act on the whole rig; the others act on one input (``input``: a channel counted
 #: from 1; None: the control input).
-RIG_WIDE_KINDS = ("amp_trip", "resonance_shift", "plant_gain")
+RIG_WIDE_KINDS = ("amp_trip", "resonance_shift", "plant_gain", "dac_gain")
 FAULT_KINDS = tuple(FAULT_RULES)
 # Kinds that need a value, with its lower bound (None: checked by kind).
 _NEEDS_VALUE = {"sensor_gain": 0.0, "resonance_shift": None, "plant_gain": None, "noise_burst": 0.0,

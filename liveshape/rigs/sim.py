@@ -297,12 +297,6 @@ class SimRig:
             if f.input is not None and f.input not in channels:
                 raise ConfigError(f"faults[{i}] {f.kind}: input = {f.input} is not an input of "
                                   f"the simulated rig (inputs: {', '.join(map(str, channels))})")
-            if f.kind == "dac_gain" and (self._ref_channel is None
-                                         or f.input not in (None, self._ref_channel)):
-                raise ConfigError(f"faults[{i}] dac_gain: acts on the reference input, and the "
-                                  "simulated rig has "
-                                  + ("none" if self._ref_channel is None else
-                                     f"it on channel {self._ref_channel}"))
         self._mon_idx = self._taps  # truthy when the table acceleration is tapped
         self.monitor_names = names
         self._n_monitors = len(names)
@@ -379,7 +373,7 @@ class SimRig:
             pos = stop
 
     def _dac_gain_db(self, a0: int, n: int) -> np.ndarray | None:
-        """The ``dac_gain`` faults' gain of the reference, dB per sample (None: none)."""
+        """The ``dac_gain`` faults' gain of the card output, dB per sample (None: none)."""
         faults = [f for f in self._faults if f.kind == "dac_gain"]
         if not faults:
             return None
@@ -395,12 +389,9 @@ class SimRig:
     def _reference_block(self, d: np.ndarray, a0: int) -> np.ndarray:
         """The reference input (FS) for the drive ``d`` (FS, clipped and delayed like the
         control path): ``d out_v_per_fs / in_v_per_fs`` through the card's output and input
-        high-passes, with the ``dac_gain`` faults, the card's input noise, clipped at ±1 FS."""
+        high-passes, the card's input noise, clipped at ±1 FS."""
         x = np.empty((1, d.size))
-        x[0] = d * self._ref_gain
-        db = self._dac_gain_db(a0, d.size)
-        if db is not None:
-            x[0] *= 10.0 ** (db / 20.0)
+        x[0] = d * self._ref_gain  # d carries the dac_gain faults already
         if self._ref_sos is not None:
             sosfilt_inplace(self._ref_sos, x, self._ref_zi)
         r = x[0]
@@ -502,6 +493,9 @@ class SimRig:
         if self._delay.size:
             joined = np.concatenate((self._delay, d))
             d, self._delay = joined[:n], joined[n:]
+        db = self._dac_gain_db(self._n, n)
+        if db is not None:  # the card's output drifts: the amplifier and the loopback see it
+            d = d * 10.0 ** (db / 20.0)
         self._x_last = 0.0
         self._mon_pieces: list[np.ndarray] = []
         stop = self._next_boundary(self._n)

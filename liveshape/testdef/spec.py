@@ -97,6 +97,9 @@ class ControlSettings:
     #: input's ``weight``), ``maximum`` or ``minimum`` line by line
     #: (:func:`liveshape.dsp.multichannel.combine_control`); one control input ignores it.
     strategy: str = "average"
+    #: Lines a monitor's limit notches: ``allowed`` (left out of the tolerance figures, listed)
+    #: or ``fail`` (a test with a notch does not pass).
+    notches: str = "allowed"
 
     @property
     def df_hz(self) -> float:
@@ -200,6 +203,7 @@ _RULES: dict[str, dict[str, tuple[str, Any]]] = {
         "loop": ("choice", ("fast", "block")),
         "update_interval_s": ("float", {"gt": 0, "le": 10}),
         "strategy": ("choice", STRATEGIES),
+        "notches": ("choice", ("allowed", "fail")),
     },
     "safety": {
         "drive_rms_max_fs": ("float", {"gt": 0, "le": 1}),

@@ -72,7 +72,7 @@ _RESULT_SHOWN = frozenset({
     "full_level_max_dev_db", "full_level_min_dev_db", "full_level_lines_outside_alarm",
     "full_level_lines_outside_abort", "full_level_control_grms_g", "alarm_fraction",
     "max_alarm_fraction", "accel_unit", "asd_unit", "tones", "control_kurtosis",
-    "lines_not_caused_by_drive",
+    "lines_not_caused_by_drive", "inputs",
 })
 _VERDICT_ROLE = {"pass": "ok", "fail": "abort", "incomplete": "alarm"}
 
@@ -321,6 +321,34 @@ def variant_rows(obj: Any) -> list[Row]:
         drive = k.get("drive", k.get("drive_kurtosis"))
         text += f" of {fmt(k.get('target'), '.2f')}  (drive {fmt(drive, '.2f')})"
         rows.append(_row("control kurtosis", text))
+    rows.extend(input_rows(field(obj, "inputs", default=None)))
+    return rows
+
+
+def input_rows(inputs: Any) -> list[Row]:
+    """Several inputs: each input's grms (a monitor with a limit: how close it is), the notches
+    and the extremal-control bias (``inputs`` of a snapshot or a summary)."""
+    if not isinstance(inputs, Mapping):
+        return []
+    rows = []
+    for r in inputs.get("inputs", ()):
+        text = f"{fmt(r.get('grms_g'), '.3f')} grms"
+        role = "value"
+        if r.get("limit_margin_db") is not None:
+            m = r["limit_margin_db"]
+            text += f"  limit {fmt_db(m)} at {fmt(r.get('limit_f_hz'), '.0f')} Hz"
+            role = "alarm" if m > 0 else "value"
+        rows.append(_row(f"{r.get('role', 'input')} {r.get('channel')} {r.get('name', '')}",
+                         text, role))
+    n = inputs.get("notched_lines")
+    if n:
+        lo, hi = inputs.get("notch_f_hz", (math.nan, math.nan))
+        rows.append(_row("notched by limits", f"{n} lines {fmt(lo, '.0f')}-{fmt(hi, '.0f')} Hz,"
+                         f" deepest {fmt_db(inputs.get('notch_deepest_db'), '+.1f')}"))
+    bias = inputs.get("extremal_bias_db")
+    if bias is not None:
+        rows.append(_row(f"{inputs.get('strategy')} control bias",
+                         f"reads up to {fmt_db(bias, '+.2f')} off at this DOF (order statistics)"))
     return rows
 
 
