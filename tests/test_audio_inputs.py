@@ -31,6 +31,7 @@ import soundfile as sf
 from liveshape import session as session_mod
 from liveshape.control.runstate import RunResult
 from liveshape.errors import ConfigError
+from liveshape.record.runfolder import load_run
 from liveshape.rigs import audio, devices
 from liveshape.rigs.audio import AudioRig
 from liveshape.rigs.devices import DeviceInfo
@@ -201,28 +202,32 @@ def test_input_channels_with_a_loopback_or_monitor_or_twice_is_refused() -> None
 
 INPUTS_YAML = ("rig:\n  kind: audio\n  device: four\n  uncalibrated: true\n  inputs:\n"
                "    - {channel: 3, role: control, name: table}\n"
-               "    - {channel: 1, role: monitor, name: bracket}\n"
+               "    - {channel: %d, role: monitor, name: bracket}\n"
                "    - {channel: %d, role: reference}\n")
 
 
-def _spec(tmp_path: Path, ref_channel: int = 2):
+def _spec(tmp_path: Path, channels: tuple[int, int] = (1, 2)):
     text = EXAMPLE.read_text().replace("rig:\n  kind: sim\n  plant: loudspeaker\n",
-                                       INPUTS_YAML % ref_channel)
+                                       INPUTS_YAML % channels)
     assert text != EXAMPLE.read_text()
     path = tmp_path / "t.yaml"
     path.write_text(text)
     return load_spec(path)
 
 
-def test_an_input_beyond_the_device_is_one_line_and_makes_nothing(fake_card, tmp_path) -> None:
-    spec = _spec(tmp_path, ref_channel=5)
+@pytest.mark.parametrize("channels, item", [((5, 2), 1), ((1, 6), 2)])
+def test_an_input_beyond_the_device_is_one_line_and_makes_nothing(fake_card, tmp_path,
+                                                                  channels, item) -> None:
+    spec = _spec(tmp_path, channels)
+    ch = channels[item - 1]
     out = tmp_path / "runs"
     with pytest.raises(ConfigError) as err:
         session_mod.run_audio_session(spec, out_dir=out)
-    assert str(err.value) == ("rig.inputs[2].channel = 5: audio device 'Four-in card' has 4 "
-                              "input channel(s) (channels count from 1; see liveshape devices)")
+    assert str(err.value) == (f"rig.inputs[{item}].channel = {ch}: audio device 'Four-in card' "
+                              "has 4 input channel(s) (channels count from 1; see liveshape "
+                              "devices)")
     assert not out.exists() and ChannelStream.instances == []  # nothing made, nothing opened
-    with pytest.raises(ConfigError, match=r"rig.inputs\[2\].channel = 5"):
+    with pytest.raises(ConfigError, match=rf"rig.inputs\[{item}\].channel = {ch}"):
         session_mod.check_audio_map(spec)  # what `liveshape check` runs
 
 
@@ -289,8 +294,8 @@ def test_the_session_reads_records_and_names_every_input_in_list_order(
     rig = s.rig["inputs"]
     assert [(r["channel"], r["role"], r["name"]) for r in rig] == [
         (3, "control", "table"), (1, "monitor", "bracket"), (2, "reference", "reference2")]
-    run = json.loads((s.run_dir / "summary.json").read_text())
-    assert run["rig"]["inputs"] == rig
+    assert load_run(s.run_dir).rig["inputs"] == rig  # rig.yaml
+    assert json.loads((s.run_dir / "summary.json").read_text())["rig"]["inputs"] == rig
 
 
 # -- through JACK -----------------------------------------------------------------------------
