@@ -322,7 +322,6 @@ def test_jack_stream_gives_control_monitor_and_reference_columns(jack_server) ->
         rig = audio.AudioRig("liveshape-plant", fs, block_size=block, lead_blocks=lead,
                              input_channels=(0, 1, 2))
         src = Taker(block, 2 * fs // block + lead, drive_fs=0.05, seed=11)
-        src.block = block
         rig.run(src)
     assert all(r.shape == (block, 3) for r in src.received)
     x = np.concatenate(src.received[lead:]).astype(float)  # stream slot 0 onwards
