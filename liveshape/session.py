@@ -467,11 +467,19 @@ def run_session(
     return session
 
 
+def audio_inputs(spec: TestSpec) -> list[int] | None:
+    """The input channels (from 1) an audio run reads, in ``rig.inputs`` order; None for the
+    one-control shorthand (the control input, and the loopback input if any, as before)."""
+    if spec.rig.inputs is None:
+        return None
+    return [r.channel for r in spec.rig.input_roles()]
+
+
 def check_audio_map(spec: TestSpec) -> Any:
     """The spec's audio device, checked: named, full duplex at the rate, and its channel map.
 
-    A channel beyond what the device has is one line naming the key (``rig.drive_output`` ...),
-    before anything is opened or made. Returns the device's
+    A channel beyond what the device has is one line naming the key (``rig.drive_output``,
+    ``rig.inputs[2].channel`` ...), before anything is opened or made. Returns the device's
     :class:`~liveshape.rigs.devices.DeviceInfo`.
     """
     from liveshape.rigs.audio import check_settings
@@ -480,8 +488,10 @@ def check_audio_map(spec: TestSpec) -> Any:
     fs = spec.control.fs_hz
     info = check_settings(spec.rig.device, fs)  # first: no device named is the first error
     cmap = spec.rig.channel_map()
-    check_channel_map(info, cmap)
-    ins = [c for c in (cmap["control_input"], cmap["loopback_input"]) if c is not None]
+    inputs = audio_inputs(spec)
+    check_channel_map(info, cmap, inputs=inputs)
+    ins = inputs if inputs is not None else [
+        c for c in (cmap["control_input"], cmap["loopback_input"]) if c is not None]
     return check_settings(spec.rig.device, fs, input_channels=max(ins),
                           output_channels=int(cmap["drive_output"]))
 
@@ -512,6 +522,9 @@ def run_audio_session(
     is one full-duplex :class:`liveshape.rigs.audio.AudioRig`. The calibration file is required
     unless the spec says the levels are uncalibrated (the record says so). The device and its
     settings are checked before the record folder is made, so a wrong device leaves nothing.
+    With ``rig.inputs`` every listed input is read: the controller's ``exchange`` gets
+    ``(samples, inputs)`` blocks, the columns in list order (one input: a 1-D block), and the
+    response WAV has the same columns.
     ``bring_up`` (a :class:`threading.Event` the shell sets on the user's Enter) holds the drive
     at the connection level after the connection check until the user confirms (see
     :mod:`liveshape.control.bringup`); None (``run --unattended``): no hold.
@@ -519,6 +532,7 @@ def run_audio_session(
     from liveshape.rigs.audio import AudioRig
     from liveshape.rigs.calibration import resolve_calibration
     from liveshape.rigs.devices import audio_channels
+    from liveshape.testdef.inputs import inputs_to_list
 
     if spec.rig.kind != "audio":
         raise ConfigError(f"rig.kind = {spec.rig.kind!r}: expected audio for an audio session")
@@ -530,7 +544,7 @@ def run_audio_session(
     cal = resolve_calibration(spec.rig.calibration, spec.rig.uncalibrated)
     rig = AudioRig(info.index, fs, block_size=block_size, lead_blocks=lead_blocks,
                    stop_fade_s=spec.safety.abort_ramp_s,
-                   **audio_channels(spec.rig.channel_map()))
+                   **audio_channels(spec.rig.channel_map(), audio_inputs(spec)))
     stop = stop or StopFlag()
     rig_mapping = {
         "kind": "audio",
@@ -542,6 +556,8 @@ def run_audio_session(
         "lead_blocks": lead_blocks,
         **spec.rig.channel_map(),
     }
+    if spec.rig.inputs is not None:  # every input is read, in this order
+        rig_mapping["inputs"] = inputs_to_list(spec.rig.input_roles())
     warm = _warm_start(warm_start, spec, rig_mapping, cal)
     controller = Controller(spec, cal, seed=seed, bring_up=bring_up, warm=warm)
     recorder = _open_record(spec, out_dir, rig_mapping, cal,
@@ -557,7 +573,10 @@ def run_audio_session(
             on_block=lambda b: loop.after_block(b.drive_fs, b.response_fs),
             should_stop=stop.is_set,
         )
-        loop.after_block(np.zeros(0), np.zeros(0))
+        # the closing call writes no samples; its response has the WAV's column count
+        cols = rig.input_columns
+        loop.after_block(np.zeros(0), np.zeros(0 if cols is None or len(cols) == 1
+                                                else (0, len(cols))))
         if rig.stall is not None:
             recorder.event(controller.t_s, "stall",
                            f"no input from the audio stream for {rig.stall['no_input_s']:.2f} s "

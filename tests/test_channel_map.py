@@ -89,3 +89,32 @@ def test_channel_option_zero_is_one_line(tmp_path: Path) -> None:
                           capture_output=True, text=True, cwd=REPO, timeout=60)
     assert proc.returncode == 2 and proc.stderr.count("\n") == 1
     assert "--control-input" in proc.stderr and "channels count from 1" in proc.stderr
+
+
+def test_listed_inputs_are_checked_each_under_its_own_key() -> None:
+    # with rig.inputs the list's channels are checked (control_input / loopback_input are only
+    # its first control and its reference); the first one beyond the device is named
+    check_channel_map(CARD, {"drive_output": 1, "control_input": 2, "loopback_input": 1},
+                      inputs=[2, 1])
+    with pytest.raises(ConfigError) as err:
+        check_channel_map(CARD, {"drive_output": 1, "control_input": 1, "loopback_input": None},
+                          inputs=[1, 2, 3, 4])
+    assert str(err.value) == ("rig.inputs[2].channel = 3: audio device 'Two-by-two card' has 2 "
+                              "input channel(s) (channels count from 1; see liveshape devices)")
+    with pytest.raises(DeviceError, match=r"rig.drive_output = 5"):  # outputs still checked
+        check_channel_map(CARD, {"drive_output": 5, "control_input": 1, "loopback_input": None},
+                          inputs=[1])
+
+
+def test_listed_inputs_become_zero_based_input_channels_in_list_order(tmp_path: Path) -> None:
+    spec = _spec_with(tmp_path, "rig:\n  kind: audio\n  device: card\n  drive_output: 2\n"
+                      "  inputs:\n    - {channel: 4, role: monitor}\n"
+                      "    - {channel: 2, role: control}\n    - {channel: 1, role: reference}\n")
+    inputs = [r.channel for r in spec.rig.input_roles()]
+    assert inputs == [4, 2, 1]
+    args = audio_channels(spec.rig.channel_map(), inputs)
+    assert args == {"drive_channel": 1, "input_channels": (3, 1, 0)}
+    rig = AudioRig(3, 48000.0, **args)
+    # input 4 is the highest: the stream opens four inputs; the drive on output 2 needs two
+    assert rig.input_columns == (3, 1, 0) and rig.input_channels == 4
+    assert rig.output_channels == 2 and rig.loopback is None

@@ -37,7 +37,7 @@ import sys
 import threading
 import time
 from collections import deque
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from typing import Any
 
 import numpy as np
@@ -159,6 +159,14 @@ class AudioRig:
         ``(out_ch, in_ch)``: a cable from a second output to a second input. The drive is copied
         to ``out_ch``; ``in_ch`` returns the true drive reference (and the loop delay).
         ``(None, in_ch)``: ``in_ch`` receives the drive output itself (no copy is played).
+    input_channels : sequence of int or None, optional
+        Every input to read, as 0-based card input channels in the order the source wants them
+        (a test definition's ``rig.inputs`` in list order). The source's ``exchange`` then gets
+        a ``(block_size, len(input_channels))`` block, column ``i`` from card input
+        ``input_channels[i]`` (one channel: a 1-D block of it), and the
+        :class:`~liveshape.rigs.blocks.BlockIO` carries the same block as ``response_fs``.
+        Replaces ``control_channel``, ``loopback`` and ``monitor_channel`` (giving ``loopback``
+        or ``monitor_channel`` too is an error); None: read those as before.
     lead_blocks : int, optional
         Drive blocks produced ahead of the stream (default 4): the margin against late updates.
     stop_zero_blocks : int, optional
@@ -208,6 +216,7 @@ class AudioRig:
         control_channel: int = 0,
         monitor_channel: int | None = None,
         loopback: tuple[int, int] | None = None,
+        input_channels: Sequence[int] | None = None,
         lead_blocks: int = 4,
         stop_zero_blocks: int = 3,
         host_period: bool = False,
@@ -247,6 +256,19 @@ class AudioRig:
         ins = [self.control_channel] + ([loopback[1]] if loopback else [])
         if monitor_channel is not None:
             ins.append(int(monitor_channel))
+        #: The card inputs the source gets, in its order (None: the control channel alone).
+        self.input_columns: tuple[int, ...] | None = None
+        if input_channels is not None:
+            cols = tuple(int(c) for c in input_channels)
+            if not cols:
+                raise ValueError("input_channels must name at least one input")
+            if len(set(cols)) != len(cols):
+                raise ValueError(f"input_channels = {cols} names an input twice")
+            if loopback is not None or monitor_channel is not None:
+                raise ValueError("input_channels replaces loopback and monitor_channel "
+                                 "(the loopback and monitor inputs are columns of it)")
+            self.input_columns = cols
+            ins = list(cols)
         if min(outs + ins) < 0:
             raise ValueError("channel numbers must be >= 0")
         if loopback and loopback[0] == self.drive_channel:
@@ -350,8 +372,10 @@ class AudioRig:
         self._error = None
         self._update_s = []
         produced: deque[np.ndarray] = deque()
+        cols = self.input_columns
+        silence = np.zeros(b if cols is None or len(cols) == 1 else (b, len(cols)), np.float32)
         for _ in range(self.lead_blocks):
-            drive = self._exchange(source, np.zeros(b, np.float32))
+            drive = self._exchange(source, silence.copy())
             core.write_drive(drive)
             produced.append(drive)
         stop_exc = sd.CallbackStop
@@ -489,6 +513,9 @@ class AudioRig:
         last_input = time.monotonic()
         ctrl, mon = self.control_channel, self.monitor_channel
         loop_in = self.loopback[1] if self.loopback else None
+        cols = self.input_columns
+        if cols is not None:  # one column: a 1-D block of it (the one-input layout)
+            ctrl = cols[0] if len(cols) == 1 else list(cols)
         try:
             while not (self._stream_done.is_set() and core.input_available < b):
                 now = time.monotonic()

@@ -21,7 +21,9 @@ class BlockIO:
 
     ``drive_fs`` is the drive the source produced for this stream slot (silence replaces it only
     if it arrived late); ``response_fs`` the control channel, ``loopback_fs`` and ``monitor_fs``
-    the loopback and monitor inputs recorded in the same slot (None when not configured).
+    the loopback and monitor inputs recorded in the same slot (None when not configured). A rig
+    reading several inputs (``AudioRig(input_channels=...)``) gives ``response_fs`` as a
+    ``(samples, inputs)`` block, one column per input in the rig's order.
     """
 
     index: int

@@ -10,11 +10,11 @@ given device list) is testable offline.
 from __future__ import annotations
 
 import difflib
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from liveshape.errors import DeviceError
+from liveshape.errors import ConfigError, DeviceError
 
 
 @dataclass(frozen=True)
@@ -171,34 +171,53 @@ def check_settings(
 
 
 def check_channel_map(info: DeviceInfo, channel_map: dict[str, int | None],
-                      where: str = "rig") -> None:
+                      where: str = "rig", inputs: Sequence[int] | None = None) -> None:
     """Refuse a channel map the device cannot satisfy, in one line naming the key.
 
     ``channel_map`` holds ``drive_output``, ``control_input`` and ``loopback_input`` (None: no
-    loopback), counted from 1 as printed on the interface.
+    loopback), counted from 1 as printed on the interface. ``inputs`` are the channels of
+    ``rig.inputs`` in list order (None: the one-control shorthand); when given, every one of
+    them is checked under its own key (``rig.inputs[i].channel``) instead of
+    ``control_input`` and ``loopback_input``, which are taken from that list.
 
     Raises
     ------
     DeviceError
-        A channel beyond the device's outputs or inputs.
+        A drive output, control or loopback input beyond the device's outputs or inputs.
+    ConfigError
+        An item of ``rig.inputs`` beyond the device's inputs.
     """
-    limits = {"drive_output": ("output", info.max_output_channels),
-              "control_input": ("input", info.max_input_channels),
-              "loopback_input": ("input", info.max_input_channels)}
+    limits = {"drive_output": ("output", info.max_output_channels)}
+    if inputs is None:
+        limits.update({"control_input": ("input", info.max_input_channels),
+                       "loopback_input": ("input", info.max_input_channels)})
     for key, (kind, have) in limits.items():
         ch = channel_map.get(key)
         if ch is not None and ch > have:
             raise DeviceError(
                 f"{where}.{key} = {ch}: audio device {info.name!r} has {have} {kind} "
                 f"channel(s) (channels count from 1; see liveshape devices)")
+    for i, ch in enumerate(inputs or ()):
+        if ch > info.max_input_channels:
+            raise ConfigError(
+                f"{where}.inputs[{i}].channel = {ch}: audio device {info.name!r} has "
+                f"{info.max_input_channels} input channel(s) (channels count from 1; see "
+                "liveshape devices)")
 
 
-def audio_channels(channel_map: dict[str, int | None]) -> dict[str, Any]:
+def audio_channels(channel_map: dict[str, int | None],
+                   inputs: Sequence[int] | None = None) -> dict[str, Any]:
     """:class:`liveshape.rigs.audio.AudioRig` channel arguments (from 0) for a map (from 1).
 
     The loopback input receives a copy of the drive through a cable from the drive output, so
-    no second output carries it (``loopback=(None, input)``).
+    no second output carries it (``loopback=(None, input)``). With ``inputs`` (the channels of
+    ``rig.inputs`` in list order, from 1) the rig reads every one of them, in that order
+    (``input_channels``), and the control and loopback arguments are left out: the reference
+    among the inputs is a column of the response like the others.
     """
+    if inputs is not None:
+        return {"drive_channel": int(channel_map["drive_output"]) - 1,
+                "input_channels": tuple(int(c) - 1 for c in inputs)}
     loop = channel_map.get("loopback_input")
     return {"drive_channel": int(channel_map["drive_output"]) - 1,
             "control_channel": int(channel_map["control_input"]) - 1,
