@@ -64,6 +64,10 @@ __all__ = ["DROP_SEGMENTS", "NOTCH_MARK_DB", "InputRows", "InputSet", "primary_c
 #: 8192/48 kHz; a band sum of one segment has hundreds of DOF, so one segment is already sharp)
 #: [common practice: a short confirmation against a single bad segment].
 DROP_SEGMENTS = 4
+#: Segments the windows need before the first notch (0.7 s at 8192/48 kHz): both channels see
+#: the same drive, so their ratio |T|² scatters only by the incoherent part and is usable long
+#: before the decision DOF; a limit acts as early as it can.
+NOTCH_MIN_SEGMENTS = 8
 #: A line notched deeper than this (dB) counts as notched.
 NOTCH_MARK_DB = 0.25
 #: Neighbours on each side a notch spreads to (a limit peak is a resonance a few lines wide).
@@ -284,7 +288,7 @@ class InputSet:
         if self.strategy != "average" and len(self.control) > 1:
             self._pick = (np.argmax if self.strategy == "maximum" else np.argmin)(self._ema,
                                                                                    axis=0)
-        if not self.limits or not self.window_full:
+        if not self.limits or self._win_n < NOTCH_MIN_SEGMENTS:
             return self.notch_db
         win, ctrl = self._window()
         need = np.zeros(self.notch_db.size)
