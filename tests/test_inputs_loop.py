@@ -345,3 +345,18 @@ def test_the_jack_path_with_a_monitor_limit_and_a_loopback_reference(jack_server
     # (the 7 Hz and 5 Hz couplings are far below the band)
     assert ok.mean() > 0.9
     assert np.median(np.abs(full["output_gain_db"][ok])) < 0.1
+
+
+def test_a_limit_monitor_that_comes_loose_trips_input_lost():
+    from liveshape.schema import Where
+    from liveshape.testdef.fault_spec import fault_from_mapping
+
+    fault = fault_from_mapping({"kind": "sensor_detached", "at_s": 30, "input": 2},
+                               Where("faults[0]"))
+    spec = spec_with(MONITORED, faults=(fault,))
+    rig, cal = _sim(spec)
+    r = run_offline(Controller(spec, cal), rig, 1024)
+    assert r.status == "aborted" and r.trip.rule == "input_lost"
+    assert r.trip.message.startswith("monitor input 2 (bracket) with a limit reads")
+    # a detached sensor reads its noise floor, tens of dB down; 4 segments of 85 ms confirm
+    assert 30.0 < r.trip.t_s < 30.7

@@ -20,7 +20,9 @@ Input lost (rule ``input_lost``)
     A control input whose band power in a segment reads ``drop_db`` below the others
     (:func:`liveshape.dsp.multichannel.channel_dropouts`) for :data:`DROP_SEGMENTS` segments in
     a row trips its own rule: an average that kept it would read low and drive the other points
-    up.
+    up. A monitor with a limit trips the same rule when its band power over the control's falls
+    ``drop_db`` below its own running mean for as long: a limit only protects while its sensor
+    reads.
 Monitors and limits
     Each monitor's periodogram, normalized to full level like the control's, goes into a decision
     window of the same length as the control's. Where a monitor has a limit, the power
@@ -186,6 +188,8 @@ class InputSet:
         self._ema_k = 0
         self._pick = np.zeros(n_lines, dtype=int)  # index into self.control
         self._low_run = np.zeros(len(self.control), dtype=int)
+        self._mon_ratio: dict[int, tuple[int, float]] = {}  # limited monitor: (count, mean dB)
+        self._mon_low: dict[int, int] = {}
         self._drop_db = float(drop_db)
         self.limits = {i: _limit_lines(self.roles[i].limit, self.f_hz) for i in self.monitor
                        if self.roles[i].limit is not None}
@@ -238,6 +242,8 @@ class InputSet:
             comb = self._w @ pc
         else:
             comb = pc[self._pick, np.arange(pc.shape[1])]
+        if trip is None:
+            trip = self._limit_lost(p, comb, t_s)
         i = self._win_n % self._win_k
         self._win[i] = p / norm
         self._win_c[i] = comb / norm
@@ -271,6 +277,38 @@ class InputSet:
                     "cable off", t_s,
                     {"input": r.channel, "name": r.name, "band_rms_g": float(rms[j]),
                      "others_rms_g": others, "drop_db": self._drop_db})
+
+    def _limit_lost(self, p: np.ndarray, comb: np.ndarray, t_s: float) -> Trip | None:
+        """The input-lost rule on the monitors with a limit: a limit protects the item only
+        while its sensor reads. The band power of the monitor over the control's is a property
+        of the structure; a monitor whose ratio falls ``drop_db`` below its own running mean
+        for :data:`DROP_SEGMENTS` segments in a row has come loose."""
+        if not self.limits:
+            return None
+        c = float(comb.sum())
+        for i in self.limits:
+            if c <= 0.0:
+                return None
+            m = float(p[i].sum())
+            ratio_db = 10.0 * math.log10(max(m, 1e-300) / c)
+            k, ref = self._mon_ratio.get(i, (0, 0.0))
+            low = k >= NOTCH_MIN_SEGMENTS and ratio_db < ref - self._drop_db
+            run = self._mon_low.get(i, 0) + 1 if low else 0
+            self._mon_low[i] = run
+            if not low:  # the running mean of the normal readings (at most a window long)
+                k += 1
+                ref += (ratio_db - ref) / min(k, self._win_k)
+                self._mon_ratio[i] = (k, ref)
+            if run >= DROP_SEGMENTS:
+                r = self.roles[i]
+                return Trip("input_lost",
+                            f"monitor input {r.channel} ({r.name}) with a limit reads "
+                            f"{ratio_db - ref:.1f} dB below its usual level against the control "
+                            f"(limit −{self._drop_db:g} dB): its sensor is loose or its cable "
+                            "off, and the limit no longer protects the item", t_s,
+                            {"input": r.channel, "name": r.name, "drop_db": self._drop_db,
+                             "ratio_change_db": ratio_db - ref})
+        return None
 
     # ------------------------------------------------------------------ updates
     @property
