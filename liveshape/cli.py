@@ -392,9 +392,30 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
 
 def _channel_overrides(args: argparse.Namespace) -> dict[str, Any]:
-    """``--drive-output``, ``--control-input``, ``--loopback-input`` as spec overrides."""
+    """``--drive-output``, ``--control-input``, ``--loopback-input`` and ``--input`` as spec
+    overrides."""
     keys = ("drive_output", "control_input", "loopback_input")
-    return {f"rig.{k}": getattr(args, k) for k in keys if getattr(args, k, None) is not None}
+    out = {f"rig.{k}": getattr(args, k) for k in keys if getattr(args, k, None) is not None}
+    items = getattr(args, "input", None)
+    if items:
+        for k in ("control_input", "loopback_input"):
+            if getattr(args, k, None) is not None:
+                raise ConfigError(f"--{k.replace('_', '-')} and --input: give every input with "
+                                  "--input (role control, reference) instead")
+        out["rig.inputs"] = list(items)
+    return out
+
+
+def _input_item(text: str) -> dict[str, Any]:
+    """``CH:ROLE[:NAME]`` (``2:monitor:bracket``) as one item of ``rig.inputs``."""
+    parts = text.split(":")
+    if len(parts) not in (2, 3) or not parts[0].strip().isdigit() or int(parts[0]) < 1:
+        raise argparse.ArgumentTypeError(
+            f"{text!r} is not CH:ROLE[:NAME] (e.g. 2:monitor:bracket; channels count from 1)")
+    item: dict[str, Any] = {"channel": int(parts[0]), "role": parts[1].strip()}
+    if len(parts) == 3 and parts[2].strip():
+        item["name"] = parts[2].strip()
+    return item
 
 
 def _add_channel_options(parser: argparse.ArgumentParser) -> None:
@@ -408,6 +429,10 @@ def _add_channel_options(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--loopback-input", type=_channel, metavar="N",
                         help="audio rigs: input receiving a copy of the drive by a cable, from "
                         "1 (default none; rig.loopback_input)")
+    parser.add_argument("--input", type=_input_item, action="append", metavar="CH:ROLE[:NAME]",
+                        help="an input and its role (control, monitor, reference), from 1; "
+                        "repeat for each input, in order (rig.inputs; limits and weights only "
+                        "in the test definition)")
 
 
 def _channel(text: str) -> int:

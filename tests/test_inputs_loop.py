@@ -360,3 +360,41 @@ def test_a_limit_monitor_that_comes_loose_trips_input_lost():
     assert r.trip.message.startswith("monitor input 2 (bracket) with a limit reads")
     # a detached sensor reads its noise floor, tens of dB down; 4 segments of 85 ms confirm
     assert 30.0 < r.trip.t_s < 30.7
+
+
+def _cli(tmp_path, *args):
+    import subprocess
+    import sys
+
+    return subprocess.run([sys.executable, "-m", "liveshape", "run", str(EXAMPLE), "--fast",
+                           "--json", "--out", str(tmp_path), "--duration", "3", *args],
+                          capture_output=True, text=True, timeout=600,
+                          cwd=Path(__file__).resolve().parents[1])
+
+
+def test_inputs_on_the_command_line_are_read_and_recorded(tmp_path):
+    proc = _cli(tmp_path, "--input", "1:control:table", "--input", "2:reference")
+    assert proc.returncode == 0, proc.stderr[-500:]
+    data = json.loads(proc.stdout)
+    assert [r["name"] for r in data["inputs"]["inputs"]] == ["table"]
+    y, _ = soundfile.read(Path(data["run_dir"]) / "response.wav", always_2d=True)
+    assert y.shape[1] == 2
+    # a loopback copies the drive: the card's output gain reads 0 dB (inputs.csv, full level)
+    rows = (Path(data["run_dir"]) / "inputs.csv").read_text().splitlines()
+    head = rows[0].split(",")
+    gain = np.array([float(r.split(",")[head.index("output_gain_db")]) for r in rows[1:]])
+    assert np.median(np.abs(gain)) < 0.1
+
+
+@pytest.mark.parametrize("args, words", [
+    (("--input", "2-monitor"), "--input: '2-monitor' is not CH:ROLE[:NAME]"),
+    (("--input", "1:control", "--input", "2:sensor"), "role"),
+    (("--input", "1:control", "--control-input", "2"),
+     "--control-input and --input: give every input with --input"),
+])
+def test_bad_inputs_on_the_command_line_are_one_line(tmp_path, args, words):
+    proc = _cli(tmp_path, *args)
+    assert proc.returncode == 2
+    assert "Traceback" not in proc.stderr
+    assert words in proc.stderr
+    assert not any(tmp_path.iterdir())  # nothing made

@@ -447,6 +447,13 @@ def _apply_overrides(data: dict[str, Any], overrides: Mapping[str, Any]) -> froz
             if sub in _RESOLUTION_KEYS:  # the override replaces the file's resolution choice
                 for k in _RESOLUTION_KEYS:
                     section.pop(k, None)
+            if key == "rig.inputs":  # the command line's list of inputs (cli --input)
+                if section.get("inputs") is not None:
+                    raise ConfigError(f"{COMMAND_LINE}: --input: the test definition has a list "
+                                      "rig.inputs already (its limits and weights stay there); "
+                                      "change the list in the file instead")
+                for k in ("control_input", "loopback_input"):
+                    section.pop(k, None)
             section[sub] = value
             data[sec] = section
         done.add(key)
