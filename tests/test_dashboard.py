@@ -655,3 +655,23 @@ def test_live_view_shows_the_chosen_units():
                        units=ACCEL_UNITS["m/s2"]) as view:
         view.update(_snapshot())
     assert "m/s²" in console.file.getvalue()
+
+
+def test_dashboard_shows_each_input_its_limit_and_the_notches():
+    inputs = {"strategy": "maximum", "inputs": [
+        {"channel": 1, "name": "table", "role": "control", "grms_g": 0.98},
+        {"channel": 2, "name": "bracket", "role": "monitor", "grms_g": 1.43,
+         "limit_margin_db": -0.28, "limit_f_hz": 351.6},
+        {"channel": 3, "name": "lid", "role": "monitor", "grms_g": 2.1,
+         "limit_margin_db": 0.7, "limit_f_hz": 612.0}],
+        "notched_lines": 31, "notch_deepest_db": -16.8, "notch_f_hz": [252.0, 427.7],
+        "extremal_bias_db": 0.3}
+    out = _render(dash.dashboard(_snapshot(inputs=inputs)))
+    assert re.search(r"control 1 table\s+0.980 grms", out)
+    assert re.search(r"monitor 2 bracket\s+1.430 grms  limit -0.28 dB at 352 Hz", out)
+    assert "limit +0.70 dB at 612 Hz" in out
+    assert "31 lines 252-428 Hz, deepest -16.8 dB" in out
+    assert "maximum control bias" in out and "+0.30 dB" in out
+    # a monitor over its limit is shown as an alarm, one under it is not
+    roles = {label: pieces[0][1] for label, pieces in runtext.input_rows(inputs)}
+    assert roles["monitor 3 lid"] == "alarm" and roles["monitor 2 bracket"] == "value"
