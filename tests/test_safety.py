@@ -305,3 +305,60 @@ def test_silence_inside_a_block_is_seen_and_runs_carry_over():
     y = loud.copy()
     y[:64] = 0.0  # ... and 64 leading in the next block: a run of 128 >= 100
     assert s.check_silence(0.0, y, drive_up=True).rule == "response_silent"
+
+
+def test_lines_abort_holds_while_the_lines_come_back_and_trips_when_they_stop():
+    # 20 lines 14 dB low, then each estimate 3 dB nearer (summed excess falls by 60 dB against
+    # a scatter of 0.79 dB x sqrt(40) = 5 dB at 60 DOF: demonstrably converging). The dB
+    # scatter of a χ²_60 estimate is 4.343 sqrt(ψ1(30)) = 0.80 dB (Bendat & Piersol, Random
+    # Data, 4th ed., §8.5 with the log-gamma variance) — db_std, checked above.
+    s = _sup(abort_persist_updates=3)
+    lines = np.arange(20, 40)
+
+    def est(depth_db):
+        dev = np.zeros(300)
+        dev[lines] = -depth_db
+        return _update(s, dev, dof=60.0)
+
+    v = est(14.0)
+    assert v.pending == ("lines_abort",) and not v.converging  # the first sighting counts
+    for depth in (11.0, 8.0):
+        v = est(depth)
+        assert v.trip is None and v.converging and v.pending == ()  # the drive may rise
+    v = est(8.0)  # stopped coming back: the count goes on from 1
+    assert v.trip is None and not v.converging and v.pending == ("lines_abort",)
+    v = est(8.0)
+    assert v.trip is not None and v.trip.rule == "lines_abort" and v.trip.detail["updates"] == 3
+
+
+def test_converging_needs_more_than_the_scatter_and_is_granted_a_bounded_number_of_times():
+    s = _sup(abort_persist_updates=3)
+    lines = np.arange(20, 40)
+    n_est = 0
+    trip = None
+    depth = 40.0
+    while trip is None and n_est < 20:  # always coming back by 3 dB a line, never arriving
+        dev = np.zeros(300)
+        dev[lines] = -depth
+        trip = _update(s, dev, dof=60.0).trip
+        depth -= 3.0
+        n_est += 1
+    # one count, then at most abort_persist_updates estimates held, then two more counts
+    assert trip is not None and n_est == 1 + 3 + 2
+    # a fall within the scatter (0.1 dB a line over 20 lines: 2 dB summed < 2 x 5 dB) counts
+    s = _sup(abort_persist_updates=3)
+    out = []
+    for depth in (10.0, 9.9, 9.8):
+        dev = np.zeros(300)
+        dev[lines] = -depth
+        out.append(_update(s, dev, dof=60.0))
+    assert not any(v.converging for v in out) and out[-1].trip.rule == "lines_abort"
+    # a dead line (no signal at all) never converges
+    s = _sup(abort_persist_updates=2)
+    for _ in range(2):
+        ctrl = np.full(300, 0.01)
+        ctrl[lines] = 0.0
+        v = s.check_update(0.0, control_psd=ctrl, target_psd=np.full(300, 0.01), dof=60.0,
+                           abort_db=np.full(300, 6.0))
+        assert not v.converging
+    assert v.trip is not None

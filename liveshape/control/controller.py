@@ -501,6 +501,10 @@ class Controller(ToneStage, FastLoop, LoopState):
             return
         self._pool.push(ctrl, self._nu_update)
         self._pending = tuple(verdict.pending)
+        if verdict.converging:
+            self._emit("converging", f"{verdict.lines_beyond_abort} lines beyond abort, coming "
+                       "back by more than their scatter: lines_abort holds its count",
+                       {"update": self._updates, "lines_beyond_abort": verdict.lines_beyond_abort})
         if self._stage == "full_level" and g == 1.0:
             self._full.push(ctrl, self._nu_update, t)
         if self._est.cross:  # blend law: refresh the FRF where the coherence is good

@@ -335,6 +335,10 @@ class FastLoop:
                                 applied=False, dof=dof)
             self._abort(verdict.trip)
             return
+        if verdict.converging:
+            self._emit("converging", f"{verdict.lines_beyond_abort} lines beyond abort, coming "
+                       "back by more than their scatter: lines_abort holds its count",
+                       {"update": self._updates, "lines_beyond_abort": verdict.lines_beyond_abort})
         if verdict.pending and not self._pending:
             self._emit("hold", f"drive may only go down while {', '.join(verdict.pending)} is "
                        "pending", {"update": self._updates, "pending": list(verdict.pending)})

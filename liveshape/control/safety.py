@@ -236,6 +236,14 @@ class UpdateVerdict:
     abort_lo_db: float
     abort_hi_db: float
     loop_gap_db: float
+    #: ``lines_abort`` held its count because the lines beyond abort came back by more than
+    #: their scatter since the previous estimate (see :meth:`Supervisor.check_update`).
+    converging: bool = False
+
+
+#: How much the summed excess beyond abort must fall between two estimates, in standard
+#: deviations of its scatter, to count as converging [common practice: a 2σ decision].
+CONVERGING_Z = 2.0
 
 
 class Supervisor:
@@ -261,11 +269,14 @@ class Supervisor:
         self._silent_seen = False
         self._allow: dict[float, float] = {}
         self._persist: dict[str, int] = {"lines_abort": 0, "drive_limit": 0, "loop_open": 0}
+        self._excess: tuple[float, int] | None = None  # previous estimate's excess, lines
+        self._grace = 0  # estimates held as converging in this episode
 
     def reset_persistence(self) -> None:
         """Forget counts of consecutive updates (after a level change)."""
         for k in self._persist:
             self._persist[k] = 0
+        self._excess, self._grace = None, 0
 
     # -- per block ----------------------------------------------------------------------
     def check_block(
@@ -476,6 +487,7 @@ class Supervisor:
             if p_sum > 0:
                 gap = _DB * math.log(c_sum / p_sum) if c_sum > 0 else -math.inf
         below = rms_err < -float(lim.rms_alarm_db)
+        converging = self._converging(dev, beyond, abort, lo_s, hi_s, dof)
         # every persistent rule keeps its count; the most specific diagnosis wins
         pending: list[str] = []
         trips = [
@@ -497,24 +509,52 @@ class Supervisor:
                 {**detail_base, "rms_alarm_db": float(lim.rms_alarm_db)},
             ),
             self._persistent(
-                "lines_abort", n_beyond >= int(s.abort_min_lines), t_s, pending,
-                lambda n: (
+                "lines_abort", n_beyond >= int(s.abort_min_lines), t_s, pending, hold=converging,
+                message=lambda n: (
                     f"{n_beyond} lines beyond the abort limits for {n} consecutive updates "
                     f"(max {float(np.max(dev)):+.1f} dB, min {float(np.min(dev)):+.1f} dB)"
                 ),
-                {**detail_base, "lines_beyond_abort": n_beyond,
-                 "max_dev_db": float(np.max(dev)), "min_dev_db": float(np.min(dev)),
-                 "scatter_lo_db": lo_s, "scatter_hi_db": hi_s},
+                detail={**detail_base, "lines_beyond_abort": n_beyond,
+                        "max_dev_db": float(np.max(dev)), "min_dev_db": float(np.min(dev)),
+                        "scatter_lo_db": lo_s, "scatter_hi_db": hi_s},
             ),
         ]
         trip = next((t for t in trips if t is not None), None)
         if trip is not None:
             pending = []
-        return UpdateVerdict(trip, tuple(pending), rms_err, n_beyond, lo_s, hi_s, gap)
+        return UpdateVerdict(trip, tuple(pending), rms_err, n_beyond, lo_s, hi_s, gap,
+                             converging=converging and trip is None)
 
-    def _persistent(self, rule, condition, t_s, pending, message, detail) -> Trip | None:
+    def _converging(self, dev: np.ndarray, beyond: np.ndarray, abort: np.ndarray, lo_s: float,
+                    hi_s: float, dof: float) -> bool:
+        """The lines beyond abort are coming back: their summed excess beyond the (widened)
+        abort band fell by more than :data:`CONVERGING_Z` standard deviations of its scatter
+        since the previous estimate. Granted for at most ``abort_persist_updates`` estimates in
+        a row; a dead line (no signal) never converges."""
+        n = int(np.count_nonzero(beyond))
+        if n < int(self.safety.abort_min_lines):
+            self._excess, self._grace = None, 0
+            return False
+        band = np.where(dev > 0, np.maximum(abort, hi_s), np.maximum(abort, lo_s))
+        excess = float(np.sum((np.abs(dev) - band)[beyond]))
+        prev, self._excess = self._excess, (excess, n)
+        if prev is None or not math.isfinite(excess) or \
+                self._grace >= int(self.safety.abort_persist_updates):
+            return False
+        sd = db_std(dof) * math.sqrt(n + prev[1])  # each line's dB scatter, summed
+        if prev[0] - excess > CONVERGING_Z * sd:
+            self._grace += 1
+            return True
+        return False
+
+    def _persistent(self, rule, condition, t_s, pending, message, detail, *,
+                    hold: bool = False) -> Trip | None:
+        """Count a persistent rule; ``hold``: the condition holds but the loop is converging,
+        so the count neither grows nor resets and the drive is not held (no pending)."""
         if not condition:
             self._persist[rule] = 0
+            return None
+        if hold:
             return None
         self._persist[rule] += 1
         n = self._persist[rule]
