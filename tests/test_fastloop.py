@@ -243,11 +243,13 @@ def _true_rms_db(ctl, rig):
     return snap.t_s, 10 * np.log10(true.sum() / snap.target_psd.sum()), e
 
 
-@pytest.mark.parametrize(("kind", "value", "rms_s", "alarm_s"), [
-    ("plant_gain", -3.0, 2.0, 4.0),  # the bounds
-    ("resonance_shift", 1.05, 0.5, 5.0),
+@pytest.mark.parametrize(("kind", "value", "rms_s", "alarm_s", "abort_s"), [
+    ("plant_gain", -3.0, 2.0, 4.0, 0.0),  # the bounds
+    ("resonance_shift", 1.05, 0.5, 5.0, 1.0),
+    ("resonance_shift", 0.95, 1.0, 5.0, 1.0),
 ])
-def test_recovery_after_a_plant_change_judged_on_the_true_control(kind, value, rms_s, alarm_s):
+def test_recovery_after_a_plant_change_judged_on_the_true_control(kind, value, rms_s, alarm_s,
+                                                                   abort_s):
     at = 32.0  # inside full level
     spec, rig, ctl = _example(full_s=20.0, faults=(FaultSpec(kind, at, value),))
     seen = []
@@ -266,6 +268,13 @@ def test_recovery_after_a_plant_change_judged_on_the_true_control(kind, value, r
     line_bad = [t for t, rms, e in after if np.any(np.abs(e) > alarm) or abs(rms) > 0.5]
     assert (max(rms_bad) - at if rms_bad else 0.0) <= rms_s
     assert (max(line_bad) - at if line_bad else 0.0) <= alarm_s
+    # time any line of the true control spends beyond its abort limit (one block per sample)
+    abort = spec.tolerance.abort_db_at(ctl.f_hz)
+    ts = [t for t, _, _ in after]
+    beyond = sum(t1 - t0 for (t0, _, _), (t1, _, e) in zip(after, after[1:], strict=False)
+                 if np.any(np.abs(e) > abort))
+    assert beyond <= abort_s + 1e-9, beyond
+    assert ts and ts[0] - at < 0.1
     if kind == "plant_gain":
         assert line_bad  # the change was seen by the true control at all
 

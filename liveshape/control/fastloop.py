@@ -218,7 +218,8 @@ class FastLoop:
         self._blk_n += 1
         self._blk_full &= steady_full
         self._since_update += 1
-        if self._since_update >= self._m_update:
+        # a line that moved is corrected at once, not at the next scheduled update
+        if self._since_update >= self._m_update or self._tracker.changed():
             self._since_update = 0
             self._fast_update(t)
         if self._status == "running":

@@ -167,6 +167,16 @@ class PowerGainTracker:
         got = float(self._pg.sum())
         return got / pred if pred > 0 and got > 0 else 1.0
 
+    def changed(self) -> bool:
+        """Some line's short average departs from the long estimate by more than
+        ``change_db`` now (the test :meth:`estimate` applies), so an update is due at once."""
+        if self._short.k < self._short.n_avg:
+            return False
+        t = self._long_gain() * self.band_factor()
+        with np.errstate(divide="ignore", invalid="ignore"):
+            d_db = _DB * np.log(self._ps / (self._ds * t))
+        return bool(np.any(np.abs(d_db[np.isfinite(d_db)]) > self.change_db))
+
     def estimate(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """``(T, dof, restarted)``: power gain per line (g²/Hz per FS²/Hz), the DOF of its
         long average, and the lines whose long average restarted now (change detected)."""
