@@ -149,12 +149,17 @@ def test_transmissibility_matches_the_base_excitation_formula(limited_run):
     ok = coh > 0.98
     assert ok.sum() > 0.9 * f.size
     err_db = 20 * np.log10(mag[ok] / np.abs(t[ok]))
-    # H1 over the full-level time (hundreds of DOF): random error below 0.2 dB where the
-    # coherence is above 0.98 (Bendat & Piersol §9.1.4), plus the resonance's resolution bias
-    # on 5.9 Hz lines near 350 Hz, Q 15 (half-power width 23 Hz) [from memory: below 0.5 dB]
+    # H1's normalized random error per line, ε = √(1 − γ²) / (|γ| √(2 n_d)) (Bendat & Piersol,
+    # Random Data, 4th ed., Table 9.6), with n_d the full-level segments (about half the DOF,
+    # fewer independent ones for 50 % overlap: conservative); 4ε in dB as in test_sim_inputs,
+    # plus the resonance's resolution bias on 5.9 Hz lines near 350 Hz, Q 15 (half-power width
+    # 23 Hz) [from memory: below 0.5 dB]
+    n_d = float(z["dof"]) / 2.0
+    eps = np.sqrt(1 - coh[ok]) / (np.sqrt(coh[ok]) * np.sqrt(2 * n_d))
+    bound = 4 * 8.686 * eps + 0.05
     near = np.abs(f[ok] - 350.0) < 30.0
-    assert np.all(np.abs(err_db[~near]) < 0.2), np.abs(err_db[~near]).max()
-    assert np.all(np.abs(err_db[near]) < 0.6), np.abs(err_db[near]).max()
+    assert np.all(np.abs(err_db[~near]) < bound[~near]), np.max(np.abs(err_db) - bound)
+    assert np.all(np.abs(err_db[near]) < bound[near] + 0.5), np.abs(err_db[near]).max()
 
 
 def test_notches_fail_the_verdict_when_the_spec_says_so(tmp_path):
