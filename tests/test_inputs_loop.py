@@ -398,3 +398,14 @@ def test_bad_inputs_on_the_command_line_are_one_line(tmp_path, args, words):
     assert "Traceback" not in proc.stderr
     assert words in proc.stderr
     assert not any(tmp_path.iterdir())  # nothing made
+
+
+def test_the_monitored_example_reads_three_inputs_and_holds_its_limit():
+    spec = load_spec(EXAMPLE.with_name("handlebar-nav-unit-monitored.yaml"),
+                     overrides={"schedule.full_level_s": "6"})
+    assert [r.role for r in spec.rig.input_roles()] == ["control", "monitor", "reference"]
+    rig, cal = _sim(spec)
+    r = run_offline(Controller(spec, cal), rig, 1024)
+    assert r.status == "completed" and r.verdict.verdict == "pass"
+    # within the 120-DOF window's scatter of the limit (+1.2 dB on the worst line, §8.5.4)
+    assert r.inputs["inputs"][1]["limit_margin_db"] < 1.2 and r.inputs["notched_lines"] > 0
