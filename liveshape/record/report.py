@@ -431,9 +431,21 @@ class SignalStats:
     seconds: float
 
 
+def control_column(run: Any) -> int:
+    """Column of the response WAV that holds the control: the first ``control`` input of the
+    run's ``rig.inputs`` (0 for a run with one input)."""
+    inputs = (getattr(run, "rig", None) or {}).get("inputs") if isinstance(
+        getattr(run, "rig", None), Mapping) else None
+    for i, r in enumerate(inputs or ()):
+        if isinstance(r, Mapping) and r.get("role") == "control":
+            return i
+    return 0
+
+
 def signal_stats(path: Path, start_s: float = 0.0, end_s: float | None = None,
-                 *, block: int = 1 << 18) -> SignalStats | None:
-    """rms, peak, crest factor and kurtosis of the first channel of a WAV file over a stretch.
+                 *, block: int = 1 << 18, column: int = 0) -> SignalStats | None:
+    """rms, peak, crest factor and kurtosis of one channel (``column``, default the first) of a
+    WAV file over a stretch.
 
     Read in blocks (a long run's WAV need not fit in memory) and merged exactly with
     :class:`liveshape.dsp.moments.RunningMoments`. None when the stretch holds no sample.
@@ -456,7 +468,7 @@ def signal_stats(path: Path, start_s: float = 0.0, end_s: float | None = None,
                 data = fh.read(min(block, left), dtype="float64", always_2d=True)
                 if data.shape[0] == 0:
                     break
-                mom.update(data[:, 0])
+                mom.update(data[:, column])
                 left -= data.shape[0]
     except (RuntimeError, OSError) as exc:
         raise ConfigError(f"{path}: cannot read WAV ({exc})") from None
@@ -467,8 +479,10 @@ def signal_stats(path: Path, start_s: float = 0.0, end_s: float | None = None,
                        math.nan, kurtosis=mom.kurtosis, seconds=mom.n / fs)
 
 
-def _rms_track(path: Path, block_s: float = 0.5) -> tuple[np.ndarray, np.ndarray] | None:
-    """Rms of the first channel of a WAV in consecutive ``block_s`` blocks: (mid time s, rms)."""
+def _rms_track(path: Path, block_s: float = 0.5,
+               column: int = 0) -> tuple[np.ndarray, np.ndarray] | None:
+    """Rms of one channel (``column``) of a WAV in consecutive ``block_s`` blocks: (mid time s,
+    rms)."""
     import soundfile
 
     try:
@@ -478,7 +492,7 @@ def _rms_track(path: Path, block_s: float = 0.5) -> tuple[np.ndarray, np.ndarray
             t, r = [], []
             pos = 0
             for data in fh.blocks(blocksize=n, dtype="float64", always_2d=True):
-                x = data[:, 0]
+                x = data[:, column]
                 if x.size:
                     t.append((pos + x.size / 2) / fs)
                     r.append(math.sqrt(float(np.dot(x, x)) / x.size))
@@ -856,7 +870,7 @@ def draw_control_rms(ax: Any, run: RunData, tol: Tolerance, ending: _Ending,
     up = run.updates
     drawn = False
     if run.response_wav is not None and g_per_fs:
-        track = _rms_track(run.response_wav)
+        track = _rms_track(run.response_wav, column=control_column(run))
         if track is not None:
             ax.plot(track[0], track[1] * g_per_fs * per_g, color="#9bb7cf", lw=0.8,
                     label="response rms, 0.5 s blocks (whole band)")
@@ -1130,7 +1144,8 @@ def _build_pages(run: RunData, figure_cls: Any, units_of: AccelUnit = G_UNIT) ->
     start, end, window_note = _signal_window(run)
     stats = {
         "drive": signal_stats(run.drive_wav, start, end) if run.drive_wav else None,
-        "response": signal_stats(run.response_wav, start, end) if run.response_wav else None,
+        "response": signal_stats(run.response_wav, start, end, column=control_column(run))
+        if run.response_wav else None,
     }
     d = _in_units(decision_spectrum(run, tol), units_of)
 
