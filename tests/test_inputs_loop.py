@@ -418,4 +418,4 @@ def test_the_report_has_a_page_of_the_inputs(limited_run, tmp_path):
     rep = render_report(session.run_dir, out_dir=tmp_path, png=True)
     assert "5  inputs: PSD at full level, limits and notches, transmissibility" in rep.pages
     assert rep.pages[-1].startswith(f"{len(rep.pages)}  event log")
-    assert rep.pdf_path.stat().st_size > 0
+    assert rep.pdf_path.stat().st_size > 0 and rep.pngs["inputs"].stat().st_size > 0

@@ -1413,4 +1413,6 @@ def _write_pngs(run: RunData, out: Path, figure_cls: Any, canvas_cls: Any,
     save("convergence", (8.0, 7.0), lambda a: (draw_line_error(a[0], run, tol),
                                                 draw_rms_error(a[1], run, tol)), 2)
     save("level", (8.0, 3.5), lambda a: draw_level(a[0], run, ending))
+    if run.full_level and _input_names(run.full_level):
+        save("inputs", (8.0, 7.0), lambda a: draw_inputs(a, run, asd_units, units_of.per_g), 3)
     return pngs
