@@ -530,6 +530,7 @@ def run_audio_session(
     :mod:`liveshape.control.bringup`); None (``run --unattended``): no hold.
     """
     from liveshape.rigs.audio import AudioRig
+    from liveshape.rigs.calfile import check_inputs_calibrated
     from liveshape.rigs.calibration import resolve_calibration
     from liveshape.rigs.devices import audio_channels
     from liveshape.testdef.inputs import inputs_to_list
@@ -542,6 +543,7 @@ def run_audio_session(
     fs = spec.control.fs_hz
     info = check_audio_map(spec)  # first: no device named is the first error
     cal = resolve_calibration(spec.rig.calibration, spec.rig.uncalibrated)
+    check_inputs_calibrated(cal, spec.rig.inputs)  # every sensor's own mV/g, before any drive
     rig = AudioRig(info.index, fs, block_size=block_size, lead_blocks=lead_blocks,
                    stop_fade_s=spec.safety.abort_ramp_s,
                    **audio_channels(spec.rig.channel_map(), audio_inputs(spec)))

@@ -349,3 +349,28 @@ def test_jack_stream_gives_control_monitor_and_reference_columns(jack_server) ->
     _, gcm = scipy.signal.csd(ctrl[seg], mon[seg], fs, nperseg=8192)
     sel = (f > 100) & (f < 1000)
     assert abs(f[sel][np.argmax(np.abs(gcm[sel] / gcc[sel]))] - 350.0) < 3 * (f[1] - f[0])
+
+
+def test_a_calibrated_run_needs_each_sensors_own_sensitivity(fake_card, tmp_path) -> None:
+    from liveshape.rigs.calfile import write_calibration
+    from liveshape.testdef.chain import ChainCalibration, InputChannelCal
+
+    cal_path = tmp_path / "chain.yaml"
+    write_calibration(cal_path, ChainCalibration(out_v_per_fs=1.0, in_v_per_fs=1.0,
+                                                 accel_mv_per_g=100.0, source="file"))
+    text = _spec(tmp_path).source
+    spec = load_spec(text, overrides={"rig.uncalibrated": "false",
+                                      "rig.calibration": str(cal_path)})
+    with pytest.raises(ConfigError) as err:
+        session_mod.run_audio_session(spec, out_dir=tmp_path / "runs", lead_blocks=2)
+    msg = str(err.value)
+    assert "\n" not in msg and str(cal_path) in msg
+    assert "monitor input 1 (bracket)" in msg and "add {channel: 1, v_per_fs: ..., mv_per_g" in msg
+    assert not (tmp_path / "runs").exists()  # refused before anything is made
+    # with the monitor's own entry the check passes (the reference needs none)
+    write_calibration(cal_path, ChainCalibration(
+        out_v_per_fs=1.0, in_v_per_fs=1.0, accel_mv_per_g=100.0, source="file",
+        inputs=(InputChannelCal(1, 1.0, 10.0),)))
+    from liveshape.rigs.calfile import check_inputs_calibrated, load_calibration
+
+    check_inputs_calibrated(load_calibration(cal_path), spec.rig.input_roles())

@@ -403,3 +403,24 @@ def test_bad_inputs_on_the_command_line_are_one_line(tmp_path, args, words):
     assert "Traceback" not in proc.stderr
     assert words in proc.stderr
     assert not any(tmp_path.iterdir())  # nothing made
+
+
+def test_the_monitored_example_reads_three_inputs_and_holds_its_limit():
+    spec = load_spec(EXAMPLE.with_name("handlebar-nav-unit-monitored.yaml"),
+                     overrides={"schedule.full_level_s": "6"})
+    assert [r.role for r in spec.rig.input_roles()] == ["control", "monitor", "reference"]
+    rig, cal = _sim(spec)
+    r = run_offline(Controller(spec, cal), rig, 1024)
+    assert r.status == "completed" and r.verdict.verdict == "pass"
+    # within the 120-DOF window's scatter of the limit (+1.2 dB on the worst line, §8.5.4)
+    assert r.inputs["inputs"][1]["limit_margin_db"] < 1.2 and r.inputs["notched_lines"] > 0
+
+
+def test_the_report_has_a_page_of_the_inputs(limited_run, tmp_path):
+    from liveshape.record.report import render_report
+
+    _, session = limited_run
+    rep = render_report(session.run_dir, out_dir=tmp_path, png=True)
+    assert "5  inputs: PSD at full level, limits and notches, transmissibility" in rep.pages
+    assert rep.pages[-1].startswith(f"{len(rep.pages)}  event log")
+    assert rep.pdf_path.stat().st_size > 0 and rep.pngs["inputs"].stat().st_size > 0

@@ -25,6 +25,7 @@ import zlib
 
 import numpy as np
 import pytest
+import scipy.stats
 
 from liveshape.dsp.profile import Profile
 from liveshape.errors import ConfigError
@@ -670,3 +671,25 @@ def test_report_units_option_is_checked(tmp_path, capsys):
     err = capsys.readouterr().err.strip()
     assert len(err.splitlines()) == 1 and "--units" in err and "furlong" in err
     assert not (root / "report").exists()
+
+
+def test_the_report_reads_the_control_column_of_a_run_with_several_inputs(tmp_path):
+    import types
+
+    import soundfile
+
+    from liveshape.record.report import control_column, signal_stats
+
+    rng = np.random.default_rng(3)
+    y = np.column_stack([0.3 * rng.standard_normal(48000), 0.05 * rng.standard_normal(48000)])
+    path = tmp_path / "response.wav"
+    soundfile.write(path, y.astype(np.float32), 48000, subtype="FLOAT")
+    run = types.SimpleNamespace(rig={"inputs": [{"channel": 1, "role": "monitor"},
+                                               {"channel": 2, "role": "control"}]})
+    assert control_column(run) == 1
+    assert control_column(types.SimpleNamespace(rig={"kind": "sim"})) == 0
+    st = signal_stats(path, column=control_column(run))
+    # rms and kurtosis of the control column as numpy and scipy compute them
+    x = y[:, 1].astype(np.float32).astype(float)
+    assert st.rms == pytest.approx(float(np.sqrt(np.mean(x**2))), rel=1e-9)
+    assert st.kurtosis == pytest.approx(float(scipy.stats.kurtosis(x, fisher=False)), rel=1e-6)

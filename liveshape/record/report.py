@@ -431,9 +431,21 @@ class SignalStats:
     seconds: float
 
 
+def control_column(run: Any) -> int:
+    """Column of the response WAV that holds the control: the first ``control`` input of the
+    run's ``rig.inputs`` (0 for a run with one input)."""
+    inputs = (getattr(run, "rig", None) or {}).get("inputs") if isinstance(
+        getattr(run, "rig", None), Mapping) else None
+    for i, r in enumerate(inputs or ()):
+        if isinstance(r, Mapping) and r.get("role") == "control":
+            return i
+    return 0
+
+
 def signal_stats(path: Path, start_s: float = 0.0, end_s: float | None = None,
-                 *, block: int = 1 << 18) -> SignalStats | None:
-    """rms, peak, crest factor and kurtosis of the first channel of a WAV file over a stretch.
+                 *, block: int = 1 << 18, column: int = 0) -> SignalStats | None:
+    """rms, peak, crest factor and kurtosis of one channel (``column``, default the first) of a
+    WAV file over a stretch.
 
     Read in blocks (a long run's WAV need not fit in memory) and merged exactly with
     :class:`liveshape.dsp.moments.RunningMoments`. None when the stretch holds no sample.
@@ -456,7 +468,7 @@ def signal_stats(path: Path, start_s: float = 0.0, end_s: float | None = None,
                 data = fh.read(min(block, left), dtype="float64", always_2d=True)
                 if data.shape[0] == 0:
                     break
-                mom.update(data[:, 0])
+                mom.update(data[:, column])
                 left -= data.shape[0]
     except (RuntimeError, OSError) as exc:
         raise ConfigError(f"{path}: cannot read WAV ({exc})") from None
@@ -467,8 +479,10 @@ def signal_stats(path: Path, start_s: float = 0.0, end_s: float | None = None,
                        math.nan, kurtosis=mom.kurtosis, seconds=mom.n / fs)
 
 
-def _rms_track(path: Path, block_s: float = 0.5) -> tuple[np.ndarray, np.ndarray] | None:
-    """Rms of the first channel of a WAV in consecutive ``block_s`` blocks: (mid time s, rms)."""
+def _rms_track(path: Path, block_s: float = 0.5,
+               column: int = 0) -> tuple[np.ndarray, np.ndarray] | None:
+    """Rms of one channel (``column``) of a WAV in consecutive ``block_s`` blocks: (mid time s,
+    rms)."""
     import soundfile
 
     try:
@@ -478,7 +492,7 @@ def _rms_track(path: Path, block_s: float = 0.5) -> tuple[np.ndarray, np.ndarray
             t, r = [], []
             pos = 0
             for data in fh.blocks(blocksize=n, dtype="float64", always_2d=True):
-                x = data[:, 0]
+                x = data[:, column]
                 if x.size:
                     t.append((pos + x.size / 2) / fs)
                     r.append(math.sqrt(float(np.dot(x, x)) / x.size))
@@ -753,6 +767,89 @@ def draw_frf(axes: Sequence[Any], run: RunData, units: str, per_g: float = 1.0) 
             ax.axvspan(f[band][0], f[band][-1], color="#f4f4f4", zorder=0)
 
 
+def _input_names(full: Mapping[str, Any]) -> list[str]:
+    """Names of the inputs with a full-level PSD in ``full`` (the record's order)."""
+    return [k[len("input_"):-len("_psd_g2_hz")] for k in full
+            if k.startswith("input_") and k.endswith("_psd_g2_hz")]
+
+
+def _limit_points(run: RunData) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """Each limited monitor's breakpoints (Hz, g²/Hz) from the run's spec."""
+    out = {}
+    rig = run.spec.get("rig") if isinstance(run.spec, Mapping) else None
+    for r in (rig or {}).get("inputs") or ():
+        lim = r.get("limit") if isinstance(r, Mapping) else None
+        pts = lim.get("breakpoints") if isinstance(lim, Mapping) else None
+        if pts:
+            try:
+                out[str(r.get("name"))] = (np.array([float(p["f_hz"]) for p in pts]),
+                                           np.array([float(p["asd"]) for p in pts]))
+            except (KeyError, TypeError, ValueError):
+                continue
+    return out
+
+
+def draw_inputs(axes: Sequence[Any], run: RunData, asd_units: str, per_g: float = 1.0) -> None:
+    """Several inputs at full level: each input's PSD with the target and the monitors' limits
+    (notched lines shaded), each monitor's transmissibility over the first control input and its
+    coherence."""
+    full = run.full_level or {}
+    f = np.asarray(full.get("f_hz", ()), dtype=float)
+    names = _input_names(full)
+    if not names or f.size == 0:
+        for ax in axes:
+            _no_data(ax, "no full-level average of the inputs")
+        return
+    colours = ["#2f6f9f", "#c05a1a", "#4a8a3a", "#8a4a9a", "#777777"]
+    ax = axes[0]
+    ax.plot(f, np.asarray(full["target_psd_g2_hz"]) * per_g**2, color="#222222", lw=0.9,
+            ls="--", label="target")
+    limits = _limit_points(run)
+    for i, name in enumerate(names):
+        c = colours[i % len(colours)]
+        ax.plot(f, np.asarray(full[f"input_{name}_psd_g2_hz"]) * per_g**2, color=c, lw=0.9,
+                label=name)
+        if name in limits:
+            lf, la = limits[name]
+            ax.plot(lf, la * per_g**2, color=c, lw=1.4, ls=":", label=f"{name} limit")
+    notch = full.get("notch_deepest_db")
+    if notch is not None:
+        on = np.asarray(notch) < -0.25
+        for a, b in _runs(on):
+            for x in axes:
+                x.axvspan(f[a], f[b - 1], color="#f6e3c8", zorder=0)
+    ax.set_yscale("log")
+    ax.set_ylabel(f"ASD ({asd_units})", fontsize=8)
+    ax.set_title("each input at full level; shaded: lines notched by a limit", fontsize=9)
+    ax.legend(fontsize=6.5, loc="best")
+    monitors = [n for n in names if f"input_{n}_trans_mag" in full]
+    for i, name in enumerate(names):
+        if name not in monitors:
+            continue
+        c = colours[i % len(colours)]
+        axes[1].plot(f, np.asarray(full[f"input_{name}_trans_mag"]), color=c, lw=0.9, label=name)
+        axes[2].plot(f, np.asarray(full[f"input_{name}_trans_coherence"]), color=c, lw=0.8)
+    if not monitors:
+        _no_data(axes[1], "no monitor input")
+    axes[1].set_yscale("log")
+    axes[1].set_ylabel("|monitor / control|", fontsize=8)
+    axes[2].set_ylim(0, 1.05)
+    axes[2].set_ylabel("coherence", fontsize=8)
+    axes[2].set_xlabel("frequency (Hz)", fontsize=8)
+    for x in axes:
+        x.set_xscale("log")
+        _log_axis(x.xaxis)
+        x.tick_params(labelsize=7)
+        x.grid(True, which="both", color="#dddddd", lw=0.5)
+
+
+def _runs(mask: np.ndarray) -> list[tuple[int, int]]:
+    """``(start, end)`` index pairs of the runs of True in ``mask``."""
+    m = np.concatenate([[False], np.asarray(mask, dtype=bool), [False]])
+    d = np.flatnonzero(np.diff(m.astype(int)))
+    return list(zip(d[0::2], d[1::2], strict=True))
+
+
 def _line_limit_sets(tol: Tolerance) -> list[tuple[str, float, float]]:
     """``(where, alarm_db, abort_db)`` for the base limits and each tolerance band."""
     out = [("elsewhere" if tol.bands else "all lines", tol.alarm_db, tol.abort_db)]
@@ -856,7 +953,7 @@ def draw_control_rms(ax: Any, run: RunData, tol: Tolerance, ending: _Ending,
     up = run.updates
     drawn = False
     if run.response_wav is not None and g_per_fs:
-        track = _rms_track(run.response_wav)
+        track = _rms_track(run.response_wav, column=control_column(run))
         if track is not None:
             ax.plot(track[0], track[1] * g_per_fs * per_g, color="#9bb7cf", lw=0.8,
                     label="response rms, 0.5 s blocks (whole band)")
@@ -1130,7 +1227,8 @@ def _build_pages(run: RunData, figure_cls: Any, units_of: AccelUnit = G_UNIT) ->
     start, end, window_note = _signal_window(run)
     stats = {
         "drive": signal_stats(run.drive_wav, start, end) if run.drive_wav else None,
-        "response": signal_stats(run.response_wav, start, end) if run.response_wav else None,
+        "response": signal_stats(run.response_wav, start, end, column=control_column(run))
+        if run.response_wav else None,
     }
     d = _in_units(decision_spectrum(run, tol), units_of)
 
@@ -1172,11 +1270,22 @@ def _build_pages(run: RunData, figure_cls: Any, units_of: AccelUnit = G_UNIT) ->
         _no_data(p.axes((0.1, 0.1, 0.8, 0.7)), "no control update was recorded")
     pages.append(p)
 
+    if run.full_level and _input_names(run.full_level):
+        p = page("5  inputs: PSD at full level, limits and notches, transmissibility")
+        top = p.top - 0.03
+        axes = [p.axes((0.1, 0.50, 0.86, top - 0.50 - 0.02)), p.axes((0.1, 0.27, 0.86, 0.18)),
+                p.axes((0.1, 0.08, 0.86, 0.14))]
+        draw_inputs(axes, run, units, units_of.per_g)
+        for ax in axes[:2]:
+            ax.tick_params(labelbottom=False)
+        pages.append(p)
     lines = _event_lines(run)
     chunks = [lines[i:i + EVENT_LINES_PER_PAGE]
               for i in range(0, len(lines), EVENT_LINES_PER_PAGE)]
+    first_log = len(pages)
     for k, chunk in enumerate(chunks, start=1):
-        p = page(f"{4 + k}  event log ({k} of {len(chunks)}): run time (s), kind, message")
+        p = page(f"{first_log + k}  event log ({k} of {len(chunks)}): run time (s), kind, "
+                 "message")
         for i, (line, colour) in enumerate(chunk):
             p.fig.text(0.06, p.top - 0.01 - i * 0.0108, line, fontsize=6.8, va="top",
                        family="monospace", color=colour)
@@ -1304,4 +1413,6 @@ def _write_pngs(run: RunData, out: Path, figure_cls: Any, canvas_cls: Any,
     save("convergence", (8.0, 7.0), lambda a: (draw_line_error(a[0], run, tol),
                                                 draw_rms_error(a[1], run, tol)), 2)
     save("level", (8.0, 3.5), lambda a: draw_level(a[0], run, ending))
+    if run.full_level and _input_names(run.full_level):
+        save("inputs", (8.0, 7.0), lambda a: draw_inputs(a, run, asd_units, units_of.per_g), 3)
     return pngs

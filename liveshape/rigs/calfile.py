@@ -149,6 +149,34 @@ UNCALIBRATED = ChainCalibration(out_v_per_fs=1.0, in_v_per_fs=1.0, accel_mv_per_
                                 loop_delay_samples=None, calibrated=False, source="uncalibrated")
 
 
+def check_inputs_calibrated(cal: ChainCalibration, roles: Any) -> None:
+    """Every accelerometer input beyond the first control has its own sensitivity in ``cal``.
+
+    A rig with several inputs (``rig.inputs``) reads each accelerometer in g through its own mV/g.
+    The first control input may use the chain's (``accelerometer.mv_per_g``); every other
+    control or monitor input needs an ``inputs`` entry with ``mv_per_g``, or its g, and any limit
+    on it, would silently use another sensor's sensitivity. A reference input without an entry
+    uses ``input.v_per_fs``. An uncalibrated run is not checked (its levels are full scale).
+
+    Raises
+    ------
+    ConfigError
+        One line naming the calibration file, the input and what to add.
+    """
+    if not cal.calibrated or roles is None or len(roles) < 2:
+        return
+    own = {c.channel for c in cal.inputs if c.mv_per_g is not None}
+    first = next(r.channel for r in roles if r.role == "control")
+    for r in roles:
+        if r.role in ("control", "monitor") and r.channel != first and r.channel not in own:
+            guard = " and its limit would not protect the item" if r.limit is not None else ""
+            raise ConfigError(
+                f"{cal.source}: inputs has no entry with mv_per_g for {r.role} input "
+                f"{r.channel} ({r.name}): its g would use another sensor's sensitivity{guard}; "
+                f"add {{channel: {r.channel}, v_per_fs: ..., mv_per_g: ...}} under inputs "
+                "(see calibration/README.md)")
+
+
 def resolve_calibration(path: Any, uncalibrated: bool) -> ChainCalibration:
     """The calibration an audio run uses.
 
