@@ -22,7 +22,6 @@ import numpy as np
 import pytest
 import scipy.signal
 
-from liveshape.control.survey import compare_inputs
 from liveshape.dsp.resonance import find_resonances, h1_magnitude_error
 from liveshape.record.surveyfile import read_survey
 from liveshape.rigs.plantmodel import mode_transmissibility_tf
@@ -167,6 +166,8 @@ def test_the_reference_gives_the_cards_output_gain(before):
 @pytest.mark.parametrize("shift, flagged", [(1.03, True), (1.005, False)])
 def test_compare_flags_a_3pct_shift_on_the_monitor_not_a_half_pct_one(before, tmp_path, shift,
                                                                        flagged):
+    from liveshape.control.survey import compare_inputs
+
     _, _, b = before
     _, _, a = survey(tmp_path, 4, shift)
     groups = dict(compare_inputs(read_survey(b), read_survey(a)))
@@ -176,11 +177,11 @@ def test_compare_flags_a_3pct_shift_on_the_monitor_not_a_half_pct_one(before, tm
         (c,) = groups[name]
         assert c.after is not None
         assert bool(c.flagged) is flagged
-    # the transmissibility peak is the bracket's own mode: it moves by the fault's factor
-    # (within 0.6 %, as the one-input compare test); the monitor's peak from the drive is a mode
-    # of the whole table and payload and moves a little less
-    assert groups["bracket/T"][0].shift_pct == pytest.approx(100 * (shift - 1), abs=0.6)
-    assert 0 < groups["bracket"][0].shift_pct <= 100 * (shift - 1) + 0.6
+    # the transmissibility peak is the bracket's own mode: it moves by the fault's factor; the
+    # monitor's peak from the drive is a mode of table and payload together, which moves by
+    # about as much (both within 0.6 %, the bound of the one-input compare test)
+    for name in ("bracket", "bracket/T"):
+        assert groups[name][0].shift_pct == pytest.approx(100 * (shift - 1), abs=0.6)
 
 
 def cli(*args: str) -> subprocess.CompletedProcess:
