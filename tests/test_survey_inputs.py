@@ -216,9 +216,19 @@ def test_run_survey_before_and_after_without_a_fault(tmp_path):
     assert [note["before"], note["after"]] == [str(s) for s in surveys]
     assert note["compare"]["flagged"] == 0
     events = [json.loads(ln) for ln in (run / "events.jsonl").read_text().splitlines()]
-    assert any(e["kind"] == "survey_before" and e["data"]["folder"] == str(surveys[0])
-               for e in events)
-    assert json.loads((surveys[1] / "survey.json").read_text())["run_dir"] == str(run)
+    assert events[0]["kind"] == "survey_before"
+    assert events[0]["data"]["folder"] == str(surveys[0])
+    first, second = (json.loads((s / "survey.json").read_text()) for s in surveys)
+    assert second["run_dir"] == str(run)
+    # the second survey draws new noise: the simulated rig would otherwise repeat the first
+    assert second["settings"]["seed"] == first["settings"]["seed"] + 1
+
+
+def test_run_survey_is_refused_with_a_bring_up_hold(tmp_path):
+    p = cli("run", str(EXAMPLE), "--fast", "--survey", "--bring-up", "--out", str(tmp_path))
+    lines = [ln for ln in p.stderr.splitlines() if ln.strip()]
+    assert p.returncode == 2 and len(lines) == 1 and "--unattended" in lines[0], p.stderr
+    assert not any(tmp_path.iterdir())
 
 
 def test_run_survey_flags_a_shift_that_happens_during_the_run(tmp_path):
