@@ -200,8 +200,11 @@ def test_cli_compare_names_the_input(before, tmp_path):
 
 
 def folders(out: Path) -> tuple[list[Path], list[Path]]:
-    runs = sorted(p for p in out.iterdir() if p.is_dir() and not p.name.endswith("-survey"))
-    surveys = sorted(p for p in out.iterdir() if p.name.endswith("-survey"))
+    """Run folders and survey folders under ``out`` (a folder made in the same second as
+    another gets ``-2``: tell them by their files)."""
+    runs = sorted(p for p in out.iterdir() if (p / "run.json").is_file())
+    surveys = sorted(p for p in out.iterdir() if (p / "survey.json").is_file())
+    assert len(runs) + len(surveys) == len(list(out.iterdir()))
     return runs, surveys
 
 
@@ -213,7 +216,8 @@ def test_run_survey_before_and_after_without_a_fault(tmp_path):
     (run,), surveys = folders(tmp_path)
     assert len(surveys) == 2
     note = json.loads((run / "surveys.json").read_text())
-    assert [note["before"], note["after"]] == [str(s) for s in surveys]
+    assert {note["before"], note["after"]} == {str(s) for s in surveys}
+    surveys = [Path(note["before"]), Path(note["after"])]
     assert note["compare"]["flagged"] == 0
     events = [json.loads(ln) for ln in (run / "events.jsonl").read_text().splitlines()]
     assert events[0]["kind"] == "survey_before"
