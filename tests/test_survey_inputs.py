@@ -258,3 +258,37 @@ def test_no_survey_after_an_aborted_run(tmp_path):
     (run,), surveys = folders(tmp_path)
     assert len(surveys) == 1
     assert json.loads((run / "surveys.json").read_text())["after"] is None
+
+
+def test_a_card_survey_reads_every_input_in_list_order(tmp_path, monkeypatch):
+    # a fake card (tests/test_audio_inputs.py) puts a level of its own on every card input, so
+    # each input's rms tells which card channel its column came from
+    import types
+
+    from test_audio_inputs import CARD, ChannelStream, FakePortAudioError, FakeStop, pattern
+
+    from liveshape.rigs import audio, devices
+
+    ChannelStream.instances = []
+    monkeypatch.setattr(audio, "import_sounddevice", lambda: types.SimpleNamespace(
+        Stream=ChannelStream, CallbackStop=FakeStop, PortAudioError=FakePortAudioError))
+    monkeypatch.setattr(audio, "check_settings", lambda device, fs, **kw: devices.check_settings(
+        None, device, fs, devices=[CARD], **kw))
+    text = EXAMPLE.read_text().replace(
+        "rig:\n  kind: sim\n  plant: loudspeaker\n",
+        "rig:\n  kind: audio\n  device: four\n  uncalibrated: true\n  inputs:\n"
+        "    - {channel: 3, role: control, name: table}\n"
+        "    - {channel: 1, role: monitor, name: bracket}\n"
+        "    - {channel: 2, role: reference, name: loop}\n")
+    (tmp_path / "a.yaml").write_text(text)
+    spec = load_spec(tmp_path / "a.yaml")
+    settings = survey_settings(spec, duration_s=1.0, frame_length=4096)
+    res, root = run_survey(spec, settings, out_dir=tmp_path / "out")
+    assert ChannelStream.instances[-1].n_in == 3  # card inputs 3, 1 and 2
+    assert [r.name for r in res.inputs] == ["table", "bracket", "loop"]
+    for r, card_input in zip(res.inputs, (3, 1, 2), strict=True):
+        expect = float(np.sqrt(np.mean(pattern(card_input - 1, np.arange(1024)) ** 2.0)))
+        assert r.response_rms_fs == pytest.approx(expect, rel=5e-3), r.name
+    meta = json.loads((root / "survey.json").read_text())
+    assert [(e["channel"], e["role"]) for e in meta["rig"]["inputs"]] == [
+        (3, "control"), (1, "monitor"), (2, "reference")]
