@@ -97,6 +97,13 @@ def test_every_input_is_surveyed_and_recorded(before):
     assert rec.inputs["bracket"]["trans_resonances"] == bracket.trans_resonances
     meta = json.loads((root / "survey.json").read_text())
     assert [e["name"] for e in meta["inputs"]] == ["table", "bracket", "loop"]
+    # what `survey SPEC` prints: every resonance row names its input
+    from liveshape.views.surveytext import survey_lines
+
+    lines = survey_lines(res, root, survey_settings(spec, seed=3))
+    assert sum(ln.startswith("bracket ") for ln in lines) == len(bracket.resonances)
+    assert sum(ln.startswith("bracket/T ") for ln in lines) == len(bracket.trans_resonances)
+    assert any(ln.startswith("loop ") and "output gain" in ln for ln in lines)
 
 
 def test_the_monitors_transmissibility_follows_the_base_excitation_formula(before):
