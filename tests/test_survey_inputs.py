@@ -265,6 +265,8 @@ def test_no_survey_after_an_aborted_run(tmp_path):
     (run,), surveys = folders(tmp_path)
     assert len(surveys) == 1
     assert json.loads((run / "surveys.json").read_text())["after"] is None
+    # the exit status is the run's own
+    assert p.returncode == json.loads((run / "summary.json").read_text())["exit_status"]
 
 
 def test_a_card_survey_reads_every_input_in_list_order(tmp_path, monkeypatch):
