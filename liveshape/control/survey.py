@@ -29,7 +29,7 @@ import numpy as np
 
 from liveshape.control.runstate import frozen_array
 from liveshape.dsp.delay import estimate_delay
-from liveshape.dsp.resonance import Resonance, find_resonances
+from liveshape.dsp.resonance import Resonance, compare_resonances, find_resonances
 from liveshape.dsp.spectra import CrossSpectrum, welch_dof
 from liveshape.dsp.synth import RandomPhaseSynth
 from liveshape.errors import ConfigError
@@ -341,13 +341,12 @@ def compare_inputs(before: Any, after: Any, *, shift_pct: float = 2.0,
     ``before`` and ``after`` have ``resonances`` (the first control input's) and ``inputs``
     (name -> ``{"resonances", "trans_resonances"}``; empty for one-input surveys). Returns
     ``(label, changes)`` groups (:func:`liveshape.dsp.resonance.compare_resonances`): one group
-    labelled None for two one-input surveys (exactly the plain compare); otherwise one per input
-    present in both, by name, its FRF from the drive (label ``NAME``) and, for inputs with one,
-    its transmissibility over the first control input (label ``NAME/T``). An input of the first
-    survey missing from the second is a group whose every feature is flagged as not found.
+    labelled None when either survey has one input (exactly the plain compare, of the first
+    control inputs); otherwise one per input of the first survey, by name, its FRF from the
+    drive (label ``NAME``) and, for inputs with one, its transmissibility over the first
+    control input (label ``NAME/T``). An input of the first survey missing from the second is a
+    group whose every feature is flagged as not found.
     """
-    from liveshape.dsp.resonance import compare_resonances
-
     kw = {"shift_pct": shift_pct, "peak_drop_db": peak_drop_db}
     bi, ai = dict(before.inputs or {}), dict(after.inputs or {})
     if not bi or not ai:
