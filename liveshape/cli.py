@@ -323,6 +323,16 @@ def _cmd_run(args: argparse.Namespace) -> int:
         check_audio_map(spec)  # a device must be named, and have the map's channels
     # Guided bring-up: on a real rig unless --unattended, on the simulated rig with --bring-up.
     hold = (spec.rig.kind == "audio" and not args.unattended) or bool(args.bring_up)
+    survey = None
+    if args.survey:
+        if hold:
+            raise ConfigError(
+                "run --survey: the surveys play at the amplifier gain as it is set, but the "
+                "bring-up that sets it would come after the first survey; set the gain first "
+                "and add --unattended (simulated rig: leave out --bring-up)")
+        from liveshape.session import survey_settings
+
+        survey = survey_settings(spec)  # the defaults of `liveshape survey SPEC`
     if hold and not _stdin_is_terminal():
         raise ConfigError(
             f"run --rig {args.rig or spec.rig.kind}: the bring-up waits for Enter once the "
@@ -376,19 +386,114 @@ def _cmd_run(args: argparse.Namespace) -> int:
         kwargs["warm_start"] = args.warm_start
     if hold:
         kwargs["bring_up"] = _enter_flag()
+    before = None
+    if survey is not None:
+        before = _survey_before_run(spec, survey, args)
+        if before[0].status != "completed":
+            sys.stderr.write(f"liveshape: the survey before the run was {before[0].status} "
+                             f"({before[0].stop_reason}); the test was not run\n")
+            return before[0].exit_status
+        kwargs.setdefault("start_events", [])
+        kwargs["start_events"] = [*kwargs["start_events"], (
+            "survey_before", f"survey before the run: {before[1]}",
+            {"folder": str(before[1]), "resonances": len(before[0].resonances)})]
     if args.json:
         meter = _MeterLines(spec.safety.connect_level_fs, ACCEL_UNITS[args.units])
         session = runner(spec, out_dir=args.out, on_snapshot=meter if hold else None, **kwargs)
-        _print_json(session.summary())
+        summary = session.summary()
     else:
         console = dashboard.make_console()
         with dashboard.LiveView(console, units=ACCEL_UNITS[args.units]) as view:
             session = runner(spec, out_dir=args.out, on_snapshot=view.update, **kwargs)
-        console.print(dashboard.run_summary(session.summary(), ACCEL_UNITS[args.units]))
+        summary = session.summary()
+        console.print(dashboard.run_summary(summary, ACCEL_UNITS[args.units]))
         console.print(f"record: {session.run_dir}  (liveshape report {session.run_dir})")
     if session.record_error is not None:
         sys.stderr.write(f"liveshape: {session.record_error}\n")
-    return session.result.exit_status
+    status = session.result.exit_status
+    if before is not None and survey is not None:
+        flagged, surveys = _survey_after_run(spec, survey, args, session, before[1])
+        if args.json:
+            summary["surveys"] = surveys
+        if status == 0 and surveys.get("after_status") not in (None, "completed"):
+            status = 130
+        elif status == 0 and flagged:
+            status = SURVEY_FLAGGED_EXIT
+    if args.json:
+        _print_json(summary)
+    return status
+
+
+def _note(write: Any, run_dir: Any, data: dict[str, Any]) -> None:
+    """Write the run folder's surveys.json; one line on stderr when it cannot be written."""
+    if write(run_dir, data) is None:
+        sys.stderr.write(f"liveshape: {run_dir}: surveys.json not written (the survey folders "
+                         "are named above)\n")
+
+
+def _survey_before_run(spec: Any, settings: Any, args: argparse.Namespace) -> tuple[Any, Any]:
+    """``run --survey``: the survey before the test (no injected fault: fault times count from
+    the start of the run); prints its lines unless ``--json``."""
+    import dataclasses as _dc
+
+    from liveshape.session import run_survey
+    from liveshape.views.surveytext import survey_lines
+
+    result, folder = run_survey(_dc.replace(spec, faults=()), settings, out_dir=args.out,
+                                identity={"operator": args.operator,
+                                          "test_item": args.test_item,
+                                          "survey_of_run": "before"})
+    if not args.json:
+        sys.stdout.write("\n".join(["survey before the run:",
+                                    *survey_lines(result, folder, settings)]) + "\n")
+    return result, folder
+
+
+def _survey_after_run(spec: Any, settings: Any, args: argparse.Namespace, session: Any,
+                      before_folder: Any) -> tuple[int, dict[str, Any]]:
+    """``run --survey``: after a completed run, the second survey (meeting the injected faults
+    as they stand at the end of the run), the compare, and ``surveys.json`` in the run folder.
+    Returns the flag count and what ``--json`` adds to the summary."""
+    import dataclasses as _dc
+
+    from liveshape.record.surveyfile import note_run_surveys, read_survey
+    from liveshape.session import faults_after_run, run_survey
+    from liveshape.views.surveytext import survey_lines
+
+    out: dict[str, Any] = {"before": str(before_folder), "after": None, "after_status": None,
+                           "compare": None}
+    r = session.result
+    if r.status != "completed":
+        sys.stderr.write(f"liveshape: no survey after the run: it did not complete "
+                         f"({r.status}{', ' + r.abort_reason if r.abort_reason else ''})\n")
+        out["note"] = "no survey after a run that did not complete"
+        _note(note_run_surveys, session.run_dir, out)
+        return 0, out
+    faults = faults_after_run(spec.faults, float(session.rig.get("t_s") or 0.0))
+    if settings.seed is not None:  # new noise: the simulated rig would repeat the first survey
+        settings = _dc.replace(settings, seed=settings.seed + 1)
+    result, folder = run_survey(_dc.replace(spec, faults=faults), settings, out_dir=args.out,
+                                identity={"operator": args.operator,
+                                          "test_item": args.test_item,
+                                          "survey_of_run": "after",
+                                          "run_dir": str(session.run_dir)})
+    out.update(after=str(folder), after_status=result.status)
+    if not args.json:
+        sys.stdout.write("\n".join(["survey after the run:",
+                                    *survey_lines(result, folder, settings)]) + "\n")
+    if result.status != "completed":
+        sys.stderr.write(f"liveshape: the survey after the run was {result.status}; "
+                         "no compare\n")
+        _note(note_run_surveys, session.run_dir, out)
+        return 0, out
+    flagged, data, lines = _survey_compare(read_survey(before_folder), read_survey(folder),
+                                           2.0, 0.92)
+    out["compare"] = data
+    _note(note_run_surveys, session.run_dir, out)
+    if not args.json:
+        sys.stdout.write("\n".join(["compare of the surveys before and after the run:",
+                                    *lines]) + "\n")
+    return flagged, out
 
 
 def _channel_overrides(args: argparse.Namespace) -> dict[str, Any]:
@@ -504,19 +609,14 @@ def _cmd_survey(args: argparse.Namespace) -> int:
     import dataclasses as _dc
 
     if args.compare:
-        from liveshape.dsp.resonance import compare_resonances
         from liveshape.record.surveyfile import read_survey
-        from liveshape.views.surveytext import compare_lines
 
         before, after = (read_survey(p) for p in args.compare)
-        changes = compare_resonances(before.resonances, after.resonances,
-                                     shift_pct=args.shift_pct, peak_drop_db=args.drop_db)
-        flagged = sum(bool(c.flagged) for c in changes)
+        flagged, data, lines = _survey_compare(before, after, args.shift_pct, args.drop_db)
         if args.json:
-            _print_json({"before": str(before.root), "after": str(after.root),
-                         "changes": [_dc.asdict(c) for c in changes], "flagged": flagged})
+            _print_json(data)
         else:
-            sys.stdout.write("\n".join(compare_lines(changes, before.root, after.root)) + "\n")
+            sys.stdout.write("\n".join(lines) + "\n")
         return SURVEY_FLAGGED_EXIT if flagged else 0
     if args.spec is None:
         raise ConfigError("survey: give a test definition SPEC, or --compare BEFORE AFTER")
@@ -550,9 +650,15 @@ def _cmd_survey(args: argparse.Namespace) -> int:
                                 identity={"operator": args.operator,
                                           "test_item": args.test_item})
     if args.json:
-        _print_json({"status": result.status, "record": str(folder), "dof": result.dof,
-                     "delay_samples": result.delay_samples,
-                     "resonances": [_dc.asdict(r) for r in result.resonances]})
+        data = {"status": result.status, "record": str(folder), "dof": result.dof,
+                "delay_samples": result.delay_samples,
+                "resonances": [_dc.asdict(r) for r in result.resonances]}
+        if result.inputs:
+            data["inputs"] = [{"name": r.name, "channel": r.channel, "role": r.role,
+                               "resonances": [_dc.asdict(x) for x in r.resonances],
+                               "trans_resonances": [_dc.asdict(x) for x in r.trans_resonances]}
+                              for r in result.inputs]
+        _print_json(data)
     else:
         sys.stdout.write("\n".join(survey_lines(result, folder, settings)) + "\n")
     return result.exit_status
@@ -560,6 +666,28 @@ def _cmd_survey(args: argparse.Namespace) -> int:
 
 #: Exit status of ``survey --compare`` when a change was flagged.
 SURVEY_FLAGGED_EXIT = 5
+
+
+def _survey_compare(before: Any, after: Any, shift_pct: float,
+                    drop_db: float) -> tuple[int, dict[str, Any], list[str]]:
+    """Flag count, JSON and text lines of the compare of two survey records (input by input
+    when both have several inputs)."""
+    import dataclasses as _dc
+
+    from liveshape.control.survey import compare_inputs
+    from liveshape.views.surveytext import compare_input_lines
+
+    groups = compare_inputs(before, after, shift_pct=shift_pct, peak_drop_db=drop_db)
+    flagged = sum(bool(c.flagged) for _, changes in groups for c in changes)
+    data: dict[str, Any] = {"before": str(before.root), "after": str(after.root)}
+    if len(groups) == 1 and groups[0][0] is None:
+        data["changes"] = [_dc.asdict(c) for c in groups[0][1]]
+    else:
+        data["inputs"] = [{"input": name, "changes": [_dc.asdict(c) for c in changes],
+                           "flagged": sum(bool(c.flagged) for c in changes)}
+                          for name, changes in groups]
+    data["flagged"] = flagged
+    return flagged, data, compare_input_lines(groups, before.root, after.root)
 
 
 def _cmd_report(args: argparse.Namespace) -> int:
@@ -1041,6 +1169,11 @@ def build_parser() -> argparse.ArgumentParser:
                    help="start from the equalized drive of an earlier completed run on the same "
                    "rig and calibration (confirmed by a short identification; refused when the "
                    "rig, calibration, sample rate or lines differ)")
+    r.add_argument("--survey", action="store_true",
+                   help="run a resonance survey (the defaults of liveshape survey SPEC) before "
+                   "the test and, when the test completed, another after it, and compare them "
+                   "(exit 5 when a shift is flagged and the run itself ended with 0); the run "
+                   "folder's surveys.json names both survey folders")
     r.add_argument("--record", choices=("full", "spectra"), default="full",
                    help="full (default): spectra, events and the drive and response WAVs "
                    "(about 1.3 GB per hour at 48 kHz); spectra: everything but the WAVs")

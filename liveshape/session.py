@@ -625,6 +625,39 @@ def survey_settings(
                           seed=spec.seed if seed is None else seed)
 
 
+def _survey_g_per_fs(cal: ChainCalibration, roles: Sequence[Any] | None) -> float:
+    """g per FS of the survey's first control input (one input: the chain's, as before)."""
+    if roles is None:
+        return cal.g_per_fs
+    first = next(r for r in roles if r.role == "control")
+    return cal.g_per_fs_at(first.channel)
+
+
+def faults_after_run(faults: Sequence[Any], run_s: float) -> tuple[Any, ...]:
+    """The faults of a run as they stand when it ended, on the clock of a survey after it.
+
+    Fault times count from the start of the run. A survey after the run meets every fault
+    still in effect at ``run_s``: one without a duration (or an ``amp_trip``) from its start,
+    one with a duration for what is left of it; a ``dac_gain`` drift is held at the gain it
+    reached. Faults that ended, or start after ``run_s``, are gone.
+    """
+    out = []
+    for f in faults:
+        at = float(f.at_s)
+        if at >= run_s:
+            continue
+        dur = f.duration_s
+        if f.kind == "dac_gain" and dur is not None:  # a drift, then held
+            frac = min(1.0, (run_s - at) / float(dur))
+            out.append(dataclasses.replace(f, at_s=0.0, value=float(f.value) * frac,
+                                           duration_s=None))
+        elif dur is None or f.kind == "amp_trip":
+            out.append(dataclasses.replace(f, at_s=0.0))
+        elif at + float(dur) > run_s:
+            out.append(dataclasses.replace(f, at_s=0.0, duration_s=at + float(dur) - run_s))
+    return tuple(out)
+
+
 def run_survey(
     spec: TestSpec,
     settings: Any,
@@ -638,7 +671,10 @@ def run_survey(
 
     ``settings`` come from :func:`survey_settings`. The same
     :class:`~liveshape.control.survey.SurveySource` runs on the simulated rig and through an
-    audio device. Returns ``(SurveyResult, folder)``.
+    audio device. With more than one input in ``rig.inputs`` every input is read (the
+    simulated rig's :meth:`~liveshape.rigs.sim.SimRig.process_inputs`; on a card the inputs in
+    list order, as :func:`run_audio_session` reads them) and analysed
+    (:class:`~liveshape.control.survey.SurveySource`). Returns ``(SurveyResult, folder)``.
     """
     from liveshape.control.survey import SurveySource
     from liveshape.record.surveyfile import write_survey
@@ -649,17 +685,22 @@ def run_survey(
     ident = {"software_version": __version__, "spec_file": spec.source or None,
              "spec_sha256": file_sha256(spec.source), "operator": None, "test_item": None,
              **(identity or {})}
+    roles = spec.rig.input_roles() if spec.rig.inputs is not None and \
+        len(spec.rig.inputs) > 1 else None
     if spec.rig.kind == "sim":
         rig, cal, rig_mapping = build_sim_rig(spec, seed)
         b = block_size or SIM_BLOCK
-        src = SurveySource(settings, g_per_fs=cal.g_per_fs, block_size=b)
-        response = np.zeros(b)
+        src = SurveySource(settings, g_per_fs=_survey_g_per_fs(cal, roles), block_size=b,
+                           roles=roles, calibration=cal)
+        several = roles is not None
+        response = np.zeros((b, len(roles))) if several else np.zeros(b)
         with sigterm_stops(stop):
             while not src.finished:
                 try:
                     if stop.is_set():
                         src.request_stop(stop.reason)
-                    response = rig.process(src.exchange(response))
+                    drive = src.exchange(response)
+                    response = rig.process_inputs(drive).T if several else rig.process(drive)
                 except KeyboardInterrupt:
                     stop.set("Ctrl-C")
         result = src.result()
@@ -671,11 +712,19 @@ def run_survey(
         info = check_audio_map(spec)  # first: no device named is the first error
         cal = resolve_calibration(spec.rig.calibration, spec.rig.uncalibrated)
         b = block_size or AUDIO_BLOCK
-        audio = AudioRig(info.index, fs, block_size=b, **audio_channels(spec.rig.channel_map()))
-        src = SurveySource(settings, g_per_fs=cal.g_per_fs, block_size=b)
+        # several inputs: every one read, in rig.inputs order, as run_audio_session does
+        chans = audio_channels(spec.rig.channel_map(),
+                               audio_inputs(spec) if roles is not None else None)
+        audio = AudioRig(info.index, fs, block_size=b, **chans)
+        src = SurveySource(settings, g_per_fs=_survey_g_per_fs(cal, roles), block_size=b,
+                           roles=roles, calibration=cal)
         rig_mapping = {"kind": "audio", "device": info.name, "device_index": info.index,
                        "host_api": info.host_api, "fs_hz": fs, "block_size": b,
                        **spec.rig.channel_map()}
+        if roles is not None:
+            from liveshape.testdef.inputs import inputs_to_list
+
+            rig_mapping["inputs"] = inputs_to_list(roles)
         with sigterm_stops(stop):
             result = audio.run(src, should_stop=stop.is_set)
     folder = write_survey(out_dir, name=spec.name, result=result, settings=settings,

@@ -7,23 +7,34 @@ real card run it the same way as a test. It plays band-limited flat random noise
 response in preallocated buffers, and at the end estimates the loop delay (cross-correlation),
 the FRF H1 and the coherence (Welch, Hann 50 %, aligned by the delay) and finds the resonances
 (:func:`liveshape.dsp.resonance.find_resonances`).
+
+With several inputs (``roles``, the rig's :class:`~liveshape.testdef.inputs.InputRole` list, and
+``(samples, inputs)`` response blocks, columns in the roles' order) the first control input is
+analysed exactly as the one input of a plain survey; every other input adds its own FRF from the
+drive (same loop delay: one card samples every input), its resonances, and for control and
+monitor inputs the transmissibility over the first control input, ``T = G_cm / G_cc`` with the
+coherence ``|G_cm|² / (G_cc G_mm)`` (Bendat & Piersol, *Random Data*, 4th ed., §9.1). A
+reference input (the drive's loopback) gives the FRF from the digital drive to the drive as it
+left the card, in drive FS per FS: the card's output gain per line.
 """
 
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
 from liveshape.control.runstate import frozen_array
 from liveshape.dsp.delay import estimate_delay
-from liveshape.dsp.resonance import Resonance, find_resonances
+from liveshape.dsp.resonance import Resonance, compare_resonances, find_resonances
 from liveshape.dsp.spectra import CrossSpectrum, welch_dof
 from liveshape.dsp.synth import RandomPhaseSynth
 from liveshape.errors import ConfigError
 
-__all__ = ["SurveyResult", "SurveySettings", "SurveySource"]
+__all__ = ["InputSurvey", "SurveyResult", "SurveySettings", "SurveySource", "compare_inputs"]
 
 #: Fade in and out of the survey drive, s.
 SURVEY_FADE_S = 0.25
@@ -64,13 +75,43 @@ class SurveySettings:
 
 
 @dataclass(frozen=True)
+class InputSurvey:
+    """What a survey measured at one input of a rig with several inputs.
+
+    ``h1`` is the FRF from the drive (g/FS; a reference input: drive FS per drive FS, the card's
+    output gain) with its ``coherence`` on the survey's lines and its ``resonances``;
+    ``trans`` the transmissibility over the first control input (g/g) with ``trans_coherence``
+    and ``trans_resonances`` (None and empty for the first control input and the reference);
+    ``response_rms_fs`` over the analysed stretch.
+    """
+
+    name: str
+    channel: int
+    role: str
+    h1: np.ndarray
+    coherence: np.ndarray
+    resonances: tuple[Resonance, ...]
+    trans: np.ndarray | None
+    trans_coherence: np.ndarray | None
+    trans_resonances: tuple[Resonance, ...]
+    response_rms_fs: float
+
+    @property
+    def units(self) -> str:
+        """Units of :attr:`h1` (``g/FS``, or ``FS/FS`` for the reference)."""
+        return "FS/FS" if self.role == "reference" else "g/FS"
+
+
+@dataclass(frozen=True)
 class SurveyResult:
     """What a survey measured.
 
     ``f_hz``, ``h1`` (g/FS with the calibration given, else response FS per drive FS),
     ``coherence`` on the band lines; ``dof`` of the estimate; ``delay_samples`` found;
     ``resonances``; ``status`` (``completed`` or ``stopped``) and ``stop_reason``;
-    ``response_rms_fs`` and ``drive_rms_fs`` over the analysed stretch.
+    ``response_rms_fs`` and ``drive_rms_fs`` over the analysed stretch (all of the first
+    control input); ``inputs``: every input of a rig with several inputs, in the roles' order
+    (empty for one input).
     """
 
     f_hz: np.ndarray
@@ -83,6 +124,7 @@ class SurveyResult:
     stop_reason: str | None
     drive_rms_fs: float
     response_rms_fs: float
+    inputs: tuple[InputSurvey, ...] = ()
 
     @property
     def exit_status(self) -> int:
@@ -99,10 +141,18 @@ class SurveySource:
         Response g per input FS (1.0 leaves the FRF in FS/FS).
     block_size : int
         Samples per :meth:`exchange`.
+    roles : sequence of InputRole, optional
+        The rig's inputs (:meth:`liveshape.testdef.spec.RigSelection.input_roles`); with more
+        than one, :meth:`exchange` takes ``(samples, len(roles))`` blocks and every input is
+        analysed. ``g_per_fs`` then applies to the first control input.
+    calibration : ChainCalibration, optional
+        With ``roles``: each input's g per FS (:meth:`g_per_fs_at`) and the reference's drive FS
+        per FS (:meth:`drive_fs_per_input_fs`); None: 1.0 for every other input.
     """
 
     def __init__(self, settings: SurveySettings, *, g_per_fs: float = 1.0,
-                 block_size: int = 1024) -> None:
+                 block_size: int = 1024, roles: Sequence[Any] | None = None,
+                 calibration: Any = None) -> None:
         s = settings
         self.settings = s
         self.fs_hz = fs = float(s.fs_hz)
@@ -122,13 +172,36 @@ class SurveySource:
         self._drive_end = self._fade + int(round(s.duration_s * fs))  # fade-out starts here
         total = self._drive_end + self._fade + self._max_lag + self._b
         self._drive = np.zeros(total + self._b)
-        self._resp = np.zeros(total + self._b)
+        self._roles = tuple(roles) if roles is not None and len(roles) > 1 else ()
+        if self._roles:
+            self._primary = next(i for i, r in enumerate(self._roles) if r.role == "control")
+            self._scale = [self._input_scale(r, calibration) for r in self._roles]
+            self._scale[self._primary] = self._g
+            self._rows = np.zeros((len(self._roles), total + self._b))
+            self._resp = self._rows[self._primary]  # a view: the first control input
+        else:
+            self._resp = np.zeros(total + self._b)
         self._n_out = 0
         self._n_in = 0
         self._fading_out = False
         self._stop_reason: str | None = None
         self._finished = False
         self._result: SurveyResult | None = None
+
+    @staticmethod
+    def _input_scale(role: Any, calibration: Any) -> float:
+        """g per FS of an accelerometer input, drive FS per FS of the reference (1.0 without a
+        calibration)."""
+        if calibration is None:
+            return 1.0
+        if role.role == "reference":
+            return float(calibration.drive_fs_per_input_fs(role.channel))
+        return float(calibration.g_per_fs_at(role.channel))
+
+    @property
+    def n_inputs(self) -> int:
+        """Columns of the response blocks :meth:`exchange` takes (1: a 1-D block)."""
+        return len(self._roles) or 1
 
     # -- the controller's block interface ------------------------------------------------
     @property
@@ -152,11 +225,23 @@ class SurveySource:
             self._drive_end = min(self._drive_end, self._n_out)
 
     def exchange(self, response: np.ndarray) -> np.ndarray:
-        """Take one response block, return the next drive block (FS)."""
-        y = np.asarray(response, dtype=float).ravel()
-        room = self._resp.size - self._n_in
-        k = min(y.size, room)
-        self._resp[self._n_in: self._n_in + k] = y[:k]
+        """Take one response block, return the next drive block (FS).
+
+        With several inputs the block is ``(samples, inputs)``, columns in the roles' order.
+        """
+        if self._roles:
+            rows = np.asarray(response, dtype=float)
+            if rows.ndim != 2 or rows.shape[1] != len(self._roles):
+                raise ValueError(f"survey: response block of shape {rows.shape}; expected "
+                                 f"(samples, {len(self._roles)})")
+            room = self._rows.shape[1] - self._n_in
+            k = min(rows.shape[0], room)
+            self._rows[:, self._n_in: self._n_in + k] = rows[:k].T
+        else:
+            y = np.asarray(response, dtype=float).ravel()
+            room = self._resp.size - self._n_in
+            k = min(y.size, room)
+            self._resp[self._n_in: self._n_in + k] = y[:k]
         self._n_in += k
         b = self._b
         if not self._fading_out and self._n_out + b > self._drive_end:
@@ -199,9 +284,78 @@ class SurveySource:
         coh = np.nan_to_num(cs.coherence[lines], nan=0.0)
         dof = welch_dof(cs.n_segments)
         res = find_resonances(f, h1, coh, dof, band_hz=s.band_hz)
+        inputs = self._analyse_inputs(a, b, d, lines, f, dof, h1, coh, res) if self._roles \
+            else ()
         return SurveyResult(
             f_hz=frozen_array(f), h1=frozen_array(h1, complex), coherence=frozen_array(coh),
             dof=float(dof), delay_samples=int(d), resonances=res, status=status,
             stop_reason=self._stop_reason,
             drive_rms_fs=float(np.sqrt(np.mean(x[a:b] ** 2))),
-            response_rms_fs=float(np.sqrt(np.mean(y[a + d:b + d] ** 2))))
+            response_rms_fs=float(np.sqrt(np.mean(y[a + d:b + d] ** 2))), inputs=inputs)
+
+    def _analyse_inputs(self, a: int, b: int, d: int, lines: np.ndarray, f: np.ndarray,
+                        dof: float, h1: np.ndarray, coh: np.ndarray,
+                        res: tuple[Resonance, ...]) -> tuple[InputSurvey, ...]:
+        """Every input's FRF from the drive, resonances and transmissibility (see the module
+        docstring); the first control input's are the survey's own."""
+        s = self.settings
+        n = s.frame_length
+        x = self._drive[:self._n_in]
+        p = self._primary
+        yp = self._rows[p, :self._n_in]
+        out: list[InputSurvey] = []
+        for i, role in enumerate(self._roles):
+            ym = self._rows[i, :self._n_in]
+            rms = float(np.sqrt(np.mean(ym[a + d:b + d] ** 2)))
+            if i == p:
+                out.append(InputSurvey(role.name, role.channel, role.role, h1, coh, res, None,
+                                       None, (), rms))
+                continue
+            cs = CrossSpectrum(self.fs_hz, n, delay_samples=d)
+            cs.push(x[a:b + d], ym[a:b + d])
+            hi = cs.h1[lines] * self._scale[i]
+            ci = np.nan_to_num(cs.coherence[lines], nan=0.0)
+            if role.role == "reference":
+                out.append(InputSurvey(role.name, role.channel, role.role,
+                                       frozen_array(hi, complex), frozen_array(ci), (), None,
+                                       None, (), rms))
+                continue
+            ri = find_resonances(f, hi, ci, dof, band_hz=s.band_hz)
+            # control and this input sampled together: no delay between them
+            ct = CrossSpectrum(self.fs_hz, n)
+            ct.push(yp[a + d:b + d], ym[a + d:b + d])
+            t = ct.h1[lines] * (self._scale[i] / self._scale[p])
+            tc = np.nan_to_num(ct.coherence[lines], nan=0.0)
+            rt = tuple(r for r in find_resonances(f, t, tc, dof, band_hz=s.band_hz)
+                       if r.kind == "peak")
+            out.append(InputSurvey(role.name, role.channel, role.role, frozen_array(hi, complex),
+                                   frozen_array(ci), ri, frozen_array(t, complex),
+                                   frozen_array(tc), rt, rms))
+        return tuple(out)
+
+
+def compare_inputs(before: Any, after: Any, *, shift_pct: float = 2.0,
+                   peak_drop_db: float = 0.92) -> list[tuple[str | None, Any]]:
+    """Pair the resonances of two surveys input by input.
+
+    ``before`` and ``after`` have ``resonances`` (the first control input's) and ``inputs``
+    (name -> ``{"resonances", "trans_resonances"}``; empty for one-input surveys). Returns
+    ``(label, changes)`` groups (:func:`liveshape.dsp.resonance.compare_resonances`): one group
+    labelled None when either survey has one input (exactly the plain compare, of the first
+    control inputs); otherwise one per input of the first survey, by name, its FRF from the
+    drive (label ``NAME``) and, for inputs with one, its transmissibility over the first
+    control input (label ``NAME/T``). An input of the first survey missing from the second is a
+    group whose every feature is flagged as not found.
+    """
+    kw = {"shift_pct": shift_pct, "peak_drop_db": peak_drop_db}
+    bi, ai = dict(before.inputs or {}), dict(after.inputs or {})
+    if not bi or not ai:
+        return [(None, compare_resonances(before.resonances, after.resonances, **kw))]
+    groups: list[tuple[str | None, Any]] = []
+    for name, b in bi.items():
+        a = ai.get(name, {"resonances": (), "trans_resonances": ()})
+        groups.append((name, compare_resonances(b["resonances"], a["resonances"], **kw)))
+        if b.get("trans_resonances"):
+            groups.append((f"{name}/T", compare_resonances(
+                b["trans_resonances"], a.get("trans_resonances") or (), **kw)))
+    return groups
