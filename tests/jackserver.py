@@ -163,3 +163,14 @@ def virtual_rig(plant: Any, **kwargs: Any) -> Iterator[Any]:
         yield rig
     finally:
         rig.stop()
+
+
+def lag_of(x: Any, y: Any) -> int:
+    """Lag of ``y`` behind ``x`` in samples, from the circular cross-correlation peak of the
+    zero-padded signals (no wrap-around)."""
+    import numpy as np
+
+    n = x.size + y.size
+    c = np.fft.irfft(np.fft.rfft(y, n) * np.conj(np.fft.rfft(x, n)), n)
+    k = int(np.argmax(np.abs(c)))
+    return k if k < n // 2 else k - n

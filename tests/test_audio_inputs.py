@@ -27,6 +27,7 @@ import numpy as np
 import pytest
 import scipy.signal
 import soundfile as sf
+from jackserver import lag_of
 
 from liveshape import session as session_mod
 from liveshape.control.runstate import RunResult
@@ -299,14 +300,6 @@ def test_the_session_reads_records_and_names_every_input_in_list_order(
 
 
 # -- through JACK -----------------------------------------------------------------------------
-
-
-def lag_of(x: np.ndarray, y: np.ndarray) -> int:
-    """Lag of ``y`` behind ``x`` in samples, from the cross-correlation peak."""
-    n = x.size + y.size
-    c = np.fft.irfft(np.fft.rfft(y, n) * np.conj(np.fft.rfft(x, n)), n)
-    k = int(np.argmax(np.abs(c)))
-    return k if k < n // 2 else k - n
 
 
 @pytest.mark.jack

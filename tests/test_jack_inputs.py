@@ -22,6 +22,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import scipy.signal
+from jackserver import lag_of
 
 from liveshape.rigs.jackrig import (
     VirtualRig,
@@ -58,14 +59,6 @@ class PlayRecord:
                 self.pos += k
 
         self.client.set_process_callback(process)
-
-
-def lag_of(x: np.ndarray, y: np.ndarray) -> int:
-    """Lag of ``y`` behind ``x`` in samples, from the cross-correlation peak."""
-    n = x.size + y.size
-    c = np.fft.irfft(np.fft.rfft(y, n) * np.conj(np.fft.rfft(x, n)), n)
-    k = int(np.argmax(np.abs(c)))
-    return k if k < n // 2 else k - n
 
 
 @pytest.mark.jack

@@ -84,18 +84,20 @@ def compare_input_lines(groups: Iterable[tuple[str | None, Any]], before: Any,
     n = 0
     for name, changes in groups:
         for c in changes:
-            head = f"{name:<14} {c.before.kind:<5} {c.before.f_hz:>11.2f} "
-            if c.after is None:
-                rows.append(f"{head}{'-':>10} {'-':>8} {'-':>5} {'-':>8}  "
-                            f"FLAG: {'; '.join(c.flagged)}")
-                n += 1
-                continue
-            flag = ("FLAG: " + "; ".join(c.flagged)) if c.flagged else "ok"
-            n += bool(c.flagged)
-            rows.append(f"{head}{c.after.f_hz:>10.2f} {c.shift_pct:>+8.2f} {c.z_f:>5.1f} "
-                        f"{c.level_change_db:>+8.2f}  {flag}")
+            rows.append(f"{name:<14} " + _change_row(c))
+            n += bool(c.flagged) or c.after is None
     rows.append(f"{n} change(s) flagged")
     return rows
+
+
+def _change_row(c: Any) -> str:
+    """One feature of the first survey against its partner in the second (flags last)."""
+    head = f"{c.before.kind:<5} {c.before.f_hz:>11.2f} "
+    if c.after is None:
+        return f"{head}{'-':>10} {'-':>8} {'-':>5} {'-':>8}  FLAG: {'; '.join(c.flagged)}"
+    flag = ("FLAG: " + "; ".join(c.flagged)) if c.flagged else "ok"
+    return (f"{head}{c.after.f_hz:>10.2f} {c.shift_pct:>+8.2f} {c.z_f:>5.1f} "
+            f"{c.level_change_db:>+8.2f}  {flag}")
 
 
 def compare_lines(changes: Iterable[Any], before: Any, after: Any) -> list[str]:
@@ -105,14 +107,7 @@ def compare_lines(changes: Iterable[Any], before: Any, after: Any) -> list[str]:
             f"{'Δ|H| dB':>8}  flag"]
     n = 0
     for c in changes:
-        if c.after is None:
-            rows.append(f"{c.before.kind:<5} {c.before.f_hz:>11.2f} {'-':>10} {'-':>8} "
-                        f"{'-':>5} {'-':>8}  FLAG: {'; '.join(c.flagged)}")
-            n += 1
-            continue
-        flag = ("FLAG: " + "; ".join(c.flagged)) if c.flagged else "ok"
-        n += bool(c.flagged)
-        rows.append(f"{c.before.kind:<5} {c.before.f_hz:>11.2f} {c.after.f_hz:>10.2f} "
-                    f"{c.shift_pct:>+8.2f} {c.z_f:>5.1f} {c.level_change_db:>+8.2f}  {flag}")
+        rows.append(_change_row(c))
+        n += bool(c.flagged) or c.after is None
     rows.append(f"{n} change(s) flagged")
     return rows
