@@ -24,7 +24,44 @@ from liveshape.dsp.welch_stream import WelchStream
 __all__ = ["SegmentPowers", "SegmentSpectra"]
 
 
-class SegmentPowers(WelchStream):
+class _SegmentQueue(WelchStream):
+    """The segments of one or more streams on chosen lines, handed out in order (the common
+    part of :class:`SegmentPowers` and :class:`SegmentSpectra`)."""
+
+    def __init__(self, fs_hz: float, nperseg: int, lines: np.ndarray, n_channels: int,
+                 window: Any) -> None:
+        super().__init__(fs_hz, nperseg, (0,) * int(n_channels), averaging="linear",
+                         n_avg=None, window=window)
+        self._lines = np.flatnonzero(np.asarray(lines, dtype=bool))
+        if self._lines.size and (self._lines[0] == 0 or self._lines[-1] == self._n_lines - 1):
+            raise ValueError(f"{type(self).__name__}: DC and Nyquist are not supported lines")
+        self._done: list[np.ndarray] = []
+        self._first = 0  # index of the first segment not yet popped
+
+    @property
+    def hop(self) -> int:
+        """Samples between the starts of two segments."""
+        return self._hop
+
+    def reset(self) -> None:
+        """Forget every sample and segment; the next segment is number 0 again."""
+        self._reset_stream()
+        self._done.clear()
+        self._first = 0
+
+    def _take(self, empty: np.ndarray) -> tuple[int, np.ndarray]:
+        """``(i, rows)``: index of the first segment returned and every row done since the last
+        call (``empty`` when there is none)."""
+        i = self._first
+        if not self._done:
+            return i, empty
+        out = self._done[0] if len(self._done) == 1 else np.concatenate(self._done)
+        self._done.clear()
+        self._first += out.shape[0]
+        return i, out
+
+
+class SegmentPowers(_SegmentQueue):
     """Periodogram of every complete segment of a stream on the lines ``lines`` (units²/Hz).
 
     Segment ``i`` (counted from 0 since the last :meth:`reset`) covers samples
@@ -47,23 +84,7 @@ class SegmentPowers(WelchStream):
 
     def __init__(self, fs_hz: float, nperseg: int, lines: np.ndarray, *,
                  window: Any = "hann") -> None:
-        super().__init__(fs_hz, nperseg, (0,), averaging="linear", n_avg=None, window=window)
-        self._lines = np.flatnonzero(np.asarray(lines, dtype=bool))
-        if self._lines.size and (self._lines[0] == 0 or self._lines[-1] == self._n_lines - 1):
-            raise ValueError("SegmentPowers: DC and Nyquist are not supported lines")
-        self._done: list[np.ndarray] = []
-        self._first = 0  # index of the first segment not yet popped
-
-    @property
-    def hop(self) -> int:
-        """Samples between the starts of two segments."""
-        return self._hop
-
-    def reset(self) -> None:
-        """Forget every sample and segment; the next segment is number 0 again."""
-        self._reset_stream()
-        self._done.clear()
-        self._first = 0
+        super().__init__(fs_hz, nperseg, lines, 1, window)
 
     def push(self, x: np.ndarray) -> None:
         """Add a block of samples (1-D, any length); complete segments are transformed."""
@@ -80,13 +101,7 @@ class SegmentPowers(WelchStream):
         ``p`` has one row per segment completed since the last call (possibly none) and one
         column per selected line, in units²/Hz.
         """
-        i = self._first
-        if not self._done:
-            return i, np.empty((0, self._lines.size))
-        p = self._done[0] if len(self._done) == 1 else np.concatenate(self._done)
-        self._done.clear()
-        self._first += p.shape[0]
-        return i, p
+        return self._take(np.empty((0, self._lines.size)))
 
     def _accumulate(self, spectra: np.ndarray, coef: float | np.ndarray) -> None:
         sel = spectra[0][:, self._lines]
@@ -96,7 +111,7 @@ class SegmentPowers(WelchStream):
         self._done.append(p)
 
 
-class SegmentSpectra(WelchStream):
+class SegmentSpectra(_SegmentQueue):
     """Fourier coefficients of every complete segment of several streams on chosen lines.
 
     The segments are those of :class:`SegmentPowers` (the same window, overlap and mean
@@ -121,20 +136,8 @@ class SegmentSpectra(WelchStream):
 
     def __init__(self, fs_hz: float, nperseg: int, lines: np.ndarray, n_channels: int, *,
                  window: Any = "hann") -> None:
-        super().__init__(fs_hz, nperseg, (0,) * int(n_channels), averaging="linear",
-                         n_avg=None, window=window)
-        self._lines = np.flatnonzero(np.asarray(lines, dtype=bool))
-        if self._lines.size and (self._lines[0] == 0 or self._lines[-1] == self._n_lines - 1):
-            raise ValueError("SegmentSpectra: DC and Nyquist are not supported lines")
+        super().__init__(fs_hz, nperseg, lines, n_channels, window)
         self._root = np.sqrt(self._scale)
-        self._done: list[np.ndarray] = []
-        self._first = 0
-
-    def reset(self) -> None:
-        """Forget every sample and segment; the next segment is number 0 again."""
-        self._reset_stream()
-        self._done.clear()
-        self._first = 0
 
     def push(self, rows: np.ndarray) -> None:
         """Add one block per stream: ``rows`` of shape ``(n_channels, n)``."""
@@ -149,13 +152,7 @@ class SegmentSpectra(WelchStream):
     def pop(self) -> tuple[int, np.ndarray]:
         """``(i, X)``: index of the first segment returned and the coefficients, complex, of
         shape ``(segments, n_channels, lines)``, scaled as in the class docstring."""
-        i = self._first
-        if not self._done:
-            return i, np.empty((0, len(self._leads), self._lines.size), dtype=complex)
-        x = self._done[0] if len(self._done) == 1 else np.concatenate(self._done)
-        self._done.clear()
-        self._first += x.shape[0]
-        return i, x
+        return self._take(np.empty((0, len(self._leads), self._lines.size), dtype=complex))
 
     def _accumulate(self, spectra: np.ndarray, coef: float | np.ndarray) -> None:
         sel = spectra[:, :, self._lines] * self._root  # channels x m x lines
