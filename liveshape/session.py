@@ -706,11 +706,13 @@ def run_survey(
         result = src.result()
     else:
         from liveshape.rigs.audio import AudioRig
+        from liveshape.rigs.calfile import check_inputs_calibrated
         from liveshape.rigs.calibration import resolve_calibration
         from liveshape.rigs.devices import audio_channels
 
         info = check_audio_map(spec)  # first: no device named is the first error
         cal = resolve_calibration(spec.rig.calibration, spec.rig.uncalibrated)
+        check_inputs_calibrated(cal, roles)  # every sensor's own mV/g, before any drive
         b = block_size or AUDIO_BLOCK
         # several inputs: every one read, in rig.inputs order, as run_audio_session does
         chans = audio_channels(spec.rig.channel_map(),

@@ -301,3 +301,16 @@ def test_a_card_survey_reads_every_input_in_list_order(tmp_path, monkeypatch):
     meta = json.loads((root / "survey.json").read_text())
     assert [(e["channel"], e["role"]) for e in meta["rig"]["inputs"]] == [
         (3, "control"), (1, "monitor"), (2, "reference")]
+    # calibrated, the monitor needs its own mV/g: refused in one line before the card is opened
+    from liveshape.errors import ConfigError
+    from liveshape.rigs.calfile import write_calibration
+    from liveshape.testdef.chain import ChainCalibration
+
+    cal_path = tmp_path / "chain.yaml"
+    write_calibration(cal_path, ChainCalibration(source="file"))
+    spec = load_spec(tmp_path / "a.yaml", overrides={"rig.uncalibrated": "false",
+                                                      "rig.calibration": str(cal_path)})
+    opened = len(ChannelStream.instances)
+    with pytest.raises(ConfigError, match=r"monitor input 1 \(bracket\)"):
+        run_survey(spec, settings, out_dir=tmp_path / "out2")
+    assert len(ChannelStream.instances) == opened and not (tmp_path / "out2").exists()
