@@ -197,7 +197,6 @@ class InputSet:
         self.notch_deepest_db = np.zeros(n_lines)  # deepest notch at full level, per line
         self._blk = _Sums.zeros(k + 1, n_lines)
         self._full = _Sums.zeros(k + 1, n_lines)
-        self._full_ctrl = np.zeros(n_lines)
 
     # ------------------------------------------------------------------ segments
     def reset(self) -> None:
@@ -254,7 +253,6 @@ class InputSet:
         self._blk.add(p / norm, cross, xr)
         if steady_full:
             self._full.add(p / norm, cross, xr)
-            self._full_ctrl += comb
             self.notch_deepest_db = np.minimum(self.notch_deepest_db, self.notch_db)
         return comb, trip
 
