@@ -424,3 +424,70 @@ def test_the_report_has_a_page_of_the_inputs(limited_run, tmp_path):
     assert "5  inputs: PSD at full level, limits and notches, transmissibility" in rep.pages
     assert rep.pages[-1].startswith(f"{len(rep.pages)}  event log")
     assert rep.pdf_path.stat().st_size > 0 and rep.pngs["inputs"].stat().st_size > 0
+
+
+def test_a_notch_deepens_at_most_2_db_per_update_spreads_2_lines_and_recovers_slowly():
+    from liveshape.control.inputset import (
+        NOTCH_DOWN_DB,
+        NOTCH_MARGIN_DB,
+        NOTCH_MIN_SEGMENTS,
+        NOTCH_SPREAD_LINES,
+        NOTCH_UP_DB,
+        InputSet,
+    )
+    from liveshape.schema import Where
+    from liveshape.testdef.chain import ChainCalibration
+    from liveshape.testdef.inputs import inputs_from_list
+
+    roles = inputs_from_list([{"channel": 1, "role": "control"},
+                              {"channel": 2, "role": "monitor", "name": "m",
+                               "limit": [{"f_hz": 10, "asd": 1.0}, {"f_hz": 100, "asd": 1.0}]}],
+                             Where("t"))
+    cal = ChainCalibration(in_v_per_fs=1.0, accel_mv_per_g=1000.0)  # 1 g per FS
+    n_lines = 40
+    band = np.zeros(257, dtype=bool)
+    band[10:10 + n_lines] = True
+    f = np.arange(257)[band] * 1.0
+    s = InputSet(roles, cal, fs_hz=512.0, nperseg=512, band=band, f_hz=f,
+                 target_psd=np.ones(n_lines), strategy="average", window_segments=8,
+                 long_segments=8)
+    # the monitor reads |T|² = 10 (10 dB over its limit at the target) on line 20, 1 elsewhere:
+    # a coherent path, so each segment's ratio is exact
+    t2 = np.ones(n_lines)
+    t2[20] = 10.0
+
+    def feed(ratio):
+        x = np.zeros((3, n_lines), complex)
+        x[0] = 1.0
+        x[1] = np.sqrt(ratio)
+        x[2] = 1.0
+        for _ in range(NOTCH_MIN_SEGMENTS):
+            s.segment(x, np.abs(x[0]) ** 2, 1.0, steady_full=True, t_s=0.0)
+
+    feed(t2)
+    depths = [s.on_update()[20] for _ in range(8)]
+    # the need is 10 log10(1/10) − margin = −10.5 dB, reached in steps of at most 2 dB
+    assert depths[0] == pytest.approx(-NOTCH_DOWN_DB)
+    assert np.all(np.diff(depths) >= -NOTCH_DOWN_DB - 1e-12)
+    assert depths[-1] == pytest.approx(-10.0 - NOTCH_MARGIN_DB)
+    notch = s.notch_db
+    assert np.all(notch[20 - NOTCH_SPREAD_LINES: 21 + NOTCH_SPREAD_LINES] == notch[20])
+    assert notch[20 - NOTCH_SPREAD_LINES - 1] == 0.0 and notch[21 + NOTCH_SPREAD_LINES] == 0.0
+    # the resonance goes away: back up by at most 0.5 dB per update
+    feed(np.ones(n_lines))  # the window (8 segments) now holds only the new ones
+    before = s.notch_db[20]
+    after = s.on_update()[20]
+    assert after - before == pytest.approx(NOTCH_UP_DB)
+
+
+def test_input_on_the_command_line_is_refused_when_the_file_has_a_list(tmp_path):
+    monitored = EXAMPLE.with_name("handlebar-nav-unit-monitored.yaml")
+    import subprocess
+    import sys
+
+    proc = subprocess.run([sys.executable, "-m", "liveshape", "run", str(monitored), "--fast",
+                           "--out", str(tmp_path), "--input", "1:control"],
+                          capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 2 and "Traceback" not in proc.stderr
+    assert "--input: the test definition has a list rig.inputs already" in proc.stderr
+    assert not any(tmp_path.iterdir())
