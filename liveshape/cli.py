@@ -162,10 +162,14 @@ def _feasibility(spec: Any) -> Any:
             f"--rig = audio:{spec.rig.device}: feasibility needs a plant model; "
             "check against the simulated rig that models it (--rig sim:PLANT.yaml)"
         )
+    from liveshape.rigs.feasibility import monitor_budgets, with_monitors
+
     plant = load_plant(spec.rig.plant)
-    return assess(
-        spec.profile, plant, fs_hz=spec.control.fs_hz, frame_length=spec.control.frame_length
-    )
+    c = spec.control
+    feas = assess(spec.profile, plant, fs_hz=c.fs_hz, frame_length=c.frame_length)
+    roles = spec.rig.input_roles() if spec.rig.inputs is not None else None
+    return with_monitors(feas, monitor_budgets(roles, plant, spec.profile, fs_hz=c.fs_hz,
+                                               frame_length=c.frame_length))
 
 
 def _feasibility_warnings(feas: Any) -> list[str]:

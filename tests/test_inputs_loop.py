@@ -491,3 +491,49 @@ def test_input_on_the_command_line_is_refused_when_the_file_has_a_list(tmp_path)
     assert proc.returncode == 2 and "Traceback" not in proc.stderr
     assert "--input: the test definition has a list rig.inputs already" in proc.stderr
     assert not any(tmp_path.iterdir())
+
+
+def test_check_predicts_a_monitors_card_input_and_refuses_an_overload(tmp_path, limited_run):
+    from liveshape.rigs.feasibility import monitor_budgets
+
+    plant = load_plant("loudspeaker")
+    mode = plant.payload.resonances[0]
+    # Rao, Mechanical Vibrations, 5th ed., §3.6: |T|² = (1 + (2ζr)²) / ((1 − r²)² + (2ζr)²)
+    spec = spec_with([{"channel": 1, "role": "control"},
+                      {"channel": 2, "role": "monitor", "name": "bracket"}])
+    df = spec.control.fs_hz / spec.control.frame_length
+    f = np.arange(spec.control.frame_length // 2 + 1) * df
+    g = spec.profile.asd_at(f)
+    r, zeta = f / mode.f_hz, 1.0 / (2.0 * mode.q)
+    t2 = (1 + (2 * zeta * r) ** 2) / ((1 - r**2) ** 2 + (2 * zeta * r) ** 2)
+    want_g = np.sqrt(np.sum(g * t2) * df)  # grms at the bracket
+    (key, b), = monitor_budgets(spec.rig.input_roles(), plant, spec.profile,
+                                fs_hz=spec.control.fs_hz, frame_length=spec.control.frame_length)
+    assert key == "monitor_2_bracket_input" and not b.ok  # 3σ over 1 FS
+    assert b.rms == pytest.approx(want_g * plant.fs_per_g, rel=2e-3)
+    # with its limit the prediction is the capped level, and the run's own figure agrees
+    lim_spec, session = limited_run
+    (_, b2), = monitor_budgets(lim_spec.rig.input_roles(), plant, lim_spec.profile,
+                               fs_hz=spec.control.fs_hz, frame_length=spec.control.frame_length)
+    measured = session.result.inputs["inputs"][1]["grms_g"] * plant.fs_per_g
+    # the prediction is an upper bound: the loop aims 0.5 dB under the limit and notches two
+    # neighbours on each side as deep (measured: 1.4 dB below it in rms)
+    assert -2.0 < 20 * np.log10(measured / b2.rms) < 0.2
+    # the command line: check says infeasible (exit 3) and run refuses before any drive
+    import subprocess
+    import sys
+
+    text = EXAMPLE.read_text().replace(
+        "  plant: loudspeaker\n",
+        "  plant: loudspeaker\n  inputs:\n    - {channel: 1, role: control}\n"
+        "    - {channel: 2, role: monitor, name: bracket}\n")
+    path = tmp_path / "m.yaml"
+    path.write_text(text)
+    chk = subprocess.run([sys.executable, "-m", "liveshape", "check", str(path), "--rig", "sim"],
+                         capture_output=True, text=True, timeout=300)
+    assert chk.returncode == 3 and "monitor 2 bracket input" in chk.stdout
+    out = tmp_path / "runs"
+    run = subprocess.run([sys.executable, "-m", "liveshape", "run", str(path), "--fast",
+                          "--out", str(out)], capture_output=True, text=True, timeout=300)
+    assert run.returncode == 3 and "monitor input 2 (bracket)" in run.stdout + run.stderr
+    assert not out.exists()

@@ -106,6 +106,9 @@ class Feasibility:
     reachable_level_db: float | None = 0.0
     lowest_limited_by: tuple[str, ...] = ()
     advice: tuple[str, ...] = ()
+    #: The card input of every monitor input on the simulated plant (:func:`monitor_budgets`),
+    #: with its key (``monitor_<channel>_<name>_input``).
+    monitors: tuple[tuple[str, Budget], ...] = ()
 
     def headrooms_db(self) -> dict[str, float]:
         """Headroom of every limit at full level, dB, by its plain name (``SNR`` is the worst
@@ -134,7 +137,8 @@ class Feasibility:
         }
         budgets = [("drive", "fs", self.drive), ("amp_voltage", "v", self.amp_voltage),
                    ("amp_current", "a", self.amp_current), ("excursion", "m", self.excursion),
-                   ("card_input", "fs", self.card_input)]
+                   ("card_input", "fs", self.card_input),
+                   *((key, "fs", b) for key, b in self.monitors)]
         for key, unit, b in budgets:
             if b is None:
                 continue
@@ -165,6 +169,71 @@ class Feasibility:
             "advice": list(self.advice),
         })
         return d
+
+
+def monitor_budgets(roles: Any, plant: Plant, profile: Any, *, fs_hz: float,
+                    frame_length: int) -> tuple[tuple[str, Budget], ...]:
+    """The card input each monitor of ``roles`` would see at full level on the simulated plant.
+
+    A monitor named after a payload resonance or a fixture point reads the control's target
+    times that point's transmissibility from the table (:func:`~liveshape.rigs.plantmodel.
+    mode_transmissibility_tf`, :func:`~liveshape.rigs.plantmodel.fixture_point_tf`; base
+    excitation, Rao, *Mechanical Vibrations*, 5th ed., §3.6), capped by its limit where it has
+    one (the loop notches the reference there), plus the noise floor, in FS through the
+    accelerometer. Only for a plant controlled on the table; a monitor naming no point is left
+    out (the run refuses it in one line).
+    """
+    import scipy.signal
+
+    from liveshape.rigs.plantmodel import fixture_point_tf, mode_transmissibility_tf
+
+    pl = plant.payload
+    if roles is None or pl.control_point != "table":
+        return ()
+    fs = float(fs_hz)
+    df = fs / int(frame_length)
+    f = np.arange(int(frame_length) // 2 + 1) * df
+    asd = _asd_lines(profile, f)
+    band = asd > 0
+    fb, ab = f[band], asd[band]
+    c = plant.fs_per_g
+    noise_ms = (plant.accelerometer.noise_g_rms * c) ** 2 + plant.card.in_noise_fs_rms**2
+    modes = [r.name for r in pl.resonances]
+    points = [p.name for p in pl.fixture_points]
+    out = []
+    for r in roles:
+        if r.role != "monitor":
+            continue
+        if r.name in points:
+            num, den = fixture_point_tf(plant, points.index(r.name))
+        elif r.name in modes:
+            num, den = mode_transmissibility_tf(plant, modes.index(r.name))
+        else:
+            continue
+        _, t = scipy.signal.freqs(num, den, worN=2 * np.pi * fb)
+        g = ab * np.abs(t) ** 2
+        if r.limit is not None:
+            lim = np.asarray(r.limit.asd_at(fb), dtype=float)
+            g = np.where(lim > 0, np.minimum(g, lim), g)
+        out.append((f"monitor_{r.channel}_{r.name}_input",
+                    _budget(f"monitor input {r.channel} ({r.name})", "FS",
+                            float(g.sum() * df) * c * c + noise_ms, 1.0)))
+    return tuple(out)
+
+
+def with_monitors(feas: Feasibility, monitors: tuple[tuple[str, Budget], ...]) -> Feasibility:
+    """``feas`` with the monitors' budgets; infeasible when one is over (the run would trip
+    ``input_overload`` on that input)."""
+    import dataclasses
+
+    if not monitors:
+        return feas
+    over = [b.name for _, b in monitors if not b.ok]
+    advice = feas.advice + tuple(
+        f"{name}: give it a limit in rig.inputs, or lower the level, or its sensor's gain"
+        for name in over)
+    return dataclasses.replace(feas, monitors=monitors, feasible=feas.feasible and not over,
+                               advice=advice)
 
 
 def _budget(name: str, unit: str, ms: float, limit: float | None) -> Budget:
