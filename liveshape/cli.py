@@ -842,20 +842,32 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
         if delay.get("samples") is None:
             raise ConfigError(f"{path}: loop_delay.samples is missing; run "
                               "liveshape calibrate delay first")
+    sensor_in = getattr(args, "sensor_input", None) or 1
+    if getattr(args, "sensor_input", None) is not None and step != "sensor":
+        raise ConfigError(f"calibrate {step}: --input is for the sensor step only")
     if step == "sensor":
         in_v = _section_value(data, path, "input", "v_per_fs", "calibrate input")
+        if sensor_in != 1 and loopback is not None:
+            raise ConfigError("calibrate sensor: --loopback plays nothing here; give --input N")
+        if sensor_in != 1:  # the sensor's conditioner on another input: its own V/FS if known
+            for item in data.get("inputs") or ():
+                if isinstance(item, dict) and item.get("channel") == sensor_in and \
+                        item.get("v_per_fs") is not None:
+                    in_v = float(item["v_per_fs"])  # that input's own V/FS, if measured
     if step == "output" and args.unattended and args.reading is None:
         raise ConfigError("calibrate output --unattended: give the voltmeter reading with "
                           "--reading V_RMS (nobody is there to type it)")
     if not args.unattended and not sys.stdin.isatty():
         raise ConfigError(f"calibrate {step}: stdin is not a terminal, so nobody can confirm "
                           "the set-up; nothing played (--unattended skips the wait)")
-    rig, device_name, channel, where = _calibration_rig(args, loopback)
+    # the sensor step reads the input its sensor is on (nothing is played)
+    rig, device_name, channel, where = _calibration_rig(
+        args, (1, sensor_in) if step == "sensor" and sensor_in != 1 else loopback)
     notice = cal.describe_step(
         step, device=device_name, level_fs=args.level, loopback=loopback,
         out_v_per_fs=out_v or (data.get("output") or {}).get("v_per_fs"),
         known_v_rms=args.known_v, repeats=args.repeats,
-        datasheet_mv_per_g=args.datasheet_mv_per_g)
+        datasheet_mv_per_g=args.datasheet_mv_per_g, sensor_input=sensor_in)
     data["device"] = device_name
     data["fs_hz"] = float(args.fs)
     for line in notice.lines():
@@ -908,12 +920,19 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
         else:  # sensor
             res = cal.check_accelerometer(rig, in_v_per_fs=in_v,
                                           datasheet_mv_per_g=args.datasheet_mv_per_g,
-                                          where="input 1",
+                                          where=f"input {sensor_in}",
                                           accept_deviation=args.accept_deviation)
-            acc = {"mv_per_g": res.sensitivity_mv_per_g}
-            if args.datasheet_mv_per_g is not None:
-                acc["datasheet_mv_per_g"] = args.datasheet_mv_per_g
-            data["accelerometer"] = acc
+            if sensor_in == 1:
+                acc = {"mv_per_g": res.sensitivity_mv_per_g}
+                if args.datasheet_mv_per_g is not None:
+                    acc["datasheet_mv_per_g"] = args.datasheet_mv_per_g
+                data["accelerometer"] = acc
+            else:  # one entry per input under inputs (calibration/README.md)
+                items = [i for i in (data.get("inputs") or ())
+                         if not (isinstance(i, dict) and i.get("channel") == sensor_in)]
+                items.append({"channel": sensor_in, "v_per_fs": in_v,
+                              "mv_per_g": res.sensitivity_mv_per_g})
+                data["inputs"] = sorted(items, key=lambda i: i.get("channel", 0))
             out = {k: v for k, v in dataclasses.asdict(res).items() if k != "fit"}
             out["snr_db"] = res.fit.snr_db
     except ConfigError as exc:
@@ -1261,6 +1280,10 @@ def build_parser() -> argparse.ArgumentParser:
                     help="sensor step: the datasheet sensitivity to compare with")
     cb.add_argument("--accept-deviation", action="store_true",
                     help="sensor step: keep a sensitivity more than 20 %% from the datasheet")
+    cb.add_argument("--input", type=_channel, metavar="N", dest="sensor_input",
+                    help="sensor step: the input the sensor's conditioner is on, from 1 "
+                    "(default 1, the control accelerometer; another input is written under "
+                    "inputs, for a rig with several inputs)")
     cb.add_argument("--unattended", action="store_true",
                     help="do not wait for Enter before the step plays (scripts; the set-up "
                     "must already be right). Without it stdin must be a terminal")

@@ -427,3 +427,35 @@ def test_delay_through_the_chain_asks_for_the_gain_low(bench, monkeypatch, capsy
     assert "through the amplifier to the shaker" in err
     assert "first:   amplifier gain low (the bursts drive the shaker)" in err
     assert bench.log == ["enter", "play"]
+
+
+def test_sensor_on_another_input_is_written_under_inputs(bench, monkeypatch, capsys, tmp_path):
+    # a monitor accelerometer (true 98 mV/g, as the bench's exciter wiring) on input 3; the
+    # chain's own sensor entry stays as it was
+    f = tmp_path / "rig.yaml"
+    config.write_yaml_file(f, {"liveshape_calibration": cal.SCHEMA_VERSION,
+                               "output": {"v_per_fs": TRUE_OUT_V},
+                               "input": {"v_per_fs": TRUE_IN_V},
+                               "accelerometer": {"mv_per_g": 100.0}})
+    bench.wiring = "exciter"
+    rc, out, err = calibrate(bench, monkeypatch, capsys, "sensor", "--input", "3", "-o", str(f),
+                             keys="\n")
+    assert rc == 0, err
+    assert "the conditioner on input 3" in err and "2 s on input 3" in err
+    assert bench.rigs[-1].control_channel == 2 and bench.rigs[-1].loopback is None
+    data = config.read_yaml_file(f)
+    assert data["accelerometer"] == {"mv_per_g": 100.0}
+    (entry,) = data["inputs"]
+    # S = V_rms / a with the card's input scale: the same 0.2 % bound as the control's sensor
+    assert entry["channel"] == 3 and entry["v_per_fs"] == pytest.approx(TRUE_IN_V)
+    assert entry["mv_per_g"] == pytest.approx(98.0, rel=2e-3)
+    loaded = cal.load_calibration(f)
+    assert loaded.g_per_fs_at(3) == pytest.approx(TRUE_IN_V / 0.098, rel=2e-3)
+    # again: the entry is replaced, not repeated
+    rc, _, err = calibrate(bench, monkeypatch, capsys, "sensor", "--input", "3", "-o", str(f),
+                           keys="\n")
+    assert rc == 0, err
+    assert len(config.read_yaml_file(f)["inputs"]) == 1
+    rc, _, err = calibrate(bench, monkeypatch, capsys, "delay", "--input", "3", "--loopback",
+                           "1:1", "-o", str(f), keys="\n")
+    assert rc == 2 and "--input is for the sensor step only" in err

@@ -287,8 +287,10 @@ def describe_step(
     known_v_rms: float | None = None,
     repeats: int = 5,
     datasheet_mv_per_g: float | None = None,
+    sensor_input: int = 1,
 ) -> StepNotice:
-    """The :class:`StepNotice` of one ``liveshape calibrate`` step.
+    """The :class:`StepNotice` of one ``liveshape calibrate`` step (``sensor_input``: the input
+    the sensor step reads, counted from 1).
 
     Channels are numbered from 1 as printed on interfaces: output 1 carries the drive, input 1
     the control accelerometer; ``loopback = (out, in)`` is a cable from output ``out`` to input
@@ -340,7 +342,9 @@ def describe_step(
                  f"; compared with the datasheet's {datasheet_mv_per_g:g} mV/g")
         return StepNotice(
             step, None, f"the accelerometer on the reference exciter ({REFERENCE_F_HZ:.1f} Hz, "
-            f"{REFERENCE_ACCEL_M_S2_RMS:g} m/s² rms), the exciter on, the conditioner on input 1 "
-            f"of {device}; nothing plays on the outputs", "2 s on input 1" + sheet,
-            "accelerometer.mv_per_g")
+            f"{REFERENCE_ACCEL_M_S2_RMS:g} m/s² rms), the exciter on, the conditioner on input "
+            f"{sensor_input} of {device}; nothing plays on the outputs",
+            f"2 s on input {sensor_input}" + sheet,
+            "accelerometer.mv_per_g" if sensor_input == 1 else
+            f"inputs: channel {sensor_input}, v_per_fs, mv_per_g")
     raise ValueError(f"unknown calibration step {step!r}")
