@@ -174,7 +174,7 @@ def check_inputs_calibrated(cal: ChainCalibration, roles: Any) -> None:
                 f"{cal.source}: inputs has no entry with mv_per_g for {r.role} input "
                 f"{r.channel} ({r.name}): its g would use another sensor's sensitivity{guard}; "
                 f"add {{channel: {r.channel}, v_per_fs: ..., mv_per_g: ...}} under inputs "
-                "(see calibration/README.md)")
+                f"(liveshape calibrate sensor --input {r.channel}; calibration/README.md)")
 
 
 def resolve_calibration(path: Any, uncalibrated: bool) -> ChainCalibration:
