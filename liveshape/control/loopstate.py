@@ -127,9 +127,6 @@ class LoopState:
             if not self._fast:
                 raise ConfigError(f"{where}: rig.inputs with {len(self._roles)} inputs need "
                                   "control.loop = fast (the block loop reads one input)")
-            if getattr(spec, "tones", ()):
-                raise ConfigError(f"{where}: tones and rig.inputs with {len(self._roles)} "
-                                  "inputs cannot be combined yet (tones need one input)")
         #: the other inputs (None: one input): combined control, monitors, limits, reference
         self._inputs: InputSet | None = None
         self._rows: InputRows | None = None

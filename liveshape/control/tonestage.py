@@ -81,15 +81,29 @@ class ToneStage:
         chunks with the tones removed, ready for the random's estimation."""
         if self._tone_i0 is None:
             self._tone_i0 = i0
-        self._tone_buf.append((x, y))
+        rows = None if self._rows_now is None else self._rows_now[0]
+        self._tone_buf.append((x, y, rows))
         self._tone_n += y.size
         if self._tone_n < self._m_update * self._hop:  # one update interval per tone block
             return []
-        xs = np.concatenate([a for a, _ in self._tone_buf])
-        ys = np.concatenate([b for _, b in self._tone_buf])
+        xs = np.concatenate([a for a, _, _ in self._tone_buf])
+        ys = np.concatenate([b for _, b, _ in self._tone_buf])
         start = self._tone_i0
+        if rows is not None:  # several inputs: the same block of every input, less its tones
+            rs = np.concatenate([r for _, _, r in self._tone_buf], axis=1)
+            self._rows_now = (self._tone_rows(rs, start), xs, start)
         self._tone_buf, self._tone_n, self._tone_i0 = [], 0, None
         return [(self._tone_block(xs, ys, start), start)]
+
+    def _tone_rows(self, rows: np.ndarray, i0: int) -> np.ndarray:
+        """Every input of the block less its own fit of the tones (each input sees them through
+        its own FRF); the reference keeps them, as the drive it copies does."""
+        n0 = i0 - (self._delay or 0)
+        out = np.array(rows, dtype=float)
+        for i, r in enumerate(self._roles):
+            if r.role != "reference":
+                out[i] -= self._tones.fit(out[i], n0).tones_part
+        return out
 
     def _tone_block(self, x: np.ndarray, y: np.ndarray, i0: int) -> np.ndarray:
         tl, out, cal = self._tones, self._out, self.calibration
