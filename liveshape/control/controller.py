@@ -191,8 +191,8 @@ class Controller(ToneStage, FastLoop, LoopState):
             if trip is not None:
                 self._abort(trip)
         if self._trip is not None and self._trip.rule == "non_finite":
-            # keep the estimators finite while ramping down
-            (y if rows is None else rows)[~np.isfinite(y if rows is None else rows)] = 0.0
+            buf = y if rows is None else rows  # y is a view of rows
+            buf[~np.isfinite(buf)] = 0.0  # keep the estimators finite while ramping down
         self._resp.push(y)
         if rows is not None:
             self._rows.push(rows)
@@ -501,10 +501,7 @@ class Controller(ToneStage, FastLoop, LoopState):
             return
         self._pool.push(ctrl, self._nu_update)
         self._pending = tuple(verdict.pending)
-        if verdict.converging:
-            self._emit("converging", f"{verdict.lines_beyond_abort} lines beyond abort, coming "
-                       "back by more than their scatter: lines_abort holds its count",
-                       {"update": self._updates, "lines_beyond_abort": verdict.lines_beyond_abort})
+        self._note_converging(verdict)
         if self._stage == "full_level" and g == 1.0:
             self._full.push(ctrl, self._nu_update, t)
         if self._est.cross:  # blend law: refresh the FRF where the coherence is good

@@ -237,13 +237,11 @@ class FastLoop:
                                               "f_hz": [float(f) for f in self.f_hz[restarted]]})
         old = self._out.psd
         target = self._target
-        if self._inputs is not None and self._inputs.limits:
-            notch = self._inputs.on_update()  # monitors at their limits: the reference notched
+        if self._inputs is not None:  # the extreme pick; monitors at their limits: notches
+            notch = self._inputs.on_update()
             if np.any(notch < 0.0):
                 target = target.copy()
                 target[band] *= 10.0 ** (notch / 10.0)
-        elif self._inputs is not None:
-            self._inputs.on_update()
         pred = np.zeros(old.size)
         # the control this drive gives at full level, with the mean dB bias of the estimate
         # removed (its DOF per line)
@@ -336,10 +334,7 @@ class FastLoop:
                                 applied=False, dof=dof)
             self._abort(verdict.trip)
             return
-        if verdict.converging:
-            self._emit("converging", f"{verdict.lines_beyond_abort} lines beyond abort, coming "
-                       "back by more than their scatter: lines_abort holds its count",
-                       {"update": self._updates, "lines_beyond_abort": verdict.lines_beyond_abort})
+        self._note_converging(verdict)
         if verdict.pending and not self._pending:
             self._emit("hold", f"drive may only go down while {', '.join(verdict.pending)} is "
                        "pending", {"update": self._updates, "pending": list(verdict.pending)})

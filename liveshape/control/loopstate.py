@@ -312,6 +312,13 @@ class LoopState:
                     "ceiling_scale": rec.ceiling_scale, "in_tolerance": in_tol,
                     "drive_rms_fs": math.sqrt(float(played.sum()) * self.df_hz)})
 
+    def _note_converging(self, verdict: Any) -> None:
+        """The event of an update whose lines beyond abort came back (both loops)."""
+        if verdict.converging:
+            self._emit("converging", f"{verdict.lines_beyond_abort} lines beyond abort, coming "
+                       "back by more than their scatter: lines_abort holds its count",
+                       {"update": self._updates, "lines_beyond_abort": verdict.lines_beyond_abort})
+
     def _set_stage(self, stage: str, message: str) -> None:
         self._stage = stage
         self._emit("stage", message, {"stage": stage})
